@@ -1,0 +1,1 @@
+"""cubecast viewer: depends only on the wire format."""
