@@ -1,0 +1,546 @@
+"""Sensor description: load a TOML file, validate it, derive the figures once.
+
+The file format is cubecast's own (see README, "Sensor description"). Every quantity is SI with the
+unit in its name. Positions are in the sensor frame: x right, y boresight, z up.
+
+Derived figures follow the textbook FMCW relations (Richards, Fundamentals of Radar Signal
+Processing, 2005; common practice):
+  range resolution      dR   = c / (2 B)          with B = S * N / fs, the sweep inside the ADC window
+  maximum range         Rmax = fs_IF * c / (2 S)  fs_IF = fs (complex sampling) or fs / 2 (real)
+  velocity resolution   dv   = lambda / (2 N_loops T_loop)
+  unambiguous velocity  vmax = lambda / (4 T_loop), T_loop = N_slots * T_c (TDM divides by N_tx)
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .errors import CubecastError
+
+SPEED_OF_LIGHT_MPS = 299_792_458.0
+BOLTZMANN_J_PER_K = 1.380649e-23
+REFERENCE_TEMPERATURE_K = 290.0
+
+ADC_SAMPLE_TYPES = ("int16", "float32")
+ADC_FORMATS = ("complex", "real")
+MIMO_SCHEMES = ("tdm", "bpm")
+
+
+@dataclass(frozen=True)
+class AdcFormat:
+    """How samples arrive from the ADC, and how they map to the canonical complex frame."""
+
+    sampling: str  # "complex" or "real"
+    sample_type: str  # "int16" or "float32"
+    full_scale: float  # largest magnitude a sample component can take (counts)
+    swap_iq: bool
+    conjugate: bool
+
+    @property
+    def is_complex(self) -> bool:
+        return self.sampling == "complex"
+
+    def raw_shape(self, n_chirps: int, n_rx: int, n_samples: int) -> tuple[int, ...]:
+        """Shape of one frame as stored in a capture: int16 I/Q pairs get a trailing axis of 2."""
+        if self.is_complex and self.sample_type == "int16":
+            return (n_chirps, n_rx, n_samples, 2)
+        return (n_chirps, n_rx, n_samples)
+
+    def raw_dtype(self) -> np.dtype:
+        if self.sample_type == "int16":
+            return np.dtype("<i2")
+        return np.dtype("<c8") if self.is_complex else np.dtype("<f4")
+
+
+@dataclass(frozen=True)
+class Sensor:
+    """A validated sensor description with its derived figures (computed once, at load)."""
+
+    sensor_id: str
+    source_text: str
+    # chirp
+    start_frequency_hz: float
+    slope_hz_per_s: float
+    sample_rate_hz: float
+    samples_per_chirp: int
+    adc_start_delay_s: float
+    ramp_end_time_s: float
+    chirp_period_s: float
+    design_max_range_m: float
+    # frame
+    chirps_per_frame: int
+    frame_period_s: float
+    # antennas, metres, sensor frame, shape [n, 3]
+    tx_positions_m: np.ndarray
+    rx_positions_m: np.ndarray
+    fov_half_azimuth_deg: float
+    fov_half_elevation_deg: float
+    # link budget
+    tx_power_dbm: float
+    tx_gain_dbi: float
+    rx_gain_dbi: float
+    noise_figure_db: float
+    system_loss_db: float
+    noise_rms_counts: float
+    # mimo: code[slot, tx] in {0, +1, -1}; chirp m uses slot m % n_slots
+    mimo_scheme: str
+    mimo_code: np.ndarray
+    adc: AdcFormat
+    digest: str = field(default="")
+
+    # ---- derived figures -------------------------------------------------------------
+    @property
+    def n_tx(self) -> int:
+        return self.tx_positions_m.shape[0]
+
+    @property
+    def n_rx(self) -> int:
+        return self.rx_positions_m.shape[0]
+
+    @property
+    def n_slots(self) -> int:
+        return self.mimo_code.shape[0]
+
+    @property
+    def n_loops(self) -> int:
+        return self.chirps_per_frame // self.n_slots
+
+    @property
+    def n_virtual(self) -> int:
+        return self.n_tx * self.n_rx
+
+    @property
+    def adc_window_s(self) -> float:
+        return self.samples_per_chirp / self.sample_rate_hz
+
+    @property
+    def bandwidth_hz(self) -> float:
+        """Sweep inside the ADC window: the bandwidth that sets range resolution."""
+        return self.slope_hz_per_s * self.adc_window_s
+
+    @property
+    def center_frequency_hz(self) -> float:
+        """Centre of the sampled part of the sweep; its wavelength is the design wavelength."""
+        return self.start_frequency_hz + self.slope_hz_per_s * (self.adc_start_delay_s + 0.5 * self.adc_window_s)
+
+    @property
+    def wavelength_m(self) -> float:
+        return SPEED_OF_LIGHT_MPS / self.center_frequency_hz
+
+    @property
+    def range_resolution_m(self) -> float:
+        return SPEED_OF_LIGHT_MPS / (2.0 * self.bandwidth_hz)
+
+    @property
+    def if_bandwidth_hz(self) -> float:
+        return self.sample_rate_hz if self.adc.is_complex else 0.5 * self.sample_rate_hz
+
+    @property
+    def max_range_m(self) -> float:
+        return self.if_bandwidth_hz * SPEED_OF_LIGHT_MPS / (2.0 * self.slope_hz_per_s)
+
+    @property
+    def n_range_bins(self) -> int:
+        """Range bins the chain keeps (before zero padding): all for complex, the lower half for real."""
+        return self.samples_per_chirp if self.adc.is_complex else self.samples_per_chirp // 2
+
+    @property
+    def loop_period_s(self) -> float:
+        return self.n_slots * self.chirp_period_s
+
+    @property
+    def velocity_resolution_mps(self) -> float:
+        return self.wavelength_m / (2.0 * self.n_loops * self.loop_period_s)
+
+    @property
+    def max_velocity_mps(self) -> float:
+        """Unambiguous radial velocity (+-) after MIMO demultiplexing: lambda / (4 T_loop)."""
+        return self.wavelength_m / (4.0 * self.loop_period_s)
+
+    @property
+    def max_velocity_unfolded_mps(self) -> float:
+        """Reach of TDM velocity unfolding: N_tx hypotheses widen the interval N_slots times."""
+        return self.wavelength_m / (4.0 * self.chirp_period_s)
+
+    @property
+    def chirp_duty_cycle(self) -> float:
+        return self.ramp_end_time_s / self.chirp_period_s
+
+    @property
+    def frame_duty_cycle(self) -> float:
+        return self.chirps_per_frame * self.chirp_period_s / self.frame_period_s
+
+    @property
+    def virtual_positions_m(self) -> np.ndarray:
+        """[n_tx * n_rx, 3]: channel v = k * n_rx + l sits at tx_k + rx_l (two-way phase centre)."""
+        return (self.tx_positions_m[:, None, :] + self.rx_positions_m[None, :, :]).reshape(-1, 3)
+
+    def virtual_array(self) -> dict[str, Any]:
+        """Unique and redundant elements on the half-wavelength grid, apertures, Rayleigh resolution."""
+        half = self.wavelength_m / 2.0
+        pos = self.virtual_positions_m
+        cells = np.round(pos[:, [0, 2]] / half).astype(int)
+        unique = np.unique(cells, axis=0)
+        aperture_az_m = float(np.ptp(pos[:, 0]))
+        aperture_el_m = float(np.ptp(pos[:, 2]))
+        n_az = int(np.unique(cells[:, 0]).size)
+        n_el = int(np.unique(cells[:, 1]).size)
+
+        def rayleigh_deg(n: int, aperture_m: float) -> float | None:
+            # Rayleigh limit in sine space: lambda / L with L = N * d (common practice, 2/N at d = lambda/2)
+            if n < 2:
+                return None
+            span = aperture_m + half  # N elements at pitch d span (N-1) d; the beam uses N d
+            return math.degrees(math.asin(min(1.0, self.wavelength_m / span)))
+
+        return {
+            "positions_m": pos.tolist(),
+            "positions_half_wavelength": (pos / half).round(6).tolist(),
+            "elements": int(pos.shape[0]),
+            "unique_elements": int(unique.shape[0]),
+            "redundant_elements": int(pos.shape[0] - unique.shape[0]),
+            "azimuth_columns": n_az,
+            "elevation_rows": n_el,
+            "azimuth_aperture_m": aperture_az_m,
+            "elevation_aperture_m": aperture_el_m,
+            "azimuth_resolution_deg": rayleigh_deg(n_az, aperture_az_m),
+            "elevation_resolution_deg": rayleigh_deg(n_el, aperture_el_m),
+        }
+
+    def describe(self) -> dict[str, Any]:
+        return {
+            "sensor_id": self.sensor_id,
+            "digest": self.digest,
+            "wavelength_m": self.wavelength_m,
+            "center_frequency_hz": self.center_frequency_hz,
+            "half_wavelength_m": self.wavelength_m / 2.0,
+            "bandwidth_hz": self.bandwidth_hz,
+            "range_resolution_m": self.range_resolution_m,
+            "max_range_m": self.max_range_m,
+            "range_bins": self.n_range_bins,
+            "velocity_resolution_mps": self.velocity_resolution_mps,
+            "max_velocity_mps": self.max_velocity_mps,
+            "max_velocity_unfolded_mps": self.max_velocity_unfolded_mps,
+            "chirp_duty_cycle": self.chirp_duty_cycle,
+            "frame_duty_cycle": self.frame_duty_cycle,
+            "mimo_scheme": self.mimo_scheme,
+            "n_tx": self.n_tx,
+            "n_rx": self.n_rx,
+            "loops_per_frame": self.n_loops,
+            "chirps_per_frame": self.chirps_per_frame,
+            "frame_period_s": self.frame_period_s,
+            "adc": {
+                "sampling": self.adc.sampling,
+                "sample_type": self.adc.sample_type,
+                "full_scale": self.adc.full_scale,
+                "swap_iq": self.adc.swap_iq,
+                "conjugate": self.adc.conjugate,
+            },
+            "virtual_array": self.virtual_array(),
+        }
+
+    # ---- ADC format <-> canonical frame ---------------------------------------------
+    def raw_to_canonical(self, raw: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Convert one frame in the sensor's ADC format to the canonical complex64 [chirp, rx, sample]."""
+        shape = self.adc.raw_shape(self.chirps_per_frame, self.n_rx, self.samples_per_chirp)
+        if raw.shape != shape or raw.dtype != self.adc.raw_dtype():
+            raise CubecastError(
+                f"frame has shape {raw.shape} dtype {raw.dtype}, sensor '{self.sensor_id}' expects "
+                f"shape {shape} dtype {self.adc.raw_dtype()}"
+            )
+        canon_shape = (self.chirps_per_frame, self.n_rx, self.samples_per_chirp)
+        if out is None:
+            out = np.empty(canon_shape, np.complex64)
+        if self.adc.is_complex:
+            if self.adc.sample_type == "int16":
+                i_part, q_part = raw[..., 0], raw[..., 1]
+                if self.adc.swap_iq:
+                    i_part, q_part = q_part, i_part
+                out.real[...] = i_part
+                out.imag[...] = q_part
+            else:
+                out[...] = raw
+                if self.adc.swap_iq:
+                    out.real[...], out.imag[...] = raw.imag, raw.real
+            if self.adc.conjugate:
+                np.conjugate(out, out=out)
+        else:
+            out.real[...] = raw
+            out.imag[...] = 0.0
+        return out
+
+    def canonical_to_raw(self, frame: np.ndarray) -> np.ndarray:
+        """Inverse of raw_to_canonical: quantise (int16, rounding and clipping at full scale) and
+        apply the board's I/Q conventions. Used by the simulator to write captures as a board would."""
+        fs = self.adc.full_scale
+        data = np.conjugate(frame) if self.adc.conjugate else frame
+        if not self.adc.is_complex:
+            re = np.clip(data.real, -fs, fs)
+            if self.adc.sample_type == "int16":
+                return np.rint(re).astype("<i2")
+            return re.astype("<f4")
+        i_part, q_part = data.real, data.imag
+        if self.adc.swap_iq:
+            i_part, q_part = q_part, i_part
+        if self.adc.sample_type == "int16":
+            out = np.empty(frame.shape + (2,), "<i2")
+            out[..., 0] = np.rint(np.clip(i_part, -fs, fs))
+            out[..., 1] = np.rint(np.clip(q_part, -fs, fs))
+            return out
+        out = np.empty(frame.shape, "<c8")
+        out.real = np.clip(i_part, -fs, fs)
+        out.imag = np.clip(q_part, -fs, fs)
+        return out
+
+
+# ---- loading and validation -------------------------------------------------------------
+
+def _where(path: str | None) -> str:
+    return f"{path}: " if path else ""
+
+
+class _Fields:
+    """Typed access to a TOML table with errors that name the field, the value and the rule."""
+
+    def __init__(self, doc: dict, section: str, origin: str | None):
+        self.origin = origin
+        self.section = section
+        table = doc.get(section)
+        if table is None:
+            raise CubecastError(f"{_where(origin)}missing section [{section}]")
+        if not isinstance(table, dict):
+            raise CubecastError(f"{_where(origin)}[{section}] must be a table")
+        self.table = table
+        self.used: set[str] = set()
+
+    def fail(self, name: str, value: Any, rule: str) -> CubecastError:
+        return CubecastError(f"{_where(self.origin)}[{self.section}] {name} = {value!r}: {rule}")
+
+    def has(self, name: str) -> bool:
+        return name in self.table
+
+    def raw(self, name: str, default: Any = ...) -> Any:
+        self.used.add(name)
+        if name not in self.table:
+            if default is ...:
+                raise CubecastError(f"{_where(self.origin)}[{self.section}] {name} is missing")
+            return default
+        return self.table[name]
+
+    def number(self, name: str, default: Any = ..., *, positive: bool = False, min_value: float | None = None) -> float:
+        value = self.raw(name, default)
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise self.fail(name, value, "must be a finite number")
+        if positive and value <= 0:
+            raise self.fail(name, value, "must be greater than zero")
+        if min_value is not None and value < min_value:
+            raise self.fail(name, value, f"must be at least {min_value}")
+        return float(value)
+
+    def integer(self, name: str, default: Any = ..., *, min_value: int = 1) -> int:
+        value = self.raw(name, default)
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise self.fail(name, value, "must be a whole number")
+        if value < min_value:
+            raise self.fail(name, value, f"must be at least {min_value}")
+        return int(value)
+
+    def choice(self, name: str, options: tuple[str, ...], default: Any = ...) -> str:
+        value = self.raw(name, default)
+        if value not in options:
+            raise self.fail(name, value, f"must be one of {', '.join(options)}")
+        return value
+
+    def boolean(self, name: str, default: Any = ...) -> bool:
+        value = self.raw(name, default)
+        if not isinstance(value, bool):
+            raise self.fail(name, value, "must be true or false")
+        return value
+
+    def check_unknown(self) -> None:
+        unknown = sorted(set(self.table) - self.used)
+        if unknown:
+            raise CubecastError(
+                f"{_where(self.origin)}[{self.section}] has unknown field(s) {', '.join(unknown)}"
+            )
+
+
+def _positions(f: _Fields, which: str, half_wavelength_m: float) -> np.ndarray:
+    """TX/RX positions: `{which}_positions_m = [[x, y, z], ...]` in metres, or the shorthand
+    `{which}_positions_half_wavelength = [[x, z], ...]` in half design wavelengths on the x-z plane."""
+    name_m, name_hw = f"{which}_positions_m", f"{which}_positions_half_wavelength"
+    if f.has(name_m) == f.has(name_hw):
+        raise CubecastError(f"{_where(f.origin)}[{f.section}] give exactly one of {name_m} or {name_hw}")
+    name = name_m if f.has(name_m) else name_hw
+    value = f.raw(name)
+    width = 3 if name == name_m else 2
+    if not isinstance(value, list) or not value:
+        raise f.fail(name, value, f"must be a non-empty list of [{'x, y, z' if width == 3 else 'x, z'}] entries")
+    for i, item in enumerate(value):
+        if (not isinstance(item, list) or len(item) != width
+                or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) for v in item)):
+            raise f.fail(f"{name}[{i}]", item, f"must be a list of {width} finite numbers")
+    arr = np.asarray(value, dtype=np.float64)
+    if width == 2:
+        arr = np.stack([arr[:, 0], np.zeros(len(arr)), arr[:, 1]], axis=1) * half_wavelength_m
+    return arr
+
+
+def _mimo(f: _Fields, n_tx: int, chirps_per_frame: int) -> tuple[str, np.ndarray]:
+    scheme = f.choice("scheme", MIMO_SCHEMES)
+    if scheme == "tdm":
+        order = f.raw("tx_order", list(range(n_tx)))
+        if (not isinstance(order, list) or not order
+                or any(isinstance(v, bool) or not isinstance(v, int) for v in order)):
+            raise f.fail("tx_order", order, "must be a list of TX indices")
+        if sorted(order) != list(range(n_tx)):
+            raise f.fail("tx_order", order, f"must name each of the {n_tx} TX (0..{n_tx - 1}) exactly once")
+        code = np.zeros((n_tx, n_tx), np.float64)
+        for slot, k in enumerate(order):
+            code[slot, k] = 1.0
+    else:
+        codes = f.raw("codes")
+        if (not isinstance(codes, list) or not codes
+                or any(not isinstance(row, list) or len(row) != n_tx for row in codes)):
+            raise f.fail("codes", codes, f"must be a list of slots, each a list of {n_tx} signs (one per TX)")
+        code = np.asarray(codes, dtype=np.float64)
+        if not np.all(np.isin(code, (-1.0, 1.0))):
+            raise f.fail("codes", codes, "BPM code entries must be +1 or -1")
+        if code.shape[0] < n_tx or np.linalg.matrix_rank(code) < n_tx:
+            raise f.fail("codes", codes, f"need at least {n_tx} slots with linearly independent codes to separate {n_tx} TX")
+    if chirps_per_frame % code.shape[0]:
+        raise CubecastError(
+            f"{_where(f.origin)}[frame] chirps_per_frame = {chirps_per_frame}: must be a multiple of the "
+            f"{code.shape[0]} MIMO slots ({scheme.upper()})"
+        )
+    return scheme, code
+
+
+def parse_sensor(text: str, origin: str | None = None) -> Sensor:
+    """Parse and validate the text of a sensor description. Raises CubecastError naming the problem."""
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise CubecastError(f"{_where(origin)}not valid TOML: {exc}") from None
+    known = {"sensor", "chirp", "frame", "antennas", "link", "mimo", "adc"}
+    unknown = sorted(set(doc) - known)
+    if unknown:
+        raise CubecastError(f"{_where(origin)}unknown section(s) {', '.join('[' + u + ']' for u in unknown)}")
+
+    s = _Fields(doc, "sensor", origin)
+    sensor_id = s.raw("id")
+    if not isinstance(sensor_id, str) or not sensor_id or not all(c.isalnum() or c in "-_." for c in sensor_id):
+        raise s.fail("id", sensor_id, "must be a non-empty name of letters, digits, '-', '_' or '.'")
+    s.raw("description", "")
+    s.check_unknown()
+
+    c = _Fields(doc, "chirp", origin)
+    f0 = c.number("start_frequency_hz", positive=True)
+    slope = c.number("slope_hz_per_s", positive=True)
+    fs = c.number("sample_rate_hz", positive=True)
+    n_samples = c.integer("samples_per_chirp", min_value=8)
+    adc_start = c.number("adc_start_delay_s", min_value=0.0)
+    ramp_end = c.number("ramp_end_time_s", positive=True)
+    chirp_period = c.number("chirp_period_s", positive=True)
+    design_range = c.number("design_max_range_m", 0.0, min_value=0.0)
+    c.check_unknown()
+    adc_end = adc_start + n_samples / fs
+    if ramp_end < adc_end:
+        raise c.fail("ramp_end_time_s", ramp_end,
+                     f"the ramp must outlast the ADC window, which ends at adc_start_delay_s + "
+                     f"samples_per_chirp / sample_rate_hz = {adc_end:.6g} s")
+    if chirp_period < ramp_end:
+        raise c.fail("chirp_period_s", chirp_period, f"must be at least ramp_end_time_s = {ramp_end:.6g} s")
+
+    if_band = fs if (doc.get("adc") or {}).get("sampling", "complex") == "complex" else fs / 2.0
+    if design_range > 0 and 2.0 * slope * design_range / SPEED_OF_LIGHT_MPS > if_band:
+        raise c.fail("sample_rate_hz", fs,
+                     f"too low for design_max_range_m = {design_range:g}: its beat frequency "
+                     f"2 * slope * range / c = {2.0 * slope * design_range / SPEED_OF_LIGHT_MPS:.6g} Hz exceeds "
+                     f"the IF band {if_band:.6g} Hz the ADC covers")
+
+    fr = _Fields(doc, "frame", origin)
+    chirps = fr.integer("chirps_per_frame")
+    frame_period = fr.number("frame_period_s", positive=True)
+    fr.check_unknown()
+    if chirps * chirp_period > frame_period:
+        raise fr.fail("frame_period_s", frame_period,
+                      f"must be at least chirps_per_frame * chirp_period_s = {chirps * chirp_period:.6g} s")
+
+    a = _Fields(doc, "adc", origin)
+    adc = AdcFormat(
+        sampling=a.choice("sampling", ADC_FORMATS, "complex"),
+        sample_type=a.choice("sample_type", ADC_SAMPLE_TYPES, "int16"),
+        full_scale=a.number("full_scale", positive=True),
+        swap_iq=a.boolean("swap_iq", False),
+        conjugate=a.boolean("conjugate", False),
+    )
+    a.check_unknown()
+    if adc.sample_type == "int16" and adc.full_scale > 32767:
+        raise a.fail("full_scale", adc.full_scale, "int16 samples cannot exceed 32767")
+    if not adc.is_complex and (adc.swap_iq or adc.conjugate):
+        raise a.fail("swap_iq" if adc.swap_iq else "conjugate", True, "I/Q conventions apply to complex sampling only")
+
+    center = f0 + slope * (adc_start + 0.5 * n_samples / fs)
+    half_wavelength_m = SPEED_OF_LIGHT_MPS / center / 2.0
+    an = _Fields(doc, "antennas", origin)
+    tx = _positions(an, "tx", half_wavelength_m)
+    rx = _positions(an, "rx", half_wavelength_m)
+    fov_az = an.number("fov_half_azimuth_deg", 60.0, positive=True)
+    fov_el = an.number("fov_half_elevation_deg", 20.0, positive=True)
+    an.check_unknown()
+    if fov_az > 90 or fov_el > 90:
+        raise an.fail("fov_half_azimuth_deg" if fov_az > 90 else "fov_half_elevation_deg",
+                      max(fov_az, fov_el), "a half field of view must be at most 90 degrees")
+
+    m = _Fields(doc, "mimo", origin)
+    scheme, code = _mimo(m, tx.shape[0], chirps)
+    m.check_unknown()
+
+    ln = _Fields(doc, "link", origin)
+    link = dict(
+        tx_power_dbm=ln.number("tx_power_dbm"),
+        tx_gain_dbi=ln.number("tx_gain_dbi"),
+        rx_gain_dbi=ln.number("rx_gain_dbi"),
+        noise_figure_db=ln.number("noise_figure_db", min_value=0.0),
+        system_loss_db=ln.number("system_loss_db", 0.0, min_value=0.0),
+        noise_rms_counts=ln.number("noise_rms_counts", positive=True),
+    )
+    ln.check_unknown()
+    if link["noise_rms_counts"] >= adc.full_scale:
+        raise ln.fail("noise_rms_counts", link["noise_rms_counts"], f"must be below the ADC full scale {adc.full_scale}")
+
+    # The maximum range follows from the IF band the ADC covers; a range gate beyond is rejected by the chain.
+    sensor = Sensor(
+        sensor_id=sensor_id, source_text=text,
+        start_frequency_hz=f0, slope_hz_per_s=slope, sample_rate_hz=fs, samples_per_chirp=n_samples,
+        adc_start_delay_s=adc_start, ramp_end_time_s=ramp_end, chirp_period_s=chirp_period,
+        design_max_range_m=design_range,
+        chirps_per_frame=chirps, frame_period_s=frame_period,
+        tx_positions_m=tx, rx_positions_m=rx, fov_half_azimuth_deg=fov_az, fov_half_elevation_deg=fov_el,
+        mimo_scheme=scheme, mimo_code=code, adc=adc,
+        digest=hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16],
+        **link,
+    )
+    for arr in (sensor.tx_positions_m, sensor.rx_positions_m, sensor.mimo_code):
+        arr.setflags(write=False)
+    return sensor
+
+
+def load_sensor(path: str | Path) -> Sensor:
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise CubecastError(f"cannot read sensor description {path}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise CubecastError(f"{path}: not UTF-8 text") from None
+    return parse_sensor(text, str(path))

@@ -1,0 +1,137 @@
+"""Processing settings: one TOML section, `[processing]`, every field optional.
+
+The defaults work for the bundled sensor. Unknown fields are errors (a typo is never silently
+ignored). See README "Processing settings" for the table of fields.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from .errors import CubecastError
+
+WINDOWS = ("rect", "hann", "hamming", "blackman", "kaiser")
+CFAR_KINDS = ("ca", "os", "go", "so")
+
+
+@dataclass(frozen=True)
+class ProcessingSettings:
+    # range FFT
+    range_window: str = "hann"
+    range_kaiser_beta: float = 6.0
+    range_fft_size: int = 0  # 0 = samples per chirp; else a size >= samples (zero padding)
+    static_clutter_removal: bool = False
+    # Doppler FFT
+    doppler_window: str = "hann"
+    doppler_kaiser_beta: float = 6.0
+    doppler_fft_size: int = 0  # 0 = loops per frame
+    # MIMO
+    doppler_compensation: bool = True
+    velocity_unfolding: bool = True
+    unfolding_margin_db: float = 1.0
+    # detection
+    cfar_kind: str = "ca"
+    cfar_train_range: int = 8
+    cfar_guard_range: int = 2
+    cfar_train_doppler: int = 4
+    cfar_guard_doppler: int = 1
+    cfar_pfa: float = 1e-6
+    cfar_os_rank_fraction: float = 0.75
+    min_range_m: float = 0.5
+    max_range_m: float = 0.0  # 0 = the sensor's maximum range
+    # angle
+    angle_fft_size_azimuth: int = 64
+    angle_fft_size_elevation: int = 16
+    angle_peak_threshold_db: float = -9.0
+    angle_max_peaks: int = 2
+    # output
+    max_points: int = 1024
+
+    def validate(self, origin: str | None = None) -> "ProcessingSettings":
+        pre = f"{origin}: " if origin else ""
+
+        def fail(name: str, rule: str) -> CubecastError:
+            return CubecastError(f"{pre}[processing] {name} = {getattr(self, name)!r}: {rule}")
+
+        for name in ("range_window", "doppler_window"):
+            if getattr(self, name) not in WINDOWS:
+                raise fail(name, f"must be one of {', '.join(WINDOWS)}")
+        if self.cfar_kind not in CFAR_KINDS:
+            raise fail("cfar_kind", f"must be one of {', '.join(CFAR_KINDS)}")
+        for name in ("range_fft_size", "doppler_fft_size"):
+            v = getattr(self, name)
+            if v != 0 and (v < 8 or v & (v - 1)):
+                raise fail(name, "must be 0 (no padding) or a power of two of at least 8")
+        for name in ("angle_fft_size_azimuth", "angle_fft_size_elevation"):
+            v = getattr(self, name)
+            if v < 1 or v & (v - 1):
+                raise fail(name, "must be a power of two")
+        for name in ("cfar_train_range", "cfar_train_doppler"):
+            if getattr(self, name) < 1:
+                raise fail(name, "must be at least 1")
+        for name in ("cfar_guard_range", "cfar_guard_doppler"):
+            if getattr(self, name) < 0:
+                raise fail(name, "must be at least 0")
+        if not 0 < self.cfar_pfa < 0.5:
+            raise fail("cfar_pfa", "must be between 0 and 0.5")
+        if not 0 < self.cfar_os_rank_fraction <= 1:
+            raise fail("cfar_os_rank_fraction", "must be in (0, 1]")
+        if self.min_range_m < 0:
+            raise fail("min_range_m", "must be at least 0")
+        if self.max_range_m < 0 or (self.max_range_m and self.max_range_m <= self.min_range_m):
+            raise fail("max_range_m", "must be 0 (sensor maximum) or above min_range_m")
+        if self.angle_max_peaks < 1:
+            raise fail("angle_max_peaks", "must be at least 1")
+        if self.angle_peak_threshold_db > 0:
+            raise fail("angle_peak_threshold_db", "is relative to the strongest peak and must be <= 0")
+        if self.max_points < 1:
+            raise fail("max_points", "must be at least 1")
+        for name in ("range_kaiser_beta", "doppler_kaiser_beta"):
+            if not 0 <= getattr(self, name) <= 50:
+                raise fail(name, "must be within 0..50")
+        if self.unfolding_margin_db < 0:
+            raise fail("unfolding_margin_db", "must be at least 0")
+        return self
+
+
+def parse_settings(text: str, origin: str | None = None) -> ProcessingSettings:
+    pre = f"{origin}: " if origin else ""
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise CubecastError(f"{pre}not valid TOML: {exc}") from None
+    extra = sorted(set(doc) - {"processing"})
+    if extra:
+        raise CubecastError(f"{pre}unknown section(s) {', '.join(extra)}; settings live in [processing]")
+    table: dict[str, Any] = doc.get("processing", {})
+    fields = {f.name: f for f in dataclasses.fields(ProcessingSettings)}
+    values = {}
+    for key, value in table.items():
+        if key not in fields:
+            raise CubecastError(f"{pre}[processing] unknown field {key}")
+        default = fields[key].default
+        kind = type(default)
+        ok = (isinstance(value, bool) if kind is bool else
+              (isinstance(value, int) and not isinstance(value, bool)) if kind is int else
+              (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
+              if kind is float else isinstance(value, str))
+        if not ok:
+            raise CubecastError(f"{pre}[processing] {key} = {value!r}: must be a {kind.__name__}")
+        values[key] = float(value) if kind is float else value
+    return ProcessingSettings(**values).validate(origin)
+
+
+def load_settings(path: str | Path | None) -> ProcessingSettings:
+    if path is None:
+        return ProcessingSettings().validate()
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise CubecastError(f"cannot read settings {path}: {exc.strerror}") from None
+    return parse_settings(text, str(path))
