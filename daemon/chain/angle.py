@@ -1,0 +1,888 @@
+"""Angle estimation over a MIMO virtual array.
+
+Signal convention (fixed for the whole project). A far-field target in unit direction
+k = (x, y, z) / r of the sensor frame (x right, y boresight, z up) gives virtual channel i,
+whose position p_i (metres) is the sum of its TX and RX positions, the snapshot value
+
+    s_i = a * exp(-j * 2*pi/lambda * (k . p_i))   (+ noise).
+
+The array lies in the x-z plane (y ~ 0), so only the direction cosines
+
+    u = x / r = sin(az) * cos(el)        w = z / r = sin(el)
+
+are observable, and
+
+    azimuth_deg   = degrees(atan2(u, sqrt(1 - u^2 - w^2)))    positive right
+    elevation_deg = degrees(asin(w))                          positive up.
+
+Beam (matched filter) at (u, w): B(u, w) = sum_i conj(steer_i(u, w)) * s_i with
+steer_i(u, w) = exp(-j * 2*pi/lambda * (u * x_i + w * z_i)).
+
+Processing per call of AngleEstimator.estimate():
+
+1. Calibrate: multiply channel i by calibration[i].
+2. Grid: every channel belongs to one (iz, ix) cell of a regular grid of pitch `pitch_m`
+   (VirtualGrid); redundant channels in one cell are averaged; the (optionally windowed) cell
+   image is zero-padded to fft_size_elevation x fft_size_azimuth.
+3. 2D zero-padded transform with kernel exp(+j 2 pi k n / N), so bin k maps to
+   u = (lambda / pitch) * k / n_fft with k wrapped into [-n_fft/2, n_fft/2): a batched numpy FFT
+   along x, then a small DFT matrix along z (few rows) inside the numba kernels.
+4. Local maxima of the beam power (8-neighbourhood, periodic) at visible grid points
+   (u^2 + w^2 <= 1), at or above `peak_threshold_db` relative to the strongest visible grid
+   point of the same snapshot; at most `max_peaks` per snapshot, strongest first.
+5. Refinement: Newton iterations with analytic first and second derivatives on
+   P(u, w) = |sum_i c_i conj(steer_i(u, w)) s_i|^2 over the ACTUAL element positions
+   (c_i = calibration times window weight; with the default "rect" window this is the
+   single-target maximum-likelihood estimate), seeded by the FFT peak, each step bounded to one
+   FFT bin. Refined peaks that land within half a bin of a stronger refined peak of the same
+   snapshot are dropped. A refined point outside the visible region is pulled back onto the
+   unit circle u^2 + w^2 = 1.
+
+Limits (by design, documented rather than hidden):
+- An array with no elevation extent (one grid row) measures only u; the estimator then
+  reports w = 0, elevation 0 and azimuth = asin(u) (the cone angle). Likewise an array with no
+  horizontal extent reports u = 0.
+- With pitch > lambda/2 the FFT grid spans only |u| < lambda / (2 * pitch) and grating lobes
+  make directions ambiguous; this is a property of the array, not of the estimator.
+- A target whose beam maximum lies at an invisible FFT grid point (only possible within about
+  one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numba import njit
+
+from daemon.errors import CubecastError
+
+__all__ = [
+    "VirtualGrid",
+    "AngleSettings",
+    "AngleResult",
+    "AngleEstimator",
+    "crb_direction_cosine",
+    "sigma_azimuth_deg",
+    "sigma_elevation_deg",
+    "WINDOW_NAMES",
+]
+
+WINDOW_NAMES = ("rect", "hann", "hamming")
+
+_OFF_GRID_FRACTION = 0.01  # an element may sit at most 1 % of the pitch off its grid cell
+_MAX_NEWTON_ITERATIONS = 12
+
+
+# --------------------------------------------------------------------------------------------
+# Virtual grid
+# --------------------------------------------------------------------------------------------
+
+
+def _grid_offset(coords_pitch: np.ndarray, tol: float) -> tuple[float, np.ndarray]:
+    """Common fractional offset of 1D coordinates in pitch units and who disagrees with it.
+
+    The reference is the fractional offset shared (within `tol`) by the most elements, so a
+    single bad element is the one named, whichever index it has.
+    """
+    frac = coords_pitch - np.floor(coords_pitch)
+    diff = np.abs(frac[:, None] - frac[None, :])
+    diff = np.minimum(diff, 1.0 - diff)  # circular distance on [0, 1)
+    agree = (diff <= tol).sum(axis=1)
+    ref = int(np.argmax(agree))  # ties -> lowest index
+    d = coords_pitch - frac[ref]
+    resid = np.abs(d - np.round(d))
+    return float(frac[ref]), resid
+
+
+class VirtualGrid:
+    """A planar virtual array mapped onto an integer (iz, ix) grid of spacing `pitch_m`.
+
+    Build it with VirtualGrid.from_positions(). Attributes (all read-only by convention):
+
+    positions_m     float64[n_virt, 3]  the element positions as given
+    wavelength_m    float               carrier wavelength
+    pitch_m         float               grid spacing in x and z
+    n_virt          int                 number of virtual channels
+    n_x, n_z        int                 grid size (columns, rows)
+    origin_x_m, origin_z_m  float       x and z of grid cell (0, 0)
+    channel_ix, channel_iz  int32[n_virt]  the grid column / row of each channel
+    channel_cell    int32[n_virt]       index of each channel's cell in `cells`
+    cells           int32[n_cells, 2]   the unique occupied cells as (iz, ix), row-major order
+    cell_counts     int32[n_cells]      channels per unique cell (>1 means redundant)
+    counts          int32[n_z, n_x]     channels per grid cell (0 = hole)
+    n_cells         int                 number of occupied cells
+    aperture_x_m, aperture_z_m  float   max - min of the element x / z positions
+    aperture_x_wavelengths, aperture_z_wavelengths  float   the same in wavelengths
+    n_holes         int                 empty cells inside the n_z x n_x bounding grid
+    n_redundant     int                 channels beyond the first in shared cells
+    """
+
+    def __init__(
+        self,
+        positions_m: np.ndarray,
+        wavelength_m: float,
+        pitch_m: float,
+        channel_iz: np.ndarray,
+        channel_ix: np.ndarray,
+        origin_x_m: float,
+        origin_z_m: float,
+    ) -> None:
+        self.positions_m = positions_m
+        self.wavelength_m = float(wavelength_m)
+        self.pitch_m = float(pitch_m)
+        self.n_virt = int(positions_m.shape[0])
+        self.channel_iz = channel_iz.astype(np.int32)
+        self.channel_ix = channel_ix.astype(np.int32)
+        self.n_z = int(channel_iz.max()) + 1
+        self.n_x = int(channel_ix.max()) + 1
+        self.origin_x_m = float(origin_x_m)
+        self.origin_z_m = float(origin_z_m)
+        flat = self.channel_iz.astype(np.int64) * self.n_x + self.channel_ix
+        uniq, inverse, cnt = np.unique(flat, return_inverse=True, return_counts=True)
+        self.cells = np.stack([uniq // self.n_x, uniq % self.n_x], axis=1).astype(np.int32)
+        self.cell_counts = cnt.astype(np.int32)
+        self.channel_cell = inverse.reshape(-1).astype(np.int32)
+        self.n_cells = int(uniq.size)
+        counts = np.zeros((self.n_z, self.n_x), dtype=np.int32)
+        counts[self.cells[:, 0], self.cells[:, 1]] = self.cell_counts
+        self.counts = counts
+        self.n_holes = int(np.count_nonzero(counts == 0))
+        self.n_redundant = int(self.n_virt - self.n_cells)
+        self.aperture_x_m = float(np.ptp(positions_m[:, 0]))
+        self.aperture_z_m = float(np.ptp(positions_m[:, 2]))
+        self.aperture_x_wavelengths = self.aperture_x_m / self.wavelength_m
+        self.aperture_z_wavelengths = self.aperture_z_m / self.wavelength_m
+
+    @classmethod
+    def from_positions(
+        cls,
+        virtual_positions_m: np.ndarray,
+        wavelength_m: float,
+        pitch_m: float | None = None,
+    ) -> "VirtualGrid":
+        """Map a planar layout (uniform, sparse, with holes or redundant elements) onto a grid.
+
+        virtual_positions_m: float[n_virt, 3] positions (x, y, z) in metres, the array in the
+        x-z plane. pitch_m: grid spacing, default wavelength_m / 2. Raises CubecastError if an
+        element is off-grid (in x or z) or out of plane (y) by more than 1 % of the pitch.
+        """
+        try:
+            pos = np.array(virtual_positions_m, dtype=np.float64)
+        except (TypeError, ValueError) as exc:
+            raise CubecastError(f"virtual_positions_m: not a numeric array ({exc})") from None
+        if pos.ndim != 2 or pos.shape[1] != 3 or pos.shape[0] < 1:
+            raise CubecastError(
+                f"virtual_positions_m: expected shape (n_virt >= 1, 3), got {pos.shape}"
+            )
+        if not np.all(np.isfinite(pos)):
+            bad = int(np.argwhere(~np.all(np.isfinite(pos), axis=1))[0, 0])
+            raise CubecastError(f"virtual_positions_m: element {bad} has a non-finite coordinate")
+        if not (isinstance(wavelength_m, (int, float, np.floating, np.integer))
+                and math.isfinite(wavelength_m) and wavelength_m > 0):
+            raise CubecastError(f"wavelength_m must be a finite number > 0, got {wavelength_m!r}")
+        if pitch_m is None:
+            pitch_m = wavelength_m / 2.0
+        if not (isinstance(pitch_m, (int, float, np.floating, np.integer))
+                and math.isfinite(pitch_m) and pitch_m > 0):
+            raise CubecastError(f"pitch_m must be a finite number > 0, got {pitch_m!r}")
+        pitch = float(pitch_m)
+        tol = _OFF_GRID_FRACTION
+
+        ix_f = pos[:, 0] / pitch
+        iz_f = pos[:, 2] / pitch
+        off_x, res_x = _grid_offset(ix_f, tol)
+        off_z, res_z = _grid_offset(iz_f, tol)
+        for axis, res in (("x", res_x), ("z", res_z)):
+            bad = np.flatnonzero(res > tol)
+            if bad.size:
+                i = int(bad[0])
+                raise CubecastError(
+                    f"virtual_positions_m: element {i} at {axis} = {pos[i, 'xyz'.index(axis)]:.6g} m "
+                    f"is off the {pitch:.6g} m grid by {res[i] * 100:.2f} % of the pitch "
+                    f"(limit {tol * 100:.0f} %)"
+                    + (f"; {bad.size - 1} more element(s) off-grid" if bad.size > 1 else "")
+                )
+        y_dev = np.abs(pos[:, 1] - np.median(pos[:, 1])) / pitch
+        bad = np.flatnonzero(y_dev > tol)
+        if bad.size:
+            i = int(bad[0])
+            raise CubecastError(
+                f"virtual_positions_m: element {i} at y = {pos[i, 1]:.6g} m is out of the array "
+                f"plane by {y_dev[i] * 100:.2f} % of the pitch (limit {tol * 100:.0f} %); "
+                "the virtual array must lie in the x-z plane"
+            )
+        ix = np.round(ix_f - off_x).astype(np.int64)
+        iz = np.round(iz_f - off_z).astype(np.int64)
+        ix0, iz0 = int(ix.min()), int(iz.min())
+        return cls(
+            positions_m=pos,
+            wavelength_m=float(wavelength_m),
+            pitch_m=pitch,
+            channel_iz=iz - iz0,
+            channel_ix=ix - ix0,
+            origin_x_m=(ix0 + off_x) * pitch,
+            origin_z_m=(iz0 + off_z) * pitch,
+        )
+
+    def scatter_mean(self, snapshots: np.ndarray) -> np.ndarray:
+        """Grid image complex64[n_det, n_z, n_x]: the mean of the channels of each cell (0 in holes)."""
+        x = np.asarray(snapshots)
+        if x.ndim != 2 or x.shape[1] != self.n_virt:
+            raise CubecastError(
+                f"snapshots: expected shape (n_det, {self.n_virt}), got {x.shape}"
+            )
+        m = np.zeros((self.n_virt, self.n_cells), dtype=np.complex64)
+        m[np.arange(self.n_virt), self.channel_cell] = 1.0 / self.cell_counts[self.channel_cell]
+        vals = x.astype(np.complex64, copy=False) @ m
+        out = np.zeros((x.shape[0], self.n_z, self.n_x), dtype=np.complex64)
+        out[:, self.cells[:, 0], self.cells[:, 1]] = vals
+        return out
+
+    def __repr__(self) -> str:
+        return (
+            f"VirtualGrid(n_virt={self.n_virt}, n_z={self.n_z}, n_x={self.n_x}, "
+            f"n_cells={self.n_cells}, holes={self.n_holes}, redundant={self.n_redundant}, "
+            f"pitch_m={self.pitch_m:.6g})"
+        )
+
+
+# --------------------------------------------------------------------------------------------
+# Settings and result
+# --------------------------------------------------------------------------------------------
+
+
+def _is_int(v) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+
+@dataclass(frozen=True)
+class AngleSettings:
+    """Angle estimation settings (validated on construction, CubecastError on a bad value).
+
+    fft_size_azimuth    FFT size along x (>= grid n_x, checked by AngleEstimator); default 64.
+    fft_size_elevation  FFT size along z (>= grid n_z); default 16. Ignored (treated as 1) when
+                        the array has a single grid row, i.e. no elevation extent.
+    peak_threshold_db   a peak is kept when its FFT power is at least this many dB relative to
+                        the strongest visible FFT point of the same snapshot; must be <= 0.
+                        Default -10 dB: above the -13.3 dB first sidelobe of a uniform
+                        rectangular aperture (common practice) with a few dB margin for noise.
+    max_peaks           peaks reported per snapshot at most, strongest first; default 2.
+    refine              Newton refinement on the actual element positions; default True.
+    window              "rect" (default; the single-target maximum-likelihood beam), "hann"
+                        (sin^2 taper without zero end weights) or "hamming"; applied separably
+                        over the grid columns / rows, also inside the refinement.
+    """
+
+    fft_size_azimuth: int = 64
+    fft_size_elevation: int = 16
+    peak_threshold_db: float = -10.0
+    max_peaks: int = 2
+    refine: bool = True
+    window: str = "rect"
+
+    def __post_init__(self) -> None:
+        for name in ("fft_size_azimuth", "fft_size_elevation"):
+            v = getattr(self, name)
+            if not _is_int(v) or not 1 <= v <= 65536:
+                raise CubecastError(f"{name} must be an integer in 1..65536, got {v!r}")
+        v = self.peak_threshold_db
+        if (isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, float, np.floating, np.integer))
+                or not math.isfinite(v) or v > 0):
+            raise CubecastError(f"peak_threshold_db must be a finite number <= 0 dB, got {v!r}")
+        if not _is_int(self.max_peaks) or not 1 <= self.max_peaks <= 64:
+            raise CubecastError(f"max_peaks must be an integer in 1..64, got {self.max_peaks!r}")
+        if not isinstance(self.refine, (bool, np.bool_)):
+            raise CubecastError(f"refine must be true or false, got {self.refine!r}")
+        if self.window not in WINDOW_NAMES:
+            raise CubecastError(
+                f"window must be one of {', '.join(WINDOW_NAMES)}, got {self.window!r}"
+            )
+
+
+@dataclass(frozen=True)
+class AngleResult:
+    """One row per found peak, grouped by snapshot (ascending det_index), strongest first.
+
+    det_index      int32    which snapshot (row of the estimate() input)
+    azimuth_deg    float32  atan2(u, sqrt(1 - u^2 - w^2)), positive right
+    elevation_deg  float32  asin(w), positive up
+    u, w           float32  direction cosines x/r and z/r
+    peak_power     float32  |B(u, w)|^2 * n_virt / (sum of window weights)^2, where
+                            B = sum_i c_i conj(steer_i) s_i over all channels (c_i = calibration x
+                            window): a noiseless unit-amplitude target gives n_virt, white noise
+                            of per-channel power sigma^2 gives sigma^2 on average (rect window).
+    """
+
+    det_index: np.ndarray
+    azimuth_deg: np.ndarray
+    elevation_deg: np.ndarray
+    u: np.ndarray
+    w: np.ndarray
+    peak_power: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.det_index.size)
+
+
+# --------------------------------------------------------------------------------------------
+# numba kernels
+# --------------------------------------------------------------------------------------------
+
+
+@njit(cache=True)
+def _power_image(fx, dft_z, d, power):
+    """power[kz, kx] = |sum_iz dft_z[kz, iz] * fx[iz, d, kx]|^2: the z transform of one snapshot
+    whose rows are already transformed along x (fx is [n_z rows, n_det, n_fft_x])."""
+    n_rows = fx.shape[0]
+    nz = dft_z.shape[0]
+    nx = fx.shape[2]
+    for ix in range(nx):
+        for iz in range(nz):
+            acc = 0j
+            for r in range(n_rows):
+                acc += dft_z[iz, r] * fx[r, d, ix]
+            power[iz, ix] = acc.real * acc.real + acc.imag * acc.imag
+
+
+@njit(cache=True)
+def _find_peaks(fx, dft_z, n_det, visible, rel_thr, max_peaks, power, out_det, out_iz, out_ix, out_pow):
+    """Strongest `max_peaks` visible local maxima of the beam power per snapshot
+    (8-neighbourhood, periodic; ties broken towards the lower flat index). Returns the number
+    written."""
+    nz = dft_z.shape[0]
+    nx = fx.shape[2]
+    dz_lo = -1 if nz > 1 else 0
+    dz_hi = 1 if nz > 1 else 0
+    dx_lo = -1 if nx > 1 else 0
+    dx_hi = 1 if nx > 1 else 0
+    top_p = np.empty(max_peaks, np.float64)
+    top_z = np.empty(max_peaks, np.int64)
+    top_x = np.empty(max_peaks, np.int64)
+    count = 0
+    for d in range(n_det):
+        _power_image(fx, dft_z, d, power)
+        pmax = 0.0
+        for iz in range(nz):
+            for ix in range(nx):
+                p = power[iz, ix]
+                if visible[iz, ix] and p > pmax:
+                    pmax = p
+        if pmax <= 0.0:
+            continue
+        thr = pmax * rel_thr
+        n_top = 0
+        for iz in range(nz):
+            for ix in range(nx):
+                if not visible[iz, ix]:
+                    continue
+                p = power[iz, ix]
+                if p < thr:
+                    continue
+                own = iz * nx + ix
+                is_max = True
+                for dz in range(dz_lo, dz_hi + 1):
+                    jz = (iz + dz) % nz
+                    for dx in range(dx_lo, dx_hi + 1):
+                        jx = (ix + dx) % nx
+                        other = jz * nx + jx
+                        if other == own:
+                            continue
+                        q = power[jz, jx]
+                        if q > p or (q == p and other < own):
+                            is_max = False
+                            break
+                    if not is_max:
+                        break
+                if not is_max:
+                    continue
+                # insert into the descending top list
+                if n_top < max_peaks:
+                    k = n_top
+                    n_top += 1
+                elif p > top_p[max_peaks - 1]:
+                    k = max_peaks - 1
+                else:
+                    continue
+                while k > 0 and top_p[k - 1] < p:
+                    top_p[k] = top_p[k - 1]
+                    top_z[k] = top_z[k - 1]
+                    top_x[k] = top_x[k - 1]
+                    k -= 1
+                top_p[k] = p
+                top_z[k] = iz
+                top_x[k] = ix
+        for k in range(n_top):
+            out_det[count] = d
+            out_iz[count] = top_z[k]
+            out_ix[count] = top_x[k]
+            out_pow[count] = top_p[k]
+            count += 1
+    return count
+
+
+@njit(cache=True)
+def _beam_and_derivatives(y, kx, kz, u, w):
+    """P = |B|^2 with B = sum y_i exp(j (kx_i u + kz_i w)), its gradient and Hessian."""
+    b = 0j
+    su = 0j
+    sw = 0j
+    suu = 0j
+    suw = 0j
+    sww = 0j
+    for i in range(y.size):
+        ph = kx[i] * u + kz[i] * w
+        t = y[i] * complex(math.cos(ph), math.sin(ph))
+        b += t
+        su += kx[i] * t
+        sw += kz[i] * t
+        suu += kx[i] * kx[i] * t
+        suw += kx[i] * kz[i] * t
+        sww += kz[i] * kz[i] * t
+    # dB/du = j su, d2B/du2 = -suu, d2B/dudw = -suw, ...
+    cb = b.conjugate()
+    p = b.real * b.real + b.imag * b.imag
+    gu = -2.0 * (cb * su).imag
+    gw = -2.0 * (cb * sw).imag
+    huu = -2.0 * (cb * suu).real + 2.0 * (su.real * su.real + su.imag * su.imag)
+    hww = -2.0 * (cb * sww).real + 2.0 * (sw.real * sw.real + sw.imag * sw.imag)
+    huw = -2.0 * (cb * suw).real + 2.0 * (su.conjugate() * sw).real
+    return p, gu, gw, huu, huw, hww
+
+
+@njit(cache=True)
+def _axis_step(g, h, max_step):
+    if h < 0.0:
+        return -g / h
+    if g > 0.0:
+        return 0.25 * max_step
+    if g < 0.0:
+        return -0.25 * max_step
+    return 0.0
+
+
+@njit(cache=True)
+def _refine_peaks(
+    snapshots, chan_weight, kx, kz, n_found, det, u_seed, w_seed, do_u, do_w, do_refine,
+    max_du, max_dw, out_keep, out_u, out_w, out_p,
+):
+    n_virt = snapshots.shape[1]
+    y = np.empty(n_virt, np.complex128)
+    tol_u = max_du * 1e-9
+    tol_w = max_dw * 1e-9
+    first_of_det = 0
+    for k in range(n_found):
+        d = det[k]
+        if k == 0 or det[k - 1] != d:
+            first_of_det = k
+        for i in range(n_virt):
+            y[i] = complex(snapshots[d, i]) * chan_weight[i]
+        u = u_seed[k]
+        w = w_seed[k]
+        p, gu, gw, huu, huw, hww = _beam_and_derivatives(y, kx, kz, u, w)
+        if do_refine:
+            for _ in range(_MAX_NEWTON_ITERATIONS):
+                su = 0.0
+                sw = 0.0
+                if do_u and do_w:
+                    det_h = huu * hww - huw * huw
+                    if huu < 0.0 and det_h > 0.0:
+                        su = -(hww * gu - huw * gw) / det_h
+                        sw = -(huu * gw - huw * gu) / det_h
+                    else:
+                        su = _axis_step(gu, huu, max_du)
+                        sw = _axis_step(gw, hww, max_dw)
+                elif do_u:
+                    su = _axis_step(gu, huu, max_du)
+                elif do_w:
+                    sw = _axis_step(gw, hww, max_dw)
+                scale = 1.0
+                if abs(su) > max_du:
+                    scale = max_du / abs(su)
+                if abs(sw) * scale > max_dw:
+                    scale = max_dw / abs(sw)
+                su *= scale
+                sw *= scale
+                if su == 0.0 and sw == 0.0:
+                    break
+                accepted = False
+                for _bt in range(8):
+                    p2, gu2, gw2, huu2, huw2, hww2 = _beam_and_derivatives(y, kx, kz, u + su, w + sw)
+                    if p2 >= p:
+                        accepted = True
+                        break
+                    su *= 0.5
+                    sw *= 0.5
+                if not accepted:
+                    break
+                u += su
+                w += sw
+                p, gu, gw, huu, huw, hww = p2, gu2, gw2, huu2, huw2, hww2
+                if abs(su) <= tol_u and abs(sw) <= tol_w:
+                    break
+            r2 = u * u + w * w
+            if r2 > 1.0:
+                r = math.sqrt(r2)
+                u /= r
+                w /= r
+                p = _beam_and_derivatives(y, kx, kz, u, w)[0]
+        keep = True
+        for j in range(first_of_det, k):
+            if out_keep[j] and abs(out_u[j] - u) < 0.5 * max_du and abs(out_w[j] - w) < 0.5 * max_dw:
+                keep = False
+                break
+        out_keep[k] = keep
+        out_u[k] = u
+        out_w[k] = w
+        out_p[k] = p
+
+
+@njit(cache=True)
+def _max_visible_power(fx, dft_z, n_det, visible, norm, out):
+    n_rows = fx.shape[0]
+    nz = dft_z.shape[0]
+    nx = fx.shape[2]
+    for d in range(n_det):
+        m = 0.0
+        for ix in range(nx):
+            for iz in range(nz):
+                if visible[iz, ix]:
+                    acc = 0j
+                    for r in range(n_rows):
+                        acc += dft_z[iz, r] * fx[r, d, ix]
+                    p = acc.real * acc.real + acc.imag * acc.imag
+                    if p > m:
+                        m = p
+        out[d] = m / norm[d] if norm[d] > 0.0 else 0.0
+
+
+# --------------------------------------------------------------------------------------------
+# Estimator
+# --------------------------------------------------------------------------------------------
+
+
+def _window(name: str, n: int) -> np.ndarray:
+    if n == 1 or name == "rect":
+        return np.ones(n)
+    k = np.arange(n)
+    if name == "hann":
+        # sin^2 taper sampled so that no element gets weight 0 (matters for small arrays)
+        return np.sin(np.pi * (k + 1) / (n + 1)) ** 2
+    if name == "hamming":
+        return 0.54 - 0.46 * np.cos(2.0 * np.pi * k / (n - 1))
+    raise CubecastError(f"window must be one of {', '.join(WINDOW_NAMES)}, got {name!r}")
+
+
+def _bin_direction_cosines(n_fft: int, wavelength_m: float, pitch_m: float) -> np.ndarray:
+    k = np.arange(n_fft)
+    k = np.where(k < (n_fft + 1) // 2, k, k - n_fft) if n_fft > 1 else k
+    return (wavelength_m / pitch_m) * k / n_fft
+
+
+class AngleEstimator:
+    """Direction finding over a VirtualGrid; see the module docstring for the method.
+
+    AngleEstimator(grid, settings=AngleSettings(), calibration=None, *, capacity=256)
+
+    calibration: complex[n_virt] multiplied onto the channels before anything else
+    (identity when None). capacity: initial number of snapshots the preallocated FFT buffers
+    hold; they grow (once) when a call brings more.
+
+    Attributes: grid, settings, calibration (complex64[n_virt]), n_fft_x, n_fft_z,
+    u_grid (float64[n_fft_x]), w_grid (float64[n_fft_z]), visible (bool[n_fft_z, n_fft_x]),
+    bin_u, bin_w (FFT bin spacing in direction cosine).
+    """
+
+    def __init__(
+        self,
+        grid: VirtualGrid,
+        settings: AngleSettings | None = None,
+        calibration: np.ndarray | None = None,
+        *,
+        capacity: int = 256,
+    ) -> None:
+        if not isinstance(grid, VirtualGrid):
+            raise CubecastError(f"grid must be a VirtualGrid, got {type(grid).__name__}")
+        settings = AngleSettings() if settings is None else settings
+        if not isinstance(settings, AngleSettings):
+            raise CubecastError(f"settings must be AngleSettings, got {type(settings).__name__}")
+        self.grid = grid
+        self.settings = settings
+        n_virt = grid.n_virt
+
+        if calibration is None:
+            cal = np.ones(n_virt, dtype=np.complex64)
+        else:
+            cal = np.asarray(calibration)
+            if cal.ndim != 1 or cal.shape[0] != n_virt:
+                raise CubecastError(
+                    f"calibration: expected {n_virt} complex values (one per virtual channel), "
+                    f"got shape {cal.shape}"
+                )
+            if not np.all(np.isfinite(cal)):
+                raise CubecastError("calibration: contains non-finite values")
+            cal = cal.astype(np.complex64)
+        self.calibration = cal
+
+        self.n_fft_x = 1 if grid.n_x == 1 else settings.fft_size_azimuth
+        self.n_fft_z = 1 if grid.n_z == 1 else settings.fft_size_elevation
+        if self.n_fft_x < grid.n_x:
+            raise CubecastError(
+                f"fft_size_azimuth = {settings.fft_size_azimuth} is smaller than the array's "
+                f"{grid.n_x} grid columns"
+            )
+        if self.n_fft_z < grid.n_z:
+            raise CubecastError(
+                f"fft_size_elevation = {settings.fft_size_elevation} is smaller than the array's "
+                f"{grid.n_z} grid rows"
+            )
+
+        lam, pitch = grid.wavelength_m, grid.pitch_m
+        self.u_grid = _bin_direction_cosines(self.n_fft_x, lam, pitch)
+        self.w_grid = _bin_direction_cosines(self.n_fft_z, lam, pitch)
+        self.bin_u = lam / (pitch * self.n_fft_x)
+        self.bin_w = lam / (pitch * self.n_fft_z)
+        self.visible = (self.w_grid[:, None] ** 2 + self.u_grid[None, :] ** 2) <= 1.0 + 1e-12
+        self._do_u = grid.n_x > 1
+        self._do_w = grid.n_z > 1
+        self._rel_thr = 10.0 ** (settings.peak_threshold_db / 10.0)
+
+        # window weights per channel (separable over grid columns / rows)
+        wx = _window(settings.window, grid.n_x)
+        wz = _window(settings.window, grid.n_z)
+        chan_win = wx[grid.channel_ix] * wz[grid.channel_iz]
+        self._power_norm = n_virt / float(chan_win.sum()) ** 2
+        self._chan_weight = (cal.astype(np.complex128) * chan_win)
+        ch = np.arange(n_virt)
+        # channels -> cell means (windowed, calibrated) for the estimation image
+        m_mean = np.zeros((n_virt, grid.n_cells), dtype=np.complex64)
+        m_mean[ch, grid.channel_cell] = (
+            self._chan_weight / grid.cell_counts[grid.channel_cell]
+        ).astype(np.complex64)
+        self._m_mean = m_mean
+        # channels -> cell sums (calibrated, no window) for coherence: on-grid beam = a^H x
+        m_sum = np.zeros((n_virt, grid.n_cells), dtype=np.complex64)
+        m_sum[ch, grid.channel_cell] = cal
+        self._m_sum = m_sum
+        self._cell_iz = grid.cells[:, 0].astype(np.intp)
+        self._cell_ix = grid.cells[:, 1].astype(np.intp)
+
+        # steering geometry for refinement: phase = kx*u + kz*w on centred actual positions
+        k0 = 2.0 * np.pi / lam
+        pos = grid.positions_m
+        self._kx = k0 * (pos[:, 0] - pos[:, 0].mean())
+        self._kz = k0 * (pos[:, 2] - pos[:, 2].mean())
+
+        kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
+        self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
+        self._power = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.float64)
+        self._capacity = 0
+        self._allocate(max(1, int(capacity)))
+
+    def _allocate(self, capacity: int) -> None:
+        # Flat storage, viewed per call as z-major [rows, n_det, columns] arrays so that the
+        # x FFT runs along the contiguous last axis and the short z transform is one matrix
+        # product (a DFT matrix) over all snapshots at once.
+        g, mp = self.grid, self.settings.max_peaks
+        self._capacity = capacity
+        self._grid_flat = np.zeros(capacity * g.n_z * g.n_x, dtype=np.complex64)
+        self._fft_x_flat = np.empty(capacity * g.n_z * self.n_fft_x, dtype=np.complex64)
+        self._pk_det = np.empty(capacity * mp, dtype=np.int64)
+        self._pk_iz = np.empty(capacity * mp, dtype=np.int64)
+        self._pk_ix = np.empty(capacity * mp, dtype=np.int64)
+        self._pk_pow = np.empty(capacity * mp, dtype=np.float64)
+        self._pk_keep = np.empty(capacity * mp, dtype=np.bool_)
+        self._pk_u = np.empty(capacity * mp, dtype=np.float64)
+        self._pk_w = np.empty(capacity * mp, dtype=np.float64)
+        self._pk_p = np.empty(capacity * mp, dtype=np.float64)
+        self._coh = np.empty(capacity, dtype=np.float64)
+
+    def _check(self, snapshots) -> np.ndarray:
+        x = np.asarray(snapshots)
+        if x.ndim != 2 or x.shape[1] != self.grid.n_virt:
+            raise CubecastError(
+                f"snapshots: expected shape (n_det, {self.grid.n_virt}), got {x.shape}"
+            )
+        x = np.ascontiguousarray(x, dtype=np.complex64)
+        if x.shape[0] > self._capacity:
+            self._allocate(max(x.shape[0], 2 * self._capacity))
+        return x
+
+    def _row_spectra(self, x: np.ndarray, matrix: np.ndarray) -> np.ndarray:
+        """Grid rows transformed along x: [n_z, n_det, n_fft_x], kernel exp(+j 2 pi k n / N).
+
+        The z transform (zero-padded to n_fft_z) is a small DFT matrix applied inside the numba
+        kernels, which never materialise the full [n_fft_z, n_det, n_fft_x] image: with only a
+        few rows that is much cheaper than an FFT along a non-contiguous axis.
+        """
+        n = x.shape[0]
+        nz, nx, kx = self.grid.n_z, self.grid.n_x, self.n_fft_x
+        g = self._grid_flat[: nz * n * nx].reshape(nz, n, nx)
+        g.fill(0)
+        g[self._cell_iz, :, self._cell_ix] = (x @ matrix).T
+        return np.fft.ifft(g, n=kx, axis=2, norm="forward",
+                           out=self._fft_x_flat[: nz * n * kx].reshape(nz, n, kx))
+
+    def estimate(self, snapshots: np.ndarray) -> AngleResult:
+        """Find and refine angle peaks; snapshots complex64[n_det, n_virt] -> AngleResult."""
+        x = self._check(snapshots)
+        n = x.shape[0]
+        if n == 0:
+            return _empty_result()
+        fx = self._row_spectra(x, self._m_mean)
+        n_found = _find_peaks(
+            fx, self._dft_z, n, self.visible, self._rel_thr, self.settings.max_peaks, self._power,
+            self._pk_det, self._pk_iz, self._pk_ix, self._pk_pow,
+        )
+        det = self._pk_det[:n_found]
+        u_seed = self.u_grid[self._pk_ix[:n_found]]
+        w_seed = self.w_grid[self._pk_iz[:n_found]]
+        _refine_peaks(
+            x, self._chan_weight, self._kx, self._kz, n_found, det, u_seed, w_seed,
+            self._do_u, self._do_w, bool(self.settings.refine), self.bin_u, self.bin_w,
+            self._pk_keep, self._pk_u, self._pk_w, self._pk_p,
+        )
+        keep = self._pk_keep[:n_found]
+        u = self._pk_u[:n_found][keep]
+        w = self._pk_w[:n_found][keep]
+        v = np.sqrt(np.maximum(0.0, 1.0 - u * u - w * w))
+        return AngleResult(
+            det_index=det[keep].astype(np.int32),
+            azimuth_deg=np.degrees(np.arctan2(u, v)).astype(np.float32),
+            elevation_deg=np.degrees(np.arcsin(np.clip(w, -1.0, 1.0))).astype(np.float32),
+            u=u.astype(np.float32),
+            w=w.astype(np.float32),
+            peak_power=(self._pk_p[:n_found][keep] * self._power_norm).astype(np.float32),
+        )
+
+    def coherence(self, snapshots: np.ndarray) -> np.ndarray:
+        """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).
+
+        x is the calibrated snapshot, a the steering vector of the actual elements (redundant
+        channels of one cell share it), no window. By Cauchy-Schwarz it is 1 exactly when the
+        snapshot is one plane wave arriving from a grid direction (slightly less between grid
+        points, scalloping of the zero-padded FFT) and drops when channels disagree in phase,
+        e.g. after a wrong TDM Doppler phase compensation. All-zero snapshots score 0.
+        """
+        x = self._check(snapshots)
+        n = x.shape[0]
+        if n == 0:
+            return np.empty(0, dtype=np.float32)
+        fx = self._row_spectra(x, self._m_sum)
+        y = x * self.calibration
+        energy = (y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2).sum(axis=1)
+        norm = self.grid.n_virt * energy
+        out = self._coh[:n]
+        _max_visible_power(fx, self._dft_z, n, self.visible, norm, out)
+        return out.astype(np.float32)
+
+
+def _empty_result() -> AngleResult:
+    f = np.empty(0, dtype=np.float32)
+    return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy())
+
+
+# --------------------------------------------------------------------------------------------
+# Cramer-Rao bound
+# --------------------------------------------------------------------------------------------
+
+
+def _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel):
+    """CRB covariance (var_u, var_w, cov_uw) for one source with unknown complex amplitude.
+
+    Deterministic (conditional) model, white complex Gaussian noise: the Fisher matrix of (u, w)
+    after eliminating the amplitude is F = 2 * SNR * k0^2 * sum_i (q_i - q_mean)(q_i - q_mean)^T,
+    q_i = (x_i, z_i), SNR = |a|^2 / sigma^2 per channel. Unidentifiable directions (no extent)
+    get infinite variance.
+    """
+    pos = np.asarray(positions_m, dtype=np.float64)
+    if pos.ndim != 2 or pos.shape[1] != 3 or pos.shape[0] < 1:
+        raise CubecastError(f"positions_m: expected shape (n_virt, 3), got {pos.shape}")
+    if not (math.isfinite(wavelength_m) and wavelength_m > 0):
+        raise CubecastError(f"wavelength_m must be a finite number > 0, got {wavelength_m!r}")
+    k0 = 2.0 * np.pi / wavelength_m
+    q = pos[:, [0, 2]] - pos[:, [0, 2]].mean(axis=0)
+    g = k0 * k0 * (q.T @ q)  # geometry part of the Fisher matrix
+    gxx, gzz, gxz = g[0, 0], g[1, 1], g[0, 1]
+    scale = k0 * k0 * wavelength_m * wavelength_m * 1e-12  # relative zero for extents
+    snr = np.asarray(snr_per_channel, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        two_snr = np.where(snr > 0, 2.0 * snr, 0.0)
+        det = gxx * gzz - gxz * gxz
+        has_x = gxx > scale
+        has_z = gzz > scale
+        if has_x and has_z and det > scale * max(gxx, gzz):
+            var_u = gzz / det / two_snr
+            var_w = gxx / det / two_snr
+            cov = -gxz / det / two_snr
+        elif has_x and not has_z:
+            var_u = 1.0 / (gxx * two_snr)
+            var_w = np.full_like(snr, np.inf)
+            cov = np.zeros_like(snr)
+        elif has_z and not has_x:
+            var_u = np.full_like(snr, np.inf)
+            var_w = 1.0 / (gzz * two_snr)
+            cov = np.zeros_like(snr)
+        else:  # single element, or collinear along a slanted line: (u, w) not identifiable
+            var_u = np.full_like(snr, np.inf)
+            var_w = np.full_like(snr, np.inf)
+            cov = np.zeros_like(snr)
+    var_u = np.where(two_snr > 0, var_u, np.inf)
+    var_w = np.where(two_snr > 0, var_w, np.inf)
+    cov = np.where(two_snr > 0, cov, 0.0)
+    return var_u, var_w, cov, has_x, has_z
+
+
+def crb_direction_cosine(positions_m, wavelength_m, snr_per_channel):
+    """(sigma_u, sigma_w), float32 arrays shaped like snr_per_channel.
+
+    Cramer-Rao bound for one far-field source with unknown complex amplitude in white noise
+    (deterministic model of Stoica and Nehorai, 1989). snr_per_channel is the linear power
+    ratio |a|^2 / sigma^2 at one virtual channel (sigma^2 the total complex noise power); any
+    shape, vectorised. For a lambda/2 ULA of M elements this equals Rife and Boorstyn's (1974)
+    single-tone bound var(omega) = 6 / (SNR M (M^2 - 1)) with omega = pi * u. With both u and w
+    unknown the 2x2 Fisher matrix of the centred (x, z) positions is inverted, so a coupling
+    between x and z (non-separable layouts) is included. A direction the array has no extent in
+    gets sigma = inf; snr <= 0 gives inf.
+    """
+    var_u, var_w, _, _, _ = _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel)
+    return np.sqrt(var_u).astype(np.float32), np.sqrt(var_w).astype(np.float32)
+
+
+def sigma_azimuth_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg, elevation_deg=0.0):
+    """CRB standard deviation of azimuth in degrees (float32, broadcast over the inputs).
+
+    Jacobian of az = atan2(u, v), v = sqrt(1 - u^2 - w^2): d az/du = 1/v,
+    d az/dw = u w / (v cos^2 el). For an array without elevation extent w is not estimated and
+    the elevation is taken as known (the value given), so only the u term remains.
+    """
+    var_u, var_w, cov, _, has_z = _direction_cosine_covariance(
+        positions_m, wavelength_m, snr_per_channel
+    )
+    az = np.radians(np.asarray(azimuth_deg, dtype=np.float64))
+    el = np.radians(np.asarray(elevation_deg, dtype=np.float64))
+    u = np.sin(az) * np.cos(el)
+    w = np.sin(el)
+    cos_el2 = np.cos(el) ** 2
+    v = np.sqrt(np.maximum(0.0, 1.0 - u * u - w * w))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ju = 1.0 / v
+        jw = u * w / (v * cos_el2) if has_z else np.zeros_like(u)
+        var = ju * ju * var_u
+        if has_z:
+            var = var + 2.0 * ju * jw * cov + jw * jw * var_w
+            var = np.where(jw == 0.0, ju * ju * var_u, var)
+    return np.degrees(np.sqrt(var)).astype(np.float32)
+
+
+def sigma_elevation_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg=0.0, elevation_deg=0.0):
+    """CRB standard deviation of elevation in degrees (float32, broadcast): el = asin(w), so
+    sigma_el = sigma_w / cos(el); inf for an array without elevation extent.
+    (azimuth_deg is accepted for symmetry with sigma_azimuth_deg; the bound does not depend on it.)"""
+    var_u, var_w, _, _, _ = _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel)
+    el = np.radians(np.asarray(elevation_deg, dtype=np.float64))
+    az = np.asarray(azimuth_deg, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sig = np.sqrt(var_w) / np.cos(el) + 0.0 * az
+    return np.degrees(sig).astype(np.float32)
