@@ -35,11 +35,11 @@ class ProcessingSettings:
     velocity_unfolding: bool = True
     unfolding_margin_db: float = 1.0
     # detection
-    cfar_kind: str = "ca"
+    cfar_kind: str = "os"
     cfar_train_range: int = 8
-    cfar_guard_range: int = 2
+    cfar_guard_range: int = 3
     cfar_train_doppler: int = 4
-    cfar_guard_doppler: int = 1
+    cfar_guard_doppler: int = 2
     cfar_pfa: float = 1e-6
     cfar_os_rank_fraction: float = 0.75
     min_range_m: float = 0.5

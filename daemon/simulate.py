@@ -81,10 +81,16 @@ class Simulator:
     def frame_time_s(self, index: int) -> float:
         return index * self.sensor.frame_period_s
 
-    def truth(self, index: int) -> np.ndarray:
-        """Ground truth at the start of frame `index`: [n_targets, len(TRUTH_COLUMNS)] float64."""
+    def measurement_epoch_s(self, index: int) -> float:
+        """The instant frame `index` measures: the middle of its chirp burst. A target moving during
+        the burst is seen at its mean position, so ground truth is given at this epoch."""
         s = self.sensor
-        p = self.scene.positions_at(np.array([self.frame_time_s(index)]))[:, 0, :]
+        return self.frame_time_s(index) + 0.5 * s.chirps_per_frame * s.chirp_period_s
+
+    def truth(self, index: int) -> np.ndarray:
+        """Ground truth at the measurement epoch of frame `index`: [n_targets, len(TRUTH_COLUMNS)]."""
+        s = self.sensor
+        p = self.scene.positions_at(np.array([self.measurement_epoch_s(index)]))[:, 0, :]
         v = np.stack([t.velocity_mps for t in self.scene.targets])
         r = np.linalg.norm(p, axis=1)
         az = np.degrees(np.arctan2(p[:, 0], p[:, 1]))

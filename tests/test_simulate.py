@@ -1,0 +1,180 @@
+"""Signal model and simulator against published relations, and the bundled samples."""
+
+from __future__ import annotations
+
+import filecmp
+import math
+import tomllib
+
+import numpy as np
+import pytest
+import scipy.fft
+
+from daemon.capture import CaptureReader
+from daemon.cli import main
+from daemon.errors import CubecastError
+from daemon.files import capture_sensor, simulate_capture
+from daemon.scene import load_scene, parse_scene
+from daemon.sensor import load_sensor
+from daemon.simulate import Simulator, range_equation_snr_db
+from tests.helpers import SAMPLES, YARD_SENSOR, make_sensor
+
+C = 299_792_458.0
+
+
+def one_target(**fields) -> str:
+    body = "\n".join(f"{k} = {v!r}" for k, v in fields.items())
+    return f"[[target]]\n{body}\n"
+
+
+@pytest.mark.parametrize("range_m", [3.3, 10.0, 17.77])
+def test_beat_frequency_is_2SR_over_c(range_m):
+    # FMCW beat frequency f_b = 2 S R / c (Richards, Fundamentals of Radar Signal Processing, 2005, ch. 4).
+    # Peak located with scipy.fft on a heavily zero-padded single chirp (reference library).
+    s = load_sensor(YARD_SENSOR)
+    sim = Simulator(s, parse_scene(one_target(range_m=range_m, snr_db=30.0)), noise=False)
+    chirp = sim.clean_frame(0)[0, 0]
+    n_fft = 1 << 16
+    spec = np.abs(scipy.fft.fft(chirp, n_fft))
+    f_peak = np.argmax(spec) * s.sample_rate_hz / n_fft
+    expected = 2 * s.slope_hz_per_s * range_m / C
+    assert f_peak == pytest.approx(expected, abs=s.sample_rate_hz / n_fft)
+
+
+def test_doppler_phase_progression_is_2v_over_lambda():
+    # Chirp-to-chirp phase advance 2 pi (2 v / lambda) T_c (Richards 2005, ch. 5), lambda at the carrier
+    # the chirp starts on: the model's f_c * tau term. Measured on the same TX/RX pair across loops.
+    s = load_sensor(YARD_SENSOR)
+    v = 2.5
+    sim = Simulator(s, parse_scene(one_target(range_m=8.0, radial_velocity_mps=v, snr_db=30.0)), noise=False)
+    x = sim.clean_frame(0)[0::3, 0, 0]  # TX0's chirps, RX0, first sample
+    dphi = np.angle(np.mean(x[1:] * np.conj(x[:-1])))
+    lam0 = C / s.start_frequency_hz
+    expected = 2 * np.pi * 2 * v / lam0 * s.loop_period_s
+    expected = (expected + np.pi) % (2 * np.pi) - np.pi
+    assert dphi == pytest.approx(expected, abs=0.02)
+
+
+def test_angle_phase_between_receivers():
+    # Far field: adjacent elements d apart see a phase difference 2 pi d sin(theta) / lambda
+    # (common practice); our convention exp(-j k.p) makes a target on the right (+az) lag to the right.
+    s = load_sensor(YARD_SENSOR)
+    az = 20.0
+    sim = Simulator(s, parse_scene(one_target(range_m=12.0, azimuth_deg=az, snr_db=30.0)), noise=False)
+    x = sim.clean_frame(0)[0, :, 0]
+    dphi = np.angle(x[1] * np.conj(x[0]))
+    lam0 = C / s.start_frequency_hz
+    d = s.rx_positions_m[1, 0] - s.rx_positions_m[0, 0]
+    assert dphi == pytest.approx(-2 * np.pi * d * math.sin(math.radians(az)) / lam0, abs=0.01)
+
+
+def test_snr_from_range_equation_and_measured_noise():
+    # Radar range equation (Skolnik, Introduction to Radar Systems, 3rd ed., 2001, eq. 2.1) with
+    # noise power k T0 F B, B = fs; a worked check by hand: R^-4 law -> +12.04 dB for half the range.
+    s = load_sensor(YARD_SENSOR)
+    snr10 = float(range_equation_snr_db(s, 10.0, 10.0))
+    snr5 = float(range_equation_snr_db(s, 5.0, 10.0))
+    assert snr5 - snr10 == pytest.approx(40 * math.log10(2), abs=1e-9)
+    lam = s.wavelength_m
+    k = 1.380649e-23
+    pr = (10 ** ((12 - 30) / 10) * 10 * 10 * lam ** 2 * 10) / ((4 * math.pi) ** 3 * 10.0 ** 4 * 10 ** 0.3)
+    noise = k * 290 * 5e6 * 10 ** 1.2
+    assert snr10 == pytest.approx(10 * math.log10(pr / noise), abs=1e-6)
+    # the simulated signal has exactly that per-sample SNR against the simulated noise power
+    sim = Simulator(s, parse_scene(one_target(range_m=10.0, rcs_dbsm=10.0)), seed=3)
+    clean = sim.clean_frame(0)
+    noisy = sim.frame(0).astype(np.complex128)
+    p_sig = np.mean(np.abs(clean) ** 2)
+    p_noise = np.mean(np.abs(noisy - clean) ** 2)
+    assert p_noise == pytest.approx(s.noise_rms_counts ** 2, rel=0.02)
+    assert 10 * math.log10(p_sig / s.noise_rms_counts ** 2) == pytest.approx(snr10, abs=0.01)
+
+
+def test_exact_delay_not_far_field():
+    # Near target: the round trip uses exact distances to each antenna, so phase across the array is
+    # not exactly linear (a far-field model would be). The second difference of the phase is nonzero.
+    s = make_sensor(n_tx_az=1, n_rx=16, elevation_tx=False)
+    sim = Simulator(s, parse_scene(one_target(range_m=0.2, azimuth_deg=30.0, snr_db=30.0)), noise=False)
+    ph = np.unwrap(np.angle(sim.clean_frame(0)[0, :, 0]))
+    assert np.max(np.abs(np.diff(ph, 2))) > 1e-3
+
+
+def test_deterministic_and_seeded():
+    s = load_sensor(YARD_SENSOR)
+    scene = load_scene(SAMPLES / "yard_scene.toml")
+    a, b = Simulator(s, scene, seed=5), Simulator(s, scene, seed=5)
+    assert np.array_equal(a.raw_frame(3), b.raw_frame(3))
+    assert not np.array_equal(a.raw_frame(3), Simulator(s, scene, seed=6).raw_frame(3))
+
+
+def test_quantisation_clips_at_full_scale():
+    s = load_sensor(YARD_SENSOR)
+    sim = Simulator(s, parse_scene(one_target(range_m=5.0, snr_db=70.0)))  # amplitude ~ 25,000 counts
+    raw = sim.raw_frame(0)
+    assert raw.dtype == np.int16 and np.max(np.abs(raw)) == 8191
+
+
+def test_real_sampling_and_bpm_frames():
+    real = make_sensor(sampling="real")
+    sim = Simulator(real, parse_scene(one_target(range_m=6.0, snr_db=20.0)))
+    f = sim.frame(0)
+    assert np.all(f.imag == 0)
+    raw = sim.raw_frame(0)
+    assert raw.shape == (real.chirps_per_frame, real.n_rx, real.samples_per_chirp)
+    bpm = make_sensor(scheme="bpm", elevation_tx=False, bpm_codes=[[1, 1], [1, -1]])
+    x = Simulator(bpm, parse_scene(one_target(range_m=6.0, snr_db=20.0)), noise=False).clean_frame(0)
+    # slot 0 sends TX0 + TX1, slot 1 sends TX0 - TX1; at boresight both TX arrive nearly in phase,
+    # so slot 1 nearly cancels: (common practice of BPM codes)
+    assert np.mean(np.abs(x[1::2])) < 0.2 * np.mean(np.abs(x[0::2]))
+
+
+def test_scene_errors_are_named():
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 \(a\) position_m = \[1, 2\]: must be a list of 3"):
+        parse_scene('[[target]]\nname = "a"\nposition_m = [1, 2]\n')
+    with pytest.raises(CubecastError, match=r"give either position_m"):
+        parse_scene('[[target]]\nposition_m = [1, 2, 3]\nrange_m = 4.0\n')
+    with pytest.raises(CubecastError, match=r"unknown field\(s\) speed"):
+        parse_scene('[[target]]\nrange_m = 4.0\nspeed = 3\n')
+    with pytest.raises(CubecastError, match=r"at least one \[\[target\]\]"):
+        parse_scene('[scene]\nname = "empty"\n')
+
+
+def test_simulate_cli_errors(tmp_path, capsys):
+    assert main(["simulate", str(SAMPLES / "yard_scene.toml"), "--sensor", str(YARD_SENSOR)]) == 2
+    assert "give --out CAPTURE or --pub ENDPOINT" in capsys.readouterr().err
+
+
+# ---- the bundled samples -----------------------------------------------------------------------
+
+BUNDLED = [("yard.cap", "yard_scene.toml"), ("gate.cap", "gate_scene.toml")]
+
+
+@pytest.mark.parametrize("capture,scene", BUNDLED)
+def test_bundled_sample_regenerates_byte_for_byte(tmp_path, capture, scene):
+    with CaptureReader(SAMPLES / capture) as r:
+        meta, n = r.metadata, len(r)
+        assert r.problems == []
+        sensor = capture_sensor(r)
+        assert r.sensor_toml == (SAMPLES / "yard_sensor.toml").read_text()
+    scene_text = (SAMPLES / scene).read_text()
+    assert meta["scene_toml"] == scene_text
+    out = tmp_path / capture
+    simulate_capture(sensor, parse_scene(scene_text), out, n, seed=meta["seed"])
+    assert filecmp.cmp(out, SAMPLES / capture, shallow=False)
+
+
+def test_bundled_samples_are_small():
+    total = sum((SAMPLES / c).stat().st_size for c, _ in BUNDLED)
+    assert total <= 8 * 1024 * 1024
+
+
+@pytest.mark.parametrize("capture,scene", BUNDLED)
+def test_bundled_ground_truth_matches_scene(capture, scene):
+    with CaptureReader(SAMPLES / capture) as r:
+        gt = r.ground_truth
+        sensor = capture_sensor(r)
+    doc = tomllib.loads((SAMPLES / scene).read_text())
+    assert gt["targets"] == [t["name"] for t in doc["target"]]
+    sim = Simulator(sensor, load_scene(SAMPLES / scene))
+    for i, rows in enumerate(gt["frames"]):
+        assert np.allclose(np.array(rows), sim.truth(i), atol=1e-8)
