@@ -1,0 +1,52 @@
+"""Offline processing: a capture file through the chain into a point-cloud file (CSV or npz)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from .capture import CaptureReader
+from .errors import CubecastError
+from .chain.pipeline import Pipeline
+from .chain.points import to_records
+from .files import capture_sensor, iter_capture_frames, write_points_csv, write_points_npz
+from .settings import load_settings
+
+
+def load_calibration_vector(path, sensor) -> np.ndarray | None:
+    if path is None:
+        return None
+    from .calibrate import load_calibration
+    return load_calibration(path, sensor)
+
+
+def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = False) -> list[np.ndarray]:
+    """Run every readable frame of a capture through the chain; one record array per frame."""
+    records = []
+    frames = iter_capture_frames(reader, pipeline.sensor)
+    if progress:
+        from tqdm import tqdm
+        frames = tqdm(frames, total=len(reader), desc="process", unit="frame")
+    for seq, ts, frame in frames:
+        records.append(to_records(pipeline.process(frame), seq, ts))
+    return records
+
+
+def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None, settings_path=None,
+                    calibration_path=None, progress: bool = True, skip_corrupt: bool = False) -> int:
+    fmt = fmt or ("npz" if str(out).endswith(".npz") else "csv" if str(out).endswith(".csv") else None)
+    if fmt is None:
+        raise CubecastError(f"--out {out}: name a .csv or .npz file, or give --format")
+    settings = load_settings(settings_path)
+    with CaptureReader(capture, skip_corrupt=skip_corrupt) as reader:
+        sensor = capture_sensor(reader)
+        pipeline = Pipeline(sensor, settings, load_calibration_vector(calibration_path, sensor))
+        records = process_frames(reader, pipeline, progress)
+        problems = reader.problems
+    n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
+    for p in problems:
+        print(f"cubecast process: warning: {capture}: {p}")
+    if progress:
+        print(f"{len(records)} frames, {n} points -> {out}")
+    return 0
