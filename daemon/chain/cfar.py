@@ -101,6 +101,9 @@ N_INTEGRATED_MAX = 4096
 _KIND_CODE = {"ca": 0, "os": 1, "go": 2, "so": 3}
 # OS sliding band half-width in ranks: h = _OS_BAND_SCALE * sqrt(N) (speed only, never the result)
 _OS_BAND_SCALE = 1.0
+# sparse OS-CFAR floor: 70 % of the threshold a cell in receiver noise would face; map subsample stride
+OS_FLOOR_FRACTION = 0.7
+_OS_FLOOR_STRIDE = 7
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -681,6 +684,74 @@ def _os_statistic(power, padded, wr, gr, wd, gd, td, rank0, scratch, band, rows_
             valid = True
 
 
+@njit(cache=True, inline="always")
+def _is_local_max(power, r, j, p):
+    """3x3 local maximum, circular in Doppler, truncated in range; ties go to the first cell in
+    row-major order (the same rule as _extract)."""
+    n_r, n_d = power.shape
+    for dr in range(-1, 2):
+        rr = r + dr
+        if rr < 0 or rr >= n_r:
+            continue
+        for dd in range(-1, 2):
+            if dr == 0 and dd == 0:
+                continue
+            jj = j + dd
+            if jj < 0:
+                jj += n_d
+            elif jj >= n_d:
+                jj -= n_d
+            if rr == r and jj == j:
+                continue
+            q = power[rr, jj]
+            if dr < 0 or (dr == 0 and dd < 0):
+                if not (p > q):
+                    return False
+            elif q > p:
+                return False
+    return True
+
+
+@njit(cache=True)
+def _os_sparse(power, padded, wr, gr, wd, gd, td, rank0, scratch, floor, r_lo, r_hi, factor, noise_scale,
+               out_r, out_d, out_p, out_n):
+    """OS-CFAR with local-maximum grouping, evaluating the ordered statistic only where it can
+    matter: at 3x3 local maxima of the map above `floor`. Same answer as the full statistic followed
+    by _extract(local_max=True) for every cell above the floor; returns the count."""
+    n_r, n_d = power.shape
+    _pad_doppler(power, wd, padded)
+    width = 2 * wd + 1
+    count = 0
+    for r in range(r_lo, r_hi):
+        k0 = rank0[r]
+        fr = factor[r]
+        for j in range(n_d):
+            p = power[r, j]
+            if not (p > floor):
+                continue
+            if not _is_local_max(power, r, j, p):
+                continue
+            cnt = 0
+            for rr in range(max(r - wr, 0), min(r + wr + 1, n_r)):
+                if rr - r > gr or r - rr > gr:
+                    for t in range(width):
+                        scratch[cnt + t] = padded[rr, j + t]
+                    cnt += width
+                elif td > 0:
+                    for t in range(td):
+                        scratch[cnt + t] = padded[rr, j + t]
+                        scratch[cnt + td + t] = padded[rr, j + wd + gd + 1 + t]
+                    cnt += 2 * td
+            w = _select_kth(scratch, 0, cnt - 1, k0)
+            if np.float64(p) > fr * np.float64(w):
+                out_r[count] = r
+                out_d[count] = j
+                out_p[count] = p
+                out_n[count] = np.float32(w * noise_scale[r])
+                count += 1
+    return count
+
+
 @njit(cache=True)
 def _extract(power, stat, factor, noise_scale, r_lo, r_hi, local_max, out_r, out_d, out_p, out_n):
     """Threshold crossings (optionally 3x3 local maxima) in rows [r_lo, r_hi); returns the count."""
@@ -794,6 +865,7 @@ class Cfar:
         factor = np.empty(n_range, dtype=np.float64)
         noise_scale = np.empty(n_range, dtype=np.float64)
         rank0 = np.zeros(n_range, dtype=np.int64)
+        mean_w_all = np.empty(n_range, dtype=np.float64)
         for r in range(n_range):
             n = int(n_all[r])
             rank = _default_rank(n, float(s.os_rank_fraction)) if s.kind == "os" else 0
@@ -801,6 +873,7 @@ class Cfar:
             t, mean_w = _design(s.kind, n, float(s.pfa), n_integrated, rank, near)
             factor[r] = t
             noise_scale[r] = n_integrated / mean_w
+            mean_w_all[r] = mean_w
             rank0[r] = max(rank - 1, 0)
         self.factor = factor
         self.noise_scale = noise_scale
@@ -823,6 +896,10 @@ class Cfar:
             self._band = np.empty(n_max + 1, dtype=np.float32)
             self._rows_full = np.zeros(2 * wr + 1, dtype=np.int64)
             self._rows_guard = np.zeros(2 * wr + 1, dtype=np.int64)
+            self._sub = np.empty(n_cells // _OS_FLOOR_STRIDE + 1, dtype=np.float32)
+            self._factor_min = float(factor.min())
+            # the OS statistic of unit noise relative to the median of a Gamma(K) cell (~ its mean)
+            self._median_to_stat = float(np.min(mean_w_all)) / max(n_integrated - 1.0 / 3.0, 0.5)
         else:
             self._pad = np.zeros(n_doppler + 2 * wd + 1, dtype=np.float64)
             self._dfull = np.zeros(shape, dtype=np.float64)
@@ -866,9 +943,25 @@ class Cfar:
     def detect(self, power: np.ndarray) -> CfarDetections:
         """Detections of one map (see CfarDetections); the returned arrays are owned by the caller."""
         self._check_map(power)
-        self._compute_statistic(power)
-        count = _extract(power, self._stat, self.factor, self.noise_scale, self._r_lo, self._r_hi,
-                         bool(self.settings.local_max), self._out_r, self._out_d, self._out_p, self._out_n)
+        s = self.settings
+        if self._kind_code == 1 and s.local_max:
+            # Sparse OS: the ordered statistic only at local maxima above a floor. A cell below
+            # OS_FLOOR_FRACTION * min(T) * (median of a map subsample) could only be detected where
+            # the local statistic is under OS_FLOOR_FRACTION of the map's median, i.e. never in
+            # receiver noise; everywhere else the result equals the full OS-CFAR.
+            sub = power.reshape(-1)[:: _OS_FLOOR_STRIDE]
+            k = sub.shape[0] // 2
+            self._sub[: sub.shape[0]] = sub
+            median = float(np.partition(self._sub[: sub.shape[0]], k)[k])
+            floor = np.float32(OS_FLOOR_FRACTION * self._factor_min * median * self._median_to_stat)
+            count = _os_sparse(power, self._padded, self._wr, s.guard_range, self._wd, s.guard_doppler,
+                               s.train_doppler, self._rank0, self._scratch, floor, self._r_lo, self._r_hi,
+                               self.factor, self.noise_scale, self._out_r, self._out_d, self._out_p,
+                               self._out_n)
+        else:
+            self._compute_statistic(power)
+            count = _extract(power, self._stat, self.factor, self.noise_scale, self._r_lo, self._r_hi,
+                             bool(s.local_max), self._out_r, self._out_d, self._out_p, self._out_n)
         p = self._out_p[:count].copy()
         noise = self._out_n[:count].copy()
         with np.errstate(divide="ignore", invalid="ignore"):

@@ -18,6 +18,7 @@ import numpy as np
 
 from ..sensor import Sensor
 from ..settings import ProcessingSettings
+from .fft import fft_inplace
 from .windows import make_window
 
 
@@ -75,6 +76,6 @@ class DopplerFft:
         _regroup(rfft, self.n_slots, self.window, self.remove_static, self.spectrum)
         if self.fft_size > self.n_loops:
             self.spectrum[..., self.n_loops:] = 0
-        np.fft.fft(self.spectrum, axis=-1, out=self.spectrum)
+        fft_inplace(self.spectrum)
         _power_map(self.spectrum, self.power)
         return self.spectrum, self.power

@@ -10,6 +10,7 @@ import numpy as np
 
 from ..sensor import SPEED_OF_LIGHT_MPS, Sensor
 from ..settings import ProcessingSettings
+from .fft import fft_inplace
 from .windows import make_window
 
 
@@ -34,5 +35,5 @@ class RangeFft:
         np.multiply(frame, self.window, out=self._work[..., :n])
         if self.fft_size > n:
             self._work[..., n:] = 0  # the in-place FFT overwrote last frame's padding
-        np.fft.fft(self._work, axis=-1, out=self._work)
+        fft_inplace(self._work)
         return self.out
