@@ -45,8 +45,8 @@ class ProcessingSettings:
     min_range_m: float = 0.5
     max_range_m: float = 0.0  # 0 = the sensor's maximum range
     # angle
-    angle_fft_size_azimuth: int = 64
-    angle_fft_size_elevation: int = 16
+    angle_fft_size_azimuth: int = 0  # 0 = automatic: max(64, next power of two >= 2 x the columns)
+    angle_fft_size_elevation: int = 0  # 0 = automatic: max(16, next power of two >= 4 x the rows)
     angle_peak_threshold_db: float = -9.0
     angle_max_peaks: int = 2
     # output
@@ -69,8 +69,8 @@ class ProcessingSettings:
                 raise fail(name, "must be 0 (no padding) or a power of two of at least 8")
         for name in ("angle_fft_size_azimuth", "angle_fft_size_elevation"):
             v = getattr(self, name)
-            if v < 1 or v & (v - 1):
-                raise fail(name, "must be a power of two")
+            if v < 0 or (v and v & (v - 1)):
+                raise fail(name, "must be 0 (automatic) or a power of two")
         for name in ("cfar_train_range", "cfar_train_doppler"):
             if getattr(self, name) < 1:
                 raise fail(name, "must be at least 1")

@@ -44,6 +44,10 @@ def _interp_log_parabola(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.
     return np.clip(d, -0.5, 0.5)
 
 
+def _next_pow2(n: int) -> int:
+    return 1 << max(0, int(n - 1).bit_length())
+
+
 class Pipeline:
     def __init__(self, sensor: Sensor, settings: ProcessingSettings | None = None,
                  calibration: np.ndarray | None = None):
@@ -77,10 +81,16 @@ class Pipeline:
         self.mimo = MimoDecoder(sensor, settings, self.doppler_fft.bin_hz, n_dop)
         self.virtual_positions_m = sensor.virtual_positions_m
         grid = VirtualGrid.from_positions(self.virtual_positions_m, sensor.wavelength_m)
-        n_el = settings.angle_fft_size_elevation if grid.n_z > 1 else 1
+        n_az = settings.angle_fft_size_azimuth or max(64, _next_pow2(2 * grid.n_x))
+        n_el = (settings.angle_fft_size_elevation or max(16, _next_pow2(4 * grid.n_z))) if grid.n_z > 1 else 1
+        for name, size, cells in (("angle_fft_size_azimuth", n_az, grid.n_x),
+                                  ("angle_fft_size_elevation", n_el, grid.n_z if grid.n_z > 1 else 1)):
+            if size < cells:
+                raise CubecastError(f"[processing] {name} = {size}: smaller than the virtual array's {cells} "
+                                    f"grid positions on that axis (use 0 for automatic)")
         self.angle = AngleEstimator(
             grid,
-            AngleSettings(fft_size_azimuth=settings.angle_fft_size_azimuth, fft_size_elevation=n_el,
+            AngleSettings(fft_size_azimuth=n_az, fft_size_elevation=n_el,
                           peak_threshold_db=settings.angle_peak_threshold_db,
                           max_peaks=settings.angle_max_peaks),
             calibration)
@@ -89,6 +99,7 @@ class Pipeline:
         self.velocity_resolution_mps = sensor.velocity_resolution_mps
         self.half_wavelength_m = sensor.wavelength_m / 2.0
         self.stage_ms = dict.fromkeys(STAGES, 0.0)
+        self._canonical = None
         self.last_detections = 0
 
     @property
@@ -97,14 +108,41 @@ class Pipeline:
         return self.doppler_fft.power
 
     def process(self, frame: np.ndarray) -> np.ndarray:
+        """Points of one canonical frame (complex64 [chirp, rx, sample])."""
         if frame.shape != self.frame_shape or frame.dtype != np.complex64:
             raise CubecastError(f"frame has shape {frame.shape} dtype {frame.dtype}; the chain expects "
                                 f"complex64 {self.frame_shape} for sensor '{self.sensor.sensor_id}'")
+        return self._process(frame, self.range_fft.load)
+
+    def process_raw(self, raw: np.ndarray) -> np.ndarray:
+        """Points of one frame in the sensor's ADC format (as a board or capture delivers it). Int16
+        I/Q is converted on the fly inside the range stage; other formats go through the canonical
+        frame."""
+        shape = self.sensor.adc.raw_shape(*self.frame_shape)
+        if raw.shape != shape or raw.dtype != self.sensor.adc.raw_dtype():
+            raise CubecastError(f"frame has shape {raw.shape} dtype {raw.dtype}; sensor "
+                                f"'{self.sensor.sensor_id}' delivers {self.sensor.adc.raw_dtype()} {shape}")
+        if self.range_fft.raw_iq16:
+            return self._process(raw, self.range_fft.load_raw)
+        if self._canonical is None:
+            self._canonical = np.empty(self.frame_shape, np.complex64)
+        return self.process(self.sensor.raw_to_canonical(raw, self._canonical))
+
+    def _process(self, data: np.ndarray, load) -> np.ndarray:
         t0 = time.perf_counter()
-        rfft = self.range_fft(frame)
-        t1 = time.perf_counter()
-        spec, power = self.doppler_fft(rfft)
+        t_range = 0.0
+        rng, dop = self.range_fft, self.doppler_fft
+        dop.begin()
+        for rx in range(self.sensor.n_rx):
+            ta = time.perf_counter()
+            load(data, rx)
+            block = rng.transform()
+            tb = time.perf_counter()
+            t_range += tb - ta
+            dop.add(block, rx)
+        spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()
+        t1 = t0 + t_range
         det = self.cfar.detect(power)
         t3 = time.perf_counter()
         n_det = len(det)
@@ -125,7 +163,7 @@ class Pipeline:
         dr = np.where((r == 0) | (r == n_range - 1), 0.0, dr)
         dd = _interp_log_parabola(power[r, (d - 1) % n_dop], power[r, d], power[r, (d + 1) % n_dop])
         d_fft = (d - n_dop // 2) % n_dop
-        slot_values = spec[:, r, d_fft].T.reshape(len(r), self.sensor.n_slots, self.sensor.n_rx)
+        slot_values = spec[:, :, r, d_fft].transpose(2, 1, 0)  # [n_det, n_slots, n_rx]
         snaps, doppler_hz = self.mimo.resolve(slot_values, d + dd, self.angle.coherence)
         t4 = time.perf_counter()
 

@@ -1,0 +1,204 @@
+"""The benchmark: the chain on simulated frames for two sensors, against the FFT floor.
+
+For each sensor, in a fresh process (so that peak memory and start-up are its own):
+  - first_frame_s: from process start of the measurement (sensor parsed) to the first point cloud,
+    numba functions loaded from the cache and the chain warmed up on a zero frame;
+  - per-stage milliseconds, median over the measured frames after warm-up; the input is the board's
+    int16 I/Q, converted inside the range stage;
+  - the FFT floor: only the range and Doppler FFTs of the same cube with scipy.fft, one thread;
+  - frames per second on one core, peak resident memory.
+Speed targets live here, never as timed assertions in tests.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import statistics
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+SENSORS = {
+    # 3 TX x 4 RX TDM, 128 loops, 256 samples, int16 I/Q: a common bench configuration
+    "reference": dict(tx="[[0, 0], [4, 0], [2, 1]]", rx="[[0, 0], [1, 0], [2, 0], [3, 0]]", loops=128,
+                      samples=256),
+    # 12 TX x 16 RX TDM, 64 loops, 256 samples: 9 TX on the azimuth row 16 half-wavelengths apart
+    # (a 144-element filled row) and 3 TX raised by 1, 2 and 3 half-wavelengths
+    "large": dict(tx="[" + ", ".join(f"[{16 * k}, 0]" for k in range(9)) + ", [56, 1], [64, 2], [72, 3]]",
+                  rx="[" + ", ".join(f"[{l}, 0]" for l in range(16)) + "]", loops=64, samples=256),
+}
+
+SCENE = """
+[[target]]
+range_m = 7.3
+azimuth_deg = -20.0
+radial_velocity_mps = 3.1
+rcs_dbsm = 5.0
+[[target]]
+range_m = 12.9
+azimuth_deg = 14.0
+elevation_deg = 6.0
+radial_velocity_mps = -1.2
+rcs_dbsm = 0.0
+[[target]]
+position_m = [-5.0, 16.0, 0.5]
+rcs_dbsm = 12.0
+[[target]]
+position_m = [3.0, 20.0, 3.5]
+rcs_dbsm = 8.0
+[[target]]
+range_m = 30.0
+azimuth_deg = 35.0
+radial_velocity_mps = 9.0
+rcs_dbsm = 10.0
+"""
+
+
+def sensor_toml(name: str) -> str:
+    spec = SENSORS[name]
+    n_tx = spec["tx"].count("[") - 1
+    samples = spec["samples"]
+    fs = 10.0e6
+    window = samples / fs
+    chirp_period = 5.0e-6 + window + 10.0e-6
+    chirps = spec["loops"] * n_tx
+    return f"""
+[sensor]
+id = "bench-{name}"
+
+[chirp]
+start_frequency_hz = 77.0e9
+slope_hz_per_s = 30.0e12
+sample_rate_hz = {fs!r}
+samples_per_chirp = {samples}
+adc_start_delay_s = 5.0e-6
+ramp_end_time_s = {5.0e-6 + window + 2.0e-6!r}
+chirp_period_s = {chirp_period!r}
+
+[frame]
+chirps_per_frame = {chirps}
+frame_period_s = {max(0.05, chirps * chirp_period * 1.2)!r}
+
+[antennas]
+tx_positions_half_wavelength = {spec["tx"]}
+rx_positions_half_wavelength = {spec["rx"]}
+
+[mimo]
+scheme = "tdm"
+
+[link]
+tx_power_dbm = 12.0
+tx_gain_dbi = 10.0
+rx_gain_dbi = 10.0
+noise_figure_db = 12.0
+system_loss_db = 3.0
+noise_rms_counts = 8.0
+
+[adc]
+sampling = "complex"
+sample_type = "int16"
+full_scale = 8191
+"""
+
+
+def _median_ms(samples: list[float]) -> float:
+    return round(statistics.median(samples) * 1e3, 4)
+
+
+def measure(name: str, frames: int = 60, distinct: int = 4) -> dict:
+    """Run in the current process: build, warm up, measure. Returns the sensor's result row."""
+    import scipy.fft
+
+    from .chain.pipeline import STAGES, Pipeline
+    from .scene import parse_scene
+    from .sensor import parse_sensor
+    from .simulate import Simulator
+
+    sensor = parse_sensor(sensor_toml(name), f"bench sensor {name}")
+    sim = Simulator(sensor, parse_scene(SCENE), seed=1)
+    raws = [sim.raw_frame(i) for i in range(distinct)]  # input as the board delivers it
+
+    t_start = time.perf_counter()
+    pipe = Pipeline(sensor)
+    canon = np.empty((sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp), np.complex64)
+    pipe.process_raw(np.zeros_like(raws[0]))  # warm-up: numba from cache, FFT plans
+    points = pipe.process_raw(raws[0])
+    first_frame_s = time.perf_counter() - t_start
+
+    for i in range(5):  # settle caches
+        pipe.process_raw(raws[i % distinct])
+
+    stage = {s: [] for s in STAGES}
+    total = []
+    n_points = []
+    for i in range(frames):
+        t0 = time.perf_counter()
+        pts = pipe.process_raw(raws[i % distinct])
+        t2 = time.perf_counter()
+        for s in STAGES:
+            stage[s].append(pipe.stage_ms[s] / 1e3)
+        total.append(t2 - t0)
+        n_points.append(len(pts))
+
+    # the FFT floor: range FFT over samples and Doppler FFT over loops of the same cube, nothing else
+    sensor.raw_to_canonical(raws[0], canon)
+    cube = canon.copy()
+    n_ch, n_range, n_loops = sensor.n_slots * sensor.n_rx, pipe.range_fft.n_bins, sensor.n_loops
+    dcube = np.zeros((n_ch, n_range, n_loops), np.complex64)
+    floor = []
+    for i in range(frames):
+        cube[...] = canon
+        t0 = time.perf_counter()
+        scipy.fft.fft(cube, axis=-1, overwrite_x=True, workers=1)
+        scipy.fft.fft(dcube, axis=-1, overwrite_x=True, workers=1)
+        floor.append(time.perf_counter() - t0)
+
+    chain_ms = _median_ms(total)
+    floor_ms = _median_ms(floor)
+    return {
+        "name": name,
+        "sensor": f"{sensor.n_tx} TX x {sensor.n_rx} RX {sensor.mimo_scheme.upper()}, {sensor.n_loops} loops, "
+                  f"{sensor.samples_per_chirp} samples, int16 I/Q",
+        "frames_measured": frames,
+        "frames_per_s": round(1e3 / chain_ms, 1),
+        "chain_ms": chain_ms,
+        "fft_floor_ms": floor_ms,
+        "chain_over_fft_floor": round(chain_ms / floor_ms, 3),
+        "stages_ms": {s: _median_ms(v) for s, v in stage.items()},
+        "points_per_frame": int(statistics.median(n_points)),
+        "first_frame_s": round(first_frame_s, 3),
+        "first_frame_points": int(len(points)),
+        "peak_rss_mb": round(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0, 1),
+    }
+
+
+def run(names: list[str], frames: int) -> dict:
+    """Each sensor in its own fresh interpreter, one after the other."""
+    rows = []
+    for name in names:
+        env = dict(os.environ, NUMBA_NUM_THREADS="1")
+        out = subprocess.run([sys.executable, "-m", "daemon.bench", name, str(frames)], capture_output=True,
+                             text=True, env=env, check=False)
+        if out.returncode != 0:
+            from .errors import CubecastError
+            raise CubecastError(f"bench for sensor '{name}' failed: {out.stderr.strip().splitlines()[-1:]}")
+        rows.append(json.loads(out.stdout))
+    return {"sensors": rows}
+
+
+def print_table(result: dict) -> None:
+    for row in result["sensors"]:
+        print(f"{row['name']}: {row['sensor']}")
+        print(f"  chain {row['chain_ms']:.2f} ms/frame = {row['frames_per_s']:.0f} frames/s on one core; "
+              f"FFT floor {row['fft_floor_ms']:.2f} ms; chain / floor = {row['chain_over_fft_floor']:.2f}")
+        print("  stages (ms): " + ", ".join(f"{k} {v:.3f}" for k, v in row["stages_ms"].items()))
+        print(f"  first frame after {row['first_frame_s']:.2f} s; peak RSS {row['peak_rss_mb']:.0f} MB; "
+              f"{row['points_per_frame']} points/frame")
+
+
+if __name__ == "__main__":  # one sensor, in a fresh process: python -m daemon.bench NAME FRAMES
+    print(json.dumps(measure(sys.argv[1], int(sys.argv[2]))))
