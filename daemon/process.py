@@ -14,11 +14,18 @@ from .files import capture_sensor, iter_capture_frames, write_points_csv, write_
 from .settings import load_settings
 
 
-def load_calibration_vector(path, sensor) -> np.ndarray | None:
+def load_calibration_for(path, sensor) -> tuple[np.ndarray | None, float]:
+    """(per-channel calibration vector, range bias in metres) from a calibration file, or (None, 0)."""
     if path is None:
-        return None
-    from .calibrate import load_calibration
-    return load_calibration(path, sensor)
+        return None, 0.0
+    from .calibrate import load_calibration_file
+    cal = load_calibration_file(path, sensor)
+    return cal.vector, cal.range_bias_m
+
+
+def make_pipeline(sensor, settings, calibration_path=None) -> Pipeline:
+    vector, bias = load_calibration_for(calibration_path, sensor)
+    return Pipeline(sensor, settings, vector, bias)
 
 
 def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = False) -> list[np.ndarray]:
@@ -41,7 +48,7 @@ def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None
     settings = load_settings(settings_path)
     with CaptureReader(capture, skip_corrupt=skip_corrupt) as reader:
         sensor = capture_sensor(reader)
-        pipeline = Pipeline(sensor, settings, load_calibration_vector(calibration_path, sensor))
+        pipeline = make_pipeline(sensor, settings, calibration_path)
         records = process_frames(reader, pipeline, progress)
         problems = reader.problems
     n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)

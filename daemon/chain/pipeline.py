@@ -50,7 +50,10 @@ def _next_pow2(n: int) -> int:
 
 class Pipeline:
     def __init__(self, sensor: Sensor, settings: ProcessingSettings | None = None,
-                 calibration: np.ndarray | None = None):
+                 calibration: np.ndarray | None = None, range_bias_m: float = 0.0):
+        """`calibration`: complex per-virtual-channel factors applied before angle estimation;
+        `range_bias_m`: measured minus true range of a reference target, subtracted from every point
+        (both from `cubecast calibrate`)."""
         self.sensor = sensor
         self.settings = settings = (settings or ProcessingSettings()).validate()
         self.frame_shape = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
@@ -100,6 +103,7 @@ class Pipeline:
         self.half_wavelength_m = sensor.wavelength_m / 2.0
         self.stage_ms = dict.fromkeys(STAGES, 0.0)
         self._canonical = None
+        self.range_bias_m = float(range_bias_m)
         self.last_detections = 0
 
     @property
@@ -177,7 +181,7 @@ class Pipeline:
         first = np.zeros(len(r), np.float64)
         np.maximum.at(first, i, ang.peak_power)
         snr_pt = snr[i] * (ang.peak_power / np.maximum(first[i], 1e-30))
-        range_m = ((r[i] + dr[i]) * self.range_fft.bin_m).astype(np.float32)
+        range_m = ((r[i] + dr[i]) * self.range_fft.bin_m - self.range_bias_m).astype(np.float32)
         az = np.radians(ang.azimuth_deg.astype(np.float64))
         el = np.radians(ang.elevation_deg.astype(np.float64))
         out["range_m"] = range_m
