@@ -78,6 +78,30 @@ def _process(args) -> int:
                            skip_corrupt=args.skip_corrupt)
 
 
+def _serve(args) -> int:
+    from .service import DEFAULT_SUB, serve
+    return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
+                 calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
+                 quiet=args.quiet)
+
+
+def _replay(args) -> int:
+    from .sources import replay
+    return replay(args.capture, args.pub, speed=args.speed, loop=args.loop, frames=args.frames,
+                  wait_s=args.wait_subscriber, quiet=args.quiet)
+
+
+def _record(args) -> int:
+    from .sources import record
+    return record(args.sub, args.out, args.points_out, frames=args.frames, duration_s=args.duration,
+                  sensor_path=args.sensor, quiet=args.quiet)
+
+
+def _demo(args) -> int:
+    from .demo import run_demo
+    return run_demo(args.capture, seconds=args.seconds, viewer=not args.no_viewer)
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="cubecast", description="FMCW MIMO radar processing chain: ADC frames in, "
                                 "point clouds out.")
@@ -110,7 +134,66 @@ def build_parser() -> argparse.ArgumentParser:
                     help="skip frames whose CRC fails (each is reported); default: stop with an error")
     pr.add_argument("--quiet", action="store_true")
     pr.set_defaults(func=_process)
+
+    sv = sub.add_parser("serve", help="the streaming daemon: ADC frames in over ZeroMQ, point clouds out")
+    sv.add_argument("--sensor", required=True, help="sensor description (TOML) of the source")
+    sv.add_argument("--settings", help="processing settings (TOML, [processing] section)")
+    sv.add_argument("--calibration", help="calibration file (TOML)")
+    sv.add_argument("--sub", action="append", metavar="ENDPOINT",
+                    help="source endpoint to connect to (repeatable; default tcp://127.0.0.1:5601)")
+    sv.add_argument("--pub", default="tcp://127.0.0.1:5602", metavar="ENDPOINT",
+                    help="endpoint to bind for points, rdmap, sensor and health (default tcp://127.0.0.1:5602)")
+    sv.add_argument("--queue", type=int, default=2, metavar="N",
+                    help="frames waiting for processing; when full the oldest is dropped (default 2)")
+    sv.add_argument("--rdmap-rate", type=float, default=5.0, metavar="HZ",
+                    help="range-Doppler maps per second at most (default 5, 0 = none)")
+    sv.add_argument("--quiet", action="store_true", help="no start/stop lines (rejections are still logged)")
+    sv.set_defaults(func=_serve)
+
+    rp = sub.add_parser("replay", help="publish a capture's ADC frames over ZeroMQ with their recorded timing")
+    rp.add_argument("capture")
+    rp.add_argument("--pub", default="tcp://127.0.0.1:5601", metavar="ENDPOINT",
+                    help="endpoint to bind (default tcp://127.0.0.1:5601)")
+    rp.add_argument("--speed", default="1", help="factor of recorded time, or 'max' (default 1)")
+    rp.add_argument("--loop", action="store_true", help="start over at the end (sequence numbers keep counting)")
+    rp.add_argument("--frames", type=int, default=0, metavar="N", help="stop after N frames (default: all)")
+    rp.add_argument("--wait-subscriber", type=float, default=1.0, metavar="S",
+                    help="after binding, wait up to S seconds for a subscriber before sending (default 1)")
+    rp.add_argument("--quiet", action="store_true")
+    rp.set_defaults(func=_replay)
+
+    rc = sub.add_parser("record", help="record ADC frames to a capture and/or point clouds to CSV from ZeroMQ")
+    rc.add_argument("--sub", action="append", metavar="ENDPOINT",
+                    help="endpoint to connect to (repeatable: a source for ADC frames, the daemon for points "
+                         "and the sensor description; default tcp://127.0.0.1:5602)")
+    rc.add_argument("--out", help="capture file for the ADC frames")
+    rc.add_argument("--points-out", help="CSV file for the point clouds")
+    rc.add_argument("--frames", type=int, default=0, metavar="N",
+                    help="stop after N ADC frames (N point clouds without --out); default: no limit")
+    rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
+    rc.add_argument("--sensor", help="sensor description (TOML), if no daemon's description is received")
+    rc.add_argument("--quiet", action="store_true")
+    rc.set_defaults(func=_record)
+
+    dm = sub.add_parser("demo", help="replay the bundled sample through the daemon and report once a second")
+    dm.add_argument("--seconds", type=float, default=0.0, metavar="S",
+                    help="stop S seconds after the daemon's first report (default: until Ctrl-C)")
+    dm.add_argument("--no-viewer", action="store_true", help="do not start the viewer even with a display")
+    dm.add_argument("--capture", help="capture to replay instead of replay_samples/yard.cap")
+    dm.set_defaults(func=_demo)
+    from .calibrate import add_parser as add_calibrate
+    add_calibrate(sub)
+    try:  # the viewer is an optional extra; without vispy, `view` explains what to install
+        from .viewsource import register_view
+        register_view(sub)
+    except ImportError as exc:  # pragma: no cover - only without the viewer package
+        v = sub.add_parser("view", help="live viewer (needs the viewer extra)")
+        v.set_defaults(func=lambda args, exc=exc: _missing_viewer(exc))
     return p
+
+
+def _missing_viewer(exc) -> int:
+    raise CubecastError(f"the viewer is not available ({exc}); install with: pip install -e '.[viewer]'")
 
 
 def main(argv: list[str] | None = None) -> int:

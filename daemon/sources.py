@@ -1,0 +1,524 @@
+"""Frame sources and the recorder: `cubecast replay`, `cubecast simulate --pub`, `cubecast record`.
+
+Sources bind an XPUB socket (a PUB that also reports subscriptions; SUB peers see an ordinary PUB) and
+publish `adc` messages (wire.md) in the sensor's ADC format with the sensor digest, a random `run` id
+chosen at start and a `seq` counting up from 0.
+
+Slow joiners: a PUB socket drops what it sends before a subscriber's connection is up. A source
+therefore waits, after binding, until `wait_subscribers` subscriptions have arrived or `wait_s`
+seconds have passed (default 1 subscriber, at most 1 s), whichever comes first, and then starts
+publishing regardless. Frames sent while nobody listens are simply not seen (no backlog builds up).
+On close a source lingers at most 1 s to deliver the frames still queued.
+"""
+
+from __future__ import annotations
+
+import collections
+import math
+import secrets
+import sys
+import threading
+import time
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import zmq
+
+from .capture import CaptureReader, CaptureWriter, CorruptFrameError
+from .chain.points import RECORD_DTYPE
+from .errors import CubecastError
+from .files import _fmt, capture_sensor
+from .scene import Scene
+from .sensor import Sensor
+from .service import (DEFAULT_PUB, DEFAULT_SUB, AdcValidator, RateLimitedLog, bind_socket, connect_socket,
+                      stop_on_signals)
+from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
+
+DEFAULT_SOURCE = DEFAULT_SUB  # sources bind where serve connects by default
+SOURCE_LINGER_MS = 1000
+
+
+def _stderr_line(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+def new_run_id() -> str:
+    return secrets.token_hex(8)
+
+
+class AdcPublisher:
+    """The publishing end of a source: an XPUB bound to `endpoint`, one run id, seq counting from 0."""
+
+    def __init__(self, sensor: Sensor, endpoint: str = DEFAULT_SOURCE, *, sndhwm: int = 1000,
+                 context: zmq.Context | None = None, run_id: str | None = None):
+        self.sensor_id, self.digest = sensor.sensor_id, sensor.digest
+        self._own_ctx = context is None
+        self.ctx = context or zmq.Context()
+        self.sock = self.ctx.socket(zmq.XPUB)
+        self.sock.setsockopt(zmq.LINGER, SOURCE_LINGER_MS)
+        self.sock.setsockopt(zmq.SNDHWM, sndhwm)
+        self.sock.setsockopt(zmq.XPUB_VERBOSE, 1)
+        try:
+            self.endpoint = bind_socket(self.sock, endpoint, "--pub")
+        except BaseException:
+            self.close()
+            raise
+        self.run_id = run_id or new_run_id()
+        self.seq = 0
+        self.subscriptions = 0
+
+    def poll_subscriptions(self) -> int:
+        while True:
+            try:
+                event = self.sock.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return self.subscriptions
+            if event[:1] == b"\x01":
+                self.subscriptions += 1
+
+    def wait_for_subscribers(self, count: int, timeout_s: float, stop: threading.Event) -> bool:
+        deadline = time.monotonic() + timeout_s
+        while self.poll_subscriptions() < count:
+            left = deadline - time.monotonic()
+            if left <= 0 or stop.is_set():
+                return False
+            self.sock.poll(min(50, max(1, int(left * 1000))), zmq.POLLIN)
+        return True
+
+    def send(self, payload: np.ndarray, timestamp_s: float) -> int:
+        """Publish one frame (without a copy: pass a fresh array each time). Returns its seq."""
+        seq = self.seq
+        self.sock.send_multipart(encode_adc(self.sensor_id, seq, self.run_id, timestamp_s, payload, self.digest),
+                                 copy=False)
+        self.seq += 1
+        self.poll_subscriptions()
+        return seq
+
+    def close(self) -> None:
+        if self.sock is not None:
+            self.sock.close()
+            self.sock = None
+        if self._own_ctx and self.ctx is not None:
+            self.ctx.term()
+            self.ctx = None
+
+
+def parse_speed(text: str | float) -> float | None:
+    """'max' -> None (as fast as possible); a number > 0 -> that factor of recorded time."""
+    if isinstance(text, str) and text.strip().lower() == "max":
+        return None
+    try:
+        value = float(text)
+    except (TypeError, ValueError):
+        raise CubecastError(f"--speed {text!r}: must be a number > 0 (1 = recorded timing) or 'max'") from None
+    if not (value > 0 and math.isfinite(value)):
+        raise CubecastError(f"--speed {text!r}: must be a number > 0 (1 = recorded timing) or 'max'")
+    return value
+
+
+class _Pacer:
+    """Sleeps until virtual time t (seconds) / speed after the start; re-anchors after a stall of more
+    than 0.5 s instead of bursting to catch up."""
+
+    def __init__(self, speed: float | None, stop: threading.Event):
+        self.speed, self.stop = speed, stop
+        self.t0: float | None = None
+        self.v0 = 0.0
+
+    def wait(self, virtual_s: float) -> bool:
+        if self.speed is None:
+            return not self.stop.is_set()
+        now = time.monotonic()
+        if self.t0 is None:
+            self.t0, self.v0 = now, virtual_s
+            return not self.stop.is_set()
+        target = self.t0 + (virtual_s - self.v0) / self.speed
+        if now - target > 0.5:
+            self.t0 += now - target
+            target = now
+        while True:
+            left = target - time.monotonic()
+            if left <= 0:
+                return not self.stop.is_set()
+            if self.stop.wait(min(left, 0.05)):
+                return False
+
+
+class ReplaySource:
+    """Replays a capture: ReplaySource(capture, endpoint).run(stop_event) -> frames sent.
+
+    speed: factor of recorded time (None = as fast as possible); loop: start over at the end, with seq
+    counting on and timestamps shifted by the capture's span plus one frame interval per pass, so
+    both keep increasing; frames: stop after this many frames (0 = at the end, or never with loop)."""
+
+    def __init__(self, capture: str | Path, endpoint: str = DEFAULT_SOURCE, *, speed: float | None = 1.0,
+                 loop: bool = False, frames: int = 0, wait_subscribers: int = 1, wait_s: float = 1.0,
+                 sndhwm: int = 1000, context: zmq.Context | None = None,
+                 log: Callable[[str], None] | None = None, quiet: bool = False):
+        if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
+            raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = all)")
+        self.reader = CaptureReader(capture)
+        try:
+            self.sensor = capture_sensor(self.reader)
+            n = len(self.reader)
+            if n == 0:
+                raise CubecastError(f"{capture}: the capture holds no readable frames")
+            dt = self.reader.frame_dtype(0).str
+            if dt not in ADC_DTYPES:
+                raise CubecastError(f"{capture}: frames are {dt}; the wire carries {', '.join(ADC_DTYPES)} only")
+            ts = [self.reader._entry(j)[1].timestamp_s for j in range(n)]
+        except BaseException:
+            self.reader.close()
+            raise
+        self.timestamps_s = ts
+        interval = (ts[-1] - ts[0]) / (n - 1) if n > 1 else self.sensor.frame_period_s
+        self.pass_span_s = (ts[-1] - ts[0]) + (interval if interval > 0 else self.sensor.frame_period_s)
+        self.endpoint_requested = endpoint
+        self.speed, self.loop, self.frames = speed, loop, frames
+        self.wait_subscribers, self.wait_s = wait_subscribers, wait_s
+        self.sndhwm, self.context = sndhwm, context
+        self.write = log or _stderr_line
+        self.quiet = quiet
+        self.publisher: AdcPublisher | None = None
+        self.frames_sent = 0
+        self.corrupt_skipped: set[int] = set()
+
+    def bind(self) -> str:
+        if self.publisher is None:
+            self.publisher = AdcPublisher(self.sensor, self.endpoint_requested, sndhwm=self.sndhwm,
+                                          context=self.context)
+        return self.publisher.endpoint
+
+    @property
+    def endpoint(self) -> str | None:
+        return self.publisher.endpoint if self.publisher else None
+
+    def run(self, stop: threading.Event | None = None) -> int:
+        stop = stop or threading.Event()
+        self.bind()
+        pub = self.publisher
+        try:
+            if self.wait_subscribers > 0 and self.wait_s > 0:
+                pub.wait_for_subscribers(self.wait_subscribers, self.wait_s, stop)
+            if not self.quiet:
+                self.write(f"cubecast replay: publishing {self.reader.path} (sensor '{self.sensor.sensor_id}', "
+                           f"{len(self.reader)} frames, run {pub.run_id}) on {pub.endpoint}")
+            pacer = _Pacer(self.speed, stop)
+            n = len(self.reader)
+            k = 0
+            while not stop.is_set():
+                j, lap = k % n, k // n
+                if lap and not self.loop:
+                    break
+                if self.frames and self.frames_sent >= self.frames:
+                    break
+                k += 1
+                virtual = self.timestamps_s[j] + lap * self.pass_span_s
+                if not pacer.wait(virtual):
+                    break
+                try:
+                    frame = self.reader.read(j)  # a fresh array: safe to hand to ZeroMQ without a copy
+                except CorruptFrameError as exc:
+                    if j not in self.corrupt_skipped:
+                        self.corrupt_skipped.add(j)
+                        self.write(f"cubecast replay: warning: skipping frame: {exc}")
+                    if len(self.corrupt_skipped) == n:
+                        raise CubecastError(f"{self.reader.path}: every frame is corrupt") from None
+                    continue
+                pub.send(frame.payload, virtual)
+                self.frames_sent += 1
+        finally:
+            self.close()
+        return self.frames_sent
+
+    def close(self) -> None:
+        if self.publisher is not None:
+            self.publisher.close()
+            self.publisher = None
+        self.reader.close()
+
+
+def replay(capture: str, endpoint: str = DEFAULT_SOURCE, speed: str = "1", loop: bool = False, frames: int = 0,
+           wait_s: float = 1.0, quiet: bool = False) -> int:
+    """`cubecast replay`: until the end (or --frames, or forever with --loop), SIGINT or SIGTERM."""
+    stop = threading.Event()
+    with stop_on_signals(stop):
+        src = ReplaySource(capture, endpoint, speed=parse_speed(speed), loop=loop, frames=frames, wait_s=wait_s,
+                           quiet=quiet)
+        sent = src.run(stop)
+    if not quiet:
+        _stderr_line(f"cubecast replay: sent {sent} frames")
+    return 0
+
+
+def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int = 0, seed: int = 0, *,
+                       wait_s: float = 1.0, stop: threading.Event | None = None,
+                       context: zmq.Context | None = None, quiet: bool = False,
+                       log: Callable[[str], None] | None = None) -> int:
+    """`cubecast simulate SCENE --sensor S --pub ENDPOINT`: simulated frames (ADC format, scene time
+    as timestamp_s) published live at the frame period; frames = 0 runs until stopped."""
+    from .simulate import Simulator
+    if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
+        raise CubecastError(f"--frames-live {frames!r}: must be a whole number >= 0 (0 = until stopped)")
+    write = log or _stderr_line
+    own_stop = stop is None
+    stop = stop or threading.Event()
+    sim = Simulator(sensor, scene, seed=seed)
+    with (stop_on_signals(stop) if own_stop else _nullcontext()):
+        pub = AdcPublisher(sensor, endpoint, context=context)
+        try:
+            pub.wait_for_subscribers(1, wait_s, stop)
+            if not quiet:
+                write(f"cubecast simulate: publishing '{scene.name}' as sensor '{sensor.sensor_id}' on "
+                      f"{pub.endpoint} (run {pub.run_id}, frame period {sensor.frame_period_s * 1e3:g} ms)")
+            pacer = _Pacer(1.0, stop)
+            late_warned = False
+            i = 0
+            while not stop.is_set() and (frames == 0 or i < frames):
+                t_make = time.monotonic()
+                payload = sim.raw_frame(i)
+                if not late_warned and i > 0 and time.monotonic() - t_make > sensor.frame_period_s:
+                    late_warned = True
+                    write(f"cubecast simulate: warning: making a frame takes longer than the frame period "
+                          f"{sensor.frame_period_s * 1e3:g} ms; frames go out late")
+                if not pacer.wait(sim.frame_time_s(i)):
+                    break
+                pub.send(payload, sim.frame_time_s(i))
+                i += 1
+        finally:
+            pub.close()
+    if not quiet:
+        write(f"cubecast simulate: sent {i} frames")
+    return 0
+
+
+class _nullcontext:
+    def __enter__(self):
+        return None
+
+    def __exit__(self, *exc):
+        return False
+
+
+# ---- recorder ---------------------------------------------------------------------------------
+
+class PointsCsvWriter:
+    """Streams point records to CSV in exactly the format of files.write_points_csv."""
+
+    def __init__(self, path: str | Path):
+        try:
+            self._f = open(path, "w", encoding="utf-8", newline="\n")
+        except OSError as exc:
+            raise CubecastError(f"--points-out {path}: cannot create file: {exc.strerror or exc}") from None
+        self.path = str(path)
+        self.points = 0
+        self._names = RECORD_DTYPE.names
+        self._f.write(",".join(self._names) + "\n")
+
+    def write(self, records: np.ndarray) -> None:
+        names = self._names
+        lines = [f"{int(row['frame'])},{float(row['timestamp_s']):.6f}," + ",".join(
+            _fmt(float(row[k])) for k in names[2:]) + "\n" for row in records]
+        self._f.write("".join(lines))
+        self.points += len(lines)
+
+    def close(self) -> None:
+        if self._f is not None:
+            self._f.close()
+            self._f = None
+
+
+class Recorder:
+    """Records ADC frames to a capture and/or point clouds to CSV from one or more endpoints.
+
+    ADC frames come from a source's endpoint, points and the sensor description from the daemon's;
+    give both to get both. The sensor description is `sensor` (from --sensor) or the first `sensor`
+    message; ADC frames arriving before it are held (at most 256) and written once it is known."""
+
+    def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
+                 frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
+                 context: zmq.Context | None = None, log: Callable[[str], None] | None = None,
+                 quiet: bool = False):
+        if not subs:
+            raise CubecastError("record: give at least one --sub ENDPOINT")
+        if out is None and points_out is None:
+            raise CubecastError("record: give --out CAPTURE and/or --points-out CSV")
+        if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
+            raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = no limit)")
+        if not (duration_s >= 0 and math.isfinite(duration_s)):
+            raise CubecastError(f"--duration {duration_s!r}: must be a number of seconds >= 0 (0 = no limit)")
+        self.subs, self.out, self.points_out = list(subs), out, points_out
+        self.frames, self.duration_s = frames, duration_s
+        self.sensor = sensor
+        self.context = context
+        self.write_line = log or _stderr_line
+        self.quiet = quiet
+        self.sensor_known = threading.Event()
+        self.connected = threading.Event()
+        self._reject_log = RateLimitedLog(self.write_line, 5.0, "cubecast record: ignored message, ")
+        self.writer: CaptureWriter | None = None
+        self.csv: PointsCsvWriter | None = None
+        self.validator: AdcValidator | None = None
+        self.pending: collections.deque = collections.deque(maxlen=256)
+        self.pending_lost = 0
+        self.frames_written = 0
+        self.clouds_written = 0
+        self.rejected: collections.Counter = collections.Counter()
+        self.runs: list[str] = []
+        self._last_frame: tuple[str, int] | None = None
+
+    def _set_sensor(self, sensor: Sensor) -> None:
+        self.sensor = sensor
+        self.validator = AdcValidator(sensor)
+        if self.out is not None and self.writer is None:
+            meta = {"source": "recorded", "sub": self.subs,
+                    "timestamp_origin": "the source's timestamp_s (replay: the replayed capture's; live: its clock)"}
+            self.writer = CaptureWriter(self.out, sensor.source_text, None, meta)
+        self.sensor_known.set()
+        pending, self.pending = list(self.pending), collections.deque(maxlen=256)
+        for msg in pending:
+            self._on_adc(msg)
+
+    def _on_adc(self, msg) -> None:
+        if self.out is None or self._limit_reached():
+            return
+        if self.sensor is None:
+            if len(self.pending) == self.pending.maxlen:
+                self.pending_lost += 1
+            self.pending.append(msg)
+            return
+        try:
+            self.validator.check(msg)
+        except WireError as exc:
+            self.rejected[exc.reason] += 1
+            self._reject_log(exc.reason, str(exc))
+            return
+        if not self.runs or self.runs[-1] != msg.header["run"]:
+            self.runs.append(msg.header["run"])
+        self.writer.write(msg.data, msg.header["seq"], msg.header["timestamp_s"])
+        self.frames_written += 1
+        self._last_frame = (msg.header["run"], msg.header["seq"])
+
+    def _limit_reached(self) -> bool:
+        if not self.frames:
+            return False
+        return (self.frames_written if self.out is not None else self.clouds_written) >= self.frames
+
+    def _on_message(self, parts) -> bool:
+        """Handle one message; True once the points of the last recorded frame have arrived."""
+        try:
+            msg = decode(parts)
+        except WireError as exc:
+            self.rejected[exc.reason] += 1
+            self._reject_log(exc.reason, str(exc))
+            return False
+        if self.sensor is not None and msg.sensor_id != self.sensor.sensor_id:
+            self.rejected["unknown_sensor"] += 1
+            return False
+        if msg.kind == "sensor":
+            try:
+                sensor = sensor_from_message(msg)
+            except WireError as exc:
+                self.rejected[exc.reason] += 1
+                self._reject_log(exc.reason, str(exc))
+                return False
+            if self.sensor is None:
+                self._set_sensor(sensor)
+            elif sensor.digest != self.sensor.digest:
+                self.rejected["digest"] += 1
+                self._reject_log("digest", f"the daemon describes '{sensor.sensor_id}' with digest {sensor.digest}, "
+                                           f"the recorder uses {self.sensor.digest}")
+            self.sensor_known.set()
+        elif msg.kind == "adc":
+            self._on_adc(msg)
+        elif msg.kind == "points" and self.csv is not None:
+            if self.out is None and self._limit_reached():
+                return False
+            self.csv.write(msg.data)
+            self.clouds_written += 1
+            return self._last_frame == (msg.header["run"], msg.header["seq"])
+        return False
+
+    def run(self, stop: threading.Event | None = None) -> dict:
+        stop = stop or threading.Event()
+        ctx = self.context or zmq.Context()
+        sock = ctx.socket(zmq.SUB)
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.setsockopt(zmq.RCVHWM, 64)
+        try:
+            if self.points_out is not None:
+                self.csv = PointsCsvWriter(self.points_out)
+            if self.sensor is not None:
+                self._set_sensor(self.sensor)
+            sock.setsockopt(zmq.SUBSCRIBE, b"")
+            for ep in self.subs:
+                connect_socket(sock, ep, "--sub")
+            self.connected.set()
+            t_end = time.monotonic() + self.duration_s if self.duration_s else math.inf
+            grace_end = math.inf
+            done = False
+            while not stop.is_set() and not done:
+                now = time.monotonic()
+                if now >= t_end or now >= grace_end:
+                    break
+                if self._limit_reached() and grace_end == math.inf:
+                    # the frame limit is reached; wait briefly for the points of the last frame
+                    if self.csv is None or self.out is None or self._last_frame is None:
+                        break
+                    grace_end = now + 1.0
+                if sock.poll(50, zmq.POLLIN):
+                    for _ in range(1000):
+                        try:
+                            parts = sock.recv_multipart(zmq.NOBLOCK, copy=False)
+                        except zmq.Again:
+                            break
+                        if self._on_message(parts) and self._limit_reached():
+                            done = True
+                            break
+                self._reject_log.flush()
+        finally:
+            sock.close(linger=0)
+            if self.context is None:
+                ctx.term()
+            if self.writer is not None:
+                self.writer.close()
+            if self.csv is not None:
+                self.csv.close()
+            self._reject_log.flush(force=True)
+        if self.out is not None and self.sensor is None:
+            raise CubecastError(f"record: no sensor description received ({len(self.pending)} ADC frames held, "
+                                f"nothing written to {self.out}): also subscribe to the daemon's endpoint "
+                                "(it publishes the description) or pass --sensor")
+        return self.summary()
+
+    def summary(self) -> dict:
+        return {"frames_written": self.frames_written, "clouds_written": self.clouds_written,
+                "points_written": self.csv.points if self.csv else 0, "runs": list(self.runs),
+                "rejected": dict(self.rejected), "pending_lost": self.pending_lost,
+                "sequence_gaps": self.validator.sequence_gaps if self.validator else 0}
+
+
+def record(subs: list[str], out: str | None, points_out: str | None = None, frames: int = 0,
+           duration_s: float = 0.0, sensor_path: str | None = None, quiet: bool = False) -> int:
+    """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM."""
+    sensor = None
+    if sensor_path is not None:
+        from .sensor import load_sensor
+        sensor = load_sensor(sensor_path)
+    stop = threading.Event()
+    with stop_on_signals(stop):
+        rec = Recorder(subs or [DEFAULT_PUB], out, points_out, frames=frames, duration_s=duration_s, sensor=sensor,
+                       quiet=quiet)
+        s = rec.run(stop)
+    if not quiet:
+        parts = []
+        if out is not None:
+            parts.append(f"{s['frames_written']} frames ({len(s['runs'])} source run(s), {s['sequence_gaps']} "
+                         f"missing by sequence) -> {out}")
+        if points_out is not None:
+            parts.append(f"{s['clouds_written']} point clouds, {s['points_written']} points -> {points_out}")
+        if s["rejected"]:
+            parts.append("ignored: " + ", ".join(f"{k} {v}" for k, v in sorted(s["rejected"].items())))
+        print("cubecast record: " + "; ".join(parts))
+    return 0
