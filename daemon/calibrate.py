@@ -21,7 +21,7 @@ place the gains can be measured:
    multiplied onto each channel before angle estimation.
 
 Range bias: the reflector's range measured with a fine (16x zero-padded) range spectrum of the
-loop-averaged fast-time samples, minus the given range. The chain does not apply it yet.
+loop-averaged fast-time samples, minus the given range. The chain subtracts it from every range.
 
 Checks (each produces a warning, on stderr and in the file's [report] section; the rule is stated
 in the warning):
@@ -87,7 +87,6 @@ __all__ = [
     "format_report",
     "load_calibration_file",
     "load_calibration",
-    "apply_range_bias",
     "add_parser",
     "run",
 ]
@@ -633,9 +632,8 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
     return "\n".join(lines) + "\n"
 
 
-_RANGE_BIAS_NOTE = ("apply_range_bias: the chain does not apply range_bias_m yet; "
-                    "load_calibration_file() returns it and daemon.calibrate.apply_range_bias(points, "
-                    "range_bias_m) subtracts it from a point cloud")
+_RANGE_BIAS_NOTE = ("with --calibration, process and serve multiply each channel by 1 / gain and subtract "
+                    "range_bias_m from every range")
 
 
 def write_calibration(path: str | Path, result: CalibrationResult, created_utc: str | None = None) -> None:
@@ -786,19 +784,6 @@ def load_calibration(path: str | Path, sensor: Sensor) -> np.ndarray:
     """The calibration vector (complex64 [n_virtual], multiplied onto each virtual channel) of a
     calibration file made for `sensor`. Raises CubecastError on a file for another sensor."""
     return load_calibration_file(path, sensor).vector
-
-
-def apply_range_bias(points: np.ndarray, range_bias_m: float) -> np.ndarray:
-    """Points (POINT_DTYPE-like records with range_m, x_m, y_m, z_m) with the range bias removed:
-    range_m - range_bias_m, and x, y, z moved along the same line of sight. Returns a copy."""
-    out = points.copy()
-    r = out["range_m"].astype(np.float64)
-    new = r - float(range_bias_m)
-    scale = np.divide(new, r, out=np.zeros_like(r), where=r != 0)
-    out["range_m"] = new
-    for key in ("x_m", "y_m", "z_m"):
-        out[key] = out[key] * scale
-    return out
 
 
 # ---- command line -----------------------------------------------------------------------------

@@ -17,7 +17,6 @@ import pytest
 from daemon.calibrate import (
     MIN_INTEGRATED_SNR_DB,
     add_parser,
-    apply_range_bias,
     calibrate_capture,
     load_calibration,
     load_calibration_file,
@@ -373,25 +372,11 @@ def test_damaged_files_are_rejected(calibration, sensor, tmp_path):
         load_calibration(tmp_path / "absent.toml", sensor)
 
 
-def test_apply_range_bias_keeps_the_direction():
-    from daemon.chain.points import POINT_DTYPE
-    pts = np.zeros(1, POINT_DTYPE)
-    r, az = 10.0, math.radians(30.0)
-    pts["range_m"], pts["x_m"], pts["y_m"] = r, r * math.sin(az), r * math.cos(az)
-    out = apply_range_bias(pts, 0.05)
-    assert out["range_m"][0] == pytest.approx(9.95)
-    assert math.hypot(out["x_m"][0], out["y_m"][0]) == pytest.approx(9.95, rel=1e-6)
-    assert math.degrees(math.atan2(out["x_m"][0], out["y_m"][0])) == pytest.approx(30.0, abs=1e-4)
-    assert pts["range_m"][0] == r  # the input is untouched
-
-
 # ---- command line -----------------------------------------------------------------------------
 
 def cli(argv):
-    parser = argparse.ArgumentParser(prog="cubecast")
-    add_parser(parser.add_subparsers(dest="command", required=True))
-    args = parser.parse_args(argv)
-    return args.func(args)
+    from daemon.cli import main
+    return main(argv)
 
 
 def test_cli_writes_the_file_and_a_readable_report(calibration, sensor, tmp_path, capsys):
@@ -415,3 +400,19 @@ def test_cli_warnings_go_to_stderr_and_the_file(tmp_path, sensor, gains, capsys)
     assert text.out == ""
     assert "cubecast calibrate: warning: reflector too near" in text.err
     assert any("too near" in w for w in load_calibration_file(out, sensor).warnings)
+
+
+def test_process_applies_gains_and_range_bias(calibration, tmp_path):
+    # A calibration made with the reflector's range given 5 cm short measures a +5 cm bias; processing
+    # with that file puts the reflector at the given range, on boresight (the gains applied).
+    short = REFLECTOR_RANGE_M - 0.05
+    out = tmp_path / "short.toml"
+    assert cli(["calibrate", str(calibration["capture"]), "--target-range-m", str(short), "--out", str(out),
+                "--quiet"]) == 0
+    pts_csv = tmp_path / "p.npz"
+    assert cli(["process", str(calibration["capture"]), "--out", str(pts_csv), "--calibration", str(out),
+                "--quiet"]) == 0
+    data = np.load(pts_csv)
+    best = np.argmax(data["snr_db"])
+    assert data["range_m"][best] == pytest.approx(short, abs=0.01)
+    assert abs(data["azimuth_deg"][best]) < 0.1 and abs(data["elevation_deg"][best]) < 0.2
