@@ -1,0 +1,199 @@
+"""The live window: a Feed on its own thread, a ViewerCanvas, keys and a GUI timer.
+
+The timer (30 Hz, on the GUI thread) takes a snapshot of the feed's latest-value slots, hands new
+messages of the shown sensor to the ViewerState, and updates the visuals only when something changed:
+one set_data per visual per displayed frame. The GUI never waits on the network.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+
+from . import views as V
+from .feed import Feed
+
+TICK_S = 1.0 / 30.0
+STATUS_EVERY_S = 0.25
+
+
+class ViewerApp:
+    def __init__(self, feed, *, size=(1280, 800), sensor: str | None = None, show: bool = True,
+                 persist_frames: int = V.DEFAULT_PERSIST_FRAMES, color_by: str = "velocity",
+                 velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS,
+                 sensor_height_m: float = V.DEFAULT_SENSOR_HEIGHT_M, stall_after_s: float = 3.0, dpi=None,
+                 canvas=None):
+        from .canvas import ViewerCanvas
+        self.feed = feed
+        self.stall_after_s = stall_after_s
+        self.options = dict(persist_frames=persist_frames, color_by=color_by, velocity_span_mps=velocity_span_mps,
+                            sensor_height_m=sensor_height_m)
+        self.fixed_sensor = (sensor or "").rstrip("/") or None
+        self.vc = canvas or ViewerCanvas(size=size, show=show, title=f"cubecast view · {feed.endpoint}", dpi=dpi)
+        self.state = self._new_state(self.fixed_sensor)
+        self._seen: dict[tuple[str, str], int] = {}
+        self._step_pending = False
+        self._last_status_s = 0.0
+        self.saved: list[str] = []
+        self.closed = False
+        self.vc.canvas.events.key_press.connect(self._on_key)
+        self.vc.canvas.events.close.connect(self._on_close)
+        self.timer = None
+        self.vc.show_state(self.state)
+
+    def _new_state(self, sensor_id: str | None) -> V.ViewerState:
+        o = self.options
+        st = V.ViewerState(endpoint=self.feed.endpoint, sensor_id=sensor_id,
+                           persist=V.Persistence(o["persist_frames"]), color_by=o["color_by"],
+                           velocity_span_mps=o["velocity_span_mps"], sensor_height_m=o["sensor_height_m"],
+                           stall_after_s=self.stall_after_s)
+        return st
+
+    # ---- the timer ----
+    def start(self) -> "ViewerApp":
+        from vispy import app
+        self.timer = app.Timer(interval=TICK_S, connect=self.tick, start=True)
+        return self
+
+    def tick(self, event=None, now_s: float | None = None) -> bool:
+        """Pull the latest messages; True when the panels were redrawn with new data."""
+        now_s = time.monotonic() if now_s is None else now_s
+        snap = self.feed.snapshot()
+        st = self.state
+        st.bad, st.bad_by_reason = snap.bad, snap.bad_by_reason
+        st.connected, st.idle_s = snap.connected, snap.idle_s(now_s)
+        if st.sensor_id is None and snap.latest:
+            st.sensor_id = sorted(snap.latest)[0]
+        changed = False
+        latest = snap.latest.get(st.sensor_id, {}) if st.sensor_id else {}
+        counts = snap.counts.get(st.sensor_id, {}) if st.sensor_id else {}
+        for kind in ("sensor", "health", "rdmap", "points"):
+            msg, n = latest.get(kind), counts.get(kind, 0)
+            if msg is None or self._seen.get((st.sensor_id, kind)) == n:
+                continue
+            if kind in ("points", "rdmap") and st.paused and not self._step_pending:
+                continue    # frozen: the slot keeps only the newest, taken on resume or step
+            if kind == "points" and st.paused:
+                st.last_seq = None  # a step is not a gap
+            self._seen[(st.sensor_id, kind)] = n
+            st.ingest(msg)
+            changed = True
+            if kind == "points":
+                self._step_pending = False
+        if changed:
+            self.vc.show_data(st)
+        if changed or now_s - self._last_status_s >= STATUS_EVERY_S:
+            self._last_status_s = now_s
+            self.vc.show_status(st)
+            changed = True
+        if self.vc.refresh_axes() or changed:
+            self.vc.canvas.update()
+        return changed
+
+    # ---- keys ----
+    def _on_key(self, event) -> None:
+        name = event.key.name if event.key is not None else ""
+        self.handle_key(name, event.text or "")
+
+    def handle_key(self, name: str, text: str = "") -> None:
+        st = self.state
+        k = text if text and text.isprintable() and text != " " else name
+        if k in ("Space", " "):
+            st.paused = not st.paused
+            if not st.paused:
+                st.last_seq = None
+        elif k in ("Right", "."):
+            if st.paused:
+                self._step_pending = True
+        elif k in ("c", "C"):
+            st.color_by = "snr" if st.color_by == "velocity" else "velocity"
+            self.options["color_by"] = st.color_by
+        elif k in ("[", "]"):
+            f = 0.5 if k == "[" else 2.0
+            st.velocity_span_mps = min(64.0, max(0.125, st.velocity_span_mps * f))
+            self.options["velocity_span_mps"] = st.velocity_span_mps
+        elif k in ("-", "+", "="):
+            n = st.persist.n_frames + (-1 if k == "-" else 1)
+            st.persist.set_frames(min(50, max(1, n)))
+            self.options["persist_frames"] = st.persist.n_frames
+        elif k in ("n", "N"):
+            self.next_sensor()
+            return
+        elif k in ("r", "R"):
+            self.vc.reset_cameras(st)
+        elif k in ("s", "S"):
+            self.save_png()
+        elif k in ("h", "H", "?"):
+            self.vc.set_help(not self.vc.help_visible)
+        elif k in ("q", "Q", "Escape"):
+            self.close()
+            return
+        else:
+            return
+        self.vc.show_state(st)
+        self.vc.canvas.update()
+
+    def next_sensor(self) -> None:
+        if self.fixed_sensor:
+            return
+        ids = sorted(self.feed.snapshot().latest)
+        if not ids:
+            return
+        cur = self.state.sensor_id
+        nxt = ids[(ids.index(cur) + 1) % len(ids)] if cur in ids else ids[0]
+        if nxt == cur:
+            return
+        paused = self.state.paused
+        self.state = self._new_state(nxt)
+        self.state.paused = paused
+        self._seen = {k: v for k, v in self._seen.items() if k[0] != nxt}
+        self.vc.reset_cameras(self.state)
+        self.tick()
+
+    def save_png(self, path: str | None = None) -> str:
+        from .snapshot import write_png
+        path = path or time.strftime("cubecast-view-%Y%m%d-%H%M%S.png")
+        img = self.vc.canvas.render(alpha=False)
+        write_png(path, img[..., :3])
+        self.saved.append(path)
+        return path
+
+    def close(self) -> None:
+        if self.closed:
+            return
+        self.closed = True
+        if self.timer is not None:
+            self.timer.stop()
+        self.vc.canvas.close()
+
+    def _on_close(self, event=None) -> None:
+        self.closed = True
+        if self.timer is not None:
+            self.timer.stop()
+        self.feed.stop()
+
+
+def run_window(endpoint: str, sensor: str | None = None, size=(1280, 800), stall_after_s: float = 3.0,
+               **options) -> int:
+    """Open the window on `endpoint` and run until it is closed."""
+    from vispy import app
+    feed = Feed(endpoint, sensor)
+    try:
+        feed.start()
+    except Exception as exc:
+        print(f"cubecast view: error: --sub {endpoint}: {exc}", file=sys.stderr)
+        return 2
+    try:
+        viewer = ViewerApp(feed, size=size, sensor=sensor, show=True, stall_after_s=stall_after_s, **options)
+    except Exception as exc:  # no display, no GL: say so in one line
+        feed.stop()
+        print(f"cubecast view: error: cannot open a window ({type(exc).__name__}: {' '.join(str(exc).split())}); "
+              f"use --snapshot PNG to render without a display", file=sys.stderr)
+        return 2
+    viewer.start()
+    try:
+        app.run()
+    finally:
+        viewer.close()
+        feed.stop()
+    return 0

@@ -1,0 +1,148 @@
+"""`cubecast view`: the live window, or a PNG snapshot without a display.
+
+    cubecast view --sub tcp://127.0.0.1:5602 [--sensor ID]
+    cubecast view --snapshot out.png --capture FILE [--frame N] [--size WxH]
+    cubecast view --snapshot out.png --sub ENDPOINT [--wait-s S] [--size WxH]
+
+Importing this module imports neither vispy nor the daemon: `register` only adds arguments. A capture
+needs the daemon's chain, so the daemon passes `capture_snapshot` (daemon.viewsource) when it registers.
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import sys
+
+DEFAULT_ENDPOINT = "tcp://127.0.0.1:5602"
+
+
+def _size(text: str) -> tuple[int, int]:
+    m = re.fullmatch(r"\s*(\d+)\s*[xX]\s*(\d+)\s*", text)
+    if not m:
+        raise argparse.ArgumentTypeError(f"--size {text!r}: expected WIDTHxHEIGHT, e.g. 1280x800")
+    w, h = int(m.group(1)), int(m.group(2))
+    if not (320 <= w <= 8192 and 240 <= h <= 8192):
+        raise argparse.ArgumentTypeError(f"--size {text!r}: width 320..8192 and height 240..8192 pixels")
+    return w, h
+
+
+def _nonneg_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a whole number") from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: must not be negative")
+    return v
+
+
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a number") from None
+    if not v > 0 or v != v or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r}: must be a positive finite number")
+    return v
+
+
+def _height(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a number of metres") from None
+    if not 0.0 <= v <= 100.0:
+        raise argparse.ArgumentTypeError(f"--sensor-height-m {text}: must be within 0..100 m")
+    return v
+
+
+def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
+    """Add the `view` subcommand. `capture_snapshot(capture, frame, out_png, size, **options)` renders
+    a capture (provided by daemon.viewsource); without it --capture reports that it is unavailable."""
+    v = subparsers.add_parser("view", help="live viewer of a daemon's point clouds, or a PNG snapshot",
+                              description="Show a daemon's points, range-Doppler map and health in a window, "
+                                          "or render one view to a PNG without a display.")
+    v.add_argument("--sub", metavar="ENDPOINT", help=f"the daemon's PUB endpoint (default {DEFAULT_ENDPOINT})")
+    v.add_argument("--sensor", metavar="ID", help="show only this sensor (default: all, the first one seen "
+                                                  "is shown; key n switches)")
+    v.add_argument("--snapshot", metavar="PNG", help="render to this PNG file instead of opening a window")
+    v.add_argument("--capture", metavar="FILE", help="with --snapshot: process this capture offline")
+    v.add_argument("--frame", type=_nonneg_int, default=None,
+                   help="with --capture: the frame to show (frames 0..N are processed; default the last)")
+    v.add_argument("--size", type=_size, default=(1280, 800), metavar="WxH", help="window / image size")
+    v.add_argument("--wait-s", type=_positive_float, default=10.0,
+                   help="with --snapshot --sub: the longest wait for messages (default 10 s)")
+    v.add_argument("--persist", type=_nonneg_int, default=8, metavar="N",
+                   help="point clouds kept on screen, fading (default 8; 1 shows only the latest)")
+    v.add_argument("--color", choices=("velocity", "snr"), default="velocity", help="colour points by")
+    v.add_argument("--velocity-span-mps", type=_positive_float, default=2.5,
+                   help="radial velocity at the ends of the colour scale (default 2.5 m/s)")
+    v.add_argument("--sensor-height-m", type=_height, default=1.0,
+                   help="sensor height above the ground, for the side view's ground line (default 1.0 m)")
+    v.add_argument("--stall-s", type=_positive_float, default=3.0,
+                   help="seconds without messages before the status shows a stall (default 3)")
+    v.add_argument("--settings", help="with --capture: processing settings (TOML)")
+    v.set_defaults(func=lambda args: run(args, capture_snapshot))
+    return v
+
+
+def _err(msg: str) -> int:
+    print(f"cubecast view: error: {msg}", file=sys.stderr)
+    return 2
+
+
+def run(args, capture_snapshot=None) -> int:
+    persist = max(1, args.persist)
+    if args.capture and not args.snapshot:
+        return _err("--capture renders a snapshot: give --snapshot PNG as well")
+    if args.capture and args.sub:
+        return _err("give either --capture or --sub, not both")
+    if args.frame is not None and not args.capture:
+        return _err("--frame applies to --capture only")
+    options = dict(persist_frames=persist, color_by=args.color, velocity_span_mps=args.velocity_span_mps,
+                   sensor_height_m=args.sensor_height_m)
+
+    if args.snapshot:
+        from .snapshot import OffscreenUnavailable
+        try:
+            if args.capture:
+                if capture_snapshot is None:
+                    return _err("--capture needs the processing chain: run it as `cubecast view`")
+                if args.settings:
+                    options["settings_path"] = args.settings
+                info = capture_snapshot(args.capture, args.frame, args.snapshot, args.size, **options)
+                print(f"wrote {args.snapshot}: sensor {info['sensor_id']}, {info['frames']} frames shown, "
+                      f"{info['points']} points in the last")
+                return 0
+            return _snapshot_sub(args, options)
+        except OffscreenUnavailable as exc:
+            return _err(str(exc))
+
+    if args.settings:
+        return _err("--settings applies to --capture only")
+    from .app import run_window
+    return run_window(args.sub or DEFAULT_ENDPOINT, sensor=args.sensor, size=args.size,
+                      stall_after_s=args.stall_s, **options)
+
+
+def _snapshot_sub(args, options) -> int:
+    from .snapshot import collect_from_sub, make_state, render_state, write_png
+    endpoint = args.sub or DEFAULT_ENDPOINT
+    try:
+        msgs, info = collect_from_sub(endpoint, args.sensor, args.wait_s, options["persist_frames"])
+    except Exception as exc:  # a malformed endpoint string, for one
+        return _err(f"--sub {endpoint}: {exc}")
+    sensor_id = (args.sensor or "").rstrip("/") or None
+    state = make_state(msgs, endpoint=endpoint, sensor_id=sensor_id, bad_by_reason=info["bad_by_reason"],
+                       idle_s=info["idle_s"] if msgs else 0.0, connected=info["connected"], **options)
+    img, vc = render_state(state, args.size, footer=f"snapshot of {endpoint}")
+    vc.canvas.close()
+    write_png(args.snapshot, img[..., :3])
+    n_pts = sum(1 for m in msgs if m["kind"] == "points")
+    if not msgs:
+        print(f"cubecast view: no messages from {endpoint} within {args.wait_s:g} s; wrote the waiting screen "
+              f"to {args.snapshot}", file=sys.stderr)
+        return 1
+    print(f"wrote {args.snapshot}: {len(msgs)} messages, {n_pts} point clouds from {endpoint}")
+    return 0

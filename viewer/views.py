@@ -1,0 +1,550 @@
+"""Pure functions from decoded wire messages to what the panels draw: positions, colours, sizes, text.
+
+Nothing here opens a window or imports vispy; canvas.py hands these arrays to vispy visuals.
+
+Panels (the names are ours):
+- top view: bird's-eye, x across (right positive), y forward, metres, with range rings, bearing
+  lines and the azimuth field of view;
+- side view: forward distance y against height z (sensor frame, the sensor at z = 0), with the
+  sensor-height line, the ground line below it and the elevation field of view;
+- range-Doppler: the daemon's map in dB over (radial velocity, range) with this frame's detections.
+
+Colour scales (ours): radial velocity on a diverging "tide" scale, approaching (negative, range
+shrinking) in blue-greens, receding (positive) in ambers, zero a neutral stone grey; SNR on a
+sequential "ember" scale; the range-Doppler map on a "deep water" scale from ink to pale sand.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass, field
+
+import numpy as np
+
+# ---- palette ------------------------------------------------------------------------------------
+BACKGROUND = (0.067, 0.075, 0.090, 1.0)       # graphite
+PANEL_BG = (0.035, 0.043, 0.055, 1.0)         # darker well for the plots
+TEXT = (0.88, 0.90, 0.92, 1.0)
+TEXT_DIM = (0.60, 0.64, 0.68, 1.0)
+GRID = (0.42, 0.48, 0.54, 0.45)
+GRID_LABEL = (0.66, 0.71, 0.76, 1.0)
+FOV_EDGE = (0.80, 0.76, 0.52, 0.85)           # muted brass
+FOV_FILL = (0.80, 0.76, 0.52, 0.05)
+GROUND = (0.55, 0.42, 0.30, 1.0)              # earth
+GROUND_FILL = (0.55, 0.42, 0.30, 0.16)
+SENSOR_LINE = (0.62, 0.70, 0.78, 0.75)
+SENSOR_MARK = (0.95, 0.95, 0.95, 1.0)
+DETECTION_RING = (1.00, 0.32, 0.60, 1.0)      # rose: apart from every hue of the map scale
+STATUS_OK = (0.62, 0.86, 0.62, 1.0)
+STATUS_WAIT = (0.92, 0.80, 0.40, 1.0)
+STATUS_STALL = (1.00, 0.45, 0.38, 1.0)
+
+# (position on the scale in [-1, 1], RGB): approaching blue-greens, stone at zero, receding ambers
+VELOCITY_STOPS = (
+    (-1.00, (0.10, 0.38, 0.95)),
+    (-0.50, (0.12, 0.70, 0.95)),
+    (-0.15, (0.45, 0.85, 0.90)),
+    (0.00, (0.80, 0.79, 0.76)),
+    (0.15, (0.98, 0.80, 0.45)),
+    (0.50, (1.00, 0.58, 0.15)),
+    (1.00, (0.92, 0.26, 0.12)),
+)
+NEUTRAL_RGB = (0.80, 0.79, 0.76)
+# sequential, for SNR: dusk violet -> copper -> warm white
+SNR_STOPS = (
+    (0.00, (0.34, 0.28, 0.62)),
+    (0.35, (0.70, 0.32, 0.52)),
+    (0.65, (0.96, 0.55, 0.30)),
+    (1.00, (1.00, 0.95, 0.76)),
+)
+# sequential, for the range-Doppler map: ink -> harbour blue -> sea green -> sand -> near white
+MAP_STOPS = (
+    (0.00, (0.03, 0.05, 0.09)),
+    (0.22, (0.07, 0.19, 0.33)),
+    (0.48, (0.10, 0.45, 0.50)),
+    (0.74, (0.62, 0.72, 0.44)),
+    (1.00, (0.99, 0.96, 0.84)),
+)
+
+DEFAULT_VELOCITY_SPAN_MPS = 2.5
+DEFAULT_SNR_RANGE_DB = (10.0, 45.0)
+DEFAULT_PERSIST_FRAMES = 8
+DEFAULT_SENSOR_HEIGHT_M = 1.0
+
+
+def _ramp(stops, t: np.ndarray) -> np.ndarray:
+    """Piecewise-linear RGB over `stops` at positions t (clipped to the stop range): float32 [N, 3]."""
+    pos = np.array([s[0] for s in stops], np.float64)
+    rgb = np.array([s[1] for s in stops], np.float64)
+    t = np.clip(np.asarray(t, np.float64), pos[0], pos[-1])
+    out = np.empty(t.shape + (3,), np.float32)
+    for c in range(3):
+        out[..., c] = np.interp(t, pos, rgb[:, c])
+    return out
+
+
+def velocity_colors(velocity_mps, span_mps: float = DEFAULT_VELOCITY_SPAN_MPS, alpha=1.0) -> np.ndarray:
+    """RGBA float32 [N, 4] on the diverging scale: -span (approaching) .. 0 (neutral) .. +span."""
+    v = np.asarray(velocity_mps, np.float64).reshape(-1)
+    t = np.where(np.isfinite(v), v / max(span_mps, 1e-6), 0.0)
+    out = np.empty((v.size, 4), np.float32)
+    out[:, :3] = _ramp(VELOCITY_STOPS, t)
+    out[:, 3] = alpha
+    return out
+
+
+def snr_colors(snr_db, lo_db: float = DEFAULT_SNR_RANGE_DB[0], hi_db: float = DEFAULT_SNR_RANGE_DB[1],
+               alpha=1.0) -> np.ndarray:
+    s = np.asarray(snr_db, np.float64).reshape(-1)
+    t = np.where(np.isfinite(s), (s - lo_db) / max(hi_db - lo_db, 1e-6), 0.0)
+    out = np.empty((s.size, 4), np.float32)
+    out[:, :3] = _ramp(SNR_STOPS, t)
+    out[:, 3] = alpha
+    return out
+
+
+def snr_sizes(snr_db, lo_db: float = DEFAULT_SNR_RANGE_DB[0], hi_db: float = DEFAULT_SNR_RANGE_DB[1],
+              min_px: float = 6.0, max_px: float = 17.0) -> np.ndarray:
+    """Marker diameter in pixels, growing linearly with SNR between lo_db and hi_db."""
+    s = np.asarray(snr_db, np.float64).reshape(-1)
+    t = np.clip(np.where(np.isfinite(s), (s - lo_db) / max(hi_db - lo_db, 1e-6), 0.0), 0.0, 1.0)
+    return (min_px + t * (max_px - min_px)).astype(np.float32)
+
+
+def map_colors(values_db, lo_db: float, hi_db: float) -> np.ndarray:
+    """RGBA uint8 [..., 4] of a dB array on the map scale (non-finite values draw as the floor)."""
+    v = np.asarray(values_db, np.float64)
+    t = np.where(np.isfinite(v), (v - lo_db) / max(hi_db - lo_db, 1e-6), 0.0)
+    rgb = _ramp(MAP_STOPS, t)
+    out = np.empty(v.shape + (4,), np.uint8)
+    out[..., :3] = np.round(rgb * 255.0)
+    out[..., 3] = 255
+    return out
+
+
+def bev_positions(points: np.ndarray) -> np.ndarray:
+    """[N, 2] float32 (x_m, y_m): the top view's data coordinates."""
+    out = np.empty((len(points), 2), np.float32)
+    out[:, 0] = points["x_m"]
+    out[:, 1] = points["y_m"]
+    return out
+
+
+def side_positions(points: np.ndarray) -> np.ndarray:
+    """[N, 2] float32 (y_m, z_m): the side view's data coordinates."""
+    out = np.empty((len(points), 2), np.float32)
+    out[:, 0] = points["y_m"]
+    out[:, 1] = points["z_m"]
+    return out
+
+
+# ---- grids and outlines ---------------------------------------------------------------------------
+
+def nice_step(span: float, target_count: int = 6) -> float:
+    """A 1-2-5 step giving about `target_count` intervals over `span` (common practice for axes)."""
+    raw = max(span, 1e-9) / max(target_count, 1)
+    mag = 10.0 ** math.floor(math.log10(raw))
+    for m in (1.0, 2.0, 2.5, 5.0, 10.0):
+        if m * mag >= raw * 0.999:
+            return m * mag
+    return 10.0 * mag
+
+
+def _fmt_num(v: float) -> str:
+    return f"{v:.0f}" if abs(v - round(v)) < 1e-6 else f"{v:g}"
+
+
+def polyline_segments(poly: np.ndarray) -> np.ndarray:
+    """[K, 2] polyline -> [2(K-1), 2] segment end points (for a Line with connect='segments')."""
+    poly = np.asarray(poly, np.float32)
+    if len(poly) < 2:
+        return np.empty((0, 2), np.float32)
+    seg = np.empty((2 * (len(poly) - 1), 2), np.float32)
+    seg[0::2] = poly[:-1]
+    seg[1::2] = poly[1:]
+    return seg
+
+
+def arc(radius_m: float, from_deg: float, to_deg: float, n: int = 64) -> np.ndarray:
+    """Points of an arc of bearings (azimuth, 0 = forward, positive right) in the x-y plane."""
+    az = np.radians(np.linspace(from_deg, to_deg, n))
+    return np.stack([radius_m * np.sin(az), radius_m * np.cos(az)], 1).astype(np.float32)
+
+
+@dataclass
+class Label:
+    text: str
+    pos: tuple[float, float]
+    anchor: tuple[str, str] = ("center", "center")   # (anchor_x, anchor_y) as vispy names them
+
+
+@dataclass
+class TopGrid:
+    rings: np.ndarray            # segments [2M, 2]
+    bearings: np.ndarray         # segments
+    fov_outline: np.ndarray      # closed polyline [K, 2]
+    labels: list[Label]
+    ring_step_m: float
+    bearing_step_deg: float
+    extent: tuple[float, float, float, float]   # x0, y0, width, height for the camera
+
+
+def top_grid(max_range_m: float, fov_half_azimuth_deg: float) -> TopGrid:
+    """Range rings every nice step (labelled in m), bearing lines every 15/30 degrees inside the field
+    of view (labelled in degrees), the field of view wedge, and the view's extent."""
+    fov = float(min(max(fov_half_azimuth_deg, 1.0), 90.0))
+    step = nice_step(max_range_m, 5)
+    radii = np.arange(step, max_range_m + 1e-6, step)
+    # rings cover the front half-plane a little past the field of view
+    ring_segs = [polyline_segments(arc(r, -min(fov + 12, 90), min(fov + 12, 90), 96)) for r in radii]
+    bstep = 15.0 if fov <= 60 else 30.0
+    k = math.floor(fov / bstep)
+    bearings_deg = [b * bstep for b in range(-k, k + 1)]
+    segs, labels = [], []
+    r_out = max_range_m
+    for b in bearings_deg:
+        p = arc(r_out, b, b, 1)[0]
+        segs.append(np.array([[0.0, 0.0], p], np.float32))
+        lp = arc(r_out + 0.045 * r_out, b, b, 1)[0]
+        labels.append(Label(f"{b:+.0f}°" if b else "0°", (float(lp[0]), float(lp[1]))))
+    # ring labels just outside the left edge of the field of view, where no target can be drawn; the
+    # outermost ring, when it is the field of view's own arc, is named in the panel's subtitle instead
+    lab_deg = -min(fov + 6.0, 86.0)
+    for r in radii:
+        if r > 0.94 * max_range_m and fov > 45.0:
+            continue
+        p = arc(r, lab_deg, lab_deg, 1)[0]
+        labels.append(Label(f"{_fmt_num(r)} m", (float(p[0]), float(p[1])), ("center", "center")))
+    wedge = np.concatenate([[[0.0, 0.0]], arc(max_range_m, -fov, fov, 96), [[0.0, 0.0]]]).astype(np.float32)
+    half_w = max_range_m * math.sin(math.radians(min(fov + 12, 90))) * 1.04
+    y0 = -0.06 * max_range_m
+    return TopGrid(rings=np.concatenate(ring_segs) if ring_segs else np.empty((0, 2), np.float32),
+                   bearings=np.concatenate(segs) if segs else np.empty((0, 2), np.float32),
+                   fov_outline=wedge, labels=labels, ring_step_m=step, bearing_step_deg=bstep,
+                   extent=(-half_w, y0, 2 * half_w, max_range_m * 1.12 - y0))
+
+
+@dataclass
+class SideGrid:
+    ground: np.ndarray           # segments of the ground line at z = -sensor_height_m
+    ground_fill: np.ndarray      # polygon below the ground line
+    sensor_line: np.ndarray      # dashed segments at z = 0
+    fov_edges: np.ndarray        # segments from the sensor along +-fov_half_elevation_deg
+    labels: list[Label]
+    extent: tuple[float, float, float, float]
+
+
+def side_grid(max_range_m: float, fov_half_elevation_deg: float,
+              sensor_height_m: float = DEFAULT_SENSOR_HEIGHT_M, z_top_m: float | None = None) -> SideGrid:
+    """The side view's reference lines: sensor height (z = 0, dashed), ground (z = -height), the
+    elevation field of view, and an extent that shows ground to a few metres overhead."""
+    h = max(float(sensor_height_m), 0.0)
+    y_end = max_range_m * 1.02
+    ground = np.array([[0.0, -h], [y_end, -h]], np.float32)
+    depth = max(0.6, 0.12 * (h + 4.0))
+    ground_fill = np.array([[0.0, -h], [y_end, -h], [y_end, -h - depth], [0.0, -h - depth]], np.float32)
+    dash = max_range_m / 60.0
+    xs = np.arange(0.0, y_end, 2 * dash)
+    sensor_line = np.empty((2 * len(xs), 2), np.float32)
+    sensor_line[0::2, 0] = xs
+    sensor_line[1::2, 0] = np.minimum(xs + dash, y_end)
+    sensor_line[:, 1] = 0.0
+    z_top = z_top_m if z_top_m is not None else max(5.0, h + 4.0)
+    fe = math.radians(min(max(fov_half_elevation_deg, 0.5), 89.0))
+    edges = []
+    for sgn in (+1, -1):
+        # run the edge to the range limit or to the top / ground, whichever comes first
+        zlim = z_top if sgn > 0 else -h
+        y_hit = min(max_range_m, abs(zlim) / math.tan(fe)) if zlim else max_range_m
+        edges.append([[0.0, 0.0], [y_hit, sgn * y_hit * math.tan(fe)]])
+    # labels at the far end, right-aligned, clear of the sensor mark and the field-of-view edges
+    labels = [
+        Label(f"ground, {_fmt_num(h)} m below the sensor" if h else "ground", (y_end - 0.3, -h - 0.3),
+              ("right", "center")),
+        Label("sensor height", (y_end - 0.3, 0.3), ("right", "center")),
+    ]
+    y0 = -0.03 * max_range_m
+    z0 = -h - depth
+    return SideGrid(ground=ground, ground_fill=ground_fill, sensor_line=sensor_line,
+                    fov_edges=np.array(edges, np.float32).reshape(-1, 2), labels=labels,
+                    extent=(y0, z0, y_end - y0 + 0.02 * max_range_m, z_top - z0))
+
+
+# ---- range-Doppler --------------------------------------------------------------------------------
+
+def rdmap_geometry(header: dict) -> tuple[float, float, float, float]:
+    """(x0, y0, sx, sy): pixel (col j, row i) of the map covers velocity x0 + j*sx .. + sx and range
+    y0 + i*sy .. + sy, so that the cell centres sit at the header's start + index * step."""
+    sv, sr = float(header["velocity_step_mps"]), float(header["range_step_m"])
+    return (float(header["velocity_start_mps"]) - sv / 2, float(header["range_start_m"]) - sr / 2, sv, sr)
+
+
+def rdmap_limits(values_db: np.ndarray, floor_db: float = -3.0, min_span_db: float = 25.0) -> tuple[float, float]:
+    """Colour limits: from just under the noise floor (0 dB by the wire's definition) to the strongest
+    cell rounded up to 5 dB, at least `min_span_db` wide."""
+    v = np.asarray(values_db, np.float64)
+    top = float(np.nanmax(v)) if v.size and np.isfinite(v).any() else min_span_db
+    hi = max(floor_db + min_span_db, 5.0 * math.ceil(min(top, 120.0) / 5.0))
+    return floor_db, hi
+
+
+def fold_velocity(velocity_mps, start_mps: float, step_mps: float, n_cols: int) -> np.ndarray:
+    """Unfolded point velocities mapped into the map's (folded) velocity span, for marking."""
+    span = step_mps * n_cols
+    lo = start_mps - step_mps / 2
+    return (np.mod(np.asarray(velocity_mps, np.float64) - lo, span) + lo).astype(np.float32)
+
+
+def rd_marks(points: np.ndarray, rd_header: dict, n_cols: int) -> np.ndarray:
+    """[N, 2] (velocity, range) of this frame's points on the range-Doppler panel."""
+    out = np.empty((len(points), 2), np.float32)
+    out[:, 0] = fold_velocity(points["velocity_mps"], float(rd_header["velocity_start_mps"]),
+                              float(rd_header["velocity_step_mps"]), n_cols)
+    out[:, 1] = points["range_m"]
+    return out
+
+
+# ---- legends --------------------------------------------------------------------------------------
+
+def colorbar_rgba(kind: str, n: int = 256) -> np.ndarray:
+    """A horizontal colour bar image [1, n, 4] uint8 for 'velocity', 'snr' or 'map'."""
+    t = np.linspace(0.0, 1.0, n)
+    if kind == "velocity":
+        rgb = _ramp(VELOCITY_STOPS, 2.0 * t - 1.0)
+    elif kind == "snr":
+        rgb = _ramp(SNR_STOPS, t)
+    elif kind == "map":
+        rgb = _ramp(MAP_STOPS, t)
+    else:
+        raise ValueError(f"unknown colour bar '{kind}'")
+    out = np.empty((1, n, 4), np.uint8)
+    out[0, :, :3] = np.round(rgb * 255)
+    out[0, :, 3] = 255
+    return out
+
+
+def legend_ticks(kind: str, velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
+                 snr_range_db=DEFAULT_SNR_RANGE_DB, map_limits_db=(0.0, 40.0)) -> tuple[str, list[tuple[float, str]]]:
+    """(title, [(fraction along the bar, label)])."""
+    if kind == "velocity":
+        s = velocity_span_mps
+        return ("radial velocity (m/s)", [(0.0, f"−{s:g}"), (0.25, f"−{s / 2:g}"), (0.5, "0"),
+                                          (0.75, f"+{s / 2:g}"), (1.0, f"+{s:g}")])
+    if kind == "snr":
+        lo, hi = snr_range_db
+        return ("SNR (dB)", [(0.0, f"{lo:g}"), (0.5, f"{(lo + hi) / 2:g}"), (1.0, f"{hi:g}")])
+    lo, hi = map_limits_db
+    step = nice_step(hi - lo, 4)
+    values = np.arange(math.ceil(lo / step) * step, hi + 1e-6, step)
+    ticks = [(float((v - lo) / (hi - lo)), _fmt_num(v)) for v in values]
+    return ("dB over noise floor", ticks)
+
+
+# ---- persistence ----------------------------------------------------------------------------------
+
+@dataclass
+class StyledPoints:
+    top: np.ndarray      # [N, 2]
+    side: np.ndarray     # [N, 2]
+    colors: np.ndarray   # [N, 4] float32
+    sizes: np.ndarray    # [N]
+
+
+def style_points(points: np.ndarray, color_by: str = "velocity",
+                 velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
+                 snr_range_db=DEFAULT_SNR_RANGE_DB, alpha: float = 1.0, size_scale: float = 1.0) -> StyledPoints:
+    if color_by == "velocity":
+        colors = velocity_colors(points["velocity_mps"], velocity_span_mps, alpha)
+    elif color_by == "snr":
+        colors = snr_colors(points["snr_db"], *snr_range_db, alpha=alpha)
+    else:
+        raise ValueError(f"color_by = {color_by!r}: 'velocity' or 'snr'")
+    return StyledPoints(bev_positions(points), side_positions(points), colors,
+                        snr_sizes(points["snr_db"], *snr_range_db) * np.float32(size_scale))
+
+
+def fade(age: int, n_frames: int) -> tuple[float, float]:
+    """(alpha, size factor) of a cloud `age` frames old among `n_frames` kept: the newest is opaque,
+    the oldest kept is faint and smaller."""
+    if n_frames <= 1:
+        return 1.0, 1.0
+    f = age / (n_frames - 1)
+    return 1.0 - 0.82 * f, 1.0 - 0.35 * f
+
+
+class Persistence:
+    """The last `n_frames` point clouds, merged with fading for display (oldest drawn first)."""
+
+    def __init__(self, n_frames: int = DEFAULT_PERSIST_FRAMES):
+        self.n_frames = max(1, int(n_frames))
+        self._clouds: deque = deque(maxlen=self.n_frames)
+
+    def set_frames(self, n_frames: int) -> None:
+        self.n_frames = max(1, int(n_frames))
+        self._clouds = deque(list(self._clouds)[-self.n_frames:], maxlen=self.n_frames)
+
+    def clear(self) -> None:
+        self._clouds.clear()
+
+    def push(self, points: np.ndarray) -> None:
+        ok = np.isfinite(points["x_m"]) & np.isfinite(points["y_m"]) & np.isfinite(points["z_m"])
+        self._clouds.append(points if ok.all() else points[ok])
+
+    def __len__(self) -> int:
+        return len(self._clouds)
+
+    @property
+    def newest(self) -> np.ndarray | None:
+        return self._clouds[-1] if self._clouds else None
+
+    def merged(self, color_by: str = "velocity", velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
+               snr_range_db=DEFAULT_SNR_RANGE_DB) -> StyledPoints:
+        parts = []
+        n = len(self._clouds)
+        for k, pts in enumerate(self._clouds):
+            if len(pts) == 0:
+                continue
+            alpha, scale = fade(n - 1 - k, self.n_frames)
+            parts.append(style_points(pts, color_by, velocity_span_mps, snr_range_db, alpha, scale))
+        if not parts:
+            e2 = np.empty((0, 2), np.float32)
+            return StyledPoints(e2, e2.copy(), np.empty((0, 4), np.float32), np.empty(0, np.float32))
+        return StyledPoints(np.concatenate([p.top for p in parts]), np.concatenate([p.side for p in parts]),
+                            np.concatenate([p.colors for p in parts]), np.concatenate([p.sizes for p in parts]))
+
+
+# ---- status and help ------------------------------------------------------------------------------
+
+KEYS: tuple[tuple[str, str], ...] = (
+    ("space", "pause / resume"),
+    ("right or .", "single step (while paused)"),
+    ("c", "colour points by radial velocity / SNR"),
+    ("[  ]", "velocity colour span down / up"),
+    ("-  +", "persistence: fewer / more frames"),
+    ("n", "next sensor on the bus"),
+    ("r", "reset zoom and pan"),
+    ("s", "save a PNG of the window"),
+    ("h or ?", "show / hide this help"),
+    ("q or Esc", "quit"),
+    ("mouse", "drag to pan, wheel to zoom (per panel)"),
+)
+
+
+def help_text() -> str:
+    w = max(len(k) for k, _ in KEYS)
+    return "\n".join(f"{k:<{w}}   {v}" for k, v in KEYS)
+
+
+@dataclass
+class ViewerState:
+    """Everything the canvas shows, fed message by message (from a Feed snapshot or a list)."""
+
+    endpoint: str = ""
+    sensor_id: str | None = None
+    persist: Persistence = field(default_factory=Persistence)
+    color_by: str = "velocity"
+    velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS
+    snr_range_db: tuple[float, float] = DEFAULT_SNR_RANGE_DB
+    sensor_height_m: float = DEFAULT_SENSOR_HEIGHT_M
+    paused: bool = False
+    sensor_msg: dict | None = None
+    points_msg: dict | None = None
+    rdmap_msg: dict | None = None
+    health_msg: dict | None = None
+    run: str | None = None
+    last_seq: int | None = None
+    frames_shown: int = 0
+    frames_skipped: int = 0          # points frames the viewer never drew (seq gaps seen here)
+    arrivals: deque = field(default_factory=lambda: deque(maxlen=32))   # receive times of clouds
+    bad: int = 0
+    bad_by_reason: dict = field(default_factory=dict)
+    connected: bool | None = None
+    idle_s: float = 0.0
+    stall_after_s: float = 3.0
+    any_message: bool = False
+
+    def ingest(self, msg: dict) -> bool:
+        """Take one decoded message; True when the display needs updating. Messages of another
+        sensor than the one shown are skipped (the first sensor seen is shown by default)."""
+        if self.sensor_id is None:
+            self.sensor_id = msg["sensor_id"]
+        if msg["sensor_id"] != self.sensor_id:
+            return False
+        self.any_message = True
+        kind = msg["kind"]
+        if kind == "points":
+            h = msg["header"]
+            if self.run is not None and h["run"] != self.run:
+                self.persist.clear()         # the source restarted: old clouds belong to another run
+                self.last_seq = None
+            if self.last_seq is not None and h["seq"] > self.last_seq + 1:
+                self.frames_skipped += h["seq"] - self.last_seq - 1
+            self.run, self.last_seq = h["run"], h["seq"]
+            self.points_msg = msg
+            self.persist.push(msg["data"])
+            self.frames_shown += 1
+            self.arrivals.append(msg["received_s"])
+        elif kind == "rdmap":
+            self.rdmap_msg = msg
+        elif kind == "sensor":
+            self.sensor_msg = msg
+        elif kind == "health":
+            self.health_msg = msg
+        else:
+            return False
+        return True
+
+    @property
+    def summary(self) -> dict:
+        if self.sensor_msg is not None:
+            return self.sensor_msg["header"]["summary"]
+        return {"max_range_m": 20.0, "max_velocity_mps": 5.0, "fov_half_azimuth_deg": 60.0,
+                "fov_half_elevation_deg": 20.0, "range_resolution_m": 0.2, "velocity_resolution_mps": 0.1}
+
+    def fps_measured(self) -> float | None:
+        a = self.arrivals
+        if len(a) < 2 or a[-1] <= a[0]:
+            return None
+        return (len(a) - 1) / (a[-1] - a[0])
+
+
+def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple[str, str]:
+    """(text, level) with level 'wait', 'ok', 'stall' or 'paused'."""
+    stall_after_s = state.stall_after_s if stall_after_s is None else stall_after_s
+    if not state.any_message:
+        conn = "" if state.connected is None else ("  (connected, no messages yet)" if state.connected
+                                                   else "  (not connected)")
+        return f"waiting for data on {state.endpoint or '(no endpoint)'}{conn}", "wait"
+    parts = [f"sensor {state.sensor_id}"]
+    pm, hm = state.points_msg, state.health_msg
+    parts.append(f"frame {pm['header']['seq']}" if pm else "frame –")
+    fps = hm["header"]["fps"] if hm else state.fps_measured()
+    parts.append(f"{fps:.1f} fps" if fps is not None else "– fps")
+    if pm:
+        lat = f"latency {pm['header']['latency_s'] * 1e3:.1f} ms"
+        if hm:
+            lat += f" (p99 {hm['header']['latency_p99_ms']:.1f})"
+        parts.append(lat)
+        parts.append(f"{pm['header']['count']} points")
+    if hm:
+        h = hm["header"]
+        parts.append(f"dropped {h['frames_dropped']}")
+        parts.append(f"rejected {h['frames_rejected']}")
+        if h["sequence_gaps"]:
+            parts.append(f"gaps {h['sequence_gaps']}")
+    if state.frames_skipped:
+        parts.append(f"skipped {state.frames_skipped}")
+    if state.bad:
+        why = ", ".join(f"{k} {v}" for k, v in sorted(state.bad_by_reason.items()))
+        parts.append(f"bad messages {state.bad} ({why})")
+    text = "  ·  ".join(parts)
+    if state.idle_s > stall_after_s:
+        link = "" if state.connected is None else ("; link down" if not state.connected else "; link up")
+        return f"STALLED: nothing for {state.idle_s:.1f} s on {state.endpoint}{link}  ·  " + text, "stall"
+    if state.paused:
+        return "PAUSED  ·  " + text, "paused"
+    return text, "ok"
+
+
+STATUS_COLORS = {"wait": STATUS_WAIT, "ok": STATUS_OK, "stall": STATUS_STALL, "paused": STATUS_WAIT}
