@@ -82,7 +82,14 @@ def _serve(args) -> int:
     from .service import DEFAULT_SUB, serve
     return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
-                 quiet=args.quiet)
+                 quiet=args.quiet, workers=args.workers, tasks=args.tasks, results=args.results,
+                 task_timeout_s=args.task_timeout)
+
+
+def _worker(args) -> int:
+    from .workers import run_worker
+    return run_worker(args.connect, args.results, sensor_path=args.sensor, name=args.name,
+                      capacity=args.capacity, quiet=args.quiet)
 
 
 def _replay(args) -> int:
@@ -100,6 +107,18 @@ def _record(args) -> int:
 def _demo(args) -> int:
     from .demo import run_demo
     return run_demo(args.capture, seconds=args.seconds, viewer=not args.no_viewer)
+
+
+def _bench(args) -> int:
+    from .bench import print_table, run
+    if args.frames < 50:
+        raise CubecastError(f"--frames {args.frames}: the medians need at least 50 frames")
+    result = run(args.sensor or ["reference", "large"], args.frames)
+    if args.json:
+        print(json.dumps(result))
+    else:
+        print_table(result)
+    return 0
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -148,7 +167,27 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--rdmap-rate", type=float, default=5.0, metavar="HZ",
                     help="range-Doppler maps per second at most (default 5, 0 = none)")
     sv.add_argument("--quiet", action="store_true", help="no start/stop lines (rejections are still logged)")
+    sv.add_argument("--workers", type=int, default=0, metavar="N",
+                    help="process frames in N local worker processes (default 0: in serve itself)")
+    sv.add_argument("--tasks", metavar="ENDPOINT",
+                    help="bind this endpoint for workers to fetch frames from, e.g. tcp://0.0.0.0:5603 so that "
+                         "`cubecast worker` on other hosts can join (with --results; default with --workers: "
+                         "a free loopback port)")
+    sv.add_argument("--results", metavar="ENDPOINT", help="bind this endpoint for worker results (with --tasks)")
+    sv.add_argument("--task-timeout", type=float, default=None, metavar="S",
+                    help="with workers: a frame not answered within S seconds is counted lost (default 2)")
     sv.set_defaults(func=_serve)
+
+    wk = sub.add_parser("worker", help="process frames for a serve on this or another host")
+    wk.add_argument("--connect", required=True, metavar="ENDPOINT", help="serve's --tasks endpoint")
+    wk.add_argument("--results", required=True, metavar="ENDPOINT", help="serve's --results endpoint")
+    wk.add_argument("--sensor", help="sensor description (TOML) this worker expects; serve refuses the worker "
+                                     "if its own differs (default: take serve's)")
+    wk.add_argument("--name", help="name shown in serve's health (default HOST-PID)")
+    wk.add_argument("--capacity", type=int, default=2, metavar="N",
+                    help="frames this worker may hold at once, one processed and the rest waiting (default 2)")
+    wk.add_argument("--quiet", action="store_true", help="no start/stop lines (errors are still printed)")
+    wk.set_defaults(func=_worker)
 
     rp = sub.add_parser("replay", help="publish a capture's ADC frames over ZeroMQ with their recorded timing")
     rp.add_argument("capture")
@@ -181,6 +220,13 @@ def build_parser() -> argparse.ArgumentParser:
     dm.add_argument("--no-viewer", action="store_true", help="do not start the viewer even with a display")
     dm.add_argument("--capture", help="capture to replay instead of replay_samples/yard.cap")
     dm.set_defaults(func=_demo)
+    b = sub.add_parser("bench", help="benchmark the chain on simulated frames against the FFT floor")
+    b.add_argument("--json", action="store_true", help="print one JSON object")
+    b.add_argument("--frames", type=int, default=60, help="frames measured per sensor after warm-up (>= 50)")
+    b.add_argument("--sensor", action="append", choices=("reference", "large"),
+                   help="only this sensor (repeatable; default both)")
+    b.set_defaults(func=_bench)
+
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)
     try:  # the viewer is an optional extra; without vispy, `view` explains what to install

@@ -59,7 +59,8 @@ class Pipeline:
         self.frame_shape = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
         self.range_fft = RangeFft(sensor, settings)
         n_range = self.range_fft.n_bins
-        self.doppler_fft = DopplerFft(sensor, settings, n_range)
+        self.doppler_fft = DopplerFft(sensor, settings, self.range_fft.fft_size, n_range,
+                                      sensor.samples_per_chirp)
         n_dop = self.doppler_fft.fft_size
 
         max_range = settings.max_range_m or sensor.max_range_m
@@ -137,13 +138,18 @@ class Pipeline:
         t_range = 0.0
         rng, dop = self.range_fft, self.doppler_fft
         dop.begin()
+        window_d = dop.window
         for rx in range(self.sensor.n_rx):
             ta = time.perf_counter()
-            load(data, rx)
-            block = rng.transform()
+            block = dop.block(rx)
+            load(data, rx, window_d, block)  # counted with the range stage
+            tl = time.perf_counter()
+            dop.transform(block)
             tb = time.perf_counter()
-            t_range += tb - ta
-            dop.add(block, rx)
+            rng.transform(block)
+            tc = time.perf_counter()
+            t_range += (tl - ta) + (tc - tb)
+            dop.accumulate(block)
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()
         t1 = t0 + t_range
