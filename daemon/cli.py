@@ -229,6 +229,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)
+    from .adapter import add_parser as add_adapter
+    add_adapter(sub)
     try:  # the viewer is an optional extra; without vispy, `view` explains what to install
         from .viewsource import register_view
         register_view(sub)
