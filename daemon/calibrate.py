@@ -6,7 +6,7 @@ unequal ones bias the angles and raise the sidelobes. With one static point refl
 place the gains can be measured:
 
 1. Every frame runs through the chain's front end (Pipeline: range FFT, Doppler FFT; Hann windows,
-   static clutter removal off, or the reflector would be removed). The reflector's cell is the
+   removal of static returns off, or the reflector would be removed). The reflector's cell is the
    strongest zero-Doppler cell within `search_cells` range cells of the given range.
 2. The cell's slot values are decoded into the virtual snapshot z_f[v] of frame f (MIMO decoding;
    the reflector is static, so no Doppler phase compensation is involved).
@@ -110,10 +110,10 @@ FINE_RANGE_PADDING = 16  # zero padding of the fine range spectrum for the range
 def calibration_settings(base: ProcessingSettings | None = None) -> ProcessingSettings:
     """The front-end settings calibration uses: Hann range and Doppler windows (sidelobes below
     -31 dB, Harris 1978, so the neighbour check sees real peaks only), no zero padding, and static
-    clutter removal off (it would remove the reflector)."""
+    removal of static returns off (it would remove the reflector)."""
     base = base or ProcessingSettings()
     return dataclasses.replace(base, range_window="hann", doppler_window="hann", range_fft_size=0,
-                               doppler_fft_size=0, static_clutter_removal=False).validate()
+                               doppler_fft_size=0, remove_static=False).validate()
 
 
 # ---- the model --------------------------------------------------------------------------------
@@ -131,7 +131,8 @@ def ideal_snapshot(sensor: Sensor, position_m: np.ndarray, range_bins, window: n
     tau = ((d_tx[:, None] + d_rx[None, :]) / SPEED_OF_LIGHT_MPS).reshape(-1)  # [V], v = k * n_rx + l
     n = np.arange(sensor.samples_per_chirp)
     t_n = sensor.adc_start_delay_s + n / sensor.sample_rate_hz
-    f0, slope = sensor.start_frequency_hz, sensor.slope_hz_per_s
+    sen = sensor  # (short alias)
+    f0, slope = sen.start_frequency_hz, sen.slope_hz_per_s
     cyc0 = np.mod(f0 * tau - 0.5 * slope * tau * tau, 1.0)
     cyc = cyc0[:, None] + (slope * tau)[:, None] * t_n[None, :]  # [V, N]
     x = np.exp(2j * np.pi * cyc) * np.asarray(window, np.float64)[None, :]

@@ -19,7 +19,12 @@ a slow subscriber only loses its own messages. Buffers handed to ZeroMQ without 
 fresh arrays (the point records and pooled map are new per frame), never reused buffers.
 
 Counters obey: frames_received == frames_processed + frames_dropped + frames_rejected + queue_depth
-+ in_progress, read atomically under one lock.
++ in_progress + frames_lost_worker + in_flight, read atomically under one lock (the last two are
+non-zero only with workers).
+
+With workers (`serve --workers N`, or `--tasks`/`--results` for workers on other hosts; see
+daemon/workers.py) the processing thread does not run the chain itself: it hands queued frames to
+workers with free capacity, collects their results and publishes them in frame order.
 """
 
 from __future__ import annotations
@@ -224,7 +229,12 @@ class Service:
                  queue_depth: int = 2, rdmap_max_hz: float = 5.0, sensor_interval_s: float = 2.0,
                  health_interval_s: float = 1.0, log_interval_s: float = 5.0, sndhwm: int = 100,
                  sndbuf_bytes: int = 0, rcvhwm: int = 16, log: Callable[[str], None] | None = None,
-                 quiet: bool = False, range_bias_m: float = 0.0):
+                 quiet: bool = False, range_bias_m: float = 0.0, workers: int = 0,
+                 tasks_endpoint: str | None = None, results_endpoint: str | None = None,
+                 task_timeout_s: float | None = None, worker_quiet: bool = True):
+        """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
+        for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
+        are processed by workers (daemon/workers.py), else in this process."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"--queue {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -247,6 +257,22 @@ class Service:
         self._error_log = RateLimitedLog(self._write, log_interval_s, "cubecast serve: ")
         self.validator = AdcValidator(sensor)
         self.ready = threading.Event()
+        self.pool = None
+        if (tasks_endpoint is None) != (results_endpoint is None):
+            raise CubecastError("--tasks and --results: give both endpoints for workers, or neither")
+        if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
+            raise CubecastError(f"--workers {workers!r}: must be a whole number >= 0")
+        if workers > 0 or tasks_endpoint is not None:
+            from .workers import DEFAULT_TASK_TIMEOUT_S, WorkerConfig, WorkerPool
+            self.pool = WorkerPool(
+                WorkerConfig(sensor, self.settings, calibration, float(range_bias_m)),
+                tasks_endpoint or "tcp://127.0.0.1:*", results_endpoint or "tcp://127.0.0.1:*",
+                local_workers=workers, task_timeout_s=DEFAULT_TASK_TIMEOUT_S if task_timeout_s is None
+                else task_timeout_s, log=self._write, quiet=quiet, worker_quiet=worker_quiet)
+        self._stage_ms = self.pipeline.stage_ms
+        self._in_flight = 0
+        self._lost = 0
+        self._wake_push: zmq.Socket | None = None
 
         self._cond = threading.Condition()
         self._queue: collections.deque = collections.deque()
@@ -275,6 +301,8 @@ class Service:
                 "queue_high_water": self._queue_high_water,
                 "sequence_gaps": self.validator.sequence_gaps, "source_restarts": self.validator.source_restarts,
                 "processing_errors": self._processing_errors, "points_last": self._points_last,
+                "frames_lost_worker": self._lost, "in_flight": self._in_flight,
+                **({"workers": self.pool.rows, **self.pool.counters()} if self.pool is not None else {}),
             }
 
     def latencies_s(self) -> np.ndarray:
@@ -302,6 +330,11 @@ class Service:
             self._queue.append((msg, t_recv))
             self._queue_high_water = max(self._queue_high_water, len(self._queue))
             self._cond.notify()
+        if self._wake_push is not None:  # workers: wake the processing thread from its socket poll
+            try:
+                self._wake_push.send(b"", zmq.NOBLOCK)
+            except zmq.Again:  # a wake-up is already pending
+                pass
 
     def _receive(self, sub: zmq.Socket) -> None:
         poller = zmq.Poller()
@@ -377,17 +410,99 @@ class Service:
             "points_last": s["points_last"],
             "fps": (processed - self._last_processed) / interval,
             "processing_errors": s["processing_errors"],
-            "stage_ms": {k: float(v) for k, v in self.pipeline.stage_ms.items()},
+            "stage_ms": {k: float(v) for k, v in self._stage_ms.items()},
             "source_run": self.validator.run,
+            "frames_lost_worker": s["frames_lost_worker"], "in_flight": s["in_flight"],
         }
+        if self.pool is not None:
+            fields.update({k: s[k] for k in ("workers", "workers_alive", "workers_refused",
+                                             "worker_results_discarded")})
         self._last_health, self._last_cpu, self._last_processed = now, cpu, processed
         return fields
 
+    # ---- with workers ---------------------------------------------------------------------
+    def _start_pool(self, ctx: zmq.Context, stop: threading.Event) -> zmq.Socket:
+        """Fill the numba cache here first (so that workers only load it, never race compiling it),
+        bind the worker endpoints, start the local workers and wait until each reports ready."""
+        from .workers import STARTUP_TIMEOUT_S, warm_up_pipeline
+        warm_up_pipeline(self.pipeline)
+        self.pipeline = self._canon = None  # workers run the chain; keep no frame-sized buffers here
+        self._stage_ms = {}
+        wake_pull = ctx.socket(zmq.PULL)
+        wake_pull.setsockopt(zmq.LINGER, 0)
+        wake_pull.setsockopt(zmq.RCVHWM, 1)
+        endpoint = f"inproc://cubecast-serve-wake-{id(self)}"
+        wake_pull.bind(endpoint)
+        self._wake_push = ctx.socket(zmq.PUSH)
+        self._wake_push.setsockopt(zmq.LINGER, 0)
+        self._wake_push.setsockopt(zmq.SNDHWM, 1)
+        self._wake_push.connect(endpoint)
+        self.pool.bind(ctx, wake_pull)
+        self.pool.start_local()
+        self.pool.wait_ready(len(self.pool.slots), STARTUP_TIMEOUT_S, stop)
+        return wake_pull
+
+    def _pool_step(self, pub: zmq.Socket, timeout_s: float) -> None:
+        """Hand queued frames to workers with capacity, then wait up to timeout_s for results and
+        publish those now in frame order."""
+        pool = self.pool
+        now = time.monotonic()
+        while pool.can_dispatch():
+            with self._cond:
+                if not self._queue:
+                    break
+                msg, t_recv = self._queue.popleft()
+                self._in_flight += 1
+            want_map = now - self._last_rdmap >= self.rdmap_period_s
+            if pool.dispatch(msg, t_recv, want_map):
+                if want_map:
+                    self._last_rdmap = now
+                continue
+            with self._cond:  # no worker could take it after all: back to the head of the queue
+                self._in_flight -= 1
+                if len(self._queue) >= self.queue_depth:
+                    self._dropped += 1  # it is the oldest frame
+                else:
+                    self._queue.appendleft((msg, t_recv))
+            break
+        completed, lost = pool.poll(int(timeout_s * 1000))
+        if lost:
+            with self._cond:
+                self._in_flight -= len(lost)
+                self._lost += len(lost)
+        for entry in completed:
+            self._publish_result(pub, entry)
+
+    def _publish_result(self, pub: zmq.Socket, entry) -> None:
+        res = entry.result
+        entry.result = None
+        if res.error is not None:
+            with self._cond:
+                self._processing_errors += 1
+                self._processed += 1
+                self._in_flight -= 1
+            self._error_log("processing error", f"frame seq {entry.seq} (worker {res.worker}): {res.error}")
+            return
+        sid = self.sensor.sensor_id
+        latency = time.perf_counter() - entry.t_recv
+        self._send(pub, encode_points(sid, entry.seq, entry.run, entry.timestamp_s, latency, res.records), "points")
+        if res.rdmap is not None:
+            self._send(pub, encode_rdmap(sid, entry.seq, entry.timestamp_s, *res.rdmap), "rdmap")
+        self._stage_ms = res.stage_ms
+        with self._cond:
+            self._latencies_s.append(latency)
+            self._all_latencies_s.append(latency)
+            self._points_last = int(res.records.shape[0])
+            self._processed += 1
+            self._in_flight -= 1
+
     def run(self, stop: threading.Event) -> None:
-        """Bind, warm up, connect, then serve until `stop` is set (returns within ~0.1 s of it)."""
+        """Bind, warm up (with workers: start them and wait until they are ready), connect, then serve
+        until `stop` is set (returns within ~0.1 s of it; with local workers within ~0.8 s)."""
         ctx = zmq.Context()
         pub = sub = None
         rx = None
+        wake_pull = None
         try:
             pub = ctx.socket(zmq.XPUB)
             pub.setsockopt(zmq.LINGER, 0)
@@ -396,7 +511,10 @@ class Service:
             if self.sndbuf_bytes:
                 pub.setsockopt(zmq.SNDBUF, self.sndbuf_bytes)
             self.pub_endpoint = bind_socket(pub, self.pub_endpoint_requested, "--pub")
-            self._warm_up()
+            if self.pool is None:
+                self._warm_up()
+            else:
+                wake_pull = self._start_pool(ctx, stop)
             sub = ctx.socket(zmq.SUB)
             sub.setsockopt(zmq.LINGER, 0)
             sub.setsockopt(zmq.RCVHWM, self.rcvhwm)
@@ -421,8 +539,13 @@ class Service:
             last_sensor = -math.inf
             self.ready.set()
             if not self.quiet:
+                extra = ""
+                if self.pool is not None:
+                    extra = (f", workers: {len(self.pool.slots)} local, tasks {self.pool.tasks_endpoint}, "
+                             f"results {self.pool.results_endpoint}")
                 self._write(f"cubecast serve: ready: sensor '{self.sensor.sensor_id}' (digest {self.sensor.digest}), "
-                            f"sub {', '.join(self.sub_endpoints)}, pub {self.pub_endpoint}, queue {self.queue_depth}")
+                            f"sub {', '.join(self.sub_endpoints)}, pub {self.pub_endpoint}, queue {self.queue_depth}"
+                            + extra)
             while not stop.is_set():
                 # new subscribers: send them the sensor description now (rate-limited)
                 while True:
@@ -442,6 +565,9 @@ class Service:
                     self._error_log.flush()
                     next_health = max(next_health + self.health_interval_s, now)
                 timeout = max(0.0, min(0.05, next_sensor - now, next_health - now))
+                if self.pool is not None:
+                    self._pool_step(pub, timeout)
+                    continue
                 with self._cond:
                     if not self._queue:
                         self._cond.wait(timeout)
@@ -470,13 +596,21 @@ class Service:
                 sub.close(linger=0)
             if pub is not None:
                 pub.close(linger=0)
+            if self.pool is not None:
+                self.pool.close()
+            if wake_pull is not None:
+                wake_pull.close(linger=0)
+            if self._wake_push is not None and (rx is None or not rx.is_alive()):
+                self._wake_push.close(linger=0)
+                self._wake_push = None
             if rx is None or not rx.is_alive():
                 ctx.term()
 
 
 def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str | None = None,
           calibration_path: str | None = None, queue_depth: int = 2, rdmap_max_hz: float = 5.0,
-          quiet: bool = False) -> int:
+          quiet: bool = False, workers: int = 0, tasks: str | None = None, results: str | None = None,
+          task_timeout_s: float | None = None) -> int:
     """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0."""
     from .process import load_calibration_for
     from .sensor import load_sensor
@@ -487,11 +621,13 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
     stop = threading.Event()
     with stop_on_signals(stop):
         svc = Service(sensor, sub, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
-                      quiet=quiet, range_bias_m=range_bias_m)
+                      quiet=quiet, range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks,
+                      results_endpoint=results, task_timeout_s=task_timeout_s)
         if not stop.is_set():
             svc.run(stop)
     if not quiet:
         s = svc.stats()
         _stderr_line(f"cubecast serve: stopped: {s['frames_received']} frames received, {s['frames_processed']} "
-                     f"processed, {s['frames_dropped']} dropped, {s['frames_rejected']} rejected")
+                     f"processed, {s['frames_dropped']} dropped, {s['frames_rejected']} rejected"
+                     + (f", {s['frames_lost_worker']} lost with workers" if svc.pool is not None else ""))
     return 0

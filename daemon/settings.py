@@ -25,7 +25,7 @@ class ProcessingSettings:
     range_window: str = "hann"
     range_kaiser_beta: float = 6.0
     range_fft_size: int = 0  # 0 = samples per chirp; else a size >= samples (zero padding)
-    static_clutter_removal: bool = False
+    remove_static: bool = False  # subtract each channel's mean over the loops (static returns)
     # Doppler FFT
     doppler_window: str = "hann"
     doppler_kaiser_beta: float = 6.0

@@ -12,7 +12,7 @@ YARD_SENSOR = SAMPLES / "yard_sensor.toml"
 
 def sensor_text(*, n_tx_az: int = 2, n_rx: int = 4, tx_spacing_hw: int | None = None, elevation_tx: bool = True,
                 loops: int = 32, samples: int = 128, sample_rate_hz: float = 5.0e6, slope: float = 30.0e12,
-                start_frequency_hz: float = 77.0e9, scheme: str = "tdm", tx_order: list[int] | None = None,
+                f_start_hz: float = 77.0e9, scheme: str = "tdm", tx_order: list[int] | None = None,
                 bpm_codes: list[list[int]] | None = None, sampling: str = "complex",
                 sample_type: str = "int16", swap_iq: bool = False, conjugate: bool = False,
                 chirp_period_s: float = 40.0e-6, extra: str = "") -> str:
@@ -33,7 +33,7 @@ def sensor_text(*, n_tx_az: int = 2, n_rx: int = 4, tx_spacing_hw: int | None = 
 id = "test-sensor"
 
 [chirp]
-start_frequency_hz = {start_frequency_hz!r}
+start_frequency_hz = {f_start_hz!r}
 slope_hz_per_s = {slope!r}
 sample_rate_hz = {sample_rate_hz!r}
 samples_per_chirp = {samples}

@@ -332,11 +332,11 @@ def test_windows_and_zero_padding(sensor, window, padding):
     assert abs(p["azimuth_deg"] - truth[7]) < 0.5
 
 
-def test_static_clutter_removal(sensor):
+def test_static_returns_removed(sensor):
     text = scene_of(dict(range_m=6.0, azimuth_deg=-20.0, rcs_dbsm=20.0),
                     dict(range_m=11.0, azimuth_deg=15.0, radial_velocity_mps=2.0, snr_db=0.0))
     sim = Simulator(sensor, parse_scene(text), seed=1)
-    pts = Pipeline(sensor, ProcessingSettings(static_clutter_removal=True)).process(sim.frame(0))
+    pts = Pipeline(sensor, ProcessingSettings(remove_static=True)).process(sim.frame(0))
     assert not np.any((np.abs(pts["range_m"] - 6.0) < 0.3) & (np.abs(pts["velocity_mps"]) < 0.3))
     assert np.any(np.abs(pts["range_m"] - 11.0) < 0.3)
 

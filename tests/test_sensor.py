@@ -55,7 +55,7 @@ def test_real_sampling_halves_the_if_band():
 
 def test_wavelength_at_79_ghz():
     # Common practice: 79 GHz -> lambda ~ 3.8 mm, half-wavelength element spacing ~ 1.9 mm.
-    s = make_sensor(start_frequency_hz=79.0e9 - 30.0e12 * (5.0e-6 + 0.5 * 128 / 5.0e6))
+    s = make_sensor(f_start_hz=79.0e9 - 30.0e12 * (5.0e-6 + 0.5 * 128 / 5.0e6))
     assert s.center_frequency_hz == pytest.approx(79.0e9)
     assert s.wavelength_m == pytest.approx(3.795e-3, abs=0.005e-3)
     assert s.wavelength_m / 2 == pytest.approx(1.897e-3, abs=0.005e-3)

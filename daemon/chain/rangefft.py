@@ -4,10 +4,10 @@ The front end works one receive channel at a time, so that its block (all chirps
 hundred kB) stays in the core's cache from loading to the detection map. Loading reads the frame
 (canonical complex64, or the board's int16 I/Q converted on the fly with its I/Q conventions),
 applies both windows (range over samples, Doppler over loops; separable, so they multiply), removes
-the static clutter on request, and writes the block already transposed to [slot, sample, loop]: the
+static returns on request, and writes the block already transposed to [slot, sample, loop]: the
 Doppler FFT then runs over contiguous memory, and the range FFT runs along the sample axis.
 
-Static clutter removal subtracts each sample's mean over the loops of its slot before the FFTs; by
+Removing static returns subtracts each sample's mean over the loops of its slot before the FFTs; by
 linearity this equals subtracting the mean over chirps of every range bin and channel.
 """
 
@@ -72,7 +72,7 @@ class RangeFft:
         self.bin_m = sensor.sample_rate_hz / self.fft_size * SPEED_OF_LIGHT_MPS / (2.0 * sensor.slope_hz_per_s)
         self.adc = sensor.adc
         self.raw_iq16 = sensor.adc.is_complex and sensor.adc.sample_type == "int16"
-        self.remove_static = settings.static_clutter_removal
+        self.remove_static = settings.remove_static
         self._mean = np.zeros(n, np.complex64)
 
     def load(self, frame: np.ndarray, rx: int, doppler_window: np.ndarray, block: np.ndarray) -> None:

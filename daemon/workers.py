@@ -1,0 +1,1130 @@
+"""Worker processes: `cubecast serve --workers N` and `cubecast worker`.
+
+serve fans frames out to worker processes (local subprocesses it starts itself, or workers on other
+hosts) and re-sequences their point clouds in frame order before publishing them. The sockets:
+
+    serve BINDs  a ROUTER on the tasks endpoint    <-  each worker CONNECTs a DEALER
+    serve BINDs  a PULL   on the results endpoint  <-  each worker CONNECTs a PUSH
+
+Workers connect to serve (never the reverse), so a worker on another host needs nothing but the two
+endpoints: `cubecast worker --connect tcp://SERVE:5603 --results tcp://SERVE:5604`. The ROUTER gives
+serve a per-worker address, so frames go only to workers with free capacity (credit-based: a worker
+announces how many tasks it may hold, 2 by default: one being processed, one waiting); a plain PUSH
+would deal tasks round robin, blindly, and stall on a dead worker's pipe.
+
+This is an internal protocol, version 1 (`proto` in every header), not the public wire of wire.md;
+its messages are multipart [kind, header (msgpack map), payload...] decoded with bounded msgpack
+(no pickle, no ext types) and validated field by field:
+
+    worker -> serve (DEALER)  hello {worker, name, pid, host, capacity, expect_digest}
+                              ready {worker, session, digest, warm_up_s}
+                              beat  {worker, session}                     every 0.25 s when idle
+                              bye   {worker}                              on a clean exit
+    serve -> worker (ROUTER)  welcome {session, sensor_toml, digest, settings, range_bias_m,
+                                       calibration} + calibration bytes   the whole configuration
+                              refuse  {reason, message}                   e.g. a sensor digest mismatch
+                              who     {session}                           "introduce yourself again"
+                              task    {session, task_id, seq, run, timestamp_s, received_unix_s,
+                                       digest, dtype, shape, crc32, rdmap} + the raw ADC payload
+    worker -> serve (PUSH)    result  {worker, session, task_id, seq, count, error, stage_ms,
+                                       process_s, rdmap} + point records + pooled map (or empty)
+
+Handshake: a worker sends `hello`; serve answers `welcome` with the sensor description (TOML text,
+re-parsed and digest-checked by the worker), the processing settings and the calibration, so every
+worker computes exactly what serve would. A worker started with `--sensor` states that description's
+digest in its hello; serve refuses a mismatch and the worker exits with an error naming both. The
+worker builds its Pipeline, warms it up and sends `ready`; only then does serve count its capacity.
+A task carries the ADC payload exactly as received from the source (zero-copy), the worker checks
+its digest, dtype, shape, length and CRC-32 before processing.
+
+Re-sequencing: serve numbers tasks in dispatch order (which is arrival order) and publishes results
+strictly in that order from a bounded reorder window. A task whose worker died (its local process
+exited, its connection dropped, or it went silent) or whose result did not come back within the task
+timeout is counted as lost (`frames_lost_worker` in health) and skipped; a result that comes back
+later is discarded. serve restarts local workers that die.
+
+Counters (health): frames_received == frames_processed + frames_dropped + frames_rejected +
+frames_lost_worker + queue_depth + in_progress + in_flight, where in_flight counts frames handed to
+workers and not yet published or lost.
+"""
+
+from __future__ import annotations
+
+import collections
+import dataclasses
+import math
+import os
+import secrets
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+import zlib
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import msgpack
+import numpy as np
+import zmq
+
+from .chain.points import RECORD_DTYPE, to_records
+from .errors import CubecastError
+from .sensor import Sensor, parse_sensor
+from .settings import ProcessingSettings
+from .wire import (ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, WireError, _digest, _float, _int,
+                   _shape, _str)
+
+PROTOCOL = 1
+MAX_CONTROL_BYTES = 64 * 1024  # headers of every message but `welcome`
+MAX_WELCOME_BYTES = 1024 * 1024  # carries the sensor description text (wire.md allows 1 MiB for it)
+MAX_ENTRIES = 1024
+MAX_CAPACITY = 8  # tasks one worker may hold, whatever it announces
+MAX_NAME_CHARS = 64
+MAX_ERROR_CHARS = 2000
+DEFAULT_CAPACITY = 2
+DEFAULT_TASK_TIMEOUT_S = 2.0
+DEFAULT_REORDER_WINDOW = 64
+HEARTBEAT_S = 0.25
+HELLO_RETRY_S = 1.0
+STARTUP_TIMEOUT_S = 120.0  # local workers: numba loads from the cache serve filled, but a loaded host is slow
+RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up to the second
+
+KINDS_TO_SERVE = (b"hello", b"ready", b"beat", b"bye")
+KINDS_TO_WORKER = (b"welcome", b"refuse", b"who", b"task")
+
+
+class ProtocolError(CubecastError):
+    """A worker-protocol message that breaks the rules above (the message names the field)."""
+
+
+def _stderr_line(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+# ---- encoding and bounded decoding ----------------------------------------------------------------
+
+def _pack(fields: dict) -> bytes:
+    header = {"proto": PROTOCOL}
+    header.update(fields)
+    return msgpack.packb(header, use_bin_type=True)
+
+
+def _unpack(part: Any, what: str, limit: int = MAX_CONTROL_BYTES) -> dict:
+    view = memoryview(part)
+    if view.nbytes > limit:
+        raise ProtocolError(f"{what} header is {view.nbytes} bytes; at most {limit} allowed")
+    try:
+        header = msgpack.unpackb(view, raw=False, use_list=True, strict_map_key=True, max_str_len=limit,
+                                 max_bin_len=limit, max_array_len=MAX_ENTRIES, max_map_len=MAX_ENTRIES,
+                                 max_ext_len=0)
+    except Exception as exc:  # ValueError, FormatError, StackError, ExtraData...
+        raise ProtocolError(f"{what} header is not one valid msgpack map without ext types "
+                            f"({type(exc).__name__})") from None
+    if not isinstance(header, dict):
+        raise ProtocolError(f"{what} header is a msgpack {type(header).__name__}, not a map")
+    proto = header.get("proto")
+    if proto != PROTOCOL or isinstance(proto, bool):
+        raise ProtocolError(f"{what} header field 'proto' = {proto!r}: this cubecast speaks worker protocol "
+                            f"{PROTOCOL} only (run the same cubecast version on serve and workers)")
+    return header
+
+
+def _field(fn, h: dict, what: str, *args, **kw):
+    """The wire module's typed field readers, with the message named as ours."""
+    try:
+        return fn(h, what, *args, **kw)
+    except WireError as exc:
+        raise ProtocolError(str(exc)) from None
+
+
+def _key_str(h: dict, what: str, name: str) -> str:
+    return _field(_str, h, what, name, MAX_NAME_CHARS)
+
+
+def _bool(h: dict, what: str, name: str) -> bool:
+    v = h.get(name)
+    if not isinstance(v, bool):
+        raise ProtocolError(f"{what} header field '{name}' = {v!r}: must be true or false")
+    return v
+
+
+def _optional_digest(h: dict, what: str, name: str) -> str | None:
+    v = h.get(name)
+    if v is None:
+        return None
+    return _field(_digest, {"digest": v}, what)
+
+
+def _parts(parts: list, n_min: int, n_max: int, what: str) -> None:
+    if not n_min <= len(parts) <= n_max:
+        raise ProtocolError(f"{what} message has {len(parts)} parts; expected {n_min}..{n_max}")
+
+
+# ---- configuration carried in the handshake --------------------------------------------------------
+
+def settings_to_map(settings: ProcessingSettings) -> dict:
+    return dataclasses.asdict(settings)
+
+
+def settings_from_map(values: Any) -> ProcessingSettings:
+    """Processing settings from a `welcome` header: every field known and of the default's type."""
+    if not isinstance(values, dict):
+        raise ProtocolError(f"welcome header field 'settings' = {values!r}: must be a map")
+    fields = {f.name: f for f in dataclasses.fields(ProcessingSettings)}
+    out = {}
+    for key, value in values.items():
+        if key not in fields:
+            raise ProtocolError(f"welcome header field 'settings': unknown setting {key!r} (run the same cubecast "
+                                "version on serve and workers)")
+        kind = type(fields[key].default)
+        ok = (isinstance(value, bool) if kind is bool else
+              (isinstance(value, int) and not isinstance(value, bool)) if kind is int else
+              (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
+              if kind is float else isinstance(value, str))
+        if not ok:
+            raise ProtocolError(f"welcome header field 'settings': {key} = {value!r}: must be a {kind.__name__}")
+        out[key] = float(value) if kind is float else value
+    try:
+        return ProcessingSettings(**out).validate("welcome from serve")
+    except CubecastError as exc:
+        raise ProtocolError(str(exc)) from None
+
+
+@dataclass(frozen=True)
+class WorkerConfig:
+    """What a worker needs to compute exactly what serve would (sent in `welcome`)."""
+
+    sensor: Sensor
+    settings: ProcessingSettings
+    calibration: np.ndarray | None
+    range_bias_m: float
+
+    def same_as(self, other: "WorkerConfig | None") -> bool:
+        if other is None:
+            return False
+        a, b = self.calibration, other.calibration
+        return (self.sensor.digest == other.sensor.digest and self.sensor.source_text == other.sensor.source_text
+                and self.settings == other.settings and self.range_bias_m == other.range_bias_m
+                and (a is None) == (b is None) and (a is None or a.tobytes() == b.tobytes()))
+
+
+def encode_welcome(session: str, config: WorkerConfig) -> list:
+    cal = config.calibration
+    header = _pack({
+        "session": session, "sensor_id": config.sensor.sensor_id, "digest": config.sensor.digest,
+        "sensor_toml": config.sensor.source_text, "settings": settings_to_map(config.settings),
+        "range_bias_m": float(config.range_bias_m),
+        "calibration": None if cal is None else {"dtype": "<c8", "count": int(cal.shape[0])},
+        "heartbeat_s": HEARTBEAT_S})
+    payload = b"" if cal is None else np.ascontiguousarray(cal, "<c8").tobytes()
+    if len(header) > MAX_WELCOME_BYTES:
+        raise CubecastError(f"the sensor description is too large for a worker welcome ({len(header)} bytes; "
+                            f"at most {MAX_WELCOME_BYTES})")
+    return [b"welcome", header, payload]
+
+
+def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerConfig]:
+    """(session, configuration) from a `welcome`; the description is re-parsed and its digest checked,
+    and must match `expect_digest` (the worker's own --sensor) when given."""
+    _parts(parts, 3, 3, "welcome")
+    h = _unpack(parts[1], "welcome", MAX_WELCOME_BYTES)
+    session = _key_str(h, "welcome", "session")
+    digest = _field(_digest, h, "welcome")
+    text = _field(_str, h, "welcome", "sensor_toml", MAX_WELCOME_BYTES)
+    try:
+        sensor = parse_sensor(text, "sensor description from serve")
+    except CubecastError as exc:
+        raise ProtocolError(f"welcome header field 'sensor_toml': {exc}") from None
+    if sensor.digest != digest:
+        raise ProtocolError(f"welcome header field 'digest' = {digest!r}: the description serve sent has digest "
+                            f"{sensor.digest!r}")
+    if h.get("sensor_id") != sensor.sensor_id:
+        raise ProtocolError(f"welcome header field 'sensor_id' = {h.get('sensor_id')!r}: the description names "
+                            f"{sensor.sensor_id!r}")
+    if expect_digest is not None and digest != expect_digest:
+        raise CubecastError(f"serve processes sensor '{sensor.sensor_id}' (digest {digest}); this worker was given "
+                            f"a description with digest {expect_digest}: start the worker with serve's sensor "
+                            "description, or without --sensor")
+    settings = settings_from_map(h.get("settings"))
+    bias = _field(_float, h, "welcome", "range_bias_m")
+    cal_info = h.get("calibration")
+    payload = memoryview(parts[2])
+    calibration = None
+    if cal_info is not None:
+        if not isinstance(cal_info, dict) or cal_info.get("dtype") != "<c8":
+            raise ProtocolError(f"welcome header field 'calibration' = {cal_info!r}: must be nil or "
+                                "{dtype: '<c8', count: n}")
+        count = _field(_int, cal_info, "welcome calibration", "count", 1, MAX_ENTRIES * 64)
+        if count != sensor.n_virtual:
+            raise ProtocolError(f"welcome calibration count = {count}: sensor '{sensor.sensor_id}' has "
+                                f"{sensor.n_virtual} virtual channels")
+        if payload.nbytes != 8 * count:
+            raise ProtocolError(f"welcome calibration payload is {payload.nbytes} bytes; {count} complex64 "
+                                f"values need {8 * count}")
+        calibration = np.frombuffer(payload, "<c8").astype(np.complex64)
+        if not np.isfinite(calibration.view(np.float32)).all():
+            raise ProtocolError("welcome calibration holds values that are not finite")
+    elif payload.nbytes:
+        raise ProtocolError(f"welcome without calibration has a {payload.nbytes}-byte payload; it must be empty")
+    return session, WorkerConfig(sensor, settings, calibration, bias)
+
+
+@dataclass(frozen=True)
+class Task:
+    task_id: int
+    seq: int
+    run: str
+    timestamp_s: float
+    received_unix_s: float
+    want_rdmap: bool
+    data: np.ndarray  # the ADC payload (read-only view on the received message)
+    raw: bool  # True: the sensor's ADC format; False: canonical complex64
+
+
+def encode_task(session: str, task_id: int, header: dict, payload: memoryview, received_unix_s: float,
+                want_rdmap: bool) -> list:
+    """A task from a validated `adc` message header; the payload goes out without a copy."""
+    return [b"task", _pack({
+        "session": session, "task_id": int(task_id), "seq": header["seq"], "run": header["run"],
+        "timestamp_s": header["timestamp_s"], "received_unix_s": float(received_unix_s),
+        "digest": header["digest"], "dtype": header["dtype"], "shape": list(header["shape"]),
+        "crc32": header["crc32"], "rdmap": bool(want_rdmap)}), payload]
+
+
+def decode_task(parts: list, sensor: Sensor, session: str) -> Task:
+    """Validate a task against the worker's sensor: session, digest, dtype, shape, length, CRC-32."""
+    _parts(parts, 3, 3, "task")
+    h = _unpack(parts[1], "task")
+    if h.get("session") != session:
+        raise ProtocolError(f"task header field 'session' = {h.get('session')!r}: this worker was welcomed by "
+                            f"session {session!r}")
+    task_id = _field(_int, h, "task", "task_id")
+    seq = _field(_int, h, "task", "seq")
+    run = _field(_str, h, "task", "run", 64)
+    ts = _field(_float, h, "task", "timestamp_s")
+    received = _field(_float, h, "task", "received_unix_s")
+    want_map = _bool(h, "task", "rdmap")
+    digest = _field(_digest, h, "task")
+    if digest != sensor.digest:
+        raise ProtocolError(f"task header field 'digest' = {digest!r}: this worker processes sensor "
+                            f"'{sensor.sensor_id}' (digest {sensor.digest})")
+    dtype = h.get("dtype")
+    raw_dtype = sensor.adc.raw_dtype().str
+    if not isinstance(dtype, str) or dtype not in ADC_DTYPES or dtype not in (raw_dtype, "<c8"):
+        raise ProtocolError(f"task header field 'dtype' = {dtype!r}: sensor '{sensor.sensor_id}' frames are "
+                            f"{raw_dtype!r} or canonical '<c8'")
+    shape = _field(_shape, h, "task")
+    canon = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
+    expected = sensor.adc.raw_shape(*canon) if dtype == raw_dtype else canon
+    if shape != tuple(expected):
+        raise ProtocolError(f"task header field 'shape' = {list(shape)}: {dtype} frames of sensor "
+                            f"'{sensor.sensor_id}' have shape {list(expected)}")
+    crc = _field(_int, h, "task", "crc32", 0, 0xFFFFFFFF)
+    payload = memoryview(parts[2])
+    if payload.ndim != 1 or payload.itemsize != 1:
+        payload = payload.cast("B")
+    need = math.prod(shape) * np.dtype(dtype).itemsize
+    if payload.nbytes != need:
+        raise ProtocolError(f"task payload is {payload.nbytes} bytes; shape {list(shape)} of {dtype} needs {need}")
+    actual = zlib.crc32(payload)  # CRC-32 of zlib (ISO 3309 / ITU-T V.42), as in the adc message
+    if actual != crc:
+        raise ProtocolError(f"task header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
+    data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
+    return Task(task_id, seq, run, ts, received, want_map, data, dtype == raw_dtype)
+
+
+@dataclass
+class Result:
+    """A worker's answer to one task, decoded and checked by serve."""
+
+    worker: str
+    task_id: int
+    seq: int
+    records: np.ndarray  # RECORD_DTYPE, read-only view on the message
+    error: str | None
+    stage_ms: dict
+    process_s: float
+    rdmap: tuple | None  # (values_db float32 [r, d], range_start_m, range_step_m, velocity_start_mps, ..._step_mps)
+
+
+RDMAP_AXES = ("range_start_m", "range_step_m", "velocity_start_mps", "velocity_step_mps")
+
+
+def encode_result(worker: str, session: str, task_id: int, seq: int, records: np.ndarray | None,
+                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None) -> list:
+    recs = records if records is not None else np.empty(0, RECORD_DTYPE)
+    fields = {"worker": worker, "session": session, "task_id": int(task_id), "seq": int(seq),
+              "count": int(recs.shape[0]), "error": None if error is None else str(error)[:MAX_ERROR_CHARS],
+              "stage_ms": {k: float(v) for k, v in stage_ms.items()}, "process_s": float(process_s),
+              "rdmap": None}
+    map_payload: Any = b""
+    if rdmap is not None:
+        values = np.ascontiguousarray(rdmap[0], "<f4")
+        fields["rdmap"] = {"shape": [int(values.shape[0]), int(values.shape[1])],
+                           **{k: float(v) for k, v in zip(RDMAP_AXES, rdmap[1:])}}
+        map_payload = memoryview(values.reshape(-1).view(np.uint8))
+    rec_payload = memoryview(np.ascontiguousarray(recs).view(np.uint8)) if recs.size else b""
+    return [b"result", _pack(fields), rec_payload, map_payload]
+
+
+def decode_result(parts: list) -> tuple[str, str, Result]:
+    """(worker key, session, result), every field checked; records must carry the task's seq."""
+    _parts(parts, 4, 4, "result")
+    if bytes(parts[0]) != b"result":
+        raise ProtocolError(f"message kind {bytes(parts[0])[:16]!r} on the results socket; expected b'result'")
+    h = _unpack(parts[1], "result")
+    worker = _key_str(h, "result", "worker")
+    session = _key_str(h, "result", "session")
+    task_id = _field(_int, h, "result", "task_id")
+    seq = _field(_int, h, "result", "seq")
+    count = _field(_int, h, "result", "count", 0, 1 << 24)
+    process_s = _field(_float, h, "result", "process_s", 0.0)
+    error = h.get("error")
+    if error is not None and (not isinstance(error, str) or len(error) > MAX_ERROR_CHARS):
+        raise ProtocolError(f"result header field 'error' = {error!r:.80}: must be nil or a string of at most "
+                            f"{MAX_ERROR_CHARS} characters")
+    stage = h.get("stage_ms")
+    if (not isinstance(stage, dict) or len(stage) > 32
+            or any(not isinstance(k, str) or len(k) > 32 for k in stage)
+            or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
+                   for v in stage.values())):
+        raise ProtocolError(f"result header field 'stage_ms' = {stage!r:.80}: must map stage names to finite "
+                            "numbers")
+    rec_view = memoryview(parts[2])
+    if rec_view.nbytes != count * RECORD_DTYPE.itemsize:
+        raise ProtocolError(f"result payload is {rec_view.nbytes} bytes; count {count} x "
+                            f"{RECORD_DTYPE.itemsize}-byte records needs {count * RECORD_DTYPE.itemsize}")
+    records = np.frombuffer(rec_view, RECORD_DTYPE) if count else np.empty(0, RECORD_DTYPE)
+    if count and not (records["frame"] == seq).all():
+        raise ProtocolError(f"result records carry frame numbers other than the task's seq {seq}")
+    rd = h.get("rdmap")
+    rdmap = None
+    map_view = memoryview(parts[3])
+    if rd is not None:
+        if not isinstance(rd, dict):
+            raise ProtocolError(f"result header field 'rdmap' = {rd!r:.80}: must be nil or a map")
+        shape = _field(_shape, rd, "result rdmap", 2, 2)
+        if not (0 < shape[0] <= RDMAP_MAX_RANGE_CELLS and 0 < shape[1] <= RDMAP_MAX_DOPPLER_CELLS):
+            raise ProtocolError(f"result rdmap shape {list(shape)}: at most {RDMAP_MAX_RANGE_CELLS} x "
+                                f"{RDMAP_MAX_DOPPLER_CELLS} cells")
+        axes = [_field(_float, rd, "result rdmap", k) for k in RDMAP_AXES]
+        if map_view.nbytes != shape[0] * shape[1] * 4:
+            raise ProtocolError(f"result rdmap payload is {map_view.nbytes} bytes; shape {list(shape)} of <f4 "
+                                f"needs {shape[0] * shape[1] * 4}")
+        rdmap = (np.frombuffer(map_view, "<f4").reshape(shape), *axes)
+    elif map_view.nbytes:
+        raise ProtocolError("result without rdmap has a map payload; it must be empty")
+    return worker, session, Result(worker, task_id, seq, records, error, {k: float(v) for k, v in stage.items()},
+                                   process_s, rdmap)
+
+
+# ---- the chain in a worker ------------------------------------------------------------------------
+
+def warm_up_pipeline(pipeline) -> None:
+    """Run every compiled path a worker uses once: canonical frames (zeros, then a tone in noise so the
+    per-detection stages run) and the sensor's ADC format from a read-only buffer, as a received
+    message delivers it (numba compiles read-only arrays separately). Run by serve before it starts
+    workers, so that the numba cache is filled once and the workers only load it."""
+    p = pipeline
+    p.process(np.zeros(p.frame_shape, np.complex64))
+    rng = np.random.default_rng(0)
+    noise = rng.standard_normal(p.frame_shape) + 1j * rng.standard_normal(p.frame_shape)
+    tone = 50.0 * np.exp(2j * np.pi * 0.23 * np.arange(p.frame_shape[2]))
+    p.process((noise + tone).astype(np.complex64))
+    s = p.sensor
+    raw_dtype = s.adc.raw_dtype()
+    raw_shape = s.adc.raw_shape(*p.frame_shape)
+    raw = np.frombuffer(bytes(int(np.prod(raw_shape)) * raw_dtype.itemsize), raw_dtype).reshape(raw_shape)
+    p.process_raw(raw)
+
+
+def compute(pipeline, task: Task, canon: np.ndarray) -> tuple[np.ndarray, tuple | None]:
+    """Records of one task (exactly those serve computes in-process) and, when asked, the pooled map."""
+    from .files import to_canonical
+    from .service import pool_rdmap
+    if task.raw:
+        points = pipeline.process_raw(task.data)
+    else:
+        points = pipeline.process(to_canonical(pipeline.sensor, task.data, canon))
+    records = to_records(points, task.seq, task.timestamp_s)
+    rdmap = None
+    if task.want_rdmap:
+        bin_v = pipeline.doppler_fft.bin_hz * pipeline.sensor.wavelength_m / 2.0
+        rdmap = pool_rdmap(pipeline.detection_map, pipeline.range_fft.bin_m, bin_v)
+    return records, rdmap
+
+
+# ---- the worker ----------------------------------------------------------------------------------
+
+class Worker:
+    """`cubecast worker`: connects to serve's tasks (DEALER) and results (PUSH) endpoints, introduces
+    itself, is told the configuration, processes tasks until stopped. Worker(...).run(stop_event)."""
+
+    def __init__(self, tasks_endpoint: str, results_endpoint: str, *, sensor: Sensor | None = None,
+                 name: str | None = None, capacity: int = DEFAULT_CAPACITY, heartbeat_s: float = HEARTBEAT_S,
+                 log: Callable[[str], None] | None = None, quiet: bool = False,
+                 context: zmq.Context | None = None):
+        if isinstance(capacity, bool) or not isinstance(capacity, int) or not 1 <= capacity <= MAX_CAPACITY:
+            raise CubecastError(f"--capacity {capacity!r}: must be a whole number in 1..{MAX_CAPACITY}")
+        self.name = name or f"{socket.gethostname()}-{os.getpid()}"
+        if not 0 < len(self.name) <= MAX_NAME_CHARS:
+            raise CubecastError(f"--name {self.name!r}: must be 1..{MAX_NAME_CHARS} characters")
+        self.tasks_endpoint, self.results_endpoint = tasks_endpoint, results_endpoint
+        self.expect = sensor
+        self.capacity = capacity
+        self.heartbeat_s = heartbeat_s
+        self.key = "w" + secrets.token_hex(8)
+        self.write = log or _stderr_line
+        self.quiet = quiet
+        self.context = context
+        self.ready = threading.Event()
+        self.session: str | None = None
+        self.config: WorkerConfig | None = None
+        self.pipeline = None
+        self.tasks_done = 0
+        self.tasks_failed = 0
+        self.tasks_ignored = 0  # tasks of another session (a serve that has gone)
+        self.welcomes = 0
+
+    def _say(self, text: str) -> None:
+        if not self.quiet:
+            self.write(f"cubecast worker {self.name}: {text}")
+
+    def _send(self, sock: zmq.Socket, parts: list) -> bool:
+        try:
+            sock.send_multipart(parts, flags=zmq.NOBLOCK, copy=False)
+            return True
+        except zmq.Again:  # not connected (IMMEDIATE) or serve does not keep up: retried or dropped
+            return False
+
+    def _hello(self, dealer: zmq.Socket) -> bool:
+        return self._send(dealer, [b"hello", _pack({
+            "worker": self.key, "name": self.name, "pid": os.getpid(), "host": socket.gethostname()[:255],
+            "capacity": self.capacity, "expect_digest": self.expect.digest if self.expect else None})])
+
+    def _welcome(self, dealer: zmq.Socket, parts: list) -> None:
+        session, config = decode_welcome(parts, self.expect.digest if self.expect else None)
+        self.welcomes += 1
+        t0 = time.perf_counter()
+        if not config.same_as(self.config):
+            from .chain.pipeline import Pipeline
+            self.pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m)
+            self._canon = np.empty(self.pipeline.frame_shape, np.complex64)
+            warm_up_pipeline(self.pipeline)
+            self.config = config
+        warm = time.perf_counter() - t0
+        self.session = session
+        self._send(dealer, [b"ready", _pack({"worker": self.key, "session": session,
+                                             "digest": config.sensor.digest, "warm_up_s": warm})])
+        self.ready.set()
+        self._say(f"ready: sensor '{config.sensor.sensor_id}' (digest {config.sensor.digest}), session {session}, "
+                  f"warm-up {warm:.2f} s")
+
+    def _task(self, push: zmq.Socket, parts: list) -> None:
+        t0 = time.perf_counter()
+        task_id = seq = None
+        try:
+            try:
+                h = _unpack(parts[1], "task") if len(parts) > 1 else {}
+                if h.get("session") != self.session:
+                    self.tasks_ignored += 1  # a task of another serve session: nobody waits for it
+                    return
+                task_id, seq = h.get("task_id"), h.get("seq")
+            except ProtocolError:
+                pass
+            task = decode_task(parts, self.config.sensor, self.session)
+            records, rdmap = compute(self.pipeline, task, self._canon)
+            error = None
+            self.tasks_done += 1
+        except CubecastError as exc:
+            records, rdmap, error = None, None, str(exc)
+            self.tasks_failed += 1
+        except Exception as exc:  # one bad frame must not stop the worker
+            records, rdmap, error = None, None, f"{type(exc).__name__}: {exc}"
+            self.tasks_failed += 1
+        if error is not None:
+            self._say(f"task failed: {error}")
+            if not (isinstance(task_id, int) and isinstance(seq, int)) or isinstance(task_id, bool):
+                return  # nothing to answer to; serve counts it lost after its timeout
+        stage = dict(self.pipeline.stage_ms) if error is None else {}
+        self._send(push, encode_result(self.key, self.session, task_id, seq, records, error, stage,
+                                       time.perf_counter() - t0, rdmap))
+
+    def run(self, stop: threading.Event | None = None) -> int:
+        """Serve tasks until `stop` is set; returns the number of tasks processed. Raises CubecastError
+        when serve refuses this worker."""
+        from .service import connect_socket
+        stop = stop or threading.Event()
+        ctx = self.context or zmq.Context()
+        dealer = ctx.socket(zmq.DEALER)
+        push = ctx.socket(zmq.PUSH)
+        try:
+            dealer.setsockopt(zmq.ROUTING_ID, self.key.encode())
+            dealer.setsockopt(zmq.LINGER, 0)
+            dealer.setsockopt(zmq.IMMEDIATE, 1)  # a hello is sent only over a live connection (else retried)
+            dealer.setsockopt(zmq.RCVHWM, 4 * MAX_CAPACITY)
+            push.setsockopt(zmq.LINGER, 500)
+            push.setsockopt(zmq.IMMEDIATE, 1)
+            push.setsockopt(zmq.SNDHWM, 4 * MAX_CAPACITY)
+            for sock in (dealer, push):  # ZMTP heartbeats: a dead peer's connection is noticed and redialled
+                sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
+                sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
+            connect_socket(dealer, self.tasks_endpoint, "--connect")
+            connect_socket(push, self.results_endpoint, "--results")
+            self._say(f"connecting to tasks {self.tasks_endpoint}, results {self.results_endpoint}")
+            last_hello = -math.inf
+            last_sent = time.monotonic()
+            while not stop.is_set():
+                now = time.monotonic()
+                if self.session is None and now - last_hello >= HELLO_RETRY_S:
+                    if self._hello(dealer):
+                        last_hello = now
+                        last_sent = now
+                if self.session is not None and now - last_sent >= self.heartbeat_s:
+                    if self._send(dealer, [b"beat", _pack({"worker": self.key, "session": self.session})]):
+                        last_sent = now
+                if not dealer.poll(int(self.heartbeat_s * 1000) if self.session else 100, zmq.POLLIN):
+                    continue
+                for _ in range(4 * MAX_CAPACITY):
+                    try:
+                        parts = dealer.recv_multipart(zmq.NOBLOCK, copy=False)
+                    except zmq.Again:
+                        break
+                    kind = parts[0].bytes
+                    if kind == b"task":
+                        if self.session is not None:
+                            self._task(push, parts)
+                            last_sent = time.monotonic()  # a result also tells serve we are alive
+                        else:
+                            self.tasks_ignored += 1
+                    elif kind == b"welcome":
+                        self._welcome(dealer, parts)
+                        last_sent = time.monotonic()
+                    elif kind == b"who":
+                        self._say("serve asks this worker to introduce itself again (serve restarted, or "
+                                  "it thought this worker was gone)")
+                        self.session = None
+                        self.ready.clear()
+                        last_hello = -math.inf
+                    elif kind == b"refuse":
+                        h = _unpack(parts[1], "refuse") if len(parts) > 1 else {}
+                        msg = h.get("message") if isinstance(h.get("message"), str) else "no reason given"
+                        raise CubecastError(f"serve at {self.tasks_endpoint} refused this worker: {msg[:500]}")
+                    # anything else is ignored: a newer serve may send kinds this worker does not know
+                    if stop.is_set():
+                        break
+        finally:
+            with_bye = self.session is not None
+            if with_bye:
+                self._send(dealer, [b"bye", _pack({"worker": self.key})])
+                dealer.setsockopt(zmq.LINGER, 200)
+            dealer.close()
+            push.close(linger=200)
+            if self.context is None:
+                ctx.term()
+        return self.tasks_done
+
+
+def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | None = None,
+               name: str | None = None, capacity: int = DEFAULT_CAPACITY, quiet: bool = False) -> int:
+    """`cubecast worker`: run until SIGINT/SIGTERM; exit code 0 (2 with an error when refused)."""
+    from .service import stop_on_signals
+    sensor = None
+    if sensor_path is not None:
+        from .sensor import load_sensor
+        sensor = load_sensor(sensor_path)
+    stop = threading.Event()
+    with stop_on_signals(stop):
+        w = Worker(tasks_endpoint, results_endpoint, sensor=sensor, name=name, capacity=capacity, quiet=quiet)
+        done = w.run(stop)
+    if not quiet:
+        _stderr_line(f"cubecast worker {w.name}: stopped: {done} tasks processed, {w.tasks_failed} failed")
+    return 0
+
+
+# ---- the serve side ------------------------------------------------------------------------------
+
+SENT, DONE, LOST = 0, 1, 2
+
+
+@dataclass
+class Pending:
+    """One frame handed to a worker, until it is published or lost."""
+
+    task_id: int
+    seq: int
+    run: str
+    timestamp_s: float
+    t_recv: float
+    worker: bytes
+    t_dispatch: float
+    want_rdmap: bool
+    state: int = SENT
+    result: Result | None = None
+
+
+@dataclass
+class WorkerInfo:
+    key: bytes
+    name: str
+    pid: int
+    host: str
+    capacity: int
+    local_slot: int | None
+    state: str = "welcomed"  # welcomed -> ready -> gone
+    outstanding: set = field(default_factory=set)
+    tasks_done: int = 0
+    tasks_lost: int = 0
+    last_heard: float = 0.0
+    last_dispatch: float = 0.0
+    fd: int | None = None
+    gone_at: float = 0.0
+    gone_reason: str = ""
+
+    @property
+    def alive(self) -> bool:
+        return self.state == "ready"
+
+
+@dataclass
+class LocalSlot:
+    index: int
+    proc: subprocess.Popen | None = None
+    restarts: int = 0
+    restart_at: float = 0.0
+    delay_s: float = RESTART_DELAY_S[0]
+    started: float = 0.0
+
+
+def _die_with_parent() -> None:
+    """In a local worker, before exec: Linux sends it SIGTERM when serve dies (no orphans)."""
+    try:
+        import ctypes
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1
+    except Exception:
+        pass
+
+
+def local_endpoint(endpoint: str) -> str:
+    """Where a process on this host connects to reach a bound endpoint (wildcard hosts -> loopback)."""
+    for wild, loop in (("tcp://0.0.0.0:", "tcp://127.0.0.1:"), ("tcp://*:", "tcp://127.0.0.1:"),
+                       ("tcp://[::]:", "tcp://[::1]:")):
+        if endpoint.startswith(wild):
+            return loop + endpoint[len(wild):]
+    return endpoint
+
+
+class WorkerPool:
+    """serve's end: binds the tasks ROUTER and results PULL, starts and watches local workers, hands
+    frames to workers with free capacity, collects results and returns them in task order.
+
+    Single-threaded: used by serve's processing thread only; `rows` (a snapshot list of per-worker
+    dicts) and the counters may be read from other threads."""
+
+    def __init__(self, config: WorkerConfig, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
+                 task_timeout_s: float = DEFAULT_TASK_TIMEOUT_S, reorder_window: int = DEFAULT_REORDER_WINDOW,
+                 restart_local: bool = True, log: Callable[[str], None] | None = None, quiet: bool = False,
+                 worker_quiet: bool = True):
+        if isinstance(local_workers, bool) or not isinstance(local_workers, int) or not 0 <= local_workers <= 256:
+            raise CubecastError(f"--workers {local_workers!r}: must be a whole number in 0..256")
+        if not (task_timeout_s > 0 and math.isfinite(task_timeout_s)):
+            raise CubecastError(f"--task-timeout {task_timeout_s!r}: must be a number of seconds > 0")
+        self.config = config
+        self.tasks_endpoint_requested = tasks_endpoint
+        self.results_endpoint_requested = results_endpoint
+        self.tasks_endpoint: str | None = None
+        self.results_endpoint: str | None = None
+        self.task_timeout_s = float(task_timeout_s)
+        self.worker_timeout_s = float(task_timeout_s)  # silence (no beat, no result) that counts as gone
+        self.reorder_window = max(1, int(reorder_window))
+        self.restart_local = restart_local
+        self.session = secrets.token_hex(8)
+        self.write = log or _stderr_line
+        self.quiet = quiet
+        self.worker_quiet = worker_quiet
+        self.slots = [LocalSlot(i) for i in range(local_workers)]
+        self.workers: dict[bytes, WorkerInfo] = {}
+        self.pending: collections.OrderedDict[int, Pending] = collections.OrderedDict()
+        self.next_task_id = 0
+        self.router = self.pull = self.monitor = None
+        self.wake: zmq.Socket | None = None
+        self.poller = zmq.Poller()
+        self.rows: list[dict] = []
+        self.results_discarded = 0  # results of lost tasks, of another session or of unknown workers
+        self.results_invalid = 0
+        self.workers_refused = 0
+        self.messages_invalid = 0
+        self._newly_lost: list[Pending] = []
+        self._fd_to_key: dict[int, bytes] = {}
+        self._dirty = True
+        self._welcome_parts = encode_welcome(self.session, config)
+
+    # ---- set-up and tear-down --------------------------------------------------------------
+    def bind(self, ctx: zmq.Context, wake: zmq.Socket | None = None) -> None:
+        from .service import bind_socket
+        self.router = ctx.socket(zmq.ROUTER)
+        self.router.setsockopt(zmq.LINGER, 0)
+        self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)  # sending to a vanished worker raises, never drops
+        self.router.setsockopt(zmq.ROUTER_HANDOVER, 1)  # a reconnecting worker takes its address back
+        self.router.setsockopt(zmq.MAXMSGSIZE, MAX_CONTROL_BYTES + 4096)
+        self.router.setsockopt(zmq.SNDHWM, 4 * MAX_CAPACITY)
+        self.pull = ctx.socket(zmq.PULL)
+        self.pull.setsockopt(zmq.LINGER, 0)
+        s = self.config.settings
+        max_records = s.max_points * s.angle_max_peaks * RECORD_DTYPE.itemsize
+        self.pull.setsockopt(zmq.MAXMSGSIZE, 4 * max_records + (2 << 20))
+        for sock in (self.router, self.pull):
+            sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
+            sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
+        try:
+            # disconnects tell which worker died at once (by the connection's file descriptor)
+            self.monitor = self.router.get_monitor_socket(zmq.EVENT_DISCONNECTED)
+        except zmq.ZMQError:
+            self.monitor = None
+        self.tasks_endpoint = bind_socket(self.router, self.tasks_endpoint_requested, "--tasks")
+        self.results_endpoint = bind_socket(self.pull, self.results_endpoint_requested, "--results")
+        self.poller.register(self.router, zmq.POLLIN)
+        self.poller.register(self.pull, zmq.POLLIN)
+        if self.monitor is not None:
+            self.poller.register(self.monitor, zmq.POLLIN)
+        if wake is not None:
+            self.wake = wake
+            self.poller.register(wake, zmq.POLLIN)
+
+    def start_local(self) -> None:
+        for slot in self.slots:
+            self._spawn(slot)
+
+    def _spawn(self, slot: LocalSlot) -> None:
+        cmd = [sys.executable, "-m", "daemon.cli", "worker", "--connect", local_endpoint(self.tasks_endpoint),
+               "--results", local_endpoint(self.results_endpoint), "--name", f"local-{slot.index}"]
+        if self.worker_quiet:
+            cmd.append("--quiet")
+        env = dict(os.environ)
+        for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
+            env.setdefault(var, "1")  # one core per worker process
+        kw = {"preexec_fn": _die_with_parent} if sys.platform.startswith("linux") else {}
+        slot.proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, env=env, **kw)
+        slot.started = time.monotonic()
+
+    def local_pids(self) -> list[int | None]:
+        return [s.proc.pid if s.proc is not None and s.proc.poll() is None else None for s in self.slots]
+
+    def wait_ready(self, count: int, timeout_s: float, stop: threading.Event) -> None:
+        """Handle handshakes until `count` local workers are ready (raises CubecastError on a timeout or
+        when a local worker exits during start-up)."""
+        deadline = time.monotonic() + timeout_s
+        while not stop.is_set():
+            ready = sum(1 for w in self.workers.values() if w.alive and w.local_slot is not None)
+            if ready >= count:
+                return
+            for slot in self.slots:
+                if slot.proc is not None and slot.proc.poll() is not None:
+                    raise CubecastError(f"local worker local-{slot.index} (pid {slot.proc.pid}) exited with code "
+                                        f"{slot.proc.returncode} during start-up")
+            if time.monotonic() > deadline:
+                raise CubecastError(f"only {ready} of {count} local workers reported ready within {timeout_s:g} s")
+            self.poll(100)
+
+    def close(self, deadline_s: float = 0.7) -> None:
+        procs = [s.proc for s in self.slots if s.proc is not None]
+        for p in procs:
+            if p.poll() is None:
+                p.terminate()
+        end = time.monotonic() + deadline_s
+        for p in procs:
+            try:
+                p.wait(max(0.01, end - time.monotonic()))
+            except subprocess.TimeoutExpired:
+                p.kill()
+                p.wait()
+        if self.monitor is not None:
+            try:
+                self.router.disable_monitor()
+            except zmq.ZMQError:
+                pass
+            self.monitor.close(linger=0)
+        for sock in (self.router, self.pull):
+            if sock is not None:
+                sock.close(linger=0)
+
+    # ---- dispatch --------------------------------------------------------------------------
+    def _pick(self) -> WorkerInfo | None:
+        best, best_key = None, None
+        for w in self.workers.values():
+            if w.alive and len(w.outstanding) < w.capacity:
+                key = (len(w.outstanding) / w.capacity, w.last_dispatch)
+                if best is None or key < best_key:
+                    best, best_key = w, key
+        return best
+
+    def can_dispatch(self) -> bool:
+        if self.pending and self.next_task_id - next(iter(self.pending)) >= self.reorder_window:
+            return False  # the oldest unanswered frame holds the window
+        return self._pick() is not None
+
+    def dispatch(self, msg, t_recv: float, want_rdmap: bool) -> bool:
+        """Hand one validated `adc` message to the least loaded worker with capacity; False when no
+        worker could take it."""
+        now = time.monotonic()
+        h = msg.header
+        received_unix = time.time() - (time.perf_counter() - t_recv)
+        while True:
+            w = self._pick()
+            if w is None:
+                return False
+            task_id = self.next_task_id
+            parts = [w.key] + encode_task(self.session, task_id, h, msg.payload, received_unix, want_rdmap)
+            try:
+                self.router.send_multipart(parts, flags=zmq.NOBLOCK, copy=False)
+            except zmq.ZMQError as exc:  # EHOSTUNREACH (gone) or EAGAIN (its pipe is full): not usable
+                self._gone(w, f"cannot send it a task ({exc.strerror})")
+                continue
+            self.next_task_id += 1
+            w.outstanding.add(task_id)
+            w.last_dispatch = now
+            self.pending[task_id] = Pending(task_id, h["seq"], h["run"], h["timestamp_s"], t_recv, w.key, now,
+                                            want_rdmap)
+            self._dirty = True
+            return True
+
+    # ---- receiving -------------------------------------------------------------------------
+    def poll(self, timeout_ms: int) -> tuple[list[Pending], list[Pending]]:
+        """Wait up to timeout_ms for messages; handle them and the timeouts. Returns (completed, lost):
+        the frames now publishable in task order (each with its result) and those newly lost."""
+        events = dict(self.poller.poll(timeout_ms))
+        if self.wake is not None and self.wake in events:
+            while True:
+                try:
+                    self.wake.recv(zmq.NOBLOCK)
+                except zmq.Again:
+                    break
+        if self.monitor is not None and self.monitor in events:
+            self._monitor_events()
+        if self.router in events:
+            for _ in range(256):
+                try:
+                    parts = self.router.recv_multipart(zmq.NOBLOCK, copy=False)
+                except zmq.Again:
+                    break
+                self._control(parts)
+        if self.pull in events:
+            for _ in range(256):
+                try:
+                    parts = self.pull.recv_multipart(zmq.NOBLOCK, copy=False)
+                except zmq.Again:
+                    break
+                self._result(parts)
+        self._maintain(time.monotonic())
+        completed = []
+        while self.pending:
+            tid, head = next(iter(self.pending.items()))
+            if head.state == SENT:
+                break
+            del self.pending[tid]
+            if head.state == DONE:
+                completed.append(head)
+        lost, self._newly_lost = self._newly_lost, []
+        if self._dirty:
+            self._refresh_rows()
+        return completed, lost
+
+    def _send_to(self, key: bytes, parts: list) -> bool:
+        try:
+            self.router.send_multipart([key] + parts, flags=zmq.NOBLOCK, copy=False)
+            return True
+        except zmq.ZMQError:
+            return False
+
+    def _monitor_events(self) -> None:
+        from zmq.utils.monitor import recv_monitor_message
+        while True:
+            try:
+                ev = recv_monitor_message(self.monitor, zmq.NOBLOCK)
+            except zmq.Again:
+                break
+            if ev["event"] == zmq.EVENT_DISCONNECTED:
+                key = self._fd_to_key.pop(int(ev["value"]), None)
+                w = self.workers.get(key) if key is not None else None
+                if w is not None and w.state != "gone":
+                    self._gone(w, "its connection closed")
+
+    def _control(self, parts: list) -> None:
+        if len(parts) < 3:
+            self.messages_invalid += 1
+            return
+        key, kind = parts[0].bytes, parts[1].bytes
+        now = time.monotonic()
+        try:
+            fd = parts[1].get(zmq.SRCFD)
+        except (zmq.ZMQError, AttributeError, ValueError):
+            fd = None
+        try:
+            h = _unpack(parts[2], kind.decode("ascii", "replace")[:16] or "control")
+            if h.get("worker") != key.decode("ascii", "replace"):
+                raise ProtocolError(f"header field 'worker' = {h.get('worker')!r:.40} differs from the sender's "
+                                    "address")
+            if kind == b"hello":
+                self._hello(key, h, fd, now)
+                return
+            w = self.workers.get(key)
+            if w is None or w.state == "gone":
+                if kind != b"bye":
+                    self._send_to(key, [b"who", _pack({"session": self.session})])
+                return
+            if fd is not None:
+                w.fd = fd
+                self._fd_to_key[fd] = key
+            w.last_heard = now
+            if kind == b"ready":
+                if h.get("session") != self.session or h.get("digest") != self.config.sensor.digest:
+                    raise ProtocolError(f"ready for session {h.get('session')!r:.40} digest "
+                                        f"{h.get('digest')!r:.40}")
+                if w.state != "ready":
+                    w.state = "ready"
+                    self._dirty = True
+                    if not self.quiet:
+                        where = "local" if w.local_slot is not None else f"on {w.host}"
+                        self.write(f"cubecast serve: worker '{w.name}' ({where}, pid {w.pid}) ready, capacity "
+                                   f"{w.capacity}")
+            elif kind == b"beat":
+                if h.get("session") != self.session:
+                    self._send_to(key, [b"who", _pack({"session": self.session})])
+            elif kind == b"bye":
+                self._gone(w, "it stopped")
+        except ProtocolError as exc:
+            self.messages_invalid += 1
+            self.write(f"cubecast serve: ignored a message from worker address {key[:20]!r}: {exc}")
+
+    def _hello(self, key: bytes, h: dict, fd: int | None, now: float) -> None:
+        name = _key_str(h, "hello", "name")
+        pid = _field(_int, h, "hello", "pid", 0, 1 << 32)
+        host = _field(_str, h, "hello", "host", 255, 0)
+        capacity = min(_field(_int, h, "hello", "capacity", 1, 1 << 16), MAX_CAPACITY)
+        expect = _optional_digest(h, "hello", "expect_digest")
+        s = self.config.sensor
+        if expect is not None and expect != s.digest:
+            self.workers_refused += 1
+            text = (f"serve processes sensor '{s.sensor_id}' with digest {s.digest}; worker '{name}' was started "
+                    f"with a sensor description of digest {expect}")
+            self._send_to(key, [b"refuse", _pack({"reason": "digest", "message": text})])
+            self.write(f"cubecast serve: refused worker '{name}' (pid {pid} on {host}): {text}")
+            return
+        old = self.workers.get(key)
+        if old is not None and old.state != "gone":
+            if old.state == "welcomed":  # a repeated hello while it warms up: answer again
+                self._send_to(key, self._welcome_parts)
+                return
+            self._gone(old, "it introduced itself again")
+        slot = next((sl.index for sl in self.slots if sl.proc is not None and sl.proc.pid == pid
+                     and host == socket.gethostname()[:255]), None)
+        w = WorkerInfo(key, name, pid, host, capacity, slot, last_heard=now, fd=fd)
+        if old is not None:
+            w.tasks_done, w.tasks_lost = old.tasks_done, old.tasks_lost
+        self.workers[key] = w
+        if fd is not None:
+            self._fd_to_key[fd] = key
+        self._dirty = True
+        if not self._send_to(key, self._welcome_parts):
+            self._gone(w, "cannot send it the welcome")
+
+    def _result(self, parts: list) -> None:
+        try:
+            worker, session, res = decode_result(parts)
+        except ProtocolError as exc:
+            self.results_invalid += 1
+            self.write(f"cubecast serve: ignored a worker result: {exc}")
+            return
+        key = worker.encode()
+        w = self.workers.get(key)
+        entry = self.pending.get(res.task_id)
+        if session != self.session or w is None or entry is None or entry.state != SENT or entry.worker != key:
+            self.results_discarded += 1  # late (the task was counted lost) or from another serve session
+            return
+        if res.seq != entry.seq:
+            self.results_invalid += 1
+            self.write(f"cubecast serve: worker '{w.name}' answered task {res.task_id} with seq {res.seq}; the task "
+                       f"was frame {entry.seq}; counted as lost")
+            self._lose(entry)
+            return
+        w.last_heard = time.monotonic()
+        w.outstanding.discard(res.task_id)
+        w.tasks_done += 1
+        entry.state, entry.result = DONE, res
+        self._dirty = True
+
+    # ---- failures ----------------------------------------------------------------------------
+    def _lose(self, entry: Pending) -> None:
+        if entry.state != SENT:
+            return
+        entry.state = LOST
+        self._newly_lost.append(entry)
+        w = self.workers.get(entry.worker)
+        if w is not None:
+            w.outstanding.discard(entry.task_id)
+            w.tasks_lost += 1
+        self._dirty = True
+
+    def _gone(self, w: WorkerInfo, reason: str) -> None:
+        if w.state == "gone":
+            return
+        held = sorted(w.outstanding)
+        w.state, w.gone_at, w.gone_reason = "gone", time.monotonic(), reason
+        for tid in held:
+            entry = self.pending.get(tid)
+            if entry is not None:
+                self._lose(entry)
+        w.outstanding.clear()
+        if w.fd is not None and self._fd_to_key.get(w.fd) == w.key:
+            del self._fd_to_key[w.fd]
+        self._dirty = True
+        self.write(f"cubecast serve: worker '{w.name}' (pid {w.pid} on {w.host}) is gone: {reason}; "
+                   f"{len(held)} frame(s) it held counted as lost")
+
+    def _maintain(self, now: float) -> None:
+        for slot in self.slots:
+            p = slot.proc
+            if p is not None and p.poll() is not None:
+                for w in self.workers.values():
+                    if w.local_slot == slot.index and w.pid == p.pid and w.state != "gone":
+                        self._gone(w, f"its process exited with code {p.returncode}")
+                slot.proc = None
+                if self.restart_local:
+                    if now - slot.started > 60.0:
+                        slot.delay_s = RESTART_DELAY_S[0]  # it ran a good while: not a crash loop
+                    slot.restart_at = now + slot.delay_s
+                    slot.delay_s = min(2 * slot.delay_s, RESTART_DELAY_S[1])
+            elif p is None and self.restart_local and now >= slot.restart_at:
+                slot.restarts += 1
+                self._spawn(slot)
+                self.write(f"cubecast serve: restarting local worker local-{slot.index} (restart {slot.restarts})")
+        for w in list(self.workers.values()):
+            if w.state == "ready" and now - w.last_heard > self.worker_timeout_s:
+                self._gone(w, f"silent for more than {self.worker_timeout_s:g} s")
+            elif w.state == "gone" and now - w.gone_at > 300.0:
+                del self.workers[w.key]  # forget long-gone workers
+                self._dirty = True
+        for entry in self.pending.values():  # dispatch order: the oldest first
+            if entry.state == SENT:
+                if now - entry.t_dispatch <= self.task_timeout_s:
+                    break
+                w = self.workers.get(entry.worker)
+                self._lose(entry)
+                if w is not None:
+                    self.write(f"cubecast serve: worker '{w.name}' did not answer frame {entry.seq} within "
+                               f"{self.task_timeout_s:g} s; counted as lost")
+
+    # ---- reporting -----------------------------------------------------------------------------
+    def _refresh_rows(self) -> None:
+        self.rows = [{"name": w.name, "pid": w.pid, "host": w.host, "local": w.local_slot is not None,
+                      "alive": w.alive, "tasks_done": w.tasks_done, "tasks_lost": w.tasks_lost,
+                      "outstanding": len(w.outstanding), "capacity": w.capacity}
+                     for w in list(self.workers.values())[:128]]
+        self._dirty = False
+
+    def counters(self) -> dict:
+        return {"workers_alive": sum(1 for r in self.rows if r["alive"]), "workers_refused": self.workers_refused,
+                "worker_results_discarded": self.results_discarded, "worker_results_invalid": self.results_invalid,
+                "worker_messages_invalid": self.messages_invalid}
