@@ -89,7 +89,7 @@ def _serve(args) -> int:
 def _worker(args) -> int:
     from .workers import run_worker
     return run_worker(args.connect, args.results, sensor_path=args.sensor, name=args.name,
-                      capacity=args.capacity, quiet=args.quiet)
+                      capacity=args.capacity, quiet=args.quiet, check_crc=not args.skip_crc)
 
 
 def _replay(args) -> int:
@@ -186,6 +186,8 @@ def build_parser() -> argparse.ArgumentParser:
     wk.add_argument("--name", help="name shown in serve's health (default HOST-PID)")
     wk.add_argument("--capacity", type=int, default=2, metavar="N",
                     help="frames this worker may hold at once, one processed and the rest waiting (default 2)")
+    wk.add_argument("--skip-crc", action="store_true",
+                    help="do not re-check each frame's CRC-32 (serve checked it on receipt); for a trusted link")
     wk.add_argument("--quiet", action="store_true", help="no start/stop lines (errors are still printed)")
     wk.set_defaults(func=_worker)
 

@@ -7,7 +7,12 @@ hosts) and re-sequences their point clouds in frame order before publishing them
     serve BINDs  a PULL   on the results endpoint  <-  each worker CONNECTs a PUSH
 
 Workers connect to serve (never the reverse), so a worker on another host needs nothing but the two
-endpoints: `cubecast worker --connect tcp://SERVE:5603 --results tcp://SERVE:5604`. The ROUTER gives
+endpoints, and workers can come and go while serve runs:
+
+    cubecast serve --sensor S.toml --tasks tcp://0.0.0.0:5603 --results tcp://0.0.0.0:5604 [--workers N]
+    cubecast worker --connect tcp://SERVE:5603 --results tcp://SERVE:5604 [--sensor S.toml]
+
+`--workers N` alone binds both on free loopback ports and starts N local workers. The ROUTER gives
 serve a per-worker address, so frames go only to workers with free capacity (credit-based: a worker
 announces how many tasks it may hold, 2 by default: one being processed, one waiting); a plain PUSH
 would deal tasks round robin, blindly, and stall on a dead worker's pipe.
@@ -35,7 +40,8 @@ worker computes exactly what serve would. A worker started with `--sensor` state
 digest in its hello; serve refuses a mismatch and the worker exits with an error naming both. The
 worker builds its Pipeline, warms it up and sends `ready`; only then does serve count its capacity.
 A task carries the ADC payload exactly as received from the source (zero-copy), the worker checks
-its digest, dtype, shape, length and CRC-32 before processing.
+its digest, dtype, shape, length and CRC-32 before processing (local workers, over loopback, skip
+the CRC: serve checked it on receipt, and for a large frame it costs a quarter of the chain's time).
 
 Re-sequencing: serve numbers tasks in dispatch order (which is arrival order) and publishes results
 strictly in that order from a bounded reorder window. A task whose worker died (its local process
@@ -45,7 +51,13 @@ later is discarded. serve restarts local workers that die.
 
 Counters (health): frames_received == frames_processed + frames_dropped + frames_rejected +
 frames_lost_worker + queue_depth + in_progress + in_flight, where in_flight counts frames handed to
-workers and not yet published or lost.
+workers and not yet published or lost (both fields are in every health message, 0 without workers).
+With workers, health also carries `workers` (one map per worker: name, pid, host, local, alive,
+tasks_done, tasks_lost, outstanding, capacity; at most 128), `workers_alive`, `workers_refused` and
+`worker_results_discarded`.
+
+There is no authentication: whoever reaches the tasks endpoint can join as a worker (and receives
+ADC frames). Bind it to a trusted network only.
 """
 
 from __future__ import annotations
@@ -293,8 +305,9 @@ def encode_task(session: str, task_id: int, header: dict, payload: memoryview, r
         "crc32": header["crc32"], "rdmap": bool(want_rdmap)}), payload]
 
 
-def decode_task(parts: list, sensor: Sensor, session: str) -> Task:
-    """Validate a task against the worker's sensor: session, digest, dtype, shape, length, CRC-32."""
+def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = True) -> Task:
+    """Validate a task against the worker's sensor: session, digest, dtype, shape, length and (unless
+    check_crc is False) CRC-32."""
     _parts(parts, 3, 3, "task")
     h = _unpack(parts[1], "task")
     if h.get("session") != session:
@@ -328,7 +341,7 @@ def decode_task(parts: list, sensor: Sensor, session: str) -> Task:
     need = math.prod(shape) * np.dtype(dtype).itemsize
     if payload.nbytes != need:
         raise ProtocolError(f"task payload is {payload.nbytes} bytes; shape {list(shape)} of {dtype} needs {need}")
-    actual = zlib.crc32(payload)  # CRC-32 of zlib (ISO 3309 / ITU-T V.42), as in the adc message
+    actual = zlib.crc32(payload) if check_crc else crc  # CRC-32 of zlib (ISO 3309 / ITU-T V.42)
     if actual != crc:
         raise ProtocolError(f"task header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
     data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
@@ -465,7 +478,9 @@ class Worker:
     def __init__(self, tasks_endpoint: str, results_endpoint: str, *, sensor: Sensor | None = None,
                  name: str | None = None, capacity: int = DEFAULT_CAPACITY, heartbeat_s: float = HEARTBEAT_S,
                  log: Callable[[str], None] | None = None, quiet: bool = False,
-                 context: zmq.Context | None = None):
+                 context: zmq.Context | None = None, check_crc: bool = True):
+        """check_crc=False skips re-computing each frame's CRC-32 (serve checked it on receipt); serve
+        starts its local workers so, since over loopback it is ~a quarter of a large frame's time."""
         if isinstance(capacity, bool) or not isinstance(capacity, int) or not 1 <= capacity <= MAX_CAPACITY:
             raise CubecastError(f"--capacity {capacity!r}: must be a whole number in 1..{MAX_CAPACITY}")
         self.name = name or f"{socket.gethostname()}-{os.getpid()}"
@@ -475,6 +490,7 @@ class Worker:
         self.expect = sensor
         self.capacity = capacity
         self.heartbeat_s = heartbeat_s
+        self.check_crc = check_crc
         self.key = "w" + secrets.token_hex(8)
         self.write = log or _stderr_line
         self.quiet = quiet
@@ -483,6 +499,7 @@ class Worker:
         self.session: str | None = None
         self.config: WorkerConfig | None = None
         self.pipeline = None
+        self._canon: np.ndarray | None = None
         self.tasks_done = 0
         self.tasks_failed = 0
         self.tasks_ignored = 0  # tasks of another session (a serve that has gone)
@@ -534,7 +551,7 @@ class Worker:
                 task_id, seq = h.get("task_id"), h.get("seq")
             except ProtocolError:
                 pass
-            task = decode_task(parts, self.config.sensor, self.session)
+            task = decode_task(parts, self.config.sensor, self.session, self.check_crc)
             records, rdmap = compute(self.pipeline, task, self._canon)
             error = None
             self.tasks_done += 1
@@ -628,16 +645,21 @@ class Worker:
 
 
 def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | None = None,
-               name: str | None = None, capacity: int = DEFAULT_CAPACITY, quiet: bool = False) -> int:
+               name: str | None = None, capacity: int = DEFAULT_CAPACITY, quiet: bool = False,
+               check_crc: bool = True) -> int:
     """`cubecast worker`: run until SIGINT/SIGTERM; exit code 0 (2 with an error when refused)."""
     from .service import stop_on_signals
+    parent = os.environ.get(PARENT_PID_ENV)
+    if parent is not None and not _die_with_parent(parent):
+        return 0  # a local worker whose serve is already gone
     sensor = None
     if sensor_path is not None:
         from .sensor import load_sensor
         sensor = load_sensor(sensor_path)
     stop = threading.Event()
     with stop_on_signals(stop):
-        w = Worker(tasks_endpoint, results_endpoint, sensor=sensor, name=name, capacity=capacity, quiet=quiet)
+        w = Worker(tasks_endpoint, results_endpoint, sensor=sensor, name=name, capacity=capacity, quiet=quiet,
+                   check_crc=check_crc)
         done = w.run(stop)
     if not quiet:
         _stderr_line(f"cubecast worker {w.name}: stopped: {done} tasks processed, {w.tasks_failed} failed")
@@ -698,13 +720,19 @@ class LocalSlot:
     started: float = 0.0
 
 
-def _die_with_parent() -> None:
-    """In a local worker, before exec: Linux sends it SIGTERM when serve dies (no orphans)."""
-    try:
-        import ctypes
-        ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1
-    except Exception:
-        pass
+PARENT_PID_ENV = "CUBECAST_SERVE_PID"  # set by serve for its local workers
+
+
+def _die_with_parent(parent_pid: str) -> bool:
+    """In a local worker: ask Linux to send SIGTERM when serve dies (no orphans). False if serve is
+    gone already (its pid is no longer our parent)."""
+    if sys.platform.startswith("linux"):
+        try:
+            import ctypes
+            ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1
+        except Exception:
+            pass
+    return str(os.getppid()) == parent_pid
 
 
 def local_endpoint(endpoint: str) -> str:
@@ -726,7 +754,7 @@ class WorkerPool:
     def __init__(self, config: WorkerConfig, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
                  task_timeout_s: float = DEFAULT_TASK_TIMEOUT_S, reorder_window: int = DEFAULT_REORDER_WINDOW,
                  restart_local: bool = True, log: Callable[[str], None] | None = None, quiet: bool = False,
-                 worker_quiet: bool = True):
+                 worker_quiet: bool = True, local_check_crc: bool = False):
         if isinstance(local_workers, bool) or not isinstance(local_workers, int) or not 0 <= local_workers <= 256:
             raise CubecastError(f"--workers {local_workers!r}: must be a whole number in 0..256")
         if not (task_timeout_s > 0 and math.isfinite(task_timeout_s)):
@@ -744,6 +772,7 @@ class WorkerPool:
         self.write = log or _stderr_line
         self.quiet = quiet
         self.worker_quiet = worker_quiet
+        self.local_check_crc = local_check_crc
         self.slots = [LocalSlot(i) for i in range(local_workers)]
         self.workers: dict[bytes, WorkerInfo] = {}
         self.pending: collections.OrderedDict[int, Pending] = collections.OrderedDict()
@@ -760,6 +789,8 @@ class WorkerPool:
         self._fd_to_key: dict[int, bytes] = {}
         self._dirty = True
         self._welcome_parts = encode_welcome(self.session, config)
+        from .service import RateLimitedLog
+        self._ignored_log = RateLimitedLog(self.write, 5.0, "cubecast serve: ")
 
     # ---- set-up and tear-down --------------------------------------------------------------
     def bind(self, ctx: zmq.Context, wake: zmq.Socket | None = None) -> None:
@@ -800,13 +831,15 @@ class WorkerPool:
     def _spawn(self, slot: LocalSlot) -> None:
         cmd = [sys.executable, "-m", "daemon.cli", "worker", "--connect", local_endpoint(self.tasks_endpoint),
                "--results", local_endpoint(self.results_endpoint), "--name", f"local-{slot.index}"]
+        if not self.local_check_crc:
+            cmd.append("--skip-crc")
         if self.worker_quiet:
             cmd.append("--quiet")
         env = dict(os.environ)
         for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
             env.setdefault(var, "1")  # one core per worker process
-        kw = {"preexec_fn": _die_with_parent} if sys.platform.startswith("linux") else {}
-        slot.proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, env=env, **kw)
+        env[PARENT_PID_ENV] = str(os.getpid())
+        slot.proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, env=env)
         slot.started = time.monotonic()
 
     def local_pids(self) -> list[int | None]:
@@ -829,6 +862,7 @@ class WorkerPool:
             self.poll(100)
 
     def close(self, deadline_s: float = 0.7) -> None:
+        self._ignored_log.flush(force=True)
         procs = [s.proc for s in self.slots if s.proc is not None]
         for p in procs:
             if p.poll() is None:
@@ -996,7 +1030,10 @@ class WorkerPool:
                 self._gone(w, "it stopped")
         except ProtocolError as exc:
             self.messages_invalid += 1
-            self.write(f"cubecast serve: ignored a message from worker address {key[:20]!r}: {exc}")
+            if kind == b"hello":  # tell the worker why, so that it stops with that reason
+                self.workers_refused += 1
+                self._send_to(key, [b"refuse", _pack({"reason": "protocol", "message": str(exc)})])
+            self._ignored_log("ignored worker message", f"from worker address {key[:20]!r}: {exc}")
 
     def _hello(self, key: bytes, h: dict, fd: int | None, now: float) -> None:
         name = _key_str(h, "hello", "name")
@@ -1035,7 +1072,7 @@ class WorkerPool:
             worker, session, res = decode_result(parts)
         except ProtocolError as exc:
             self.results_invalid += 1
-            self.write(f"cubecast serve: ignored a worker result: {exc}")
+            self._ignored_log("ignored worker result", str(exc))
             return
         key = worker.encode()
         w = self.workers.get(key)

@@ -15,7 +15,6 @@ import subprocess
 import sys
 import threading
 import time
-import zlib
 from pathlib import Path
 
 import msgpack
@@ -100,16 +99,15 @@ def serving(sensor, sub, **kw):
         t.join(5)
         assert not t.is_alive(), "serve did not stop within 5 s"
         assert not errors, errors
-        for pid in pids:  # local workers are reaped by serve on stop
-            assert not Path(f"/proc/{pid}").exists() or "zombie" in Path(f"/proc/{pid}/status").read_text().lower() \
-                or _not_ours(pid), f"local worker {pid} still running"
+        # serve stops its local workers (killing them after 0.7 s) and reaps them
+        assert not [pid for pid in pids if _alive(pid)], "local workers still running"
 
 
-def _not_ours(pid: int) -> bool:
+def _alive(pid: int) -> bool:
     try:
-        return "daemon.cli" not in Path(f"/proc/{pid}/cmdline").read_bytes().decode(errors="replace")
+        return "zombie" not in Path(f"/proc/{pid}/status").read_text().lower()
     except OSError:
-        return True
+        return False
 
 
 def settled(svc: Service, total: int, timeout_s: float = 20.0) -> dict:
@@ -158,6 +156,8 @@ def test_task_roundtrip_and_every_check(sensor, frames):
     bad = bytearray(parts[2])
     bad[12345] ^= 0x10
     assert "'crc32'" in broken(payload=bytes(bad))
+    # a local worker (serve's loopback) skips the re-check, by request only
+    assert decode_task([parts[0], bytes(parts[1]), bytes(bad)], sensor, "S1", check_crc=False).seq == 3
     assert "bytes" in broken(payload=bytes(parts[2])[:-4])
     # msgpack ext types are refused before any field is read (wire.md: never unpickle or eval)
     with pytest.raises(ProtocolError, match="ext"):
@@ -319,6 +319,51 @@ def test_two_workers_equal_single_process_byte_for_byte(sensor, ref_points, fram
             col.close()
 
 
+def test_flood_with_workers_drops_oldest_keeps_order_and_counts_everything(sensor, frames, ref_points):
+    pub = AdcPublisher(sensor, "tcp://127.0.0.1:*", sndhwm=8)
+    try:
+        with serving(sensor, pub.endpoint, workers=2, queue_depth=2, rdmap_max_hz=0.0) as svc:
+            col = Collector(svc.pub_endpoint, prefix=b"yard-a/")
+            snapshots: list[dict] = []
+            watching = threading.Event()
+
+            def watch():  # the counters, read from another thread while frames flow
+                while not watching.is_set():
+                    snapshots.append(svc.stats())
+                    time.sleep(0.002)
+
+            watcher = threading.Thread(target=watch, daemon=True)
+            try:
+                connected(col)
+                assert pub.wait_for_subscribers(1, 10, threading.Event())
+                watcher.start()
+                seq = _send(pub, frames, 0, 400, 0.0)
+                time.sleep(0.3)
+                seq = _send(pub, frames, seq, 1)  # a last frame after a pause, so that it surely arrives
+                assert wait_until(lambda: svc.stats()["frames_processed"] > 0 and svc.stats()["in_flight"] == 0
+                                  and svc.stats()["queue_depth"] == 0, 20)
+                time.sleep(0.3)
+                watching.set()
+                watcher.join(2)
+                s = svc.stats()
+                assert s["frames_dropped"] > 0 and s["frames_rejected"] == 0 and s["frames_lost_worker"] == 0, s
+                assert s["frames_received"] - s["frames_rejected"] + s["sequence_gaps"] == seq, s
+                assert full_invariant(s)
+                assert len(snapshots) > 10 and all(full_invariant(x) for x in snapshots)
+                assert col.wait_for(lambda c: len(c.of("points")) >= s["frames_processed"], 10)
+                got = [m.seq for m in col.of("points")]
+                assert got == sorted(set(got)) and got[-1] == seq - 1
+                for m in col.of("points"):
+                    assert m.data.tobytes() == reference_bytes(ref_points, m.seq, m.timestamp_s), m.seq
+                assert col.wait_for(lambda c: c.of("health"), 3)
+                assert all(full_invariant(h.header) for h in col.of("health"))
+            finally:
+                watching.set()
+                col.close()
+    finally:
+        pub.close()
+
+
 def _send(pub, frames, seq: int, n: int, pause_s: float = 0.004) -> int:
     for _ in range(n):
         pub.send(frames[seq % 20].copy(), seq * 0.1)
@@ -463,6 +508,50 @@ def test_remote_style_worker_joins_and_processes(sensor, ref_points):
                 proc.wait()
 
 
+def _free_port() -> int:
+    import socket
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as k:
+        k.bind(("127.0.0.1", 0))
+        return k.getsockname()[1]
+
+
+def test_remote_worker_outlives_a_serve_restart(sensor, frames, ref_points):
+    tasks, results = f"tcp://127.0.0.1:{_free_port()}", f"tcp://127.0.0.1:{_free_port()}"
+    proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "worker", "--connect", tasks, "--results", results,
+                             "--name", "stays", "--quiet"], cwd=REPO, stderr=subprocess.PIPE, text=True)
+    try:
+        sessions = []
+        for _ in range(2):
+            pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
+            try:
+                with serving(sensor, pub.endpoint, tasks_endpoint=tasks, results_endpoint=results,
+                             queue_depth=64) as svc:
+                    col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
+                    try:
+                        # the second serve is new to the worker: it asks it to introduce itself again
+                        assert wait_until(lambda: svc.stats()["workers_alive"] == 1 or proc.poll() is not None, 60), \
+                            svc.stats()
+                        assert proc.poll() is None, proc.stderr.read()
+                        sessions.append(svc.pool.session)
+                        assert pub.wait_for_subscribers(1, 10, threading.Event())
+                        time.sleep(0.3)  # the collector's subscription reaches serve
+                        n = _send(pub, frames, 0, 5)
+                        settled(svc, n)
+                        assert col.wait_for(lambda c: len(c.of("points")) >= n, 10)
+                        assert [m.seq for m in col.of("points")] == list(range(n))
+                        for m in col.of("points"):
+                            assert m.data.tobytes() == reference_bytes(ref_points, m.seq, m.timestamp_s)
+                        assert svc.stats()["workers"][0]["name"] == "stays"
+                    finally:
+                        col.close()
+            finally:
+                pub.close()
+        assert len(set(sessions)) == 2
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(10) == 0
+
+
 def test_worker_with_another_sensor_is_refused(sensor, tmp_path):
     other = tmp_path / "other.toml"
     text = YARD_SENSOR.read_text()
@@ -479,6 +568,34 @@ def test_worker_with_another_sensor_is_refused(sensor, tmp_path):
         assert "refused" in out.stderr and sensor.digest in out.stderr and other_digest in out.stderr
         s = svc.stats()
         assert s["workers_refused"] == 1 and s["workers_alive"] == 0
+
+
+@pytest.mark.parametrize("how", ["sigterm", "sigkill"])
+def test_serve_cli_with_workers_leaves_no_worker_behind(how):
+    proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "serve", "--sensor", str(YARD_SENSOR), "--sub",
+                             "tcp://127.0.0.1:1", "--pub", "tcp://127.0.0.1:*", "--workers", "2"],
+                            cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    lines: list[str] = []
+    reader = threading.Thread(target=lambda: [lines.append(ln) for ln in iter(proc.stderr.readline, "")],
+                              daemon=True)
+    reader.start()
+    try:
+        assert wait_until(lambda: any("serve: ready" in ln for ln in lines) or proc.poll() is not None, 60), lines
+        assert proc.poll() is None, lines
+        assert "workers: 2 local" in "".join(lines) and sum("ready, capacity 2" in ln for ln in lines) == 2
+        kids = [int(k) for k in Path(f"/proc/{proc.pid}/task/{proc.pid}/children").read_text().split()]
+        assert len(kids) == 2
+        if how == "sigterm":
+            proc.send_signal(signal.SIGTERM)
+            assert proc.wait(5) == 0  # the workers are stopped (or killed after 0.7 s) first
+        else:
+            proc.kill()  # serve dies without a word: Linux tells its workers (parent-death signal)
+            proc.wait(5)
+        assert wait_until(lambda: not any(_alive(k) for k in kids), 5), [k for k in kids if _alive(k)]
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
 
 
 def test_serve_cli_needs_both_worker_endpoints(capsys):
