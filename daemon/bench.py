@@ -176,8 +176,91 @@ def measure(name: str, frames: int = 60, distinct: int = 4) -> dict:
     }
 
 
-def run(names: list[str], frames: int) -> dict:
-    """Each sensor in its own fresh interpreter, one after the other."""
+def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: float = 10.0,
+                   warm_s: float = 3.0) -> dict:
+    """Frames per second through `cubecast serve --workers N` (a subprocess, as a user runs it): a
+    publisher here offers pre-simulated frames (headers pre-built, so the source's own cost is left
+    out) faster than the chain can take them; serve drops the oldest when behind. The figure is the
+    point clouds published per second over a steady window after warm-up."""
+    import tempfile
+    import threading
+    import zlib
+
+    import msgpack
+    import zmq
+
+    from .demo import free_port
+    from .scene import parse_scene
+    from .sensor import parse_sensor
+    from .simulate import Simulator
+    from .wire import decode
+
+    text = sensor_toml(name)
+    sensor = parse_sensor(text, f"bench sensor {name}")
+    sim = Simulator(sensor, parse_scene(SCENE), seed=1)
+    raws = [sim.raw_frame(i) for i in range(4)]
+    crcs = [zlib.crc32(r) for r in raws]
+    with tempfile.TemporaryDirectory() as tmp:
+        sensor_path = os.path.join(tmp, f"{name}.toml")
+        with open(sensor_path, "w", encoding="utf-8") as f:
+            f.write(text)
+        p_src, p_pub = free_port(), free_port()
+        ctx = zmq.Context()
+        pub = ctx.socket(zmq.XPUB)
+        pub.setsockopt(zmq.SNDHWM, 4)
+        pub.bind(f"tcp://127.0.0.1:{p_src}")
+        cmd = [sys.executable, "-m", "daemon.cli", "serve", "--sensor", sensor_path, "--sub",
+               f"tcp://127.0.0.1:{p_src}", "--pub", f"tcp://127.0.0.1:{p_pub}", "--quiet"]
+        if workers:
+            cmd += ["--workers", str(workers)]
+        proc = subprocess.Popen(cmd)
+        sub = ctx.socket(zmq.SUB)
+        sub.setsockopt(zmq.SUBSCRIBE, b"")
+        sub.connect(f"tcp://127.0.0.1:{p_pub}")
+        stop = threading.Event()
+        try:
+            if not pub.poll(120_000):  # serve subscribes after warm-up and its workers' ready
+                raise RuntimeError("serve did not subscribe within 120 s")
+            pub.recv()
+
+            def source():
+                seq, t_next = 0, time.monotonic()
+                while not stop.is_set():
+                    j = seq % len(raws)
+                    h = msgpack.packb({"wire": 1, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": seq,
+                                       "run": "bench", "timestamp_s": seq / offered_fps, "dtype": "<i2",
+                                       "shape": list(raws[j].shape), "digest": sensor.digest, "crc32": crcs[j]})
+                    pub.send_multipart([f"{sensor.sensor_id}/adc".encode(), h,
+                                        memoryview(raws[j].reshape(-1).view(np.uint8))], copy=False)
+                    seq += 1
+                    t_next += 1.0 / offered_fps
+                    time.sleep(max(0.0, t_next - time.monotonic()))
+
+            th = threading.Thread(target=source, daemon=True)
+            th.start()
+            stamps, latencies = [], []
+            t_start = time.monotonic() + warm_s
+            t_end = t_start + seconds
+            while time.monotonic() < t_end:
+                if sub.poll(100):
+                    m = decode(sub.recv_multipart())
+                    if m.kind == "points" and time.monotonic() >= t_start:
+                        stamps.append(time.monotonic())
+                        latencies.append(m.header["latency_s"])
+        finally:
+            stop.set()
+            proc.terminate()
+            proc.wait(10)
+            sub.close(0)
+            pub.close(0)
+            ctx.term()
+    return {"workers": workers, "offered_fps": offered_fps, "frames_per_s": round(len(stamps) / seconds, 1),
+            "latency_p50_ms": round(float(np.median(latencies)) * 1e3, 1) if latencies else None}
+
+
+def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
+    """Each sensor in its own fresh interpreter, one after the other; with served_workers, the
+    `large` sensor also through `serve --workers N`."""
     rows = []
     for name in names:
         env = dict(os.environ, NUMBA_NUM_THREADS="1")
@@ -186,7 +269,10 @@ def run(names: list[str], frames: int) -> dict:
         if out.returncode != 0:
             from .errors import CubecastError
             raise CubecastError(f"bench for sensor '{name}' failed: {out.stderr.strip().splitlines()[-1:]}")
-        rows.append(json.loads(out.stdout))
+        row = json.loads(out.stdout)
+        if served_workers and name == "large":
+            row["served"] = measure_served(name, served_workers)
+        rows.append(row)
     return {"sensors": rows}
 
 
@@ -198,6 +284,10 @@ def print_table(result: dict) -> None:
         print("  stages (ms): " + ", ".join(f"{k} {v:.3f}" for k, v in row["stages_ms"].items()))
         print(f"  first frame after {row['first_frame_s']:.2f} s; peak RSS {row['peak_rss_mb']:.0f} MB; "
               f"{row['points_per_frame']} points/frame")
+        if "served" in row:
+            sv = row["served"]
+            print(f"  through serve --workers {sv['workers']}: {sv['frames_per_s']:.1f} frames/s "
+                  f"(offered {sv['offered_fps']:.0f}; latency p50 {sv['latency_p50_ms']} ms)")
 
 
 if __name__ == "__main__":  # one sensor, in a fresh process: python -m daemon.bench NAME FRAMES

@@ -113,7 +113,7 @@ def _bench(args) -> int:
     from .bench import print_table, run
     if args.frames < 50:
         raise CubecastError(f"--frames {args.frames}: the medians need at least 50 frames")
-    result = run(args.sensor or ["reference", "large"], args.frames)
+    result = run(args.sensor or ["reference", "large"], args.frames, args.workers)
     if args.json:
         print(json.dumps(result))
     else:
@@ -227,6 +227,8 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--frames", type=int, default=60, help="frames measured per sensor after warm-up (>= 50)")
     b.add_argument("--sensor", action="append", choices=("reference", "large"),
                    help="only this sensor (repeatable; default both)")
+    b.add_argument("--workers", type=int, default=2,
+                   help="also run the large sensor through serve --workers N (0 = skip; default 2)")
     b.set_defaults(func=_bench)
 
     from .calibrate import add_parser as add_calibrate

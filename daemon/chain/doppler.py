@@ -24,17 +24,21 @@ from .windows import make_window
 
 @numba.njit(cache=True, nogil=True)
 def _accumulate_power(spec, n_bins, out):
-    """out[r, (d + nd // 2) % nd] += |spec[s, r, d]|^2 over the slots of one RX, r < n_bins."""
+    """out[r, (d + nd // 2) % nd] += |spec[s, r, d]|^2 over the slots of one RX, r < n_bins. The shift
+    is split into two branch-free runs so the loops vectorise."""
     n_slots, _, nd = spec.shape
     half = nd // 2
+    upper = nd - half
     for s in range(n_slots):
         for r in range(n_bins):
-            for d in range(nd):
-                v = spec[s, r, d]
-                j = d + half
-                if j >= nd:
-                    j -= nd
-                out[r, j] += v.real * v.real + v.imag * v.imag
+            row = spec[s, r]
+            o = out[r]
+            for d in range(upper):
+                v = row[d]
+                o[d + half] += v.real * v.real + v.imag * v.imag
+            for d in range(upper, nd):
+                v = row[d]
+                o[d - upper] += v.real * v.real + v.imag * v.imag
 
 
 class DopplerFft:
