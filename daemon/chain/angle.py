@@ -471,6 +471,20 @@ def _find_peaks(fx, dft_z, n_det, visible, rel_thr, max_peaks, power, out_det, o
     return count
 
 
+@njit(cache=True, inline="always")
+def _power_derivatives(b, su, sw, suu, suw, sww):
+    """|B|^2 and its gradient and Hessian in (u, w) from the beam B and its weighted sums
+    (dB/du = j su, d2B/du2 = -suu, d2B/dudw = -suw, ...)."""
+    cb = b.conjugate()
+    p = b.real * b.real + b.imag * b.imag
+    gu = -2.0 * (cb * su).imag
+    gw = -2.0 * (cb * sw).imag
+    huu = -2.0 * (cb * suu).real + 2.0 * (su.real * su.real + su.imag * su.imag)
+    hww = -2.0 * (cb * sww).real + 2.0 * (sw.real * sw.real + sw.imag * sw.imag)
+    huw = -2.0 * (cb * suw).real + 2.0 * (su.conjugate() * sw).real
+    return p, gu, gw, huu, huw, hww
+
+
 @njit(cache=True)
 def _beam_and_derivatives(y, kx, kz, u, w):
     """P = |B|^2 with B = sum y_i exp(j (kx_i u + kz_i w)), its gradient and Hessian."""
@@ -489,15 +503,7 @@ def _beam_and_derivatives(y, kx, kz, u, w):
         suu += kx[i] * kx[i] * t
         suw += kx[i] * kz[i] * t
         sww += kz[i] * kz[i] * t
-    # dB/du = j su, d2B/du2 = -suu, d2B/dudw = -suw, ...
-    cb = b.conjugate()
-    p = b.real * b.real + b.imag * b.imag
-    gu = -2.0 * (cb * su).imag
-    gw = -2.0 * (cb * sw).imag
-    huu = -2.0 * (cb * suu).real + 2.0 * (su.real * su.real + su.imag * su.imag)
-    hww = -2.0 * (cb * sww).real + 2.0 * (sw.real * sw.real + sw.imag * sw.imag)
-    huw = -2.0 * (cb * suw).real + 2.0 * (su.conjugate() * sw).real
-    return p, gu, gw, huu, huw, hww
+    return _power_derivatives(b, su, sw, suu, suw, sww)
 
 
 @njit(cache=True)
@@ -525,14 +531,7 @@ def _beam_from_phasors(y, kx, kz, e):
         suu += kx[i] * kx[i] * t
         suw += kx[i] * kz[i] * t
         sww += kz[i] * kz[i] * t
-    cb = b.conjugate()
-    p = b.real * b.real + b.imag * b.imag
-    gu = -2.0 * (cb * su).imag
-    gw = -2.0 * (cb * sw).imag
-    huu = -2.0 * (cb * suu).real + 2.0 * (su.real * su.real + su.imag * su.imag)
-    hww = -2.0 * (cb * sww).real + 2.0 * (sw.real * sw.real + sw.imag * sw.imag)
-    huw = -2.0 * (cb * suw).real + 2.0 * (su.conjugate() * sw).real
-    return p, gu, gw, huu, huw, hww
+    return _power_derivatives(b, su, sw, suu, suw, sww)
 
 
 @njit(cache=True)

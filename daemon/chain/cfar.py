@@ -574,6 +574,18 @@ def _band_remove(band, m, v):
     return m - 1
 
 
+@njit(cache=True, inline="always")
+def _band_swap(band, m, below, lo, hi, leaving, entering):
+    """One cell leaves the window and one enters: update the sorted band and the count below it."""
+    below -= leaving < lo
+    if (leaving >= lo) & (leaving <= hi):
+        m = _band_remove(band, m, leaving)
+    below += entering < lo
+    if (entering >= lo) & (entering <= hi):
+        m = _band_insert(band, m, entering)
+    return m, below
+
+
 @njit(cache=True)
 def _os_statistic(power, padded, wr, gr, wd, gd, td, rank0, scratch, band, rows_full, rows_guard, stat,
                   band_scale):
@@ -611,32 +623,11 @@ def _os_statistic(power, padded, wr, gr, wd, gd, td, rank0, scratch, band, rows_
                 # slide the window from column j - 1 to j (padded coordinates, CUT at j + wd)
                 for q in range(nf):
                     rr = rows_full[q]
-                    v = padded[rr, j - 1]
-                    below -= v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_remove(band, m, v)
-                    v = padded[rr, j + 2 * wd]
-                    below += v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_insert(band, m, v)
+                    m, below = _band_swap(band, m, below, lo, hi, padded[rr, j - 1], padded[rr, j + 2 * wd])
                 for q in range(ng):
                     rr = rows_guard[q]
-                    v = padded[rr, j - 1]
-                    below -= v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_remove(band, m, v)
-                    v = padded[rr, j + td - 1]
-                    below += v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_insert(band, m, v)
-                    v = padded[rr, j + wd + gd]
-                    below -= v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_remove(band, m, v)
-                    v = padded[rr, j + 2 * wd]
-                    below += v < lo
-                    if (v >= lo) & (v <= hi):
-                        m = _band_insert(band, m, v)
+                    m, below = _band_swap(band, m, below, lo, hi, padded[rr, j - 1], padded[rr, j + td - 1])
+                    m, below = _band_swap(band, m, below, lo, hi, padded[rr, j + wd + gd], padded[rr, j + 2 * wd])
                 if below <= k0 and k0 < below + m:
                     stat[r, j] = band[k0 - below]
                     continue
@@ -764,34 +755,8 @@ def _extract(power, stat, factor, noise_scale, r_lo, r_hi, local_max, out_r, out
             w = stat[r, j]
             if not (np.float64(p) > fr * np.float64(w)):
                 continue
-            if local_max:
-                keep = True
-                for dr in range(-1, 2):
-                    rr = r + dr
-                    if rr < 0 or rr >= n_r:
-                        continue
-                    for dd in range(-1, 2):
-                        if dr == 0 and dd == 0:
-                            continue
-                        jj = j + dd
-                        if jj < 0:
-                            jj += n_d
-                        elif jj >= n_d:
-                            jj -= n_d
-                        if rr == r and jj == j:
-                            continue
-                        q = power[rr, jj]
-                        if dr < 0 or (dr == 0 and dd < 0):
-                            if not (p > q):
-                                keep = False
-                                break
-                        elif q > p:
-                            keep = False
-                            break
-                    if not keep:
-                        break
-                if not keep:
-                    continue
+            if local_max and not _is_local_max(power, r, j, p):
+                continue
             out_r[count] = r
             out_d[count] = j
             out_p[count] = p
