@@ -83,6 +83,7 @@ class Sensor:
     rx_positions_m: np.ndarray
     fov_half_azimuth_deg: float
     fov_half_elevation_deg: float
+    mount_height_m: float | None  # height of the sensor above the ground, if known (for displays)
     # link budget
     tx_power_dbm: float
     tx_gain_dbi: float
@@ -237,6 +238,7 @@ class Sensor:
             "loops_per_frame": self.n_loops,
             "chirps_per_frame": self.chirps_per_frame,
             "frame_period_s": self.frame_period_s,
+            "mount_height_m": self.mount_height_m,
             "adc": {
                 "sampling": self.adc.sampling,
                 "sample_type": self.adc.sample_type,
@@ -496,6 +498,7 @@ def parse_sensor(text: str, origin: str | None = None) -> Sensor:
     rx = _positions(an, "rx", half_wavelength_m)
     fov_az = an.number("fov_half_azimuth_deg", 60.0, positive=True)
     fov_el = an.number("fov_half_elevation_deg", 20.0, positive=True)
+    mount = an.number("mount_height_m", None, min_value=0.0) if an.has("mount_height_m") else None
     an.check_unknown()
     if fov_az > 90 or fov_el > 90:
         raise an.fail("fov_half_azimuth_deg" if fov_az > 90 else "fov_half_elevation_deg",
@@ -526,6 +529,7 @@ def parse_sensor(text: str, origin: str | None = None) -> Sensor:
         design_max_range_m=design_range,
         chirps_per_frame=chirps, frame_period_s=frame_period,
         tx_positions_m=tx, rx_positions_m=rx, fov_half_azimuth_deg=fov_az, fov_half_elevation_deg=fov_el,
+        mount_height_m=mount,
         mimo_scheme=scheme, mimo_code=code, adc=adc,
         digest=hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16],
         **link,

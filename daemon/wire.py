@@ -181,7 +181,7 @@ def sensor_summary(sensor: Sensor, velocity_unfolding: bool = True) -> dict:
         "fov_half_elevation_deg": float(sensor.fov_half_elevation_deg),
         "range_resolution_m": float(sensor.range_resolution_m),
         "velocity_resolution_mps": float(sensor.velocity_resolution_mps),
-    }
+    } | ({} if sensor.mount_height_m is None else {"mount_height_m": float(sensor.mount_height_m)})
 
 
 def encode_sensor(sensor: Sensor, velocity_unfolding: bool = True) -> list:

@@ -134,6 +134,7 @@ BAD_CASES = [
      r"give exactly one of rx_positions_m or rx_positions_half_wavelength"),
     (('[chirp]', '[chirp]\ndesign_max_range_m = 40.0'), r"sample_rate_hz = 5000000.0: too low for design_max_range_m = 40"),
     (('tx_power_dbm = 12.0\n', ''), r"\[link\] tx_power_dbm is missing"),
+    (('[antennas]', '[antennas]\nmount_height_m = -1.0'), r"mount_height_m = -1.0: must be at least 0"),
     (('[sensor]', 'sensor = 1\n[sensorx]'), r"unknown section|must be a table"),
     (('chirps_per_frame = 96', 'chirps_per_frame = 96 96'), r"not valid TOML"),
 ]

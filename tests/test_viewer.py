@@ -677,3 +677,22 @@ def test_cli_snapshot_of_the_bundled_capture(tmp_path, canvas):
     assert int.from_bytes(data[16:20], "big") == 960 and int.from_bytes(data[20:24], "big") == 600
     assert data[24] == 8 and data[25] == 2
     assert zlib.crc32(data[12:29]) == int.from_bytes(data[29:33], "big")
+
+
+def test_ground_line_follows_the_sensor_mount_height():
+    # The side view's ground sits mount_height_m below the sensor (sensor description -> wire summary),
+    # unless the command line says otherwise.
+    from daemon.sensor import load_sensor
+    from daemon.wire import encode_sensor
+    from viewer.feed import decode_parts
+    from tests.helpers import YARD_SENSOR
+    sensor = load_sensor(YARD_SENSOR)
+    assert sensor.mount_height_m == 1.0
+    msg = decode_parts([bytes(p) for p in encode_sensor(sensor)])
+    st = V.ViewerState()
+    assert st.ground_height_m == V.DEFAULT_SENSOR_HEIGHT_M  # nothing known yet
+    st.ingest(msg)
+    assert st.ground_height_m == 1.0
+    msg["header"]["summary"]["mount_height_m"] = 2.5
+    assert st.ground_height_m == 2.5
+    assert V.ViewerState(sensor_height_m=0.4, sensor_msg=msg).ground_height_m == 0.4

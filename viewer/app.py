@@ -21,7 +21,7 @@ class ViewerApp:
     def __init__(self, feed, *, size=(1280, 800), sensor: str | None = None, show: bool = True,
                  persist_frames: int = V.DEFAULT_PERSIST_FRAMES, color_by: str = "velocity",
                  velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS,
-                 sensor_height_m: float = V.DEFAULT_SENSOR_HEIGHT_M, stall_after_s: float = 3.0, dpi=None,
+                 sensor_height_m: float | None = None, stall_after_s: float = 3.0, dpi=None,
                  canvas=None):
         from .canvas import ViewerCanvas
         self.feed = feed

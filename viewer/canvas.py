@@ -273,7 +273,7 @@ class ViewerCanvas:
     def _apply_geometry(self, state: V.ViewerState, force: bool = False) -> None:
         s = state.summary
         known = state.sensor_msg is not None
-        key = (s["max_range_m"], s["fov_half_azimuth_deg"], s["fov_half_elevation_deg"], state.sensor_height_m, known)
+        key = (s["max_range_m"], s["fov_half_azimuth_deg"], s["fov_half_elevation_deg"], state.ground_height_m, known)
         if key == self._geometry_key and not force:
             return
         self._geometry_key = key
@@ -301,7 +301,7 @@ class ViewerCanvas:
             v = float(s["max_velocity_mps"])
             self.rd.camera.rect = (-v, 0.0, 2 * v, float(s["max_range_m"]))
 
-        sg = V.side_grid(s["max_range_m"], s["fov_half_elevation_deg"], state.sensor_height_m)
+        sg = V.side_grid(s["max_range_m"], s["fov_half_elevation_deg"], state.ground_height_m)
         self.ground_line.set_data(sg.ground)
         verts, faces = _quad(sg.ground_fill)
         self.ground_fill.set_data(vertices=verts, faces=faces, color=V.GROUND_FILL)
@@ -311,7 +311,7 @@ class ViewerCanvas:
         y0, z0, w, h = sg.extent
         zs = np.arange(np.ceil(z0), z0 + h, 1.0)
         zs = zs[np.abs(zs) > 1e-6]
-        zs = zs[zs > -state.sensor_height_m + 1e-6]
+        zs = zs[zs > -state.ground_height_m + 1e-6]
         g = np.zeros((2 * len(zs), 2), np.float32)
         g[0::2, 0], g[1::2, 0] = 0.0, s["max_range_m"] * 1.02
         g[0::2, 1] = g[1::2, 1] = np.repeat(zs, 1)

@@ -78,8 +78,9 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
     v.add_argument("--color", choices=("velocity", "snr"), default="velocity", help="colour points by")
     v.add_argument("--velocity-span-mps", type=_positive_float, default=2.5,
                    help="radial velocity at the ends of the colour scale (default 2.5 m/s)")
-    v.add_argument("--sensor-height-m", type=_height, default=1.0,
-                   help="sensor height above the ground, for the side view's ground line (default 1.0 m)")
+    v.add_argument("--sensor-height-m", type=_height, default=None,
+                   help="sensor height above the ground, for the side view's ground line (default: the "
+                        "sensor description's mount_height_m, else 1.0 m)")
     v.add_argument("--stall-s", type=_positive_float, default=3.0,
                    help="seconds without messages before the status shows a stall (default 3)")
     v.add_argument("--settings", help="with --capture: processing settings (TOML)")

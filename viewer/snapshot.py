@@ -89,7 +89,7 @@ def write_png(path: str | Path, rgba: np.ndarray) -> None:
 
 
 def make_state(messages, endpoint: str = "", sensor_id: str | None = None, color_by: str = "velocity",
-               persist_frames: int = V.DEFAULT_PERSIST_FRAMES, sensor_height_m: float = V.DEFAULT_SENSOR_HEIGHT_M,
+               persist_frames: int = V.DEFAULT_PERSIST_FRAMES, sensor_height_m: float | None = None,
                velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, bad_by_reason: dict | None = None,
                idle_s: float = 0.0, connected: bool | None = None) -> V.ViewerState:
     state = V.ViewerState(endpoint=endpoint, sensor_id=sensor_id, persist=V.Persistence(persist_frames),
@@ -118,7 +118,7 @@ def render_state(state: V.ViewerState, size=(1280, 800), footer: str = "", help_
 def render_snapshot(messages, out_png: str | Path, size=(1280, 800), *, endpoint: str = "",
                     sensor_id: str | None = None, color_by: str = "velocity",
                     persist_frames: int = V.DEFAULT_PERSIST_FRAMES,
-                    sensor_height_m: float = V.DEFAULT_SENSOR_HEIGHT_M,
+                    sensor_height_m: float | None = None,
                     velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, footer: str = "",
                     help_overlay: bool = False) -> np.ndarray:
     """Render decoded wire messages to a PNG file; returns the RGBA pixels written."""

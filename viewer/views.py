@@ -446,7 +446,7 @@ class ViewerState:
     color_by: str = "velocity"
     velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS
     snr_range_db: tuple[float, float] = DEFAULT_SNR_RANGE_DB
-    sensor_height_m: float = DEFAULT_SENSOR_HEIGHT_M
+    sensor_height_m: float | None = None   # from the command line; None: the sensor's mount height
     paused: bool = False
     sensor_msg: dict | None = None
     points_msg: dict | None = None
@@ -494,6 +494,17 @@ class ViewerState:
         else:
             return False
         return True
+
+    @property
+    def ground_height_m(self) -> float:
+        """Sensor height above the ground for the side view: the command line's value, else the
+        sensor description's mount_height_m, else DEFAULT_SENSOR_HEIGHT_M."""
+        if self.sensor_height_m is not None:
+            return float(self.sensor_height_m)
+        h = self.summary.get("mount_height_m")
+        if isinstance(h, (int, float)) and not isinstance(h, bool) and 0 <= h <= 100:
+            return float(h)
+        return DEFAULT_SENSOR_HEIGHT_M
 
     @property
     def summary(self) -> dict:
