@@ -486,27 +486,6 @@ def _power_derivatives(b, su, sw, suu, suw, sww):
 
 
 @njit(cache=True)
-def _beam_and_derivatives(y, kx, kz, u, w):
-    """P = |B|^2 with B = sum y_i exp(j (kx_i u + kz_i w)), its gradient and Hessian."""
-    b = 0j
-    su = 0j
-    sw = 0j
-    suu = 0j
-    suw = 0j
-    sww = 0j
-    for i in range(y.size):
-        ph = kx[i] * u + kz[i] * w
-        t = y[i] * complex(math.cos(ph), math.sin(ph))
-        b += t
-        su += kx[i] * t
-        sw += kz[i] * t
-        suu += kx[i] * kx[i] * t
-        suw += kx[i] * kz[i] * t
-        sww += kz[i] * kz[i] * t
-    return _power_derivatives(b, su, sw, suu, suw, sww)
-
-
-@njit(cache=True)
 def _phasors(kx, kz, u, w, e):
     """e_i = exp(j (kx_i u + kz_i w)): the conjugate steering vector at (u, w)."""
     for i in range(kx.size):
@@ -516,7 +495,7 @@ def _phasors(kx, kz, u, w, e):
 
 @njit(cache=True)
 def _beam_from_phasors(y, kx, kz, e):
-    """_beam_and_derivatives with the phasors e = _phasors(kx, kz, u, w) given."""
+    """P = |B|^2 with B = sum y_i e_i, e = _phasors(kx, kz, u, w), its gradient and Hessian in (u, w)."""
     b = 0j
     su = 0j
     sw = 0j
@@ -633,7 +612,8 @@ def _refine_peaks(
             u, w, p = _newton_refine(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw,
                                      _MAX_NEWTON_ITERATIONS, 0.0)
         else:
-            p = _beam_and_derivatives(y, kx, kz, u, w)[0]
+            _phasors(kx, kz, u, w, e)
+            p = _beam_from_phasors(y, kx, kz, e)[0]
         keep = True
         for j in range(first_of_det, k):
             if out_keep[j] and abs(out_u[j] - u) < 0.5 * max_du and abs(out_w[j] - w) < 0.5 * max_dw:
