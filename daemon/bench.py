@@ -264,6 +264,9 @@ def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
     rows = []
     for name in names:
         env = dict(os.environ, NUMBA_NUM_THREADS="1")
+        # fill numba's cache first (a fresh checkout compiles once), so first_frame_s is a start-up
+        # with the cache in place, as `serve` sees it
+        subprocess.run([sys.executable, "-m", "daemon.bench", name, "0"], capture_output=True, env=env, check=False)
         out = subprocess.run([sys.executable, "-m", "daemon.bench", name, str(frames)], capture_output=True,
                              text=True, env=env, check=False)
         if out.returncode != 0:
@@ -290,5 +293,17 @@ def print_table(result: dict) -> None:
                   f"(offered {sv['offered_fps']:.0f}; latency p50 {sv['latency_p50_ms']} ms)")
 
 
-if __name__ == "__main__":  # one sensor, in a fresh process: python -m daemon.bench NAME FRAMES
-    print(json.dumps(measure(sys.argv[1], int(sys.argv[2]))))
+def warm(name: str) -> None:
+    """Compile (or load) every numba function the chain uses for this sensor."""
+    from .chain.pipeline import Pipeline
+    from .sensor import parse_sensor
+    sensor = parse_sensor(sensor_toml(name), f"bench sensor {name}")
+    pipe = Pipeline(sensor)
+    pipe.process_raw(np.zeros(sensor.adc.raw_shape(*pipe.frame_shape), sensor.adc.raw_dtype()))
+
+
+if __name__ == "__main__":  # one sensor, in a fresh process: python -m daemon.bench NAME FRAMES (0: warm only)
+    if int(sys.argv[2]) == 0:
+        warm(sys.argv[1])
+    else:
+        print(json.dumps(measure(sys.argv[1], int(sys.argv[2]))))
