@@ -525,7 +525,7 @@ class Service:
             for ep in self.sub_endpoints:
                 connect_socket(sub, ep, "--sub")
             rx = threading.Thread(target=self._receive, args=(sub,), name="cubecast-serve-rx", daemon=True)
-            sub_owned, sub = sub, None  # the receiver thread closes it
+            sub = None  # handed to the receiver thread, which closes it
             rx.start()
 
             now = time.monotonic()

@@ -8,7 +8,6 @@ scene geometry, the radar range equation and the uniform array's sidelobe level.
 
 from __future__ import annotations
 
-import argparse
 import math
 
 import numpy as np
@@ -16,7 +15,6 @@ import pytest
 
 from daemon.calibrate import (
     MIN_INTEGRATED_SNR_DB,
-    add_parser,
     calibrate_capture,
     load_calibration,
     load_calibration_file,

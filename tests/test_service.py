@@ -34,21 +34,27 @@ REPO = Path(__file__).resolve().parent.parent
 
 # ---- helpers (also used by test_sources) ---------------------------------------------------------
 
-@contextlib.contextmanager
-def running_service(sensor, sub, **kw):
-    """A Service in a thread with its PUB on a free port; stopped (and checked stopped) on exit."""
-    svc = Service(sensor, sub, "tcp://127.0.0.1:*", **kw)
+def run_in_thread(svc):
+    """Start svc.run(stop) in a daemon thread; returns (thread, stop event, errors raised)."""
     stop = threading.Event()
     errors: list[BaseException] = []
 
     def target():
         try:
             svc.run(stop)
-        except BaseException as exc:  # surfaced below
+        except BaseException as exc:  # surfaced by the caller
             errors.append(exc)
 
     t = threading.Thread(target=target, daemon=True)
     t.start()
+    return t, stop, errors
+
+
+@contextlib.contextmanager
+def running_service(sensor, sub, **kw):
+    """A Service in a thread with its PUB on a free port; stopped (and checked stopped) on exit."""
+    svc = Service(sensor, sub, "tcp://127.0.0.1:*", **kw)
+    t, stop, errors = run_in_thread(svc)
     assert svc.ready.wait(60) and not errors, errors
     try:
         yield svc

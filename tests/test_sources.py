@@ -6,7 +6,6 @@ from __future__ import annotations
 import subprocess
 import sys
 import threading
-import time
 
 import numpy as np
 import pytest
@@ -21,7 +20,7 @@ from daemon.scene import parse_scene
 from daemon.simulate import Simulator
 from daemon.sources import PointsCsvWriter, Recorder, ReplaySource, parse_speed, publish_simulation
 from tests.helpers import YARD_SENSOR
-from tests.test_service import REPO, YARD, Collector, running_service, wait_until
+from tests.test_service import REPO, YARD, Collector, running_service
 
 
 @pytest.fixture(scope="module")

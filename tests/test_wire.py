@@ -12,7 +12,6 @@ import pytest
 from daemon.capture import CaptureReader
 from daemon.chain.points import POINT_DTYPE, RECORD_DTYPE, to_records
 from daemon.errors import CubecastError
-from daemon.files import capture_sensor
 from daemon.sensor import load_sensor
 from daemon.wire import (MAX_HEADER_BYTES, POINT_WIRE_FIELDS, REASONS, WireError, decode, encode_adc,
                          encode_health, encode_points, encode_rdmap, encode_sensor, sensor_from_message)

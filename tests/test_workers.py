@@ -35,7 +35,7 @@ from daemon.wire import decode, encode_adc
 from daemon.workers import (ProtocolError, WorkerConfig, decode_result, decode_task, decode_welcome,
                             encode_result, encode_task, encode_welcome, Worker)
 from tests.helpers import SAMPLES, YARD_SENSOR
-from tests.test_service import Collector, connected, wait_until
+from tests.test_service import Collector, connected, run_in_thread, wait_until
 
 YARD = SAMPLES / "yard.cap"
 REPO = Path(__file__).resolve().parent.parent
@@ -78,17 +78,7 @@ def serving(sensor, sub, **kw):
     """A Service with workers in a thread; on exit it must stop within 3 s and leave no local worker."""
     kw.setdefault("quiet", True)
     svc = Service(sensor, sub, "tcp://127.0.0.1:*", **kw)
-    stop = threading.Event()
-    errors: list[BaseException] = []
-
-    def target():
-        try:
-            svc.run(stop)
-        except BaseException as exc:  # surfaced below
-            errors.append(exc)
-
-    t = threading.Thread(target=target, daemon=True)
-    t.start()
+    t, stop, errors = run_in_thread(svc)
     assert wait_until(lambda: svc.ready.is_set() or errors, 90) and not errors, errors
     pids = [p for p in svc.pool.local_pids() if p is not None]
     try:

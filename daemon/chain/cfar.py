@@ -444,6 +444,16 @@ def noise_statistic_mean(kind: str, n_train: int, n_integrated: int, os_rank: in
 # per-frame kernels (numba)
 # ----------------------------------------------------------------------------------------------------
 
+@njit(cache=True, inline="always")
+def _wrap(j, n):
+    """Circular index for -n <= j < 2n (Doppler wraps around)."""
+    if j < 0:
+        return j + n
+    if j >= n:
+        return j - n
+    return j
+
+
 @njit(cache=True)
 def _window_sums(power, wd, gd, pad, dfull, dguard, dleft, dright, cfull, cguard):
     """Row box sums (circular in Doppler) and their column prefix sums, float64."""
@@ -452,12 +462,7 @@ def _window_sums(power, wd, gd, pad, dfull, dguard, dleft, dright, cfull, cguard
         acc = 0.0
         pad[0] = 0.0
         for m in range(n_d + 2 * wd):
-            jj = m - wd
-            if jj < 0:
-                jj += n_d
-            elif jj >= n_d:
-                jj -= n_d
-            acc += power[r, jj]
+            acc += power[r, _wrap(m - wd, n_d)]
             pad[m + 1] = acc
         for j in range(n_d):
             c = j + wd
@@ -544,12 +549,7 @@ def _pad_doppler(power, wd, padded):
     n_r, n_d = power.shape
     for r in range(n_r):
         for m in range(n_d + 2 * wd):
-            jj = m - wd
-            if jj < 0:
-                jj += n_d
-            elif jj >= n_d:
-                jj -= n_d
-            padded[r, m] = power[r, jj]
+            padded[r, m] = power[r, _wrap(m - wd, n_d)]
 
 
 @njit(cache=True, inline="always")
