@@ -1,8 +1,9 @@
 """Doppler FFT over slow time and the range-Doppler detection map.
 
-Each receive channel's block [slot, sample, loop] (loaded and windowed by rangefft.py) is
-transformed over the loops, where the memory is contiguous, before the range FFT; together they make
-the spectrum [rx, slot, range, doppler]. Demultiplexing into the virtual array happens per detection
+Each receive channel's block [slot, range, loop] (windowed and range-transformed by rangefft.py,
+which writes it in this transposed layout) is transformed over the loops, where the memory is
+contiguous; the blocks together make the spectrum [rx, slot, range, doppler]. With real sampling
+only the lower half of the range bins is kept and transformed. Demultiplexing into the virtual array happens per detection
 afterwards (mimo.py): the FFTs and the decoding are linear and commute, and decoding after the
 Doppler FFT lets the Doppler-induced phase between slots be compensated first.
 
@@ -63,15 +64,19 @@ class DopplerFft:
         self.bin_hz = 1.0 / (self.fft_size * sensor.loop_period_s)
 
     def block(self, rx: int) -> np.ndarray:
-        """The buffer [slot, range_fft_size, doppler] that receive channel `rx` is loaded into."""
+        """The buffer [slot, range_fft_size, doppler] that receive channel `rx`'s range FFT writes."""
         return self._full[rx]
 
     def begin(self) -> None:
         self.power[...] = 0
 
     def transform(self, block: np.ndarray) -> None:
-        """Doppler FFT over the loops of the sample rows (the padding rows are zero and stay so)."""
-        fft_inplace(block[:, : self.n_samples, :])
+        """Doppler FFT over the loops of the kept range rows, in place; zero padding past the loops
+        is restored first (the previous frame's transform wrote over it)."""
+        rows = block[:, : self.n_range_bins, :]
+        if self.fft_size > self.n_loops:
+            rows[:, :, self.n_loops:] = 0
+        fft_inplace(rows)
 
     def accumulate(self, block: np.ndarray) -> None:
         _accumulate_power(block, self.n_range_bins, self.power)

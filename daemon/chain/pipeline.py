@@ -1,8 +1,9 @@
 """The processing chain: one canonical frame in, one point cloud out.
 
     frame complex64 [chirp, rx, sample]
-      -> RangeFft      complex64 [chirp, rx, range]          (window, zero padding, FFT)
-      -> DopplerFft    complex64 [slot*rx, range, doppler]   (regroup by slot, window, FFT)
+      -> RangeFft      complex64 [slot, range, loop] per RX  (regroup by slot, windows, zero padding,
+                                                              FFT written transposed)
+      -> DopplerFft    complex64 [rx, slot, range, doppler]  (FFT over contiguous loops)
                        float32   [range, doppler]            (non-coherent detection map)
       -> Cfar          detections (range bin, Doppler column, SNR)
       -> refinement    fractional range and Doppler bins (log-parabolic interpolation of the map)
@@ -142,13 +143,10 @@ class Pipeline:
         for rx in range(self.sensor.n_rx):
             ta = time.perf_counter()
             block = dop.block(rx)
-            load(data, rx, window_d, block)  # counted with the range stage
-            tl = time.perf_counter()
-            dop.transform(block)
-            tb = time.perf_counter()
+            load(data, rx, window_d)  # counted with the range stage
             rng.transform(block)
-            tc = time.perf_counter()
-            t_range += (tl - ta) + (tc - tb)
+            t_range += time.perf_counter() - ta
+            dop.transform(block)
             dop.accumulate(block)
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()

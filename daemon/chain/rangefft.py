@@ -1,11 +1,16 @@
 """Range FFT over fast time, with the loading of each receive channel's samples.
 
-The front end works one receive channel at a time, so that its block (all chirps of one RX, a few
-hundred kB) stays in the core's cache from loading to the detection map. Loading reads the frame
-(canonical complex64, or the board's int16 I/Q converted on the fly with its I/Q conventions),
-applies both windows (range over samples, Doppler over loops; separable, so they multiply), removes
-static returns on request, and writes the block already transposed to [slot, sample, loop]: the
-Doppler FFT then runs over contiguous memory, and the range FFT runs along the sample axis.
+The front end works one receive channel at a time, so that its data (all chirps of one RX, under a
+megabyte for the reference sensor) stays in the core's cache from loading to the detection map.
+
+Loading reads the frame (canonical complex64, or the board's int16 I/Q converted on the fly with
+its I/Q conventions) as interleaved I/Q numbers, applies both windows (range over samples, Doppler
+over loops; separable, so they multiply), removes static returns on request, and writes a staging
+block [slot, loop, sample] in the frame's own order: every read and write runs along contiguous
+memory and the loop vectorises. The range FFT then reads the staging rows and writes its output
+transposed, [slot, range, loop], so that the Doppler FFT that follows runs over contiguous memory.
+The transposition happens inside the FFT's own output pass, a few transforms at a time, instead of
+costing a separate strided pass over the cube.
 
 Removing static returns subtracts each sample's mean over the loops of its slot before the FFTs; by
 linearity this equals subtracting the mean over chirps of every range bin and channel.
@@ -19,42 +24,43 @@ import numpy as np
 from ..errors import CubecastError
 from ..sensor import SPEED_OF_LIGHT_MPS, Sensor
 from ..settings import ProcessingSettings
-from .fft import fft_inplace
+from .fft import fft_into
 from .windows import make_window
 
 
 @numba.njit(cache=True, nogil=True)
-def _load(re, im, sign, rx, n_slots, w_range, w_doppler, remove_static, mean, block):
-    """block[s, k, p] = w_range[k] w_doppler[p] (x[p * n_slots + s, rx, k] - mean_p x[., rx, k]) with
-    x = re + j sign im; zero in the padding (k >= samples or p >= loops). `re` and `im` are
-    [chirp, rx, sample] views: the parts of a complex64 frame, or the I and Q planes of int16 I/Q."""
-    n_samples = w_range.shape[0]
+def _load(src, rx, n_slots, w2, w_doppler, swap, remove_static, mean, stage):
+    """stage[s, p, 2k + c] = w2[2k + c] w_doppler[p] (x[p n_slots + s, rx, 2k + c'] - mean) where
+    `src` is [chirp, rx, 2 * samples] interleaved I/Q (int16 or float32), c' = c or, with `swap`,
+    1 - c, `w2` is the range window repeated for I and Q with the Q sign folded in, and the mean is
+    over the loops of slot s when `remove_static`. Samples past the data (zero padding) are left as
+    they are: zero since the buffer was made."""
+    n2 = w2.shape[0]
     n_loops = w_doppler.shape[0]
-    _, n_k, n_p = block.shape
     for s in range(n_slots):
         if remove_static:
-            for k in range(n_samples):
-                mean[k] = 0
+            for k in range(n2):
+                mean[k] = 0.0
             for p in range(n_loops):
-                m = p * n_slots + s
-                for k in range(n_samples):
-                    mean[k] += complex(np.float32(re[m, rx, k]), sign * np.float32(im[m, rx, k]))
-            for k in range(n_samples):
+                row = src[p * n_slots + s, rx]
+                for k in range(n2):
+                    mean[k] += row[k]
+            for k in range(n2):
                 mean[k] /= n_loops
         for p in range(n_loops):
-            m = p * n_slots + s
+            row = src[p * n_slots + s, rx]
+            out = stage[s, p]
             wd = w_doppler[p]
-            for k in range(n_samples):
-                v = complex(np.float32(re[m, rx, k]), sign * np.float32(im[m, rx, k]))
-                if remove_static:
-                    v = v - mean[k]
-                block[s, k, p] = v * (w_range[k] * wd)
-        for k in range(n_samples):
-            for p in range(n_loops, n_p):
-                block[s, k, p] = 0
-        for k in range(n_samples, n_k):
-            for p in range(n_p):
-                block[s, k, p] = 0
+            if swap:
+                for k in range(0, n2, 2):
+                    out[k] = np.float32(row[k + 1] - mean[k + 1]) * (w2[k] * wd)
+                    out[k + 1] = np.float32(row[k] - mean[k]) * (w2[k + 1] * wd)
+            elif remove_static:
+                for k in range(n2):
+                    out[k] = np.float32(row[k] - mean[k]) * (w2[k] * wd)
+            else:
+                for k in range(n2):
+                    out[k] = np.float32(row[k]) * (w2[k] * wd)
 
 
 class RangeFft:
@@ -66,6 +72,7 @@ class RangeFft:
                                 f"{n} samples per chirp")
         self.n_samples = n
         self.n_slots = sensor.n_slots
+        self.n_loops = sensor.n_loops
         self.window = make_window(settings.range_window, n, settings.range_kaiser_beta)
         self.n_bins = self.fft_size if sensor.adc.is_complex else self.fft_size // 2
         # metres per range bin: beat frequency bin * fs / Nfft, range = f_b c / (2 S)
@@ -73,21 +80,29 @@ class RangeFft:
         self.adc = sensor.adc
         self.raw_iq16 = sensor.adc.is_complex and sensor.adc.sample_type == "int16"
         self.remove_static = settings.remove_static
-        self._mean = np.zeros(n, np.complex64)
+        # windows over interleaved I/Q: canonical frames as they are, the board's with its Q sign
+        self._w2 = np.repeat(self.window, 2)
+        self._w2_raw = self._w2.copy()
+        if sensor.adc.conjugate:
+            self._w2_raw[1::2] *= np.float32(-1.0)
+        self._mean = np.zeros(2 * n, np.float64)
+        # staging block of one receive channel, [slot, loop, range_fft_size]; the padding stays zero
+        self.stage = np.zeros((self.n_slots, self.n_loops, self.fft_size), np.complex64)
+        self._stage_f = self.stage.view(np.float32)
 
-    def load(self, frame: np.ndarray, rx: int, doppler_window: np.ndarray, block: np.ndarray) -> None:
-        """Windowed, transposed samples of receive channel `rx` of a canonical frame into `block`
-        [slot, range_fft_size, doppler_fft_size]."""
-        _load(frame.real, frame.imag, np.float32(1.0), rx, self.n_slots, self.window, doppler_window,
-              self.remove_static, self._mean, block)
+    def load(self, frame: np.ndarray, rx: int, doppler_window: np.ndarray) -> None:
+        """Windowed samples of receive channel `rx` of a canonical frame into the staging block."""
+        src = np.ascontiguousarray(frame).view(np.float32)
+        _load(src, rx, self.n_slots, self._w2, doppler_window, False, self.remove_static, self._mean,
+              self._stage_f)
 
-    def load_raw(self, raw: np.ndarray, rx: int, doppler_window: np.ndarray, block: np.ndarray) -> None:
+    def load_raw(self, raw: np.ndarray, rx: int, doppler_window: np.ndarray) -> None:
         """The same straight from int16 I/Q [chirp, rx, sample, 2], with the board's I/Q conventions."""
-        i_plane, q_plane = (raw[..., 1], raw[..., 0]) if self.adc.swap_iq else (raw[..., 0], raw[..., 1])
-        sign = np.float32(-1.0 if self.adc.conjugate else 1.0)
-        _load(i_plane, q_plane, sign, rx, self.n_slots, self.window, doppler_window, self.remove_static,
-              self._mean, block)
+        src = np.ascontiguousarray(raw).reshape(raw.shape[0], raw.shape[1], -1)
+        _load(src, rx, self.n_slots, self._w2_raw, doppler_window, self.adc.swap_iq, self.remove_static,
+              self._mean, self._stage_f)
 
     def transform(self, block: np.ndarray) -> None:
-        """Range FFT along the sample axis of [slot, sample, doppler], in place."""
-        fft_inplace(block, axis=1)
+        """Range FFT of the staging block into `block` [slot, range_fft_size, doppler_fft_size],
+        written transposed into its first n_loops Doppler columns."""
+        fft_into(self.stage, block[:, :, : self.n_loops].transpose(0, 2, 1), axis=2)
