@@ -517,3 +517,11 @@ def test_sparse_os_path_equals_full_os_cfar(seed, shape, k_int):
     full = sorted(zip(cfar._out_r[:count].tolist(), cfar._out_d[:count].tolist()))
     assert sorted(zip(det.range_bin.tolist(), det.doppler_bin.tolist())) == full
     assert len(full) >= 10
+    # the same noise estimates and SNR (power / noise - 1) as the full statistic gives
+    order = np.lexsort((cfar._out_d[:count], cfar._out_r[:count]))
+    noise_full = cfar._out_n[:count][order]
+    power_full = cfar._out_p[:count][order]
+    mine = np.lexsort((det.doppler_bin, det.range_bin))
+    np.testing.assert_array_equal(det.noise[mine], noise_full)
+    np.testing.assert_array_equal(det.power[mine], power_full)
+    np.testing.assert_array_equal(det.snr_linear[mine], np.maximum(power_full / noise_full - np.float32(1), 1e-6))

@@ -703,43 +703,100 @@ def _is_local_max(power, r, j, p):
     return True
 
 
-@njit(cache=True)
-def _os_sparse(power, padded, wr, gr, wd, gd, td, rank0, scratch, floor, r_lo, r_hi, factor, noise_scale,
-               out_r, out_d, out_p, out_n):
-    """OS-CFAR with local-maximum grouping, evaluating the ordered statistic only where it can
-    matter: at 3x3 local maxima of the map above `floor`. Same answer as the full statistic followed
-    by _extract(local_max=True) for every cell above the floor; returns the count."""
+@njit(cache=True, inline="always")
+def _count_below(power, r, j, wr, gr, wd, gd, td, fr, p):
+    """Training cells x of cell (r, j) with fr * x < p (Doppler circular, range truncated)."""
     n_r, n_d = power.shape
-    _pad_doppler(power, wd, padded)
     width = 2 * wd + 1
+    j0 = j - wd
+    inside = j0 >= 0 and j + wd < n_d
+    cnt = 0
+    for rr in range(max(r - wr, 0), min(r + wr + 1, n_r)):
+        row = power[rr]
+        if rr - r > gr or r - rr > gr:
+            if inside:
+                for t in range(width):
+                    cnt += fr * np.float64(row[j0 + t]) < p
+            else:
+                for t in range(width):
+                    cnt += fr * np.float64(row[_wrap(j0 + t, n_d)]) < p
+        elif td > 0:
+            for t in range(td):
+                cnt += fr * np.float64(row[_wrap(j0 + t, n_d)]) < p
+                cnt += fr * np.float64(row[_wrap(j0 + wd + gd + 1 + t, n_d)]) < p
+    return cnt
+
+
+@njit(cache=True, inline="always")
+def _gather_training(power, r, j, wr, gr, wd, gd, td, scratch):
+    """The training cells of (r, j) into scratch; returns their count."""
+    n_r, n_d = power.shape
+    width = 2 * wd + 1
+    j0 = j - wd
+    cnt = 0
+    for rr in range(max(r - wr, 0), min(r + wr + 1, n_r)):
+        row = power[rr]
+        if rr - r > gr or r - rr > gr:
+            for t in range(width):
+                scratch[cnt + t] = row[_wrap(j0 + t, n_d)]
+            cnt += width
+        elif td > 0:
+            for t in range(td):
+                scratch[cnt + t] = row[_wrap(j0 + t, n_d)]
+                scratch[cnt + td + t] = row[_wrap(j0 + wd + gd + 1 + t, n_d)]
+            cnt += 2 * td
+    return cnt
+
+
+@njit(cache=True)
+def _os_sparse(power, stride, floor_scale, sub, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor,
+               noise_scale, snr_floor, out_r, out_d, out_p, out_n, out_snr):
+    """OS-CFAR with local-maximum grouping, evaluated only where it can matter: at 3x3 local maxima
+    of the map above a floor, floor_scale times the median of every stride-th cell. Same answer as
+    the full statistic followed by _extract(local_max=True) for every cell above the floor; returns
+    the count, with the per-channel SNR estimate power / noise - 1 (float32, at least snr_floor).
+
+    A cell is detected when p > T w_k, w_k the k-th smallest training cell. Since x -> T x is
+    monotonic, that holds exactly when at least k training cells have T x < p: a count, so the
+    selection of w_k (for the noise estimate) runs only for the detections."""
+    n_r, n_d = power.shape
+    flat = power.reshape(-1)
+    n_sub = 0
+    for i in range(0, flat.shape[0], stride):
+        sub[n_sub] = flat[i]
+        n_sub += 1
+    median = _select_kth(sub, 0, n_sub - 1, n_sub // 2)
+    floor = np.float32(floor_scale * np.float64(median))
     count = 0
     for r in range(r_lo, r_hi):
         k0 = rank0[r]
         fr = factor[r]
+        prow = power[r]
         for j in range(n_d):
-            p = power[r, j]
+            p = prow[j]
             if not (p > floor):
                 continue
             if not _is_local_max(power, r, j, p):
                 continue
-            cnt = 0
-            for rr in range(max(r - wr, 0), min(r + wr + 1, n_r)):
-                if rr - r > gr or r - rr > gr:
-                    for t in range(width):
-                        scratch[cnt + t] = padded[rr, j + t]
-                    cnt += width
-                elif td > 0:
-                    for t in range(td):
-                        scratch[cnt + t] = padded[rr, j + t]
-                        scratch[cnt + td + t] = padded[rr, j + wd + gd + 1 + t]
-                    cnt += 2 * td
+            if _count_below(power, r, j, wr, gr, wd, gd, td, fr, np.float64(p)) < k0 + 1:
+                continue
+            cnt = _gather_training(power, r, j, wr, gr, wd, gd, td, scratch)
             w = _select_kth(scratch, 0, cnt - 1, k0)
-            if np.float64(p) > fr * np.float64(w):
-                out_r[count] = r
-                out_d[count] = j
-                out_p[count] = p
-                out_n[count] = np.float32(w * noise_scale[r])
-                count += 1
+            noise = np.float32(w * noise_scale[r])
+            if noise > 0:
+                snr = np.float32(np.float32(np.float64(p) / np.float64(noise)) - np.float32(1.0))
+                if snr > np.float32(3.4028234663852886e38):
+                    snr = np.float32(3.4028234663852886e38)
+            elif p > 0:
+                snr = np.float32(3.4028234663852886e38)
+            else:
+                snr = np.float32(snr_floor)
+            out_r[count] = r
+            out_d[count] = j
+            out_p[count] = p
+            out_n[count] = noise
+            out_snr[count] = max(snr, np.float32(snr_floor))
+            count += 1
     return count
 
 
@@ -865,6 +922,8 @@ class Cfar:
             self._factor_min = float(factor.min())
             # the OS statistic of unit noise relative to the median of a Gamma(K) cell (~ its mean)
             self._median_to_stat = float(np.min(mean_w_all)) / max(n_integrated - 1.0 / 3.0, 0.5)
+            self._floor_scale = OS_FLOOR_FRACTION * self._factor_min * self._median_to_stat
+            self._out_snr = np.empty(n_cells, dtype=np.float32)
         else:
             self._pad = np.zeros(n_doppler + 2 * wd + 1, dtype=np.float64)
             self._dfull = np.zeros(shape, dtype=np.float64)
@@ -914,19 +973,16 @@ class Cfar:
             # OS_FLOOR_FRACTION * min(T) * (median of a map subsample) could only be detected where
             # the local statistic is under OS_FLOOR_FRACTION of the map's median, i.e. never in
             # receiver noise; everywhere else the result equals the full OS-CFAR.
-            sub = power.reshape(-1)[:: _OS_FLOOR_STRIDE]
-            k = sub.shape[0] // 2
-            self._sub[: sub.shape[0]] = sub
-            median = float(np.partition(self._sub[: sub.shape[0]], k)[k])
-            floor = np.float32(OS_FLOOR_FRACTION * self._factor_min * median * self._median_to_stat)
-            count = _os_sparse(power, self._padded, self._wr, s.guard_range, self._wd, s.guard_doppler,
-                               s.train_doppler, self._rank0, self._scratch, floor, self._r_lo, self._r_hi,
-                               self.factor, self.noise_scale, self._out_r, self._out_d, self._out_p,
-                               self._out_n)
-        else:
-            self._compute_statistic(power)
-            count = _extract(power, self._stat, self.factor, self.noise_scale, self._r_lo, self._r_hi,
-                             bool(s.local_max), self._out_r, self._out_d, self._out_p, self._out_n)
+            count = _os_sparse(power, _OS_FLOOR_STRIDE, self._floor_scale, self._sub, self._wr, s.guard_range,
+                               self._wd, s.guard_doppler, s.train_doppler, self._rank0, self._scratch,
+                               self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
+                               self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
+            return CfarDetections(range_bin=self._out_r[:count].copy(), doppler_bin=self._out_d[:count].copy(),
+                                  power=self._out_p[:count].copy(), noise=self._out_n[:count].copy(),
+                                  snr_linear=self._out_snr[:count].copy())
+        self._compute_statistic(power)
+        count = _extract(power, self._stat, self.factor, self.noise_scale, self._r_lo, self._r_hi,
+                         bool(s.local_max), self._out_r, self._out_d, self._out_p, self._out_n)
         p = self._out_p[:count].copy()
         noise = self._out_n[:count].copy()
         with np.errstate(divide="ignore", invalid="ignore"):
