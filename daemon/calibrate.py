@@ -309,9 +309,13 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     j = rb - lo + 1  # index of the reflector's bin in the stored window
     zero_hz = np.zeros((n_frames, 1))
 
+    frames_index = np.arange(n_frames)
+    first_col = np.zeros(n_frames, np.int64)
+
     def snapshots(jj: int) -> np.ndarray:
-        sv = slot_vals[:, :, :, jj].transpose(0, 2, 1)  # [F, slot, rx]
-        return pipe.mimo.snapshots(sv.astype(np.complex64), zero_hz)[:, 0, :].astype(np.complex128)
+        # the frames' values of bin jj as a spectrum [rx, slot, frame, 1], one "cell" per frame
+        sv = np.ascontiguousarray(slot_vals[:, :, :, jj].transpose(1, 2, 0), np.complex64)[..., None]
+        return pipe.mimo.snapshots(sv, frames_index, first_col, zero_hz)[:, 0, :].astype(np.complex128)
 
     z = snapshots(j)  # [F, V]
     rho = max(float(np.mean(np.abs(z) ** 2 / sigma2_v[None, :])) - 1.0, 1e-12)

@@ -347,3 +347,57 @@ def test_deterministic(sensor):
     a = Pipeline(sensor).process(f)
     b = Pipeline(sensor).process(f.copy())
     assert a.tobytes() == b.tobytes()
+
+
+# ---- per-point record --------------------------------------------------------------------------
+
+@pytest.mark.parametrize("layout", ["planar", "azimuth_only", "elevation_only"])
+def test_point_kernel_matches_the_bound_functions(layout):
+    # The chain fills the point records in one compiled kernel; its standard deviations must equal
+    # the tone bound (Rife and Boorstyn, IEEE Trans. IT, 1974) and the direction-cosine CRB
+    # (Stoica and Nehorai, IEEE Trans. ASSP, 1989) as the angle module computes them, including the
+    # infinite ones of an array without extent, and the geometry of the sensor frame.
+    from daemon.chain.angle import crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg
+    from daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points, tone_crb_bins
+
+    lam = 0.0039
+    k = np.arange(8, dtype=np.float64)
+    pos = {"planar": np.c_[k * lam / 2, np.zeros(8), (k % 2) * lam / 2],
+           "azimuth_only": np.c_[k * lam / 2, np.zeros(8), np.zeros(8)],
+           "elevation_only": np.c_[np.zeros(8), np.zeros(8), k * lam / 2]}[layout]
+    rng = np.random.default_rng(5)
+    n_det, n_pts = 6, 9
+    det_index = np.sort(rng.integers(0, n_det, n_pts)).astype(np.int32)
+    az = rng.uniform(-70, 70, n_pts).astype(np.float32)
+    el = rng.uniform(-20, 20, n_pts).astype(np.float32)
+    peak = rng.uniform(0.1, 10, n_pts).astype(np.float32)
+    snr = rng.uniform(0.5, 1e4, n_det).astype(np.float32)
+    range_bin = rng.integers(1, 200, n_det).astype(np.int32)
+    range_frac = rng.uniform(-0.5, 0.5, n_det).astype(np.float32)
+    doppler_hz = rng.uniform(-3e3, 3e3, n_det)
+    bin_m, bias, half_wl = 0.0469, 0.012, lam / 2
+    out = np.empty(n_pts, POINT_DTYPE)
+    fill_points(range_bin, range_frac, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl, snr, 8, 256, 64,
+                0.0469, 0.077, *crb_unit_covariance(pos, lam), np.empty(n_det),
+                out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
+
+    first = np.zeros(n_det)
+    np.maximum.at(first, det_index, peak)
+    snr_pt = snr[det_index] * (peak / first[det_index])
+    rng_m = ((range_bin[det_index] + range_frac[det_index].astype(np.float64)) * bin_m - bias).astype(np.float32)
+    np.testing.assert_allclose(out["range_m"], rng_m, rtol=1e-6)
+    a, e = np.radians(az.astype(np.float64)), np.radians(el.astype(np.float64))
+    # sensor frame (project convention): x right, y boresight, z up
+    np.testing.assert_allclose(out["x_m"], rng_m * np.cos(e) * np.sin(a), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["y_m"], rng_m * np.cos(e) * np.cos(a), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["z_m"], rng_m * np.sin(e), rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl, rtol=1e-6)
+    np.testing.assert_allclose(out["snr_db"], 10 * np.log10(snr_pt), rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_range_m"], tone_crb_bins(snr_pt, 8, 256) * 0.0469, rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_velocity_mps"], tone_crb_bins(snr_pt, 8, 64) * 0.077, rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_azimuth_deg"], sigma_azimuth_deg(pos, lam, snr_pt, az, el), rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_elevation_deg"], sigma_elevation_deg(pos, lam, snr_pt, az, el), rtol=1e-5)
+    if layout == "azimuth_only":
+        assert np.all(np.isinf(out["sigma_elevation_deg"])) and np.all(np.isfinite(out["sigma_azimuth_deg"]))
+    if layout == "elevation_only":
+        assert np.all(np.isinf(out["sigma_azimuth_deg"])) and np.all(np.isfinite(out["sigma_elevation_deg"]))

@@ -93,6 +93,8 @@ from numba import njit
 
 from daemon.errors import CubecastError
 
+from .fft import ifft_unnormalised_inplace
+
 __all__ = [
     "VirtualGrid",
     "AngleSettings",
@@ -381,22 +383,51 @@ class AngleResult:
 
 
 @njit(cache=True)
-def _power_image(fx, dft_z, d, power):
-    """power[kz, kx] = |sum_iz dft_z[kz, iz] * fx[iz, d, kx]|^2: the z transform of one snapshot
-    whose rows are already transformed along x (fx is [n_z rows, n_det, n_fft_x])."""
-    n_rows = fx.shape[0]
-    nz = dft_z.shape[0]
-    nx = fx.shape[2]
-    for ix in range(nx):
-        for iz in range(nz):
-            acc = 0j
-            for r in range(n_rows):
-                acc += dft_z[iz, r] * fx[r, d, ix]
-            power[iz, ix] = acc.real * acc.real + acc.imag * acc.imag
+def _scatter_cells(x, weights, chan_iz, chan_ix, g):
+    """g[iz, d, ix] = sum of weights[c] x[d, c] over the channels c in grid cell (iz, ix); zero
+    elsewhere, including the zero padding of the rows."""
+    nz, n, kx = g.shape
+    for iz in range(nz):
+        for d in range(n):
+            for ix in range(kx):
+                g[iz, d, ix] = 0
+    for d in range(n):
+        for c in range(x.shape[1]):
+            g[chan_iz[c], d, chan_ix[c]] += weights[c] * x[d, c]
 
 
 @njit(cache=True)
-def _find_peaks(fx, dft_z, n_det, visible, rel_thr, max_peaks, power, out_det, out_iz, out_ix, out_pow):
+def _power_image(fx, dft_z, d, power, acc_re, acc_im):
+    """power[kz, kx] = |sum_iz dft_z[kz, iz] * fx[iz, d, kx]|^2: the z transform of one snapshot
+    whose rows are already transformed along x (fx is [n_z rows, n_det, n_fft_x]). One output row
+    at a time over all columns (acc_re, acc_im: float32 scratch of n_fft_x), so the inner loops
+    vectorise; float32 sums of a few rows, the power in float64."""
+    n_rows = fx.shape[0]
+    nz = dft_z.shape[0]
+    nx = fx.shape[2]
+    for iz in range(nz):
+        for ix in range(nx):
+            acc_re[ix] = 0.0
+            acc_im[ix] = 0.0
+        for r in range(n_rows):
+            cr = dft_z[iz, r].real
+            ci = dft_z[iz, r].imag
+            row = fx[r, d]
+            for ix in range(nx):
+                vr = row[ix].real
+                vi = row[ix].imag
+                acc_re[ix] += cr * vr - ci * vi
+                acc_im[ix] += cr * vi + ci * vr
+        out = power[iz]
+        for ix in range(nx):
+            re = np.float64(acc_re[ix])
+            im = np.float64(acc_im[ix])
+            out[ix] = re * re + im * im
+
+
+@njit(cache=True)
+def _find_peaks(fx, dft_z, n_det, visible, rel_thr, max_peaks, power, acc_re, acc_im, out_det, out_iz, out_ix,
+                out_pow):
     """Strongest `max_peaks` visible local maxima of the beam power per snapshot
     (8-neighbourhood, periodic; ties broken towards the lower flat index). Returns the number
     written."""
@@ -411,7 +442,7 @@ def _find_peaks(fx, dft_z, n_det, visible, rel_thr, max_peaks, power, out_det, o
     top_x = np.empty(max_peaks, np.int64)
     count = 0
     for d in range(n_det):
-        _power_image(fx, dft_z, d, power)
+        _power_image(fx, dft_z, d, power, acc_re, acc_im)
         pmax = 0.0
         for iz in range(nz):
             for ix in range(nx):
@@ -1069,21 +1100,18 @@ def _relax_peaks(
 
 
 @njit(cache=True)
-def _max_visible_power(fx, dft_z, n_det, visible, norm, out):
-    n_rows = fx.shape[0]
-    nz = dft_z.shape[0]
-    nx = fx.shape[2]
+def _max_visible_power(fx, dft_z, n_det, visible_f, norm, power, acc_re, acc_im, out):
+    """out[d] = max over visible grid points of the beam power image / norm[d] (0 where norm is 0);
+    visible_f is the visibility mask as 0.0 / 1.0."""
+    nz, nx = power.shape
     for d in range(n_det):
+        _power_image(fx, dft_z, d, power, acc_re, acc_im)
         m = 0.0
-        for ix in range(nx):
-            for iz in range(nz):
-                if visible[iz, ix]:
-                    acc = 0j
-                    for r in range(n_rows):
-                        acc += dft_z[iz, r] * fx[r, d, ix]
-                    p = acc.real * acc.real + acc.imag * acc.imag
-                    if p > m:
-                        m = p
+        for iz in range(nz):
+            for ix in range(nx):
+                p = power[iz, ix] * visible_f[iz, ix]
+                if p > m:
+                    m = p
         out[d] = m / norm[d] if norm[d] > 0.0 else 0.0
 
 
@@ -1176,6 +1204,9 @@ class AngleEstimator:
         self.bin_u = lam / (pitch * self.n_fft_x)
         self.bin_w = lam / (pitch * self.n_fft_z)
         self.visible = (self.w_grid[:, None] ** 2 + self.u_grid[None, :] ** 2) <= 1.0 + 1e-12
+        self._visible_f = self.visible.astype(np.float64)
+        self._acc_re = np.empty(self.n_fft_x, np.float32)
+        self._acc_im = np.empty(self.n_fft_x, np.float32)
         self._do_u = grid.n_x > 1
         self._do_w = grid.n_z > 1
         self._rel_thr = 10.0 ** (settings.peak_threshold_db / 10.0)
@@ -1192,19 +1223,12 @@ class AngleEstimator:
         # diagnostics of the last estimate(): (RELAX sweeps, peaks dropped while iterating,
         # joint trial steps), summed over the snapshots
         self._relax_stats = (0, 0, 0)
-        ch = np.arange(n_virt)
-        # channels -> cell means (windowed, calibrated) for the estimation image
-        m_mean = np.zeros((n_virt, grid.n_cells), dtype=np.complex64)
-        m_mean[ch, grid.channel_cell] = (
-            self._chan_weight / grid.cell_counts[grid.channel_cell]
-        ).astype(np.complex64)
-        self._m_mean = m_mean
-        # channels -> cell sums (calibrated, no window) for coherence: on-grid beam = a^H x
-        m_sum = np.zeros((n_virt, grid.n_cells), dtype=np.complex64)
-        m_sum[ch, grid.channel_cell] = cal
-        self._m_sum = m_sum
-        self._cell_iz = grid.cells[:, 0].astype(np.intp)
-        self._cell_ix = grid.cells[:, 1].astype(np.intp)
+        # channel weights into the grid cells: cell means (windowed, calibrated) for the estimation
+        # image; cell sums (calibrated, no window) for coherence, where the on-grid beam is a^H x
+        self._w_mean = (self._chan_weight / grid.cell_counts[grid.channel_cell]).astype(np.complex64)
+        self._w_sum = cal.copy()
+        self._chan_iz = grid.channel_iz.astype(np.int64)
+        self._chan_ix = grid.channel_ix.astype(np.int64)
 
         # steering geometry for refinement: phase = kx*u + kz*w on centred actual positions
         k0 = 2.0 * np.pi / lam
@@ -1224,7 +1248,6 @@ class AngleEstimator:
         # product (a DFT matrix) over all snapshots at once.
         g, mp = self.grid, self.settings.max_peaks
         self._capacity = capacity
-        self._grid_flat = np.zeros(capacity * g.n_z * g.n_x, dtype=np.complex64)
         self._fft_x_flat = np.empty(capacity * g.n_z * self.n_fft_x, dtype=np.complex64)
         self._pk_det = np.empty(capacity * mp, dtype=np.int64)
         self._pk_iz = np.empty(capacity * mp, dtype=np.int64)
@@ -1247,20 +1270,20 @@ class AngleEstimator:
             self._allocate(max(x.shape[0], 2 * self._capacity))
         return x
 
-    def _row_spectra(self, x: np.ndarray, matrix: np.ndarray) -> np.ndarray:
+    def _row_spectra(self, x: np.ndarray, weights: np.ndarray) -> np.ndarray:
         """Grid rows transformed along x: [n_z, n_det, n_fft_x], kernel exp(+j 2 pi k n / N).
 
-        The z transform (zero-padded to n_fft_z) is a small DFT matrix applied inside the numba
-        kernels, which never materialise the full [n_fft_z, n_det, n_fft_x] image: with only a
-        few rows that is much cheaper than an FFT along a non-contiguous axis.
+        Each channel's value times its weight is added into its grid cell (zero padded to n_fft_x),
+        then one in-place FFT runs along the contiguous rows. The z transform (zero-padded to
+        n_fft_z) is a small DFT matrix applied inside the numba kernels, which never materialise the
+        full [n_fft_z, n_det, n_fft_x] image: with only a few rows that is much cheaper than an FFT
+        along a non-contiguous axis.
         """
         n = x.shape[0]
-        nz, nx, kx = self.grid.n_z, self.grid.n_x, self.n_fft_x
-        g = self._grid_flat[: nz * n * nx].reshape(nz, n, nx)
-        g.fill(0)
-        g[self._cell_iz, :, self._cell_ix] = (x @ matrix).T
-        return np.fft.ifft(g, n=kx, axis=2, norm="forward",
-                           out=self._fft_x_flat[: nz * n * kx].reshape(nz, n, kx))
+        nz, kx = self.grid.n_z, self.n_fft_x
+        g = self._fft_x_flat[: nz * n * kx].reshape(nz, n, kx)
+        _scatter_cells(x, weights, self._chan_iz, self._chan_ix, g)
+        return ifft_unnormalised_inplace(g, axis=2)
 
     def estimate(self, snapshots: np.ndarray) -> AngleResult:
         """Find and refine angle peaks; snapshots complex64[n_det, n_virt] -> AngleResult.
@@ -1270,10 +1293,10 @@ class AngleEstimator:
         n = x.shape[0]
         if n == 0:
             return _empty_result()
-        fx = self._row_spectra(x, self._m_mean)
+        fx = self._row_spectra(x, self._w_mean)
         n_found = _find_peaks(
             fx, self._dft_z, n, self.visible, self._rel_thr, self.settings.max_peaks, self._power,
-            self._pk_det, self._pk_iz, self._pk_ix, self._pk_pow,
+            self._acc_re, self._acc_im, self._pk_det, self._pk_iz, self._pk_ix, self._pk_pow,
         )
         det = self._pk_det[:n_found]
         u_seed = self.u_grid[self._pk_ix[:n_found]]
@@ -1319,12 +1342,13 @@ class AngleEstimator:
         n = x.shape[0]
         if n == 0:
             return np.empty(0, dtype=np.float32)
-        fx = self._row_spectra(x, self._m_sum)
+        fx = self._row_spectra(x, self._w_sum)
         y = x * self.calibration
         energy = (y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2).sum(axis=1)
         norm = self.grid.n_virt * energy
         out = self._coh[:n]
-        _max_visible_power(fx, self._dft_z, n, self.visible, norm, out)
+        _max_visible_power(fx, self._dft_z, n, self._visible_f, norm, self._power, self._acc_re, self._acc_im,
+                           out)
         return out.astype(np.float32)
 
 
@@ -1436,3 +1460,10 @@ def sigma_elevation_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg=
     with np.errstate(divide="ignore", invalid="ignore"):
         sig = np.sqrt(var_w) / np.cos(el) + 0.0 * az
     return np.degrees(sig).astype(np.float32)
+
+
+def crb_unit_covariance(positions_m, wavelength_m) -> tuple[float, float, float, bool, bool]:
+    """(var_u, var_w, cov_uw) of the CRB above at 2 SNR = 1, and whether the array has extent in x
+    and in z: the covariance at any SNR is these divided by 2 SNR (inf where not identifiable)."""
+    var_u, var_w, cov, has_x, has_z = _direction_cosine_covariance(positions_m, wavelength_m, 0.5)
+    return float(var_u), float(var_w), float(cov), bool(has_x), bool(has_z)

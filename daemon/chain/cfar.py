@@ -101,9 +101,11 @@ N_INTEGRATED_MAX = 4096
 _KIND_CODE = {"ca": 0, "os": 1, "go": 2, "so": 3}
 # OS sliding band half-width in ranks: h = _OS_BAND_SCALE * sqrt(N) (speed only, never the result)
 _OS_BAND_SCALE = 1.0
-# sparse OS-CFAR floor: 70 % of the threshold a cell in receiver noise would face; map subsample stride
+# sparse OS-CFAR floor: 70 % of the threshold a cell in receiver noise would face; map subsample
+# stride for the median (a prime, so the subsample visits every Doppler column; a 256 x 128 map gives
+# about a thousand cells, whose median is within a few per cent of the map's)
 OS_FLOOR_FRACTION = 0.7
-_OS_FLOOR_STRIDE = 7
+_OS_FLOOR_STRIDE = 31
 
 
 # ----------------------------------------------------------------------------------------------------
@@ -749,7 +751,7 @@ def _gather_training(power, r, j, wr, gr, wd, gd, td, scratch):
 
 
 @njit(cache=True)
-def _os_sparse(power, stride, floor_scale, sub, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor,
+def _os_sparse(power, stride, floor_scale, sub, cand, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor,
                noise_scale, snr_floor, out_r, out_d, out_p, out_n, out_snr):
     """OS-CFAR with local-maximum grouping, evaluated only where it can matter: at 3x3 local maxima
     of the map above a floor, floor_scale times the median of every stride-th cell. Same answer as
@@ -767,36 +769,45 @@ def _os_sparse(power, stride, floor_scale, sub, wr, gr, wd, gd, td, rank0, scrat
         n_sub += 1
     median = _select_kth(sub, 0, n_sub - 1, n_sub // 2)
     floor = np.float32(floor_scale * np.float64(median))
-    count = 0
+    # first the cells above the floor, in one tight pass; then the local maxima among them
+    n_cand = 0
     for r in range(r_lo, r_hi):
+        row = power[r]
+        above = 0
+        for j in range(n_d):  # vectorises; most rows have nothing above the floor
+            above += row[j] > floor
+        if above:
+            for j in range(n_d):
+                if row[j] > floor:
+                    cand[n_cand] = r * n_d + j
+                    n_cand += 1
+    count = 0
+    for c in range(n_cand):
+        r = cand[c] // n_d
+        j = cand[c] - r * n_d
+        p = flat[cand[c]]
+        if not _is_local_max(power, r, j, p):
+            continue
         k0 = rank0[r]
-        fr = factor[r]
-        prow = power[r]
-        for j in range(n_d):
-            p = prow[j]
-            if not (p > floor):
-                continue
-            if not _is_local_max(power, r, j, p):
-                continue
-            if _count_below(power, r, j, wr, gr, wd, gd, td, fr, np.float64(p)) < k0 + 1:
-                continue
-            cnt = _gather_training(power, r, j, wr, gr, wd, gd, td, scratch)
-            w = _select_kth(scratch, 0, cnt - 1, k0)
-            noise = np.float32(w * noise_scale[r])
-            if noise > 0:
-                snr = np.float32(np.float32(np.float64(p) / np.float64(noise)) - np.float32(1.0))
-                if snr > np.float32(3.4028234663852886e38):
-                    snr = np.float32(3.4028234663852886e38)
-            elif p > 0:
+        if _count_below(power, r, j, wr, gr, wd, gd, td, factor[r], np.float64(p)) < k0 + 1:
+            continue
+        cnt = _gather_training(power, r, j, wr, gr, wd, gd, td, scratch)
+        w = _select_kth(scratch, 0, cnt - 1, k0)
+        noise = np.float32(w * noise_scale[r])
+        if noise > 0:
+            snr = np.float32(np.float32(np.float64(p) / np.float64(noise)) - np.float32(1.0))
+            if snr > np.float32(3.4028234663852886e38):
                 snr = np.float32(3.4028234663852886e38)
-            else:
-                snr = np.float32(snr_floor)
-            out_r[count] = r
-            out_d[count] = j
-            out_p[count] = p
-            out_n[count] = noise
-            out_snr[count] = max(snr, np.float32(snr_floor))
-            count += 1
+        elif p > 0:
+            snr = np.float32(3.4028234663852886e38)
+        else:
+            snr = np.float32(snr_floor)
+        out_r[count] = r
+        out_d[count] = j
+        out_p[count] = p
+        out_n[count] = noise
+        out_snr[count] = max(snr, np.float32(snr_floor))
+        count += 1
     return count
 
 
@@ -924,6 +935,7 @@ class Cfar:
             self._median_to_stat = float(np.min(mean_w_all)) / max(n_integrated - 1.0 / 3.0, 0.5)
             self._floor_scale = OS_FLOOR_FRACTION * self._factor_min * self._median_to_stat
             self._out_snr = np.empty(n_cells, dtype=np.float32)
+            self._cand = np.empty(n_cells, dtype=np.int64)
         else:
             self._pad = np.zeros(n_doppler + 2 * wd + 1, dtype=np.float64)
             self._dfull = np.zeros(shape, dtype=np.float64)
@@ -973,8 +985,8 @@ class Cfar:
             # OS_FLOOR_FRACTION * min(T) * (median of a map subsample) could only be detected where
             # the local statistic is under OS_FLOOR_FRACTION of the map's median, i.e. never in
             # receiver noise; everywhere else the result equals the full OS-CFAR.
-            count = _os_sparse(power, _OS_FLOOR_STRIDE, self._floor_scale, self._sub, self._wr, s.guard_range,
-                               self._wd, s.guard_doppler, s.train_doppler, self._rank0, self._scratch,
+            count = _os_sparse(power, _OS_FLOOR_STRIDE, self._floor_scale, self._sub, self._cand, self._wr,
+                               s.guard_range, self._wd, s.guard_doppler, s.train_doppler, self._rank0, self._scratch,
                                self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
                                self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
             return CfarDetections(range_bin=self._out_r[:count].copy(), doppler_bin=self._out_d[:count].copy(),

@@ -3,9 +3,10 @@
 Each receive channel's block [slot, range, loop] (windowed and range-transformed by rangefft.py,
 which writes it in this transposed layout) is transformed over the loops, where the memory is
 contiguous; the blocks together make the spectrum [rx, slot, range, doppler]. With real sampling
-only the lower half of the range bins is kept and transformed. Demultiplexing into the virtual array happens per detection
-afterwards (mimo.py): the FFTs and the decoding are linear and commute, and decoding after the
-Doppler FFT lets the Doppler-induced phase between slots be compensated first.
+only the lower half of the range bins is kept and transformed. Demultiplexing into the virtual
+array happens per detection afterwards (mimo.py): the FFTs and the decoding are linear and
+commute, and decoding after the Doppler FFT lets the Doppler-induced phase between slots be
+compensated first.
 
 The detection map is the non-coherent sum of |X|^2 over channels, float32 [range, doppler] with the
 Doppler axis shifted so that column j is Doppler bin j - n_doppler // 2.
@@ -24,22 +25,28 @@ from .windows import make_window
 
 
 @numba.njit(cache=True, nogil=True)
-def _accumulate_power(spec, n_bins, out):
-    """out[r, (d + nd // 2) % nd] += |spec[s, r, d]|^2 over the slots of one RX, r < n_bins. The shift
-    is split into two branch-free runs so the loops vectorise."""
+def _accumulate_power(spec, n_bins, row_sum, out):
+    """out[r, (d + nd // 2) % nd] += sum over the slots of one RX of |spec[s, r, d]|^2, r < n_bins.
+    The slots are summed into row_sum first (contiguous, vectorised), then added with the shift
+    split into two branch-free runs."""
     n_slots, _, nd = spec.shape
     half = nd // 2
     upper = nd - half
-    for s in range(n_slots):
-        for r in range(n_bins):
+    for r in range(n_bins):
+        first = spec[0, r]
+        for d in range(nd):
+            v = first[d]
+            row_sum[d] = v.real * v.real + v.imag * v.imag
+        for s in range(1, n_slots):
             row = spec[s, r]
-            o = out[r]
-            for d in range(upper):
+            for d in range(nd):
                 v = row[d]
-                o[d + half] += v.real * v.real + v.imag * v.imag
-            for d in range(upper, nd):
-                v = row[d]
-                o[d - upper] += v.real * v.real + v.imag * v.imag
+                row_sum[d] += v.real * v.real + v.imag * v.imag
+        o = out[r]
+        for d in range(upper):
+            o[d + half] += row_sum[d]
+        for d in range(upper, nd):
+            o[d - upper] += row_sum[d]
 
 
 class DopplerFft:
@@ -60,6 +67,7 @@ class DopplerFft:
         # [rx, slot, range, doppler]; with real sampling only the lower half of the range bins
         self.spectrum = self._full[:, :, :n_range_bins, :]
         self.power = np.zeros((n_range_bins, self.fft_size), np.float32)
+        self._row_sum = np.zeros(self.fft_size, np.float32)
         # Doppler frequency of one bin: 1 / (N_fft * T_loop)
         self.bin_hz = 1.0 / (self.fft_size * sensor.loop_period_s)
 
@@ -79,4 +87,4 @@ class DopplerFft:
         fft_inplace(rows)
 
     def accumulate(self, block: np.ndarray) -> None:
-        _accumulate_power(block, self.n_range_bins, self.power)
+        _accumulate_power(block, self.n_range_bins, self._row_sum, self.power)

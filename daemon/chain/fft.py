@@ -54,3 +54,15 @@ def fft_into(a: np.ndarray, out: np.ndarray, axis: int = -1) -> np.ndarray:
 def fft_inplace(a: np.ndarray, axis: int = -1) -> np.ndarray:
     """Transform a complex64 array along `axis` in place; returns `a`."""
     return fft_into(a, a, axis)
+
+
+def ifft_unnormalised_inplace(a: np.ndarray, axis: int = -1) -> np.ndarray:
+    """In place inverse transform without the 1/N (kernel exp(+j 2 pi k n / N)): what numpy and
+    scipy call norm="forward". Returns `a`."""
+    if DIRECT:
+        _pocketfft_c2c(a, (axis % a.ndim,), False, 0, a, 1)
+    else:
+        res = scipy.fft.ifft(a, axis=axis, norm="forward", overwrite_x=True, workers=1)
+        if not np.shares_memory(res, a):
+            a[...] = res
+    return a

@@ -16,10 +16,38 @@ the unambiguous velocity N_tx times (common practice).
 
 from __future__ import annotations
 
+import numba
 import numpy as np
 
 from ..sensor import Sensor
 from ..settings import ProcessingSettings
+
+
+@numba.njit(cache=True, nogil=True)
+def _snapshots(spec, range_bin, doppler_col, doppler_hz, decode, chirp_period_s, compensate, comp, out):
+    """out[i, h, k n_rx + l] = sum_s decode[k, s] exp(-j 2 pi f_ih s T_c) spec[l, s, r_i, d_i]: the
+    slot values of detection i (spectrum [rx, slot, range, doppler] at its cell), compensated for
+    Doppler hypothesis h (or not, without `compensate`) and decoded into the virtual array."""
+    n_rx, n_slots = spec.shape[0], spec.shape[1]
+    n_tx = decode.shape[0]
+    n_det, n_hyp = doppler_hz.shape
+    for i in range(n_det):
+        r, d = range_bin[i], doppler_col[i]
+        for h in range(n_hyp):
+            for s in range(n_slots):
+                if compensate:
+                    arg = -2.0 * np.pi * doppler_hz[i, h] * s * chirp_period_s
+                    ph = np.complex64(complex(np.cos(arg), np.sin(arg)))
+                else:
+                    ph = np.complex64(1.0)
+                for l in range(n_rx):
+                    comp[s, l] = ph * spec[l, s, r, d]
+            for k in range(n_tx):
+                for l in range(n_rx):
+                    acc = np.complex64(0.0)
+                    for s in range(n_slots):
+                        acc += decode[k, s] * comp[s, l]
+                    out[i, h, k * n_rx + l] = acc
 
 
 class MimoDecoder:
@@ -37,36 +65,38 @@ class MimoDecoder:
         # q = -(N//2) .. N//2: N hypotheses for odd N, N + 1 for even N (both edges of the interval)
         self.hypotheses = np.arange(-(n // 2), n // 2 + 1)
         self.margin = 10.0 ** (settings.unfolding_margin_db / 10.0)
-        self.slot_index = np.arange(self.n_slots)
+        self._comp = np.empty((self.n_slots, self.n_rx), np.complex64)
+        self._zero = int(np.flatnonzero(self.hypotheses == 0)[0])
 
     def doppler_hz(self, doppler_bin: np.ndarray) -> np.ndarray:
         """Doppler frequency of a (fractional, fft-shifted) Doppler bin before unfolding."""
         return (np.asarray(doppler_bin, np.float64) - self.n_doppler // 2) * self.doppler_bin_hz
 
-    def snapshots(self, slot_values: np.ndarray, doppler_hz: np.ndarray) -> np.ndarray:
-        """slot_values complex [n_det, n_slots, n_rx], doppler_hz [n_det, n_hyp]
-        -> virtual snapshots complex64 [n_det, n_hyp, n_tx * n_rx] (channel k * n_rx + l)."""
-        if self.compensate:
-            phase = np.exp(-2j * np.pi * doppler_hz[:, :, None] * self.slot_index * self.chirp_period_s)
-        else:
-            phase = np.ones(doppler_hz.shape + (self.n_slots,))
-        comp = phase.astype(np.complex64)[:, :, :, None] * slot_values[:, None, :, :]  # [det, hyp, slot, rx]
-        virt = np.einsum("ks,dhsl->dhkl", self.decode, comp)
-        return virt.reshape(virt.shape[0], virt.shape[1], self.n_tx * self.n_rx).astype(np.complex64)
+    def snapshots(self, spectrum: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
+                  doppler_hz: np.ndarray) -> np.ndarray:
+        """Virtual snapshots complex64 [n_det, n_hyp, n_tx * n_rx] (channel k * n_rx + l) of the cells
+        (range_bin, doppler_col) of spectrum [rx, slot, range, doppler] (unshifted Doppler columns),
+        for the Doppler hypotheses doppler_hz [n_det, n_hyp]."""
+        n_det, n_hyp = doppler_hz.shape
+        out = np.empty((n_det, n_hyp, self.n_tx * self.n_rx), np.complex64)
+        _snapshots(spectrum, np.asarray(range_bin, np.int64), np.asarray(doppler_col, np.int64),
+                   np.ascontiguousarray(doppler_hz, np.float64), self.decode, self.chirp_period_s,
+                   self.compensate, self._comp, out)
+        return out
 
-    def resolve(self, slot_values: np.ndarray, doppler_bin: np.ndarray, coherence) -> tuple[np.ndarray, np.ndarray]:
-        """Pick the Doppler hypothesis per detection. Returns (virtual snapshots [n_det, n_virt],
-        unfolded Doppler frequency [n_det] in Hz). `coherence(snapshots [n, n_virt]) -> [n]`."""
+    def resolve(self, spectrum: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
+                doppler_bin: np.ndarray, coherence) -> tuple[np.ndarray, np.ndarray]:
+        """Pick the Doppler hypothesis per detection at cells (range_bin, doppler_col) of the spectrum,
+        doppler_bin the refined fft-shifted bin. Returns (virtual snapshots [n_det, n_virt], unfolded
+        Doppler frequency [n_det] in Hz). `coherence(snapshots [n, n_virt]) -> [n]`."""
         base = self.doppler_hz(doppler_bin)
         cand = base[:, None] + self.hypotheses[None, :] / self.loop_period_s  # [det, hyp]
-        snaps = self.snapshots(slot_values, cand)
+        snaps = self.snapshots(spectrum, range_bin, doppler_col, cand)
         n_det, n_hyp = cand.shape
         if n_hyp == 1:
             return snaps[:, 0], cand[:, 0]
         score = coherence(snaps.reshape(n_det * n_hyp, -1)).reshape(n_det, n_hyp)
-        zero = int(np.flatnonzero(self.hypotheses == 0)[0])
-        score = score.copy()
-        score[:, zero] *= self.margin  # the unfolded hypothesis wins ties and near-ties
+        score[:, self._zero] *= self.margin  # the unfolded hypothesis wins ties and near-ties
         best = np.argmax(score, axis=1)
         rows = np.arange(n_det)
         return snaps[rows, best], cand[rows, best]

@@ -19,30 +19,53 @@ from __future__ import annotations
 
 import time
 
+import numba
 import numpy as np
 
 from ..errors import CubecastError
 from ..sensor import Sensor
 from ..settings import ProcessingSettings
-from .angle import AngleEstimator, AngleSettings, VirtualGrid, sigma_azimuth_deg, sigma_elevation_deg
+from .angle import AngleEstimator, AngleSettings, VirtualGrid, crb_unit_covariance
 from .cfar import Cfar, CfarSettings
 from .doppler import DopplerFft
 from .mimo import MimoDecoder
-from .points import POINT_DTYPE, tone_crb_bins
+from .points import POINT_DTYPE, POINT_FIELDS, fill_points
 from .rangefft import RangeFft
 
 STAGES = ("range_fft", "doppler_fft", "cfar", "mimo", "angle", "points")
 
 
-def _interp_log_parabola(lo: np.ndarray, mid: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """Fractional peak offset in (-0.5, 0.5) from three power samples, fitting a parabola to their
-    logarithms (Gaussian interpolation; common practice for windowed spectra)."""
+@numba.njit(cache=True, nogil=True)
+def _log_parabola(lo, mid, hi):
+    """Fractional peak offset in [-0.5, 0.5] from three power samples, fitting a parabola to their
+    logarithms (Gaussian interpolation; common practice for windowed spectra). float32."""
     eps = np.float32(1e-30)
-    a, b, c = np.log(lo + eps), np.log(mid + eps), np.log(hi + eps)
-    den = a - 2.0 * b + c
-    with np.errstate(divide="ignore", invalid="ignore"):
-        d = np.where(den < 0, 0.5 * (a - c) / den, 0.0)
-    return np.clip(d, -0.5, 0.5)
+    a = np.float32(np.log(lo + eps))
+    b = np.float32(np.log(mid + eps))
+    c = np.float32(np.log(hi + eps))
+    den = a - np.float32(2.0) * b + c
+    if not (den < 0):
+        return np.float32(0.0)
+    d = np.float32(0.5) * (a - c) / den
+    return min(max(d, np.float32(-0.5)), np.float32(0.5))
+
+
+@numba.njit(cache=True, nogil=True)
+def _refine_cells(power, range_bin, doppler_col, range_frac, doppler_frac, doppler_fft_col):
+    """Per detection: fractional range and Doppler offsets by log-parabolic interpolation of the
+    map (none at the first and last range bin; circular in Doppler), and the unshifted Doppler
+    column of the spectrum."""
+    n_range, n_dop = power.shape
+    half = n_dop // 2
+    for i in range(range_bin.shape[0]):
+        r, d = range_bin[i], doppler_col[i]
+        p = power[r, d]
+        if r == 0 or r == n_range - 1:
+            range_frac[i] = 0.0
+        else:
+            range_frac[i] = _log_parabola(power[r - 1, d], p, power[r + 1, d])
+        doppler_frac[i] = _log_parabola(power[r, (d - 1) % n_dop], p, power[r, (d + 1) % n_dop])
+        doppler_fft_col[i] = (d - half) % n_dop
 
 
 def _next_pow2(n: int) -> int:
@@ -103,6 +126,7 @@ class Pipeline:
         self.range_resolution_m = sensor.range_resolution_m
         self.velocity_resolution_mps = sensor.velocity_resolution_mps
         self.half_wavelength_m = sensor.wavelength_m / 2.0
+        self._crb_unit = crb_unit_covariance(self.virtual_positions_m, sensor.wavelength_m)
         self.stage_ms = dict.fromkeys(STAGES, 0.0)
         self._canonical = None
         self.range_bias_m = float(range_bias_m)
@@ -164,45 +188,22 @@ class Pipeline:
         else:
             r, d, snr = det.range_bin, det.doppler_bin, det.snr_linear
 
-        n_range, n_dop = power.shape
-        rp = np.clip(r + 1, 0, n_range - 1)
-        rm = np.clip(r - 1, 0, n_range - 1)
-        dr = _interp_log_parabola(power[rm, d], power[r, d], power[rp, d])
-        dr = np.where((r == 0) | (r == n_range - 1), 0.0, dr)
-        dd = _interp_log_parabola(power[r, (d - 1) % n_dop], power[r, d], power[r, (d + 1) % n_dop])
-        d_fft = (d - n_dop // 2) % n_dop
-        slot_values = spec[:, :, r, d_fft].transpose(2, 1, 0)  # [n_det, n_slots, n_rx]
-        snaps, doppler_hz = self.mimo.resolve(slot_values, d + dd, self.angle.coherence)
+        n = len(r)
+        dr, dd = np.empty(n, np.float32), np.empty(n, np.float32)
+        d_fft = np.empty(n, np.int64)
+        _refine_cells(power, r, d, dr, dd, d_fft)
+        snaps, doppler_hz = self.mimo.resolve(spec, r, d_fft, d + dd, self.angle.coherence)
         t4 = time.perf_counter()
 
         ang = self.angle.estimate(snaps)
         t5 = time.perf_counter()
 
-        i = ang.det_index
-        n = i.shape[0]
-        out = np.empty(n, POINT_DTYPE)
-        # a secondary angle peak gets the share of the cell's SNR its beam power holds
-        first = np.zeros(len(r), np.float64)
-        np.maximum.at(first, i, ang.peak_power)
-        snr_pt = snr[i] * (ang.peak_power / np.maximum(first[i], 1e-30))
-        range_m = ((r[i] + dr[i]) * self.range_fft.bin_m - self.range_bias_m).astype(np.float32)
-        az = np.radians(ang.azimuth_deg.astype(np.float64))
-        el = np.radians(ang.elevation_deg.astype(np.float64))
-        out["range_m"] = range_m
-        out["azimuth_deg"] = ang.azimuth_deg
-        out["elevation_deg"] = ang.elevation_deg
-        out["x_m"] = range_m * np.cos(el) * np.sin(az)
-        out["y_m"] = range_m * np.cos(el) * np.cos(az)
-        out["z_m"] = range_m * np.sin(el)
-        out["velocity_mps"] = doppler_hz[i] * self.half_wavelength_m
-        out["snr_db"] = 10.0 * np.log10(np.maximum(snr_pt, 1e-12))
-        out["sigma_range_m"] = tone_crb_bins(snr_pt, self.n_virtual, self.sensor.samples_per_chirp) \
-            * self.range_resolution_m
-        out["sigma_velocity_mps"] = tone_crb_bins(snr_pt, self.n_virtual, self.sensor.n_loops) \
-            * self.velocity_resolution_mps
-        pos, lam = self.virtual_positions_m, self.sensor.wavelength_m
-        out["sigma_azimuth_deg"] = sigma_azimuth_deg(pos, lam, snr_pt, ang.azimuth_deg, ang.elevation_deg)
-        out["sigma_elevation_deg"] = sigma_elevation_deg(pos, lam, snr_pt, ang.azimuth_deg, ang.elevation_deg)
+        out = np.empty(ang.det_index.shape[0], POINT_DTYPE)
+        fill_points(r, dr, self.range_fft.bin_m, self.range_bias_m, ang.det_index, ang.azimuth_deg,
+                    ang.elevation_deg, ang.peak_power, doppler_hz, self.half_wavelength_m, snr, self.n_virtual,
+                    self.sensor.samples_per_chirp, self.sensor.n_loops, self.range_resolution_m,
+                    self.velocity_resolution_mps, *self._crb_unit, np.empty(n, np.float64),
+                    out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
         t6 = time.perf_counter()
         self._times(t0, t1, t2, t3, t4, t5, t6)
         return out
