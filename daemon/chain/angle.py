@@ -621,10 +621,11 @@ def _newton_refine(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw, max_it
 
 @njit(cache=True)
 def _refine_peaks(
-    snapshots, chan_weight, kx, kz, n_found, det, u_seed, w_seed, do_u, do_w, do_refine,
+    snapshots, chan_weight, kx, kz, n_found, det, u_grid, w_grid, pk_ix, pk_iz, do_u, do_w, do_refine,
     max_du, max_dw, out_keep, out_u, out_w, out_p,
 ):
-    """Independent single-target refinement of every FFT peak (stage 5 of the module doc)."""
+    """Independent single-target refinement of every FFT peak (stage 5 of the module doc), seeded
+    at its grid point (u_grid[pk_ix], w_grid[pk_iz])."""
     n_virt = snapshots.shape[1]
     y = np.empty(n_virt, np.complex128)
     e = np.empty(n_virt, np.complex128)
@@ -636,8 +637,8 @@ def _refine_peaks(
             first_of_det = k
         for i in range(n_virt):
             y[i] = complex(snapshots[d, i]) * chan_weight[i]
-        u = u_seed[k]
-        w = w_seed[k]
+        u = u_grid[pk_ix[k]]
+        w = w_grid[pk_iz[k]]
         if do_refine:
             _phasors(kx, kz, u, w, e)
             u, w, p = _newton_refine(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw,
@@ -1100,11 +1101,16 @@ def _relax_peaks(
 
 
 @njit(cache=True)
-def _max_visible_power(fx, dft_z, n_det, visible_f, norm, power, acc_re, acc_im, out):
-    """out[d] = max over visible grid points of the beam power image / norm[d] (0 where norm is 0);
-    visible_f is the visibility mask as 0.0 / 1.0."""
+def _coherence(fx, dft_z, n_det, visible_f, x, calibration, n_virt, power, acc_re, acc_im, out):
+    """out[d] = max over visible grid points of the beam power image / (n_virt ||x_d c||^2), float32
+    (0 for an all-zero snapshot); visible_f is the visibility mask as 0.0 / 1.0, c the calibration."""
     nz, nx = power.shape
     for d in range(n_det):
+        energy = 0.0
+        for c in range(x.shape[1]):
+            y = x[d, c] * calibration[c]
+            energy += np.float64(y.real) ** 2 + np.float64(y.imag) ** 2
+        norm = n_virt * energy
         _power_image(fx, dft_z, d, power, acc_re, acc_im)
         m = 0.0
         for iz in range(nz):
@@ -1112,7 +1118,27 @@ def _max_visible_power(fx, dft_z, n_det, visible_f, norm, power, acc_re, acc_im,
                 p = power[iz, ix] * visible_f[iz, ix]
                 if p > m:
                     m = p
-        out[d] = m / norm[d] if norm[d] > 0.0 else 0.0
+        out[d] = np.float32(m / norm) if norm > 0.0 else np.float32(0.0)
+
+
+@njit(cache=True)
+def _kept_peaks(n_found, keep, det, u, w, p, power_norm, out_det, out_values):
+    """The kept peaks, in order: detection index, and rows azimuth = atan2(u, v), elevation =
+    asin(w) (degrees, v = sqrt(1 - u^2 - w^2)), u, w and peak power * power_norm. Returns the count."""
+    n = 0
+    for k in range(n_found):
+        if not keep[k]:
+            continue
+        uk, wk = u[k], w[k]
+        v = np.sqrt(max(0.0, 1.0 - uk * uk - wk * wk))
+        out_det[n] = det[k]
+        out_values[0, n] = np.degrees(np.arctan2(uk, v))
+        out_values[1, n] = np.degrees(np.arcsin(min(max(wk, -1.0), 1.0)))
+        out_values[2, n] = uk
+        out_values[3, n] = wk
+        out_values[4, n] = p[k] * power_norm
+        n += 1
+    return n
 
 
 # --------------------------------------------------------------------------------------------
@@ -1257,7 +1283,6 @@ class AngleEstimator:
         self._pk_u = np.empty(capacity * mp, dtype=np.float64)
         self._pk_w = np.empty(capacity * mp, dtype=np.float64)
         self._pk_p = np.empty(capacity * mp, dtype=np.float64)
-        self._coh = np.empty(capacity, dtype=np.float64)
 
     def _check(self, snapshots) -> np.ndarray:
         x = np.asarray(snapshots)
@@ -1299,10 +1324,9 @@ class AngleEstimator:
             self._acc_re, self._acc_im, self._pk_det, self._pk_iz, self._pk_ix, self._pk_pow,
         )
         det = self._pk_det[:n_found]
-        u_seed = self.u_grid[self._pk_ix[:n_found]]
-        w_seed = self.w_grid[self._pk_iz[:n_found]]
         _refine_peaks(
-            x, self._chan_weight, self._kx, self._kz, n_found, det, u_seed, w_seed,
+            x, self._chan_weight, self._kx, self._kz, n_found, det, self.u_grid, self.w_grid, self._pk_ix,
+            self._pk_iz,
             self._do_u, self._do_w, bool(self.settings.refine), self.bin_u, self.bin_w,
             self._pk_keep, self._pk_u, self._pk_w, self._pk_p,
         )
@@ -1316,18 +1340,13 @@ class AngleEstimator:
                 self._pk_keep, self._pk_u, self._pk_w,
                 self._pk_p,
             )
-        keep = self._pk_keep[:n_found]
-        u = self._pk_u[:n_found][keep]
-        w = self._pk_w[:n_found][keep]
-        v = np.sqrt(np.maximum(0.0, 1.0 - u * u - w * w))
-        return AngleResult(
-            det_index=det[keep].astype(np.int32),
-            azimuth_deg=np.degrees(np.arctan2(u, v)).astype(np.float32),
-            elevation_deg=np.degrees(np.arcsin(np.clip(w, -1.0, 1.0))).astype(np.float32),
-            u=u.astype(np.float32),
-            w=w.astype(np.float32),
-            peak_power=(self._pk_p[:n_found][keep] * self._power_norm).astype(np.float32),
-        )
+        det_index = np.empty(n_found, np.int32)
+        values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
+        n_kept = _kept_peaks(n_found, self._pk_keep, self._pk_det, self._pk_u, self._pk_w, self._pk_p,
+                             self._power_norm, det_index, values)
+        return AngleResult(det_index=det_index[:n_kept], azimuth_deg=values[0, :n_kept],
+                           elevation_deg=values[1, :n_kept], u=values[2, :n_kept], w=values[3, :n_kept],
+                           peak_power=values[4, :n_kept])
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).
@@ -1343,13 +1362,10 @@ class AngleEstimator:
         if n == 0:
             return np.empty(0, dtype=np.float32)
         fx = self._row_spectra(x, self._w_sum)
-        y = x * self.calibration
-        energy = (y.real.astype(np.float64) ** 2 + y.imag.astype(np.float64) ** 2).sum(axis=1)
-        norm = self.grid.n_virt * energy
-        out = self._coh[:n]
-        _max_visible_power(fx, self._dft_z, n, self._visible_f, norm, self._power, self._acc_re, self._acc_im,
-                           out)
-        return out.astype(np.float32)
+        out = np.empty(n, np.float32)
+        _coherence(fx, self._dft_z, n, self._visible_f, x, self.calibration, self.grid.n_virt, self._power,
+                   self._acc_re, self._acc_im, out)
+        return out
 
 
 def _empty_result() -> AngleResult:

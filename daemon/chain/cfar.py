@@ -184,6 +184,10 @@ class CfarDetections:
     def __len__(self) -> int:
         return int(self.range_bin.shape[0])
 
+    def copy(self) -> CfarDetections:
+        return CfarDetections(self.range_bin.copy(), self.doppler_bin.copy(), self.power.copy(), self.noise.copy(),
+                              self.snr_linear.copy())
+
 
 # ----------------------------------------------------------------------------------------------------
 # incomplete gamma in log space (numpy, start-up only)
@@ -976,8 +980,9 @@ class Cfar:
         np.multiply(self._stat, self._factor32, out=self._threshold)
         return self._threshold
 
-    def detect(self, power: np.ndarray) -> CfarDetections:
-        """Detections of one map (see CfarDetections); the returned arrays are owned by the caller."""
+    def detect(self, power: np.ndarray, copy: bool = True) -> CfarDetections:
+        """Detections of one map (see CfarDetections). The returned arrays are owned by the caller,
+        or with copy=False views of the detector's buffers, valid until its next call."""
         self._check_map(power)
         s = self.settings
         if self._kind_code == 1 and s.local_max:
@@ -989,9 +994,10 @@ class Cfar:
                                s.guard_range, self._wd, s.guard_doppler, s.train_doppler, self._rank0, self._scratch,
                                self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
                                self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
-            return CfarDetections(range_bin=self._out_r[:count].copy(), doppler_bin=self._out_d[:count].copy(),
-                                  power=self._out_p[:count].copy(), noise=self._out_n[:count].copy(),
-                                  snr_linear=self._out_snr[:count].copy())
+            det = CfarDetections(range_bin=self._out_r[:count], doppler_bin=self._out_d[:count],
+                                 power=self._out_p[:count], noise=self._out_n[:count],
+                                 snr_linear=self._out_snr[:count])
+            return det.copy() if copy else det
         self._compute_statistic(power)
         count = _extract(power, self._stat, self.factor, self.noise_scale, self._r_lo, self._r_hi,
                          bool(s.local_max), self._out_r, self._out_d, self._out_p, self._out_n)

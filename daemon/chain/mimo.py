@@ -27,7 +27,8 @@ from ..settings import ProcessingSettings
 def _snapshots(spec, range_bin, doppler_col, doppler_hz, decode, chirp_period_s, compensate, comp, out):
     """out[i, h, k n_rx + l] = sum_s decode[k, s] exp(-j 2 pi f_ih s T_c) spec[l, s, r_i, d_i]: the
     slot values of detection i (spectrum [rx, slot, range, doppler] at its cell), compensated for
-    Doppler hypothesis h (or not, without `compensate`) and decoded into the virtual array."""
+    Doppler hypothesis f_ih = doppler_hz[i, h] (or not, without `compensate`) and decoded into the
+    virtual array."""
     n_rx, n_slots = spec.shape[0], spec.shape[1]
     n_tx = decode.shape[0]
     n_det, n_hyp = doppler_hz.shape
@@ -50,6 +51,34 @@ def _snapshots(spec, range_bin, doppler_col, doppler_hz, decode, chirp_period_s,
                     out[i, h, k * n_rx + l] = acc
 
 
+@numba.njit(cache=True, nogil=True)
+def _hypotheses(doppler_bin, half, bin_hz, offsets_hz, out):
+    """out[i, h] = (doppler_bin[i] - half) bin_hz + offsets_hz[h]: the Doppler frequency of a
+    fractional fft-shifted bin, plus each unfolding hypothesis."""
+    for i in range(doppler_bin.shape[0]):
+        base = (doppler_bin[i] - half) * bin_hz
+        for h in range(offsets_hz.shape[0]):
+            out[i, h] = base + offsets_hz[h]
+
+
+@numba.njit(cache=True, nogil=True)
+def _pick(score, zero, margin, snaps, cand, out_snaps, out_hz):
+    """Per detection the hypothesis of highest score, the unfolded one (index `zero`) scaled by
+    `margin` (float32, as the scores); the first on ties."""
+    n_det, n_hyp = score.shape
+    for i in range(n_det):
+        best = 0
+        top = score[i, 0] * margin if zero == 0 else score[i, 0]
+        for h in range(1, n_hyp):
+            v = score[i, h] * margin if h == zero else score[i, h]
+            if v > top:
+                top = v
+                best = h
+        for c in range(snaps.shape[2]):
+            out_snaps[i, c] = snaps[i, best, c]
+        out_hz[i] = cand[i, best]
+
+
 class MimoDecoder:
     def __init__(self, sensor: Sensor, settings: ProcessingSettings, doppler_bin_hz: float, n_doppler: int):
         self.n_slots, self.n_rx, self.n_tx = sensor.n_slots, sensor.n_rx, sensor.n_tx
@@ -67,6 +96,19 @@ class MimoDecoder:
         self.margin = 10.0 ** (settings.unfolding_margin_db / 10.0)
         self._comp = np.empty((self.n_slots, self.n_rx), np.complex64)
         self._zero = int(np.flatnonzero(self.hypotheses == 0)[0])
+        self._offsets_hz = self.hypotheses / self.loop_period_s
+        self._margin32 = np.float32(self.margin)
+        self._capacity = 0
+        self._reserve(64)
+
+    def _reserve(self, n_det: int) -> None:
+        """Buffers for n_det detections (grown, never shrunk)."""
+        if n_det <= self._capacity:
+            return
+        n_hyp, n_virt = self.hypotheses.shape[0], self.n_tx * self.n_rx
+        self._capacity = n_det = max(n_det, 2 * self._capacity)
+        self._cand = np.empty((n_det, n_hyp), np.float64)
+        self._snaps = np.empty((n_det, n_hyp, n_virt), np.complex64)
 
     def doppler_hz(self, doppler_bin: np.ndarray) -> np.ndarray:
         """Doppler frequency of a (fractional, fft-shifted) Doppler bin before unfolding."""
@@ -88,15 +130,20 @@ class MimoDecoder:
                 doppler_bin: np.ndarray, coherence) -> tuple[np.ndarray, np.ndarray]:
         """Pick the Doppler hypothesis per detection at cells (range_bin, doppler_col) of the spectrum,
         doppler_bin the refined fft-shifted bin. Returns (virtual snapshots [n_det, n_virt], unfolded
-        Doppler frequency [n_det] in Hz). `coherence(snapshots [n, n_virt]) -> [n]`."""
-        base = self.doppler_hz(doppler_bin)
-        cand = base[:, None] + self.hypotheses[None, :] / self.loop_period_s  # [det, hyp]
-        snaps = self.snapshots(spectrum, range_bin, doppler_col, cand)
-        n_det, n_hyp = cand.shape
+        Doppler frequency [n_det] in Hz), both the caller's. `coherence(snapshots [n, n_virt]) -> [n]`
+        float32."""
+        n_det = range_bin.shape[0]
+        n_hyp = self.hypotheses.shape[0]
+        self._reserve(n_det)
+        cand, snaps = self._cand[:n_det], self._snaps[:n_det]
+        _hypotheses(np.asarray(doppler_bin, np.float64), self.n_doppler // 2, self.doppler_bin_hz,
+                    self._offsets_hz, cand)
+        _snapshots(spectrum, range_bin, doppler_col, cand, self.decode, self.chirp_period_s, self.compensate,
+                   self._comp, snaps)
         if n_hyp == 1:
-            return snaps[:, 0], cand[:, 0]
+            return snaps[:, 0].copy(), cand[:, 0].copy()
         score = coherence(snaps.reshape(n_det * n_hyp, -1)).reshape(n_det, n_hyp)
-        score[:, self._zero] *= self.margin  # the unfolded hypothesis wins ties and near-ties
-        best = np.argmax(score, axis=1)
-        rows = np.arange(n_det)
-        return snaps[rows, best], cand[rows, best]
+        out_snaps = np.empty((n_det, snaps.shape[2]), np.complex64)
+        out_hz = np.empty(n_det, np.float64)
+        _pick(score, self._zero, self._margin32, snaps, cand, out_snaps, out_hz)
+        return out_snaps, out_hz

@@ -175,7 +175,7 @@ class Pipeline:
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()
         t1 = t0 + t_range
-        det = self.cfar.detect(power)
+        det = self.cfar.detect(power, copy=False)  # used before the next frame's detection
         t3 = time.perf_counter()
         n_det = len(det)
         self.last_detections = n_det
