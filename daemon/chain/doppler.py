@@ -78,10 +78,13 @@ class DopplerFft:
     def begin(self) -> None:
         self.power[...] = 0
 
-    def transform(self, block: np.ndarray) -> None:
-        """Doppler FFT over the loops of the kept range rows, in place; zero padding past the loops
-        is restored first (the previous frame's transform wrote over it)."""
-        rows = block[:, : self.n_range_bins, :]
+    def rows(self, block: np.ndarray) -> np.ndarray:
+        """The part of `block` the Doppler FFT transforms: the kept range rows."""
+        return block[:, : self.n_range_bins, :]
+
+    def transform(self, rows: np.ndarray) -> None:
+        """Doppler FFT over the loops of the kept range rows (a `rows` view), in place; zero padding
+        past the loops is restored first (the previous frame's transform wrote over it)."""
         if self.fft_size > self.n_loops:
             rows[:, :, self.n_loops:] = 0
         fft_inplace(rows)

@@ -86,6 +86,9 @@ class Pipeline:
         self.doppler_fft = DopplerFft(sensor, settings, self.range_fft.fft_size, n_range,
                                       sensor.samples_per_chirp)
         n_dop = self.doppler_fft.fft_size
+        # per receive channel: its block of the spectrum and the views the two FFTs write
+        self._blocks = [(rx, b, self.range_fft.output_view(b), self.doppler_fft.rows(b))
+                        for rx, b in ((rx, self.doppler_fft.block(rx)) for rx in range(sensor.n_rx))]
 
         max_range = settings.max_range_m or sensor.max_range_m
         if settings.max_range_m > sensor.max_range_m:
@@ -142,7 +145,7 @@ class Pipeline:
         if frame.shape != self.frame_shape or frame.dtype != np.complex64:
             raise CubecastError(f"frame has shape {frame.shape} dtype {frame.dtype}; the chain expects "
                                 f"complex64 {self.frame_shape} for sensor '{self.sensor.sensor_id}'")
-        return self._process(frame, self.range_fft.load)
+        return self._process(frame, False)
 
     def process_raw(self, raw: np.ndarray) -> np.ndarray:
         """Points of one frame in the sensor's ADC format (as a board or capture delivers it). Int16
@@ -153,24 +156,24 @@ class Pipeline:
             raise CubecastError(f"frame has shape {raw.shape} dtype {raw.dtype}; sensor "
                                 f"'{self.sensor.sensor_id}' delivers {self.sensor.adc.raw_dtype()} {shape}")
         if self.range_fft.raw_iq16:
-            return self._process(raw, self.range_fft.load_raw)
+            return self._process(raw, True)
         if self._canonical is None:
             self._canonical = np.empty(self.frame_shape, np.complex64)
         return self.process(self.sensor.raw_to_canonical(raw, self._canonical))
 
-    def _process(self, data: np.ndarray, load) -> np.ndarray:
+    def _process(self, data: np.ndarray, raw: bool) -> np.ndarray:
         t0 = time.perf_counter()
         t_range = 0.0
         rng, dop = self.range_fft, self.doppler_fft
         dop.begin()
         window_d = dop.window
-        for rx in range(self.sensor.n_rx):
+        source = rng.source(data, raw)
+        for rx, block, range_out, doppler_rows in self._blocks:
             ta = time.perf_counter()
-            block = dop.block(rx)
-            load(data, rx, window_d)  # counted with the range stage
-            rng.transform(block)
+            rng.load(source, rx, window_d)  # counted with the range stage
+            rng.transform(range_out)
             t_range += time.perf_counter() - ta
-            dop.transform(block)
+            dop.transform(doppler_rows)
             dop.accumulate(block)
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()

@@ -90,19 +90,25 @@ class RangeFft:
         self.stage = np.zeros((self.n_slots, self.n_loops, self.fft_size), np.complex64)
         self._stage_f = self.stage.view(np.float32)
 
-    def load(self, frame: np.ndarray, rx: int, doppler_window: np.ndarray) -> None:
-        """Windowed samples of receive channel `rx` of a canonical frame into the staging block."""
-        src = np.ascontiguousarray(frame).view(np.float32)
-        _load(src, rx, self.n_slots, self._w2, doppler_window, False, self.remove_static, self._mean,
-              self._stage_f)
+    def source(self, data: np.ndarray, raw: bool) -> tuple[np.ndarray, np.ndarray, bool]:
+        """What `load` reads for one frame: the interleaved I/Q view [chirp, rx, 2 * samples] of a
+        canonical frame (raw=False) or of the board's int16 I/Q [chirp, rx, sample, 2] (raw=True),
+        with its window and I/Q swap."""
+        if raw:
+            return (np.ascontiguousarray(data).reshape(data.shape[0], data.shape[1], -1), self._w2_raw,
+                    self.adc.swap_iq)
+        return np.ascontiguousarray(data).view(np.float32), self._w2, False
 
-    def load_raw(self, raw: np.ndarray, rx: int, doppler_window: np.ndarray) -> None:
-        """The same straight from int16 I/Q [chirp, rx, sample, 2], with the board's I/Q conventions."""
-        src = np.ascontiguousarray(raw).reshape(raw.shape[0], raw.shape[1], -1)
-        _load(src, rx, self.n_slots, self._w2_raw, doppler_window, self.adc.swap_iq, self.remove_static,
-              self._mean, self._stage_f)
+    def load(self, source: tuple[np.ndarray, np.ndarray, bool], rx: int, doppler_window: np.ndarray) -> None:
+        """Windowed samples of receive channel `rx` into the staging block."""
+        src, w2, swap = source
+        _load(src, rx, self.n_slots, w2, doppler_window, swap, self.remove_static, self._mean, self._stage_f)
 
-    def transform(self, block: np.ndarray) -> None:
-        """Range FFT of the staging block into `block` [slot, range_fft_size, doppler_fft_size],
-        written transposed into its first n_loops Doppler columns."""
-        fft_into(self.stage, block[:, :, : self.n_loops].transpose(0, 2, 1), axis=2)
+    def output_view(self, block: np.ndarray) -> np.ndarray:
+        """The view of `block` [slot, range_fft_size, doppler_fft_size] the range FFT writes: its
+        first n_loops Doppler columns, transposed to [slot, loop, range]."""
+        return block[:, :, : self.n_loops].transpose(0, 2, 1)
+
+    def transform(self, out: np.ndarray) -> None:
+        """Range FFT of the staging block into `out` (an output_view)."""
+        fft_into(self.stage, out, axis=2)
