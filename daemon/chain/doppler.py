@@ -50,8 +50,7 @@ def _accumulate_power(spec, n_bins, row_sum, out):
 
 
 class DopplerFft:
-    def __init__(self, sensor: Sensor, settings: ProcessingSettings, range_fft_size: int, n_range_bins: int,
-                 n_samples: int):
+    def __init__(self, sensor: Sensor, settings: ProcessingSettings, range_fft_size: int, n_range_bins: int):
         self.n_loops = sensor.n_loops
         self.fft_size = settings.doppler_fft_size or self.n_loops
         if self.fft_size < self.n_loops:
@@ -61,7 +60,6 @@ class DopplerFft:
         self.n_rx = sensor.n_rx
         self.n_channels = sensor.n_slots * sensor.n_rx
         self.n_range_bins = n_range_bins
-        self.n_samples = n_samples
         self.window = make_window(settings.doppler_window, self.n_loops, settings.doppler_kaiser_beta)
         self._full = np.zeros((self.n_rx, self.n_slots, range_fft_size, self.fft_size), np.complex64)
         # [rx, slot, range, doppler]; with real sampling only the lower half of the range bins

@@ -42,7 +42,7 @@ def fft_into(a: np.ndarray, out: np.ndarray, axis: int = -1) -> np.ndarray:
     view, or `a` itself for in place); it must not otherwise overlap `a`. Returns `out`."""
     if DIRECT:
         _pocketfft_c2c(a, (axis % a.ndim,), True, 0, out, 1)
-    elif out is a or (out.shape == a.shape and out.strides == a.strides and np.shares_memory(out, a)):
+    elif out is a:
         res = scipy.fft.fft(a, axis=axis, overwrite_x=True, workers=1)
         if not np.shares_memory(res, a):
             out[...] = res

@@ -83,12 +83,13 @@ class Pipeline:
         self.frame_shape = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
         self.range_fft = RangeFft(sensor, settings)
         n_range = self.range_fft.n_bins
-        self.doppler_fft = DopplerFft(sensor, settings, self.range_fft.fft_size, n_range,
-                                      sensor.samples_per_chirp)
+        self.doppler_fft = DopplerFft(sensor, settings, self.range_fft.fft_size, n_range)
         n_dop = self.doppler_fft.fft_size
         # per receive channel: its block of the spectrum and the views the two FFTs write
-        self._blocks = [(rx, b, self.range_fft.output_view(b), self.doppler_fft.rows(b))
-                        for rx, b in ((rx, self.doppler_fft.block(rx)) for rx in range(sensor.n_rx))]
+        self._blocks = []
+        for rx in range(sensor.n_rx):
+            b = self.doppler_fft.block(rx)
+            self._blocks.append((rx, b, self.range_fft.output_view(b), self.doppler_fft.rows(b)))
 
         max_range = settings.max_range_m or sensor.max_range_m
         if settings.max_range_m > sensor.max_range_m:
