@@ -574,7 +574,8 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
         ("format", CALIBRATION_FORMAT, ""),
         ("version", CALIBRATION_VERSION, ""),
         ("sensor_id", s.sensor_id, ""),
-        ("sensor_digest", s.digest, "the sensor description this calibration is valid for"),
+        ("sensor_digest", s.digest, "the sensor description it was made with"),
+        ("array_digest", s.array_digest, "valid for sensors with this chirp, array, MIMO code and ADC format"),
         ("n_tx", s.n_tx, ""),
         ("n_rx", s.n_rx, ""),
         ("created_utc", created, ""),
@@ -693,6 +694,7 @@ class CalibrationFile:
     range_bias_m: float
     sensor_id: str
     sensor_digest: str
+    array_digest: str | None  # None in files written before the array digest existed
     n_tx: int
     n_rx: int
     created_utc: str
@@ -732,9 +734,10 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
     if head.get("version") != CALIBRATION_VERSION:
         raise CubecastError(f"{pre} [calibration] version = {head.get('version')!r}: this cubecast reads "
                             f"version {CALIBRATION_VERSION}")
-    for key in ("sensor_id", "sensor_digest"):
+    for key in ("sensor_id", "sensor_digest") + (("array_digest",) if "array_digest" in head else ()):
         if not isinstance(head.get(key), str) or not head.get(key):
             raise CubecastError(f"{pre} [calibration] {key} = {head.get(key)!r}: must be a non-empty string")
+    array_digest = head.get("array_digest")
     n_tx, n_rx = head.get("n_tx"), head.get("n_rx")
     for key, value in (("n_tx", n_tx), ("n_rx", n_rx)):
         if isinstance(value, bool) or not isinstance(value, int) or value < 1:
@@ -770,7 +773,11 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
         if (n_tx, n_rx) != (sensor.n_tx, sensor.n_rx):
             raise CubecastError(f"{pre} {n_virt} channels {made_for}; {this} has {sensor.n_virtual} virtual "
                                 f"channels")
-        if head["sensor_digest"] != sensor.digest:
+        if array_digest is not None and array_digest != sensor.array_digest:
+            raise CubecastError(f"{pre} [calibration] array_digest = {array_digest!r}: {made_for}, whose chirp, "
+                                f"antenna positions, MIMO code or ADC format differ from {this} (array digest "
+                                f"{sensor.array_digest}); calibrate again with a capture of this sensor")
+        if array_digest is None and head["sensor_digest"] != sensor.digest:
             raise CubecastError(f"{pre} [calibration] sensor_digest = {head['sensor_digest']!r}: {made_for}, "
                                 f"not for {this}; calibrate again with a capture of this sensor")
     report = doc.get("report", {}) if isinstance(doc.get("report"), dict) else {}
@@ -778,7 +785,8 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
     frames_used = head.get("frames_used", 0)
     return CalibrationFile(
         path=str(path), vector=(1.0 / gain).astype(np.complex64), gain=gain, range_bias_m=bias,
-        sensor_id=head["sensor_id"], sensor_digest=head["sensor_digest"], n_tx=n_tx, n_rx=n_rx,
+        sensor_id=head["sensor_id"], sensor_digest=head["sensor_digest"], array_digest=array_digest, n_tx=n_tx,
+        n_rx=n_rx,
         created_utc=str(head.get("created_utc", "")),
         frames_used=int(frames_used) if isinstance(frames_used, int) else 0,
         target=dict(doc.get("target", {})) if isinstance(doc.get("target"), dict) else {},

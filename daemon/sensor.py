@@ -99,6 +99,25 @@ class Sensor:
 
     # ---- derived figures -------------------------------------------------------------
     @property
+    def array_digest(self) -> str:
+        """16-hex digest of what an array calibration depends on: the carrier and IF (start
+        frequency, slope, sample rate, samples per chirp, ADC start delay), the antenna positions,
+        the MIMO code and the ADC format. Not the id, frame, link budget, field of view or mount
+        height: editing those keeps a calibration valid, where `digest` (the whole description)
+        changes."""
+        doc = {
+            "chirp": [self.start_frequency_hz, self.slope_hz_per_s, self.sample_rate_hz, self.samples_per_chirp,
+                      self.adc_start_delay_s],
+            # picometre rounding: the same positions given in metres or in half-wavelengths agree
+            "tx": np.round(self.tx_positions_m, 12).tolist(),
+            "rx": np.round(self.rx_positions_m, 12).tolist(),
+            "mimo": [self.mimo_scheme, self.mimo_code.tolist()],
+            "adc": [self.adc.sampling, self.adc.sample_type, self.adc.full_scale, self.adc.swap_iq,
+                    self.adc.conjugate],
+        }
+        return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16]
+
+    @property
     def n_tx(self) -> int:
         return self.tx_positions_m.shape[0]
 

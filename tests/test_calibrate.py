@@ -345,11 +345,57 @@ def test_calibration_of_another_sensor_is_rejected(calibration, sensor):
     ula = make_sensor(n_tx_az=4, n_rx=4, elevation_tx=False)
     with pytest.raises(CubecastError, match="16 virtual channels"):
         load_calibration(calibration["path"], ula)
-    # same array, one changed figure: another sensor description, another digest
-    other = parse_sensor(sensor.source_text.replace("noise_figure_db = 12.0", "noise_figure_db = 13.0"), "other")
-    assert other.n_virtual == sensor.n_virtual
-    with pytest.raises(CubecastError, match="sensor_digest"):
+    # same channel count, another chirp: the carrier at the samples moves, and with it every
+    # path-length phase between channels
+    other = parse_sensor(sensor.source_text.replace("start_frequency_hz = 77.0e9", "start_frequency_hz = 78.0e9"),
+                         "other")
+    assert other.n_virtual == sensor.n_virtual and other.array_digest != sensor.array_digest
+    with pytest.raises(CubecastError, match="array_digest .* chirp, antenna positions, MIMO code or ADC format"):
         load_calibration(calibration["path"], other)
+    swapped = parse_sensor(sensor.source_text.replace("swap_iq = false", "swap_iq = true"), "swapped")
+    with pytest.raises(CubecastError, match="array_digest"):
+        load_calibration(calibration["path"], swapped)
+
+
+def test_calibration_survives_edits_that_do_not_touch_the_array(calibration, sensor):
+    # the link budget, the frame and the id describe the same hardware paths: the file still applies
+    text = (sensor.source_text.replace("noise_figure_db = 12.0", "noise_figure_db = 13.0")
+            .replace('id = "test-sensor"', 'id = "bench-b"'))
+    edited = parse_sensor(text, "edited")
+    assert edited.digest != sensor.digest and edited.array_digest == sensor.array_digest
+    np.testing.assert_array_equal(load_calibration(calibration["path"], edited),
+                                  load_calibration(calibration["path"], sensor))
+
+
+def test_file_without_array_digest_needs_the_same_description(calibration, sensor, tmp_path):
+    # a file written before the array digest existed is checked against the whole description
+    lines = [ln for ln in calibration["path"].read_text().splitlines() if not ln.startswith("array_digest")]
+    old = tmp_path / "old.toml"
+    old.write_text("\n".join(lines) + "\n")
+    assert load_calibration_file(old, sensor).array_digest is None
+    other = parse_sensor(sensor.source_text.replace("noise_figure_db = 12.0", "noise_figure_db = 13.0"), "other")
+    with pytest.raises(CubecastError, match="sensor_digest"):
+        load_calibration(old, other)
+
+
+def test_array_digest_ignores_how_positions_are_written():
+    # the same positions in metres ([x, y, z]) or in half-wavelengths ([x, z]) are the same array
+    from tests.helpers import sensor_text
+    text = sensor_text()
+    s_hw = parse_sensor(text, "hw")
+
+    def metres(pos):
+        return "[" + ", ".join(f"[{x!r}, {y!r}, {z!r}]" for x, y, z in pos.tolist()) + "]"
+
+    lines = []
+    for ln in text.splitlines():
+        if ln.startswith("tx_positions_half_wavelength"):
+            ln = f"tx_positions_m = {metres(s_hw.tx_positions_m)}"
+        elif ln.startswith("rx_positions_half_wavelength"):
+            ln = f"rx_positions_m = {metres(s_hw.rx_positions_m)}"
+        lines.append(ln)
+    s_m = parse_sensor("\n".join(lines), "metres")
+    assert s_m.digest != s_hw.digest and s_m.array_digest == s_hw.array_digest
 
 
 def test_damaged_files_are_rejected(calibration, sensor, tmp_path):
