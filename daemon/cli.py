@@ -83,13 +83,21 @@ def _serve(args) -> int:
     return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
                  quiet=args.quiet, workers=args.workers, tasks=args.tasks, results=args.results,
-                 task_timeout_s=args.task_timeout)
+                 task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys)
 
 
 def _worker(args) -> int:
     from .workers import run_worker
     return run_worker(args.connect, args.results, sensor_path=args.sensor, name=args.name,
-                      capacity=args.capacity, quiet=args.quiet, check_crc=not args.skip_crc)
+                      capacity=args.capacity, quiet=args.quiet, check_crc=not args.skip_crc,
+                      server_key=args.server_key, key=args.key)
+
+
+def _keys(args) -> int:
+    from .keys import create_keys
+    public, secret = create_keys(args.name, args.dir)
+    print(f"wrote {public} (public: give it to the other side) and {secret} (secret: keep it on this host)")
+    return 0
 
 
 def _replay(args) -> int:
@@ -176,6 +184,10 @@ def build_parser() -> argparse.ArgumentParser:
     sv.add_argument("--results", metavar="ENDPOINT", help="bind this endpoint for worker results (with --tasks)")
     sv.add_argument("--task-timeout", type=float, default=None, metavar="S",
                     help="with workers: a frame not answered within S seconds is counted lost (default 2)")
+    sv.add_argument("--server-key", metavar="FILE",
+                    help="with workers: require keys; serve's secret key (NAME.key_secret from `cubecast keys`)")
+    sv.add_argument("--worker-keys", metavar="DIR",
+                    help="with --server-key: folder of the public keys (*.key) of the workers accepted")
     sv.set_defaults(func=_serve)
 
     wk = sub.add_parser("worker", help="process frames for a serve on this or another host")
@@ -189,7 +201,15 @@ def build_parser() -> argparse.ArgumentParser:
     wk.add_argument("--skip-crc", action="store_true",
                     help="do not re-check each frame's CRC-32 (serve checked it on receipt); for a trusted link")
     wk.add_argument("--quiet", action="store_true", help="no start/stop lines (errors are still printed)")
+    wk.add_argument("--server-key", metavar="FILE", help="serve's public key (its NAME.key), for a serve that "
+                                                         "requires keys")
+    wk.add_argument("--key", metavar="FILE", help="with --server-key: this worker's secret key (NAME.key_secret)")
     wk.set_defaults(func=_worker)
+
+    ky = sub.add_parser("keys", help="make a key pair for the worker endpoints (serve --server-key, worker --key)")
+    ky.add_argument("name", help="file name stem: writes NAME.key (public) and NAME.key_secret (secret)")
+    ky.add_argument("--dir", default=".", help="folder to write them to (default: the current one)")
+    ky.set_defaults(func=_keys)
 
     rp = sub.add_parser("replay", help="publish a capture's ADC frames over ZeroMQ with their recorded timing")
     rp.add_argument("capture")

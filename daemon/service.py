@@ -231,10 +231,11 @@ class Service:
                  sndbuf_bytes: int = 0, rcvhwm: int = 16, log: Callable[[str], None] | None = None,
                  quiet: bool = False, range_bias_m: float = 0.0, workers: int = 0,
                  tasks_endpoint: str | None = None, results_endpoint: str | None = None,
-                 task_timeout_s: float | None = None, worker_quiet: bool = True):
+                 task_timeout_s: float | None = None, worker_quiet: bool = True, worker_keys=None):
         """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
         for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
-        are processed by workers (daemon/workers.py), else in this process."""
+        are processed by workers (daemon/workers.py), else in this process. worker_keys: a
+        keys.ServerKeys to require keys of the workers (CURVE)."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"--queue {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -262,13 +263,15 @@ class Service:
             raise CubecastError("--tasks and --results: give both endpoints for workers, or neither")
         if isinstance(workers, bool) or not isinstance(workers, int) or workers < 0:
             raise CubecastError(f"--workers {workers!r}: must be a whole number >= 0")
+        if worker_keys is not None and not (workers > 0 or tasks_endpoint is not None):
+            raise CubecastError("--server-key and --worker-keys: only with --workers or --tasks")
         if workers > 0 or tasks_endpoint is not None:
             from .workers import DEFAULT_TASK_TIMEOUT_S, WorkerConfig, WorkerPool
             self.pool = WorkerPool(
                 WorkerConfig(sensor, self.settings, calibration, float(range_bias_m)),
                 tasks_endpoint or "tcp://127.0.0.1:*", results_endpoint or "tcp://127.0.0.1:*",
                 local_workers=workers, task_timeout_s=DEFAULT_TASK_TIMEOUT_S if task_timeout_s is None
-                else task_timeout_s, log=self._write, quiet=quiet, worker_quiet=worker_quiet)
+                else task_timeout_s, log=self._write, quiet=quiet, worker_quiet=worker_quiet, keys=worker_keys)
         self._stage_ms = self.pipeline.stage_ms
         self._in_flight = 0
         self._lost = 0
@@ -416,7 +419,7 @@ class Service:
         }
         if self.pool is not None:
             fields.update({k: s[k] for k in ("workers", "workers_alive", "workers_refused",
-                                             "worker_results_discarded")})
+                                             "worker_results_discarded", "worker_handshakes_refused")})
         self._last_health, self._last_cpu, self._last_processed = now, cpu, processed
         return fields
 
@@ -610,7 +613,8 @@ class Service:
 def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str | None = None,
           calibration_path: str | None = None, queue_depth: int = 2, rdmap_max_hz: float = 5.0,
           quiet: bool = False, workers: int = 0, tasks: str | None = None, results: str | None = None,
-          task_timeout_s: float | None = None) -> int:
+          task_timeout_s: float | None = None, server_key: str | None = None,
+          worker_keys: str | None = None) -> int:
     """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0."""
     from .process import load_calibration_for
     from .sensor import load_sensor
@@ -618,11 +622,18 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
     sensor = load_sensor(sensor_path)
     settings = load_settings(settings_path)
     calibration, range_bias_m = load_calibration_for(calibration_path, sensor)
+    keys = None
+    if (server_key is None) != (worker_keys is None):
+        raise CubecastError("--server-key and --worker-keys: give both (serve's secret key and the folder of "
+                            "accepted worker keys) or neither")
+    if server_key is not None:
+        from .keys import ServerKeys
+        keys = ServerKeys(server_key, worker_keys)
     stop = threading.Event()
     with stop_on_signals(stop):
         svc = Service(sensor, sub, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
                       quiet=quiet, range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks,
-                      results_endpoint=results, task_timeout_s=task_timeout_s)
+                      results_endpoint=results, task_timeout_s=task_timeout_s, worker_keys=keys)
         if not stop.is_set():
             svc.run(stop)
     if not quiet:

@@ -56,8 +56,12 @@ With workers, health also carries `workers` (one map per worker: name, pid, host
 tasks_done, tasks_lost, outstanding, capacity; at most 128), `workers_alive`, `workers_refused` and
 `worker_results_discarded`.
 
-There is no authentication: whoever reaches the tasks endpoint can join as a worker (and receives
-ADC frames). Bind it to a trusted network only.
+Security (daemon/keys.py): without keys, whoever reaches the tasks endpoint can join as a worker
+(and receives ADC frames), so bind it to a trusted network only. With keys (serve --server-key
+--worker-keys, worker --server-key --key), every connection is authenticated and encrypted with
+ZeroMQ's CURVE; a worker whose key serve does not know is refused in the handshake and exits with
+an error, and serve counts such handshakes in `worker_handshakes_refused`. Local workers get a key
+pair made for the run.
 """
 
 from __future__ import annotations
@@ -83,6 +87,7 @@ import zmq
 
 from .chain.points import RECORD_DTYPE, to_records
 from .errors import CubecastError
+from .keys import LOCAL_KEYS_ENV, ClientKeys, ServerKeys
 from .sensor import Sensor, parse_sensor
 from .settings import ProcessingSettings
 from .wire import (ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, WireError, _digest, _float, _int,
@@ -103,6 +108,10 @@ HELLO_RETRY_S = 1.0
 STARTUP_TIMEOUT_S = 120.0  # local workers: numba loads from the cache serve filled, but a loaded host is slow
 RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up to the second
 
+# security handshakes that failed: refused key (AUTH), keys on one side only (PROTOCOL), undecipherable
+HANDSHAKE_FAILED_EVENTS = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
+                           | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
+MAX_HANDSHAKE_FAILURES = 3  # undecipherable handshakes in a row before a worker gives up
 KINDS_TO_SERVE = (b"hello", b"ready", b"beat", b"bye")
 KINDS_TO_WORKER = (b"welcome", b"refuse", b"who", b"task")
 
@@ -478,9 +487,10 @@ class Worker:
     def __init__(self, tasks_endpoint: str, results_endpoint: str, *, sensor: Sensor | None = None,
                  name: str | None = None, capacity: int = DEFAULT_CAPACITY, heartbeat_s: float = HEARTBEAT_S,
                  log: Callable[[str], None] | None = None, quiet: bool = False,
-                 context: zmq.Context | None = None, check_crc: bool = True):
+                 context: zmq.Context | None = None, check_crc: bool = True, keys: ClientKeys | None = None):
         """check_crc=False skips re-computing each frame's CRC-32 (serve checked it on receipt); serve
-        starts its local workers so, since over loopback it is ~a quarter of a large frame's time."""
+        starts its local workers so, since over loopback it is ~a quarter of a large frame's time.
+        keys: serve's public key and this worker's key pair, for a serve that requires them."""
         if isinstance(capacity, bool) or not isinstance(capacity, int) or not 1 <= capacity <= MAX_CAPACITY:
             raise CubecastError(f"--capacity {capacity!r}: must be a whole number in 1..{MAX_CAPACITY}")
         self.name = name or f"{socket.gethostname()}-{os.getpid()}"
@@ -491,6 +501,7 @@ class Worker:
         self.capacity = capacity
         self.heartbeat_s = heartbeat_s
         self.check_crc = check_crc
+        self.keys = keys
         self.key = "w" + secrets.token_hex(8)
         self.write = log or _stderr_line
         self.quiet = quiet
@@ -504,6 +515,7 @@ class Worker:
         self.tasks_failed = 0
         self.tasks_ignored = 0  # tasks of another session (a serve that has gone)
         self.welcomes = 0
+        self._handshake_failures = 0
 
     def _say(self, text: str) -> None:
         if not self.quiet:
@@ -569,6 +581,29 @@ class Worker:
         self._send(push, encode_result(self.key, self.session, task_id, seq, records, error, stage,
                                        time.perf_counter() - t0, rdmap))
 
+    def _handshake_failed(self, monitor: zmq.Socket) -> None:
+        """Raise CubecastError on a security handshake serve refused or that cannot work; count the
+        undecipherable ones (a wrong serve key looks like that) and give up after a few in a row."""
+        from zmq.utils.monitor import recv_monitor_message
+        while monitor.poll(0):
+            ev = recv_monitor_message(monitor)
+            if ev["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
+                self._handshake_failures = 0
+                continue
+            where = f"serve at {self.tasks_endpoint}"
+            if ev["event"] == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
+                raise CubecastError(f"{where} refused this worker's key: add its public key (the .key file of "
+                                    "--key) to serve's --worker-keys folder")
+            if self.keys is None:
+                raise CubecastError(f"security handshake with {where} failed and this worker has no keys: serve "
+                                    "requires them (worker --server-key --key, see `cubecast keys`)")
+            self._handshake_failures += 1
+            if (ev["event"] == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
+                    or self._handshake_failures >= MAX_HANDSHAKE_FAILURES):
+                raise CubecastError(f"security handshake with {where} failed: either serve does not use keys "
+                                    "(serve and worker must both use them or both not), or --server-key is not "
+                                    "serve's public key (the .key file of its --server-key)")
+
     def run(self, stop: threading.Event | None = None) -> int:
         """Serve tasks until `stop` is set; returns the number of tasks processed. Raises CubecastError
         when serve refuses this worker."""
@@ -588,6 +623,9 @@ class Worker:
             for sock in (dealer, push):  # ZMTP heartbeats: a dead peer's connection is noticed and redialled
                 sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
                 sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
+                if self.keys is not None:
+                    self.keys.apply(sock)
+            monitor = dealer.get_monitor_socket(HANDSHAKE_FAILED_EVENTS | zmq.EVENT_HANDSHAKE_SUCCEEDED)
             connect_socket(dealer, self.tasks_endpoint, "--connect")
             connect_socket(push, self.results_endpoint, "--results")
             self._say(f"connecting to tasks {self.tasks_endpoint}, results {self.results_endpoint}")
@@ -602,6 +640,8 @@ class Worker:
                 if self.session is not None and now - last_sent >= self.heartbeat_s:
                     if self._send(dealer, [b"beat", _pack({"worker": self.key, "session": self.session})]):
                         last_sent = now
+                if monitor.poll(0):
+                    self._handshake_failed(monitor)
                 if not dealer.poll(int(self.heartbeat_s * 1000) if self.session else 100, zmq.POLLIN):
                     continue
                 for _ in range(4 * MAX_CAPACITY):
@@ -637,6 +677,9 @@ class Worker:
             if with_bye:
                 self._send(dealer, [b"bye", _pack({"worker": self.key})])
                 dealer.setsockopt(zmq.LINGER, 200)
+            if "monitor" in locals():
+                dealer.disable_monitor()
+                monitor.close(linger=0)
             dealer.close()
             push.close(linger=200)
             if self.context is None:
@@ -646,12 +689,20 @@ class Worker:
 
 def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | None = None,
                name: str | None = None, capacity: int = DEFAULT_CAPACITY, quiet: bool = False,
-               check_crc: bool = True) -> int:
+               check_crc: bool = True, server_key: str | None = None, key: str | None = None) -> int:
     """`cubecast worker`: run until SIGINT/SIGTERM; exit code 0 (2 with an error when refused)."""
     from .service import stop_on_signals
+    if (server_key is None) != (key is None):
+        raise CubecastError("--server-key and --key: give both (serve's public key and this worker's secret "
+                            "key) or neither")
     parent = os.environ.get(PARENT_PID_ENV)
     if parent is not None and not _die_with_parent(parent):
         return 0  # a local worker whose serve is already gone
+    keys = None
+    if key is not None:
+        keys = ClientKeys.from_files(server_key, key)
+    elif parent is not None and os.environ.get(LOCAL_KEYS_ENV):
+        keys = ClientKeys.from_env(os.environ[LOCAL_KEYS_ENV])
     sensor = None
     if sensor_path is not None:
         from .sensor import load_sensor
@@ -659,7 +710,7 @@ def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | No
     stop = threading.Event()
     with stop_on_signals(stop):
         w = Worker(tasks_endpoint, results_endpoint, sensor=sensor, name=name, capacity=capacity, quiet=quiet,
-                   check_crc=check_crc)
+                   check_crc=check_crc, keys=keys)
         done = w.run(stop)
     if not quiet:
         _stderr_line(f"cubecast worker {w.name}: stopped: {done} tasks processed, {w.tasks_failed} failed")
@@ -754,7 +805,7 @@ class WorkerPool:
     def __init__(self, config: WorkerConfig, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
                  task_timeout_s: float = DEFAULT_TASK_TIMEOUT_S, reorder_window: int = DEFAULT_REORDER_WINDOW,
                  restart_local: bool = True, log: Callable[[str], None] | None = None, quiet: bool = False,
-                 worker_quiet: bool = True, local_check_crc: bool = False):
+                 worker_quiet: bool = True, local_check_crc: bool = False, keys: ServerKeys | None = None):
         if isinstance(local_workers, bool) or not isinstance(local_workers, int) or not 0 <= local_workers <= 256:
             raise CubecastError(f"--workers {local_workers!r}: must be a whole number in 0..256")
         if not (task_timeout_s > 0 and math.isfinite(task_timeout_s)):
@@ -773,6 +824,8 @@ class WorkerPool:
         self.quiet = quiet
         self.worker_quiet = worker_quiet
         self.local_check_crc = local_check_crc
+        self.keys = keys
+        self.handshakes_refused = 0
         self.slots = [LocalSlot(i) for i in range(local_workers)]
         self.workers: dict[bytes, WorkerInfo] = {}
         self.pending: collections.OrderedDict[int, Pending] = collections.OrderedDict()
@@ -806,12 +859,17 @@ class WorkerPool:
         s = self.config.settings
         max_records = s.max_points * s.angle_max_peaks * RECORD_DTYPE.itemsize
         self.pull.setsockopt(zmq.MAXMSGSIZE, 4 * max_records + (2 << 20))
+        if self.keys is not None:
+            self.keys.start(ctx)  # the authenticator of this context, before anything can connect
         for sock in (self.router, self.pull):
             sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
             sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
+            if self.keys is not None:
+                self.keys.apply(sock)
         try:
-            # disconnects tell which worker died at once (by the connection's file descriptor)
-            self.monitor = self.router.get_monitor_socket(zmq.EVENT_DISCONNECTED)
+            # disconnects tell which worker died at once (by the connection's file descriptor);
+            # failed handshakes are counted
+            self.monitor = self.router.get_monitor_socket(zmq.EVENT_DISCONNECTED | HANDSHAKE_FAILED_EVENTS)
         except zmq.ZMQError:
             self.monitor = None
         self.tasks_endpoint = bind_socket(self.router, self.tasks_endpoint_requested, "--tasks")
@@ -839,6 +897,8 @@ class WorkerPool:
         for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
             env.setdefault(var, "1")  # one core per worker process
         env[PARENT_PID_ENV] = str(os.getpid())
+        if self.keys is not None:
+            env[LOCAL_KEYS_ENV] = self.keys.local.to_env()  # the environment is readable by this user only
         slot.proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, env=env)
         slot.started = time.monotonic()
 
@@ -883,6 +943,8 @@ class WorkerPool:
         for sock in (self.router, self.pull):
             if sock is not None:
                 sock.close(linger=0)
+        if self.keys is not None:
+            self.keys.stop()
 
     # ---- dispatch --------------------------------------------------------------------------
     def _pick(self) -> WorkerInfo | None:
@@ -979,7 +1041,11 @@ class WorkerPool:
                 ev = recv_monitor_message(self.monitor, zmq.NOBLOCK)
             except zmq.Again:
                 break
-            if ev["event"] == zmq.EVENT_DISCONNECTED:
+            if ev["event"] & HANDSHAKE_FAILED_EVENTS:
+                self.handshakes_refused += 1
+                self._ignored_log("worker handshake", f"refused a worker connection on {self.tasks_endpoint}: "
+                                      "unknown key, wrong serve key, or no keys")
+            elif ev["event"] == zmq.EVENT_DISCONNECTED:
                 key = self._fd_to_key.pop(int(ev["value"]), None)
                 w = self.workers.get(key) if key is not None else None
                 if w is not None and w.state != "gone":
@@ -1164,4 +1230,5 @@ class WorkerPool:
     def counters(self) -> dict:
         return {"workers_alive": sum(1 for r in self.rows if r["alive"]), "workers_refused": self.workers_refused,
                 "worker_results_discarded": self.results_discarded, "worker_results_invalid": self.results_invalid,
-                "worker_messages_invalid": self.messages_invalid}
+                "worker_messages_invalid": self.messages_invalid,
+                "worker_handshakes_refused": self.handshakes_refused}
