@@ -83,10 +83,17 @@ def create_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
     return public, secret
 
 
+def _existing(path: str | Path) -> Path:
+    p = Path(path)
+    if not p.is_file():
+        raise CubecastError(f"{p}: no such key file")
+    return p
+
+
 def load_secret_key(path: str | Path) -> tuple[bytes, bytes]:
     """(public, secret) Z85 keys from a NAME.key_secret file."""
     _require_curve()
-    p = Path(path)
+    p = _existing(path)
     try:
         public, secret = zmq.auth.load_certificate(str(p))
     except OSError as exc:
@@ -102,7 +109,7 @@ def load_secret_key(path: str | Path) -> tuple[bytes, bytes]:
 def load_public_key(path: str | Path) -> bytes:
     """The Z85 public key of a NAME.key (or NAME.key_secret) file."""
     _require_curve()
-    p = Path(path)
+    p = _existing(path)
     try:
         public, _ = zmq.auth.load_certificate(str(p))
     except OSError as exc:

@@ -47,7 +47,7 @@ def test_key_files(tmp_path):
     junk.write_text("hello\n")
     with pytest.raises(CubecastError, match="junk.key: holds no public key"):
         load_public_key(junk)
-    with pytest.raises(CubecastError, match="cannot read"):
+    with pytest.raises(CubecastError, match="missing.key_secret: no such key file"):
         load_secret_key(tmp_path / "missing.key_secret")
     with pytest.raises(CubecastError, match="not a folder"):
         public_keys_in(tmp_path / "nowhere")
