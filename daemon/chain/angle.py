@@ -66,6 +66,16 @@ Processing per call of AngleEstimator.estimate():
    minimum is the global one.
    Cost: about 10 us per two-peak snapshot on the bundled sensor (on average 4 sweeps and 2
    joint steps), growing steeply with P (every peak update refits all P amplitudes).
+7. Residual search (as in CLEAN, Hogbom 1974): a snapshot left with fewer than max_peaks peaks
+   may hold a target the FFT stage did not separate (a weak one under a strong one's beam or
+   sidelobe). The calibrated snapshot minus the joint least-squares fit of its peaks is
+   transformed as in steps 2-3 (same window); its strongest visible grid point joins the peaks
+   when (a) its power is at least peak_threshold_db of the strongest peak's |a|^2 on the same
+   scale and (b) the residual is one tone rather than noise by Fisher's g test (g = maximum
+   beam power / (n_cells * residual cell energy), 1 for a lone tone; critical value at
+   RESIDUAL_FALSE_ALARM per snapshot from the first term of Fisher's 1929 series). Step 6 then
+   runs again on that snapshot, the new peak ranked last (in a pair the array cannot separate,
+   it is the one that goes). One pass: at most one peak is added per snapshot.
 
 Limits (by design, documented rather than hidden):
 - An array with no elevation extent (one grid row) measures only u; the estimator then
@@ -75,11 +85,9 @@ Limits (by design, documented rather than hidden):
   make directions ambiguous; this is a property of the array, not of the estimator.
 - A target whose beam maximum lies at an invisible FFT grid point (only possible within about
   one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
-- Step 6 only refines the peaks step 4 found: two targets merged into one FFT peak (closer
-  than about the Rayleigh spacing, depending on their relative phase) stay one peak, and a
-  weak second target that lost its max_peaks slot to a ghost of the strong one (e.g. the
-  -9.5 dB elevation ghost of a layout with rows of 8 and 4 elements) is not recovered when
-  step 6 drops the ghost.
+- Two targets closer than the array can separate (variance inflation above 10, step 6) stay
+  one peak. Step 7 adds at most one peak per snapshot and only where the residual is a clear
+  single tone, so of two weak targets hidden under a strong one neither may be found.
 - refine = False skips steps 5 and 6 (peaks stay on the FFT grid with their grid power).
 """
 
@@ -120,6 +128,9 @@ _GRAM_RELATIVE_FLOOR = 1e-9  # Cholesky pivot floor relative to n_virt: singular
 _MAX_JOINT_ITERATIONS = 20  # joint Gauss-Newton iterations after the sweeps
 _JOINT_STEP_TOL = 1e-4  # FFT bins: a smaller step ends the joint iterations
 _MAX_RELAX_ROUNDS = 3  # sweeps + joint iterations again after a peak was dropped
+# step 7: chance that noise alone passes Fisher's g test in one snapshot's residual (nominal: the
+# zero-padded grid's maximum runs a little above the independent bins' the test assumes)
+RESIDUAL_FALSE_ALARM = 1e-3
 
 
 # --------------------------------------------------------------------------------------------
@@ -1101,6 +1112,106 @@ def _relax_peaks(
 
 
 @njit(cache=True)
+def _residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot, top_amp2):
+    """Step 7 (module doc), first half. For each snapshot with at least one and fewer than max_peaks
+    kept peaks (open_slot[d] = True): resid[d] = the calibrated snapshot minus the joint
+    least-squares fit of its kept peaks, and top_amp2[d] = the largest |amplitude|^2 of that fit.
+    Other snapshots: resid[d] = 0, open_slot[d] = False."""
+    n_det, n_virt = snapshots.shape
+    mp = 1
+    k0 = 0
+    while k0 < n_found:
+        k1 = k0 + 1
+        while k1 < n_found and det[k1] == det[k0]:
+            k1 += 1
+        mp = max(mp, k1 - k0)
+        k0 = k1
+    y = np.empty(n_virt, np.complex128)
+    ph = np.empty((mp, n_virt), np.complex128)
+    act = np.empty(mp, np.int64)
+    amp = np.zeros(mp, np.complex128)
+    gram = np.empty((mp, mp), np.complex128)
+    rhs = np.empty(mp, np.complex128)
+    work = np.empty(mp, np.complex128)
+    vif = np.empty(mp, np.float64)
+    for d in range(n_det):
+        open_slot[d] = False
+        for i in range(n_virt):
+            resid[d, i] = 0
+    k0 = 0
+    while k0 < n_found:
+        k1 = k0 + 1
+        while k1 < n_found and det[k1] == det[k0]:
+            k1 += 1
+        n_act = 0
+        for k in range(k0, k1):
+            if keep[k]:
+                act[n_act] = n_act
+                _phasors(kx, kz, u[k], w[k], ph[n_act])
+                n_act += 1
+        d = det[k0]
+        k0 = k1
+        if n_act == 0 or n_act >= max_peaks:
+            continue
+        for i in range(n_virt):
+            y[i] = complex(snapshots[d, i]) * cal[i]
+        if not _joint_amplitudes(ph, act, n_act, y, gram, rhs, work, amp, vif):
+            continue
+        top = 0.0
+        for a in range(n_act):
+            top = max(top, amp[a].real ** 2 + amp[a].imag ** 2)
+            for i in range(n_virt):
+                y[i] -= amp[a] * ph[a, i].conjugate()
+        for i in range(n_virt):
+            resid[d, i] = y[i]
+        open_slot[d] = True
+        top_amp2[d] = top
+
+
+@njit(cache=True)
+def _residual_peaks(fx, dft_z, n_det, visible_f, open_slot, top_amp2, beam_gain2, rel_thr, n_cells, g_crit,
+                    power, acc_re, acc_im, out_iz, out_ix):
+    """Step 7, second half: for each open snapshot, the strongest visible point of its residual's
+    beam image (fx: the residual's grid rows transformed along x), kept (out_iz, out_ix; -1 when
+    not) when it is both
+    - strong: beam power >= rel_thr * beam_gain2 * top_amp2[d], i.e. a target of at least the
+      peak_threshold_db fraction of the strongest one's power;
+    - one tone, not noise: Fisher's g statistic g = max beam power / (n_cells * residual energy)
+      >= g_crit (Fisher, "Tests of significance in harmonic analysis", Proc. R. Soc. A, 1929);
+      a lone tone gives g = 1.
+    Returns the number kept."""
+    nz, nx = power.shape
+    n_rows = fx.shape[0]
+    count = 0
+    for d in range(n_det):
+        out_iz[d] = -1
+        out_ix[d] = -1
+        if not open_slot[d]:
+            continue
+        energy = 0.0
+        for r in range(n_rows):
+            row = fx[r, d]
+            for ix in range(nx):
+                energy += np.float64(row[ix].real) ** 2 + np.float64(row[ix].imag) ** 2
+        energy /= nx  # Parseval: the grid cells' energy
+        if not energy > 0.0:
+            continue
+        _power_image(fx, dft_z, d, power, acc_re, acc_im)
+        best, biz, bix = 0.0, -1, -1
+        for iz in range(nz):
+            for ix in range(nx):
+                p = power[iz, ix] * visible_f[iz, ix]
+                if p > best:
+                    best, biz, bix = p, iz, ix
+        if biz < 0 or best < rel_thr * beam_gain2 * top_amp2[d] or best < g_crit * n_cells * energy:
+            continue
+        out_iz[d] = biz
+        out_ix[d] = bix
+        count += 1
+    return count
+
+
+@njit(cache=True)
 def _coherence(fx, dft_z, n_det, visible_f, x, calibration, n_virt, power, acc_re, acc_im, out):
     """out[d] = max over visible grid points of the beam power image / (n_virt ||x_d c||^2), float32
     (0 for an all-zero snapshot); visible_f is the visibility mask as 0.0 / 1.0, c the calibration."""
@@ -1252,6 +1363,14 @@ class AngleEstimator:
         # channel weights into the grid cells: cell means (windowed, calibrated) for the estimation
         # image; cell sums (calibrated, no window) for coherence, where the on-grid beam is a^H x
         self._w_mean = (self._chan_weight / grid.cell_counts[grid.channel_cell]).astype(np.complex64)
+        # step 7: the residual is already calibrated; a unit tone's beam peak on that image is
+        # (sum of cell weights)^2; Fisher's g critical value for n cells at RESIDUAL_FALSE_ALARM,
+        # g_crit = 1 - (alpha / n)^(1 / (n - 1)) (the first term of Fisher's 1929 series)
+        win_cells = chan_win / grid.cell_counts[grid.channel_cell]
+        self._w_window = win_cells.astype(np.complex64)
+        self._beam_gain2 = float(win_cells.sum()) ** 2
+        n_cells = grid.n_cells
+        self._g_crit = 1.0 - (RESIDUAL_FALSE_ALARM / n_cells) ** (1.0 / (n_cells - 1)) if n_cells > 1 else 2.0
         self._w_sum = cal.copy()
         self._chan_iz = grid.channel_iz.astype(np.int64)
         self._chan_ix = grid.channel_ix.astype(np.int64)
@@ -1283,6 +1402,11 @@ class AngleEstimator:
         self._pk_u = np.empty(capacity * mp, dtype=np.float64)
         self._pk_w = np.empty(capacity * mp, dtype=np.float64)
         self._pk_p = np.empty(capacity * mp, dtype=np.float64)
+        self._resid = np.empty((capacity, g.n_virt), dtype=np.complex64)
+        self._open = np.empty(capacity, dtype=np.bool_)
+        self._top_amp2 = np.empty(capacity, dtype=np.float64)
+        self._new_iz = np.empty(capacity, dtype=np.int64)
+        self._new_ix = np.empty(capacity, dtype=np.int64)
 
     def _check(self, snapshots) -> np.ndarray:
         x = np.asarray(snapshots)
@@ -1330,23 +1454,62 @@ class AngleEstimator:
             self._do_u, self._do_w, bool(self.settings.refine), self.bin_u, self.bin_w,
             self._pk_keep, self._pk_u, self._pk_w, self._pk_p,
         )
+        keep, u, w, p = self._pk_keep, self._pk_u, self._pk_w, self._pk_p
         if self.settings.refine and self.settings.max_peaks > 1:
-            self._relax_stats = _relax_peaks(
-                x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det,
-                self._do_u, self._do_w, self.bin_u, self.bin_w, self._rel_thr,
-                _MAX_VARIANCE_INFLATION, self._win_sum2,
-                _MAX_RELAX_SWEEPS, _RELAX_MOVE_TOL, _RELAX_NEWTON_ITERATIONS, _RELAX_TRUST_BINS,
-                _MAX_JOINT_ITERATIONS, _JOINT_STEP_TOL,
-                self._pk_keep, self._pk_u, self._pk_w,
-                self._pk_p,
-            )
+            self._relax_stats = self._relax(x, n_found, det, keep, u, w, p)
+            n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
-        n_kept = _kept_peaks(n_found, self._pk_keep, self._pk_det, self._pk_u, self._pk_w, self._pk_p,
-                             self._power_norm, det_index, values)
+        n_kept = _kept_peaks(n_found, keep, det, u, w, p, self._power_norm, det_index, values)
         return AngleResult(det_index=det_index[:n_kept], azimuth_deg=values[0, :n_kept],
                            elevation_deg=values[1, :n_kept], u=values[2, :n_kept], w=values[3, :n_kept],
                            peak_power=values[4, :n_kept])
+
+    def _relax(self, x, n_found, det, keep, u, w, p):
+        """Step 6 on the peak arrays, in place."""
+        return _relax_peaks(
+            x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det,
+            self._do_u, self._do_w, self.bin_u, self.bin_w, self._rel_thr,
+            _MAX_VARIANCE_INFLATION, self._win_sum2,
+            _MAX_RELAX_SWEEPS, _RELAX_MOVE_TOL, _RELAX_NEWTON_ITERATIONS, _RELAX_TRUST_BINS,
+            _MAX_JOINT_ITERATIONS, _JOINT_STEP_TOL, keep, u, w, p,
+        )
+
+    def _residual_search(self, x, n_found, det, keep, u, w, p):
+        """Step 7 (module doc): a target the FFT stage did not separate shows in the residual of
+        the fit. For the snapshots with a strong single-tone residual, the residual's peak joins
+        their kept peaks and step 6 runs again on them. Returns the peak arrays (new ones when
+        any snapshot gained a peak, with its old rows left unkept)."""
+        n = x.shape[0]
+        resid, open_slot, top = self._resid[:n], self._open[:n], self._top_amp2[:n]
+        _residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, self.settings.max_peaks,
+                   resid, open_slot, top)
+        fx = self._row_spectra(resid, self._w_window)
+        new_iz, new_ix = self._new_iz[:n], self._new_ix[:n]
+        n_new = _residual_peaks(fx, self._dft_z, n, self._visible_f, open_slot, top, self._beam_gain2,
+                                self._rel_thr, self.grid.n_cells, self._g_crit, self._power, self._acc_re,
+                                self._acc_im, new_iz, new_ix)
+        if n_new == 0:
+            return n_found, det, keep, u, w, p
+        # the gaining snapshots' kept peaks plus the new one (rank 0: in a pair the array cannot
+        # separate, the new peak is the one that goes), refined jointly as a sub-batch
+        keep, det = keep[:n_found].copy(), det[:n_found]
+        gain = np.flatnonzero(new_iz >= 0)
+        rows = [np.flatnonzero((det == d) & keep) for d in gain]
+        sub_det = np.concatenate([np.full(len(r) + 1, j) for j, r in enumerate(rows)])
+        sub_u = np.concatenate([np.r_[u[r], self.u_grid[new_ix[d]]] for r, d in zip(rows, gain)])
+        sub_w = np.concatenate([np.r_[w[r], self.w_grid[new_iz[d]]] for r, d in zip(rows, gain)])
+        sub_p = np.concatenate([np.r_[p[r], 0.0] for r in rows])
+        sub_keep = np.ones(sub_det.size, np.bool_)
+        sub_x = np.ascontiguousarray(x[gain])
+        self._relax(sub_x, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        for r in rows:
+            keep[r] = False
+        det_all = np.concatenate([det, gain[sub_det]])
+        order = np.argsort(det_all, kind="stable")  # each snapshot's rows together, the new ones last
+        return (det_all.size, det_all[order], np.concatenate([keep, sub_keep])[order],
+                np.concatenate([u[:n_found], sub_u])[order], np.concatenate([w[:n_found], sub_w])[order],
+                np.concatenate([p[:n_found], sub_p])[order])
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).
