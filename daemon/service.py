@@ -288,6 +288,7 @@ class Service:
         self._latencies_s: collections.deque = collections.deque(maxlen=100_000)
         self._all_latencies_s: collections.deque = collections.deque(maxlen=100_000)
         self._canon = np.zeros(self.pipeline.frame_shape, np.complex64)
+        self._raw_dtype = sensor.adc.raw_dtype()
         self._rx_stop = threading.Event()
         self._started = time.monotonic()
         self.messages_published = collections.Counter()
@@ -358,15 +359,11 @@ class Service:
 
     # ---- processing thread ----------------------------------------------------------------
     def _warm_up(self) -> None:
-        """Run the chain on a zero frame and on a frame with a tone in noise, so that every compiled
-        stage (including the per-detection ones) is loaded before the first real frame."""
-        p = self.pipeline
-        p.process(np.zeros(p.frame_shape, np.complex64))
-        rng = np.random.default_rng(0)
-        noise = rng.standard_normal(p.frame_shape) + 1j * rng.standard_normal(p.frame_shape)
-        n = np.arange(p.frame_shape[2])
-        tone = 50.0 * np.exp(2j * np.pi * 0.23 * n)
-        p.process((noise + tone).astype(np.complex64))
+        """Run the chain on the frames of workers.warm_up_pipeline (zeros, a tone in noise, the ADC
+        format from a read-only buffer), so that every compiled stage (including the per-detection
+        ones) is loaded before the first real frame."""
+        from .workers import warm_up_pipeline
+        warm_up_pipeline(self.pipeline)
 
     def _send(self, pub: zmq.Socket, parts: list, kind: str) -> None:
         try:
@@ -376,8 +373,10 @@ class Service:
             self.messages_published["dropped_" + kind] += 1
 
     def _publish_frame(self, pub: zmq.Socket, msg: Message, t_recv: float, now: float) -> None:
-        canon = to_canonical(self.sensor, msg.data, self._canon)
-        points = self.pipeline.process(canon)
+        if msg.data.dtype == self._raw_dtype:  # the board's format: converted inside the range stage
+            points = self.pipeline.process_raw(msg.data)
+        else:
+            points = self.pipeline.process(to_canonical(self.sensor, msg.data, self._canon))
         seq, ts = msg.header["seq"], msg.header["timestamp_s"]
         records = to_records(points, seq, ts)
         latency = time.perf_counter() - t_recv
