@@ -90,8 +90,8 @@ def _existing(path: str | Path) -> Path:
     return p
 
 
-def load_secret_key(path: str | Path) -> tuple[bytes, bytes]:
-    """(public, secret) Z85 keys from a NAME.key_secret file."""
+def _read_key_file(path: str | Path) -> tuple[Path, bytes, bytes | None]:
+    """(path, public key, secret key or None) of a ZeroMQ key file; errors name the file."""
     _require_curve()
     p = _existing(path)
     try:
@@ -101,23 +101,20 @@ def load_secret_key(path: str | Path) -> tuple[bytes, bytes]:
     except ValueError:
         raise CubecastError(f"{p}: holds no public key (a ZeroMQ key file made by `cubecast keys` is "
                             "expected)") from None
+    return p, _check_z85(public, p, "public key"), secret
+
+
+def load_secret_key(path: str | Path) -> tuple[bytes, bytes]:
+    """(public, secret) Z85 keys from a NAME.key_secret file."""
+    p, public, secret = _read_key_file(path)
     if secret is None:
         raise CubecastError(f"{p}: holds only a public key; give the {SECRET_SUFFIX} file here")
-    return _check_z85(public, p, "public key"), _check_z85(secret, p, "secret key")
+    return public, _check_z85(secret, p, "secret key")
 
 
 def load_public_key(path: str | Path) -> bytes:
     """The Z85 public key of a NAME.key (or NAME.key_secret) file."""
-    _require_curve()
-    p = _existing(path)
-    try:
-        public, _ = zmq.auth.load_certificate(str(p))
-    except OSError as exc:
-        raise CubecastError(f"{p}: cannot read key file: {exc.strerror or exc}") from None
-    except ValueError:
-        raise CubecastError(f"{p}: holds no public key (a ZeroMQ key file made by `cubecast keys` is "
-                            "expected)") from None
-    return _check_z85(public, p, "public key")
+    return _read_key_file(path)[1]
 
 
 def public_keys_in(directory: str | Path) -> set[bytes]:

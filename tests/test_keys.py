@@ -65,6 +65,17 @@ def test_cli_options_come_in_pairs(keyring, capsys):
     assert "only with --workers or --tasks" in capsys.readouterr().err
 
 
+def _replay_and_match(svc, src, col, ref_points) -> dict:
+    """Replay the 20 frames; every one processed, published, and equal to the single-process chain."""
+    assert src.run() == 20
+    s = settled(svc, 20)
+    assert s["frames_processed"] == 20
+    assert col.wait_for(lambda c: len(c.of("points")) >= 20, 10)
+    for m in col.of("points"):
+        assert m.data.tobytes() == reference_bytes(ref_points, m.seq, m.timestamp_s)
+    return s
+
+
 def _server_keys(keyring):
     return ServerKeys(keyring / "serve" / "serve.key_secret", keyring / "accepted")
 
@@ -76,13 +87,8 @@ def test_local_workers_with_keys_give_the_single_process_result(keyring, sensor,
         col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
         try:
             assert wait_until(lambda: svc.stats()["workers_alive"] == 2, 60), svc.stats()
-            assert src.run() == 20
-            s = settled(svc, 20)
-            assert s["frames_processed"] == 20 and s["frames_lost_worker"] == 0
-            assert s["worker_handshakes_refused"] == 0
-            assert col.wait_for(lambda c: len(c.of("points")) >= 20, 10)
-            for m in col.of("points"):
-                assert m.data.tobytes() == reference_bytes(ref_points, m.seq, m.timestamp_s)
+            s = _replay_and_match(svc, src, col, ref_points)
+            assert s["frames_lost_worker"] == 0 and s["worker_handshakes_refused"] == 0
         finally:
             col.close()
 
@@ -104,12 +110,7 @@ def test_remote_worker_with_an_accepted_key_joins(keyring, sensor, ref_points):
         try:
             assert wait_until(lambda: svc.stats()["workers_alive"] == 1 or proc.poll() is not None, 60), \
                 proc.stderr.read() if proc.poll() is not None else svc.stats()
-            assert src.run() == 20
-            s = settled(svc, 20)
-            assert s["frames_processed"] == 20
-            assert col.wait_for(lambda c: len(c.of("points")) >= 20, 10)
-            for m in col.of("points"):
-                assert m.data.tobytes() == reference_bytes(ref_points, m.seq, m.timestamp_s)
+            _replay_and_match(svc, src, col, ref_points)
         finally:
             col.close()
             proc.terminate()

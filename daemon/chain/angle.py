@@ -953,6 +953,27 @@ def _joint_gauss_newton(
     return n_steps
 
 
+@njit(cache=True, inline="always")
+def _group_end(det, n_found, k0):
+    """One past the last peak of the snapshot of peak k0 (det: snapshot of each peak, grouped)."""
+    k1 = k0 + 1
+    while k1 < n_found and det[k1] == det[k0]:
+        k1 += 1
+    return k1
+
+
+@njit(cache=True)
+def _largest_group(det, n_found):
+    """The largest number of peaks of one snapshot (det: snapshot of each peak, grouped); at least 1."""
+    mp = 1
+    k0 = 0
+    while k0 < n_found:
+        k1 = _group_end(det, n_found, k0)
+        mp = max(mp, k1 - k0)
+        k0 = k1
+    return mp
+
+
 @njit(cache=True)
 def _relax_peaks(
     snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, max_dw, rel_thr, max_vif,
@@ -965,14 +986,7 @@ def _relax_peaks(
     keep = False. Returns (sweeps run, peaks dropped during the iterations, joint trial steps)
     for diagnostics."""
     n_virt = snapshots.shape[1]
-    mp = 1  # largest number of peaks of one snapshot
-    k0 = 0
-    while k0 < n_found:
-        k1 = k0 + 1
-        while k1 < n_found and det[k1] == det[k0]:
-            k1 += 1
-        mp = max(mp, k1 - k0)
-        k0 = k1
+    mp = _largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
     res = np.empty(n_virt, np.complex128)
     ph = np.empty((mp, n_virt), np.complex128)  # phasors (conjugate steering) per peak
@@ -1005,9 +1019,7 @@ def _relax_peaks(
     n_dropped = 0
     k0 = 0
     while k0 < n_found:
-        k1 = k0 + 1
-        while k1 < n_found and det[k1] == det[k0]:
-            k1 += 1
+        k1 = _group_end(det, n_found, k0)
         n_act = 0
         for k in range(k0, k1):
             if out_keep[k]:
@@ -1118,14 +1130,7 @@ def _residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resi
     least-squares fit of its kept peaks, and top_amp2[d] = the largest |amplitude|^2 of that fit.
     Other snapshots: resid[d] = 0, open_slot[d] = False."""
     n_det, n_virt = snapshots.shape
-    mp = 1
-    k0 = 0
-    while k0 < n_found:
-        k1 = k0 + 1
-        while k1 < n_found and det[k1] == det[k0]:
-            k1 += 1
-        mp = max(mp, k1 - k0)
-        k0 = k1
+    mp = _largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
     ph = np.empty((mp, n_virt), np.complex128)
     act = np.empty(mp, np.int64)
@@ -1140,9 +1145,7 @@ def _residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resi
             resid[d, i] = 0
     k0 = 0
     while k0 < n_found:
-        k1 = k0 + 1
-        while k1 < n_found and det[k1] == det[k0]:
-            k1 += 1
+        k1 = _group_end(det, n_found, k0)
         n_act = 0
         for k in range(k0, k1):
             if keep[k]:
