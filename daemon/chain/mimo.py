@@ -110,10 +110,6 @@ class MimoDecoder:
         self._cand = np.empty((n_det, n_hyp), np.float64)
         self._snaps = np.empty((n_det, n_hyp, n_virt), np.complex64)
 
-    def doppler_hz(self, doppler_bin: np.ndarray) -> np.ndarray:
-        """Doppler frequency of a (fractional, fft-shifted) Doppler bin before unfolding."""
-        return (np.asarray(doppler_bin, np.float64) - self.n_doppler // 2) * self.doppler_bin_hz
-
     def snapshots(self, spectrum: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
                   doppler_hz: np.ndarray) -> np.ndarray:
         """Virtual snapshots complex64 [n_det, n_hyp, n_tx * n_rx] (channel k * n_rx + l) of the cells
