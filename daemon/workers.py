@@ -445,10 +445,11 @@ def decode_result(parts: list) -> tuple[str, str, Result]:
 # ---- the chain in a worker ------------------------------------------------------------------------
 
 def warm_up_pipeline(pipeline) -> None:
-    """Run every compiled path a worker uses once: canonical frames (zeros, then a tone in noise so the
-    per-detection stages run) and the sensor's ADC format from a read-only buffer, as a received
-    message delivers it (numba compiles read-only arrays separately). Run by serve before it starts
-    workers, so that the numba cache is filled once and the workers only load it."""
+    """Run every compiled path serve and its workers use once: canonical frames (zeros, then a tone in
+    noise so the per-detection stages run) and the sensor's ADC format both from a writable buffer
+    (a received ZeroMQ frame is writable) and from a read-only one (bytes; numba compiles read-only
+    arrays separately). Run by serve before it subscribes and before it starts workers, so that the
+    numba cache is filled once and nothing compiles at the first real frame."""
     p = pipeline
     p.process(np.zeros(p.frame_shape, np.complex64))
     rng = np.random.default_rng(0)
@@ -458,6 +459,7 @@ def warm_up_pipeline(pipeline) -> None:
     s = p.sensor
     raw_dtype = s.adc.raw_dtype()
     raw_shape = s.adc.raw_shape(*p.frame_shape)
+    p.process_raw(np.zeros(raw_shape, raw_dtype))
     raw = np.frombuffer(bytes(int(np.prod(raw_shape)) * raw_dtype.itemsize), raw_dtype).reshape(raw_shape)
     p.process_raw(raw)
 

@@ -138,3 +138,38 @@ def test_no_frame_sized_allocation_per_frame():
     # the public-FFT fallback copies each range FFT's output once (one channel's block)
     limit = 64 * 1024 if chain_fft.DIRECT else cube_bytes // s.n_rx + 64 * 1024
     assert peak < limit, f"{peak} bytes allocated while processing one frame ({cube_bytes} bytes cube)"
+
+
+def test_warm_up_leaves_nothing_to_compile_for_received_frames():
+    """serve warms the chain up before it subscribes; a frame then received over ZeroMQ (a writable
+    buffer) must find every compiled function ready, or the first real frame waits for numba."""
+    import numba
+    import zmq
+
+    from daemon.chain import angle, cfar, doppler, mimo, pipeline, points, rangefft
+    from daemon.workers import warm_up_pipeline
+
+    def signatures():
+        return {f"{m.__name__}.{k}": len(v.signatures) for m in (angle, cfar, doppler, mimo, pipeline, points, rangefft)
+                for k, v in vars(m).items() if isinstance(v, numba.core.registry.CPUDispatcher)}
+
+    s = make_sensor()
+    pipe = Pipeline(s)
+    warm_up_pipeline(pipe)
+    before = signatures()
+    raw = Simulator(s, parse_scene(SCENE), seed=5).raw_frame(0)
+    ctx = zmq.Context()
+    a, b = ctx.socket(zmq.PAIR), ctx.socket(zmq.PAIR)
+    try:
+        a.bind("inproc://warm-up-test")
+        b.connect("inproc://warm-up-test")
+        a.send(raw.tobytes(), copy=False)
+        frame = b.recv(copy=False)
+        points_out = pipe.process_raw(np.frombuffer(frame.buffer, raw.dtype).reshape(raw.shape))
+    finally:
+        a.close(0)
+        b.close(0)
+        ctx.term()
+    assert len(points_out) >= 1
+    after = signatures()
+    assert {k: v for k, v in after.items() if before.get(k) != v} == {}
