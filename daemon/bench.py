@@ -226,7 +226,7 @@ def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: 
         pub = ctx.socket(zmq.XPUB)
         pub.setsockopt(zmq.SNDHWM, 4)
         pub.bind(f"tcp://127.0.0.1:{p_src}")
-        cmd = [sys.executable, "-m", "daemon.cli", "serve", "--sensor", sensor_path, "--sub",
+        cmd = [sys.executable, "-m", "cubecast.daemon.cli", "serve", "--sensor", sensor_path, "--sub",
                f"tcp://127.0.0.1:{p_src}", "--pub", f"tcp://127.0.0.1:{p_pub}", "--quiet"]
         if workers:
             cmd += ["--workers", str(workers)]
@@ -283,9 +283,9 @@ def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
         env = dict(os.environ, NUMBA_NUM_THREADS="1")
         # fill numba's cache first (a fresh checkout compiles once), so first_frame_s is a start-up
         # with the cache in place, as `serve` sees it
-        subprocess.run([sys.executable, "-m", "daemon.bench", name, "0"], capture_output=True, env=env, check=False)
+        subprocess.run([sys.executable, "-m", "cubecast.daemon.bench", name, "0"], capture_output=True, env=env, check=False)
         env[SPAWN_ENV] = repr(time.time())
-        out = subprocess.run([sys.executable, "-m", "daemon.bench", name, str(frames)], capture_output=True,
+        out = subprocess.run([sys.executable, "-m", "cubecast.daemon.bench", name, str(frames)], capture_output=True,
                              text=True, env=env, check=False)
         if out.returncode != 0:
             from .errors import CubecastError
@@ -323,7 +323,7 @@ def warm(name: str) -> None:
     pipe.process_raw(np.zeros(sensor.adc.raw_shape(*pipe.frame_shape), sensor.adc.raw_dtype()))
 
 
-if __name__ == "__main__":  # one sensor, in a fresh process: python -m daemon.bench NAME FRAMES (0: warm only)
+if __name__ == "__main__":  # one sensor, in a fresh process: python -m cubecast.daemon.bench NAME FRAMES (0: warm only)
     if int(sys.argv[2]) == 0:
         warm(sys.argv[1])
     else:

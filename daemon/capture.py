@@ -41,7 +41,7 @@ from typing import Any, Iterator, NamedTuple
 
 import numpy as np
 
-from daemon.errors import CubecastError
+from .errors import CubecastError
 
 __all__ = [
     "MAGIC",

@@ -47,7 +47,7 @@ def viewer_available() -> bool:
     if not (os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY")):
         return False
     try:
-        return importlib.util.find_spec("viewer.app") is not None
+        return importlib.util.find_spec("cubecast.viewer.app") is not None
     except (ImportError, ValueError):
         return False
 
@@ -62,7 +62,7 @@ def _die_with_parent() -> None:
 
 
 def _spawn(args: list[str]) -> subprocess.Popen:
-    cmd = [sys.executable, "-m", "daemon.cli"] + args
+    cmd = [sys.executable, "-m", "cubecast.daemon.cli"] + args
     kw = {"preexec_fn": _die_with_parent} if sys.platform.startswith("linux") else {}
     return subprocess.Popen(cmd, stdin=subprocess.DEVNULL, **kw)
 

@@ -19,7 +19,7 @@ from .errors import CubecastError
 
 def register_view(subparsers) -> None:
     """Add `cubecast view` to the daemon's argparse subcommands (viewer.cli, with --capture wired here)."""
-    from viewer.cli import register
+    from ..viewer.cli import register
     register(subparsers, capture_snapshot=snapshot_capture)
 
 
@@ -28,7 +28,7 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
     """Process frames 0..frame of a capture; the wire messages of the last `history` frames (points),
     the last frame's rdmap, the sensor description and a health-like status, decoded by the viewer.
     `frame` None means the capture's last frame."""
-    from viewer.feed import POINT_FIELDS, decode_parts
+    from ..viewer.feed import POINT_FIELDS, decode_parts
 
     from . import wire
     from .capture import CaptureReader
@@ -87,7 +87,7 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
 
 def snapshot_capture(capture_path: str, frame: int | None, out_png: str, size=(1280, 800), **options) -> dict:
     """Render frames 0..frame of a capture as the viewer shows them; returns a short description."""
-    from viewer.snapshot import render_snapshot
+    from ..viewer.snapshot import render_snapshot
     history = int(options.get("persist_frames", 8))
     msgs = capture_messages(capture_path, frame, options.pop("settings_path", None), history)
     points = [m for m in msgs if m["kind"] == "points"]

@@ -889,7 +889,7 @@ class WorkerPool:
             self._spawn(slot)
 
     def _spawn(self, slot: LocalSlot) -> None:
-        cmd = [sys.executable, "-m", "daemon.cli", "worker", "--connect", local_endpoint(self.tasks_endpoint),
+        cmd = [sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", local_endpoint(self.tasks_endpoint),
                "--results", local_endpoint(self.results_endpoint), "--name", f"local-{slot.index}"]
         if not self.local_check_crc:
             cmd.append("--skip-crc")

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from daemon.sensor import parse_sensor
+from cubecast.daemon.sensor import parse_sensor
 
 SAMPLES = Path(__file__).resolve().parent.parent / "replay_samples"
 YARD_SENSOR = SAMPLES / "yard_sensor.toml"

@@ -23,13 +23,13 @@ import time
 import numpy as np
 import pytest
 
-from daemon.adapter import (Reassembler, StreamAdapter, add_parser, iter_datagram_file, load_layout,
+from cubecast.daemon.adapter import (Reassembler, StreamAdapter, add_parser, iter_datagram_file, load_layout,
                             parse_layout, parse_udp_endpoint)
-from daemon.errors import CubecastError
-from daemon.scene import parse_scene
-from daemon.sensor import load_sensor, parse_sensor
-from daemon.service import AdcValidator
-from daemon.simulate import Simulator
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.scene import parse_scene
+from cubecast.daemon.sensor import load_sensor, parse_sensor
+from cubecast.daemon.service import AdcValidator
+from cubecast.daemon.simulate import Simulator
 from tests.helpers import SAMPLES, YARD_SENSOR, sensor_text
 from tests.test_service import REPO, Collector, wait_until
 
@@ -572,7 +572,7 @@ def test_udp_live_matches_the_simulated_frames_and_the_saved_datagrams(tmp_path)
 
 def _adapter_command(*args):
     code = ("import argparse, sys\n"
-            "from daemon.adapter import add_parser\n"
+            "from cubecast.daemon.adapter import add_parser\n"
             "p = argparse.ArgumentParser(prog='cubecast')\n"
             "add_parser(p.add_subparsers(dest='command', required=True))\n"
             "a = p.parse_args(sys.argv[1:])\n"
@@ -694,10 +694,10 @@ def test_cli_parser_wiring():
 def test_serve_turns_the_adapter_frames_into_the_offline_point_clouds(tmp_path):
     """The bundled capture's frames, streamed in the example layout, go adapter -> serve; serve's point
     clouds are byte for byte those of the chain run offline on the same frames (wire.md: `points`)."""
-    from daemon.capture import CaptureReader
-    from daemon.chain.pipeline import Pipeline
-    from daemon.files import capture_sensor
-    from daemon.process import process_frames
+    from cubecast.daemon.capture import CaptureReader
+    from cubecast.daemon.chain.pipeline import Pipeline
+    from cubecast.daemon.files import capture_sensor
+    from cubecast.daemon.process import process_frames
     from tests.test_service import YARD, running_service
     n = 4
     with CaptureReader(YARD) as r:

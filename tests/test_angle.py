@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from daemon.chain.angle import (
+from cubecast.daemon.chain.angle import (
     AngleEstimator,
     AngleSettings,
     VirtualGrid,
@@ -18,7 +18,7 @@ from daemon.chain.angle import (
     sigma_azimuth_deg,
     sigma_elevation_deg,
 )
-from daemon.errors import CubecastError
+from cubecast.daemon.errors import CubecastError
 
 LAM_M = 3.9e-3
 HALF_M = LAM_M / 2.0

@@ -7,8 +7,8 @@ import json
 import subprocess
 import sys
 
-from daemon.bench import SENSORS, sensor_toml
-from daemon.sensor import parse_sensor
+from cubecast.daemon.bench import SENSORS, sensor_toml
+from cubecast.daemon.sensor import parse_sensor
 
 
 def test_bench_sensors_are_the_ones_specified():
@@ -22,7 +22,7 @@ def test_bench_sensors_are_the_ones_specified():
 
 
 def test_bench_json_report():
-    out = subprocess.run([sys.executable, "-m", "daemon.cli", "bench", "--json", "--sensor", "reference",
+    out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", "--json", "--sensor", "reference",
                           "--frames", "50", "--workers", "0"], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     result = json.loads(out.stdout)
@@ -40,6 +40,6 @@ def test_bench_json_report():
 
 
 def test_bench_rejects_too_few_frames():
-    out = subprocess.run([sys.executable, "-m", "daemon.cli", "bench", "--frames", "10"], capture_output=True,
+    out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", "--frames", "10"], capture_output=True,
                          text=True, timeout=60)
     assert out.returncode == 2 and "at least 50 frames" in out.stderr

@@ -13,19 +13,19 @@ import math
 import numpy as np
 import pytest
 
-from daemon.calibrate import (
+from cubecast.daemon.calibrate import (
     MIN_INTEGRATED_SNR_DB,
     calibrate_capture,
     load_calibration,
     load_calibration_file,
     write_calibration,
 )
-from daemon.capture import CaptureWriter
-from daemon.chain.pipeline import Pipeline
-from daemon.errors import CubecastError
-from daemon.scene import parse_scene
-from daemon.sensor import SPEED_OF_LIGHT_MPS, load_sensor, parse_sensor
-from daemon.simulate import Simulator, range_equation_snr_db
+from cubecast.daemon.capture import CaptureWriter
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.scene import parse_scene
+from cubecast.daemon.sensor import SPEED_OF_LIGHT_MPS, load_sensor, parse_sensor
+from cubecast.daemon.simulate import Simulator, range_equation_snr_db
 from tests.helpers import YARD_SENSOR, make_sensor
 
 REFLECTOR_RANGE_M = 5.0
@@ -419,7 +419,7 @@ def test_damaged_files_are_rejected(calibration, sensor, tmp_path):
 # ---- command line -----------------------------------------------------------------------------
 
 def cli(argv):
-    from daemon.cli import main
+    from cubecast.daemon.cli import main
     return main(argv)
 
 

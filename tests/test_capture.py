@@ -15,7 +15,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
-from daemon.capture import (
+from cubecast.daemon.capture import (
     DTYPE_CODES,
     FORMAT_VERSION,
     MAGIC,
@@ -27,7 +27,7 @@ from daemon.capture import (
     CorruptFrameError,
     FrameIndexError,
 )
-from daemon.errors import CubecastError
+from cubecast.daemon.errors import CubecastError
 
 SENSOR_TOML = '[sensor]\nname = "bench unit 7"\nstart_hz = 77.0e9\n'
 

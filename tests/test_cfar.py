@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from scipy import integrate, special, stats
 
-from daemon.chain import cfar as cfar_mod
-from daemon.chain.cfar import Cfar, CfarSettings, noise_statistic_mean, threshold_factor
-from daemon.errors import CubecastError
+from cubecast.daemon.chain import cfar as cfar_mod
+from cubecast.daemon.chain.cfar import Cfar, CfarSettings, noise_statistic_mean, threshold_factor
+from cubecast.daemon.errors import CubecastError
 
 PFA_GRID = [1e-2, 1e-4, 1e-6]
 
@@ -499,7 +499,7 @@ def test_sparse_os_path_equals_full_os_cfar(seed, shape, k_int):
     # The detector evaluates the ordered statistic only at local maxima above a floor; on receiver
     # noise with targets and a clutter ridge it must give exactly the detections of the full
     # statistic followed by local-maximum grouping (an independent, cell-by-cell evaluation).
-    from daemon.chain.cfar import _extract
+    from cubecast.daemon.chain.cfar import _extract
 
     rng = np.random.default_rng(seed)
     m = rng.gamma(k_int, 1.0, size=shape).astype(np.float32)

@@ -7,11 +7,11 @@ import numpy as np
 import pytest
 import scipy.fft
 
-from daemon.chain import fft as chain_fft
-from daemon.chain.pipeline import Pipeline
-from daemon.scene import parse_scene
-from daemon.settings import ProcessingSettings
-from daemon.simulate import Simulator
+from cubecast.daemon.chain import fft as chain_fft
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.scene import parse_scene
+from cubecast.daemon.settings import ProcessingSettings
+from cubecast.daemon.simulate import Simulator
 from tests.helpers import make_sensor
 
 SCENE = """
@@ -118,9 +118,9 @@ def test_no_frame_sized_allocation_per_frame():
     (numpy reports its allocations to tracemalloc)."""
     import tracemalloc
 
-    from daemon.bench import SCENE as BENCH_SCENE
-    from daemon.bench import sensor_toml
-    from daemon.sensor import parse_sensor
+    from cubecast.daemon.bench import SCENE as BENCH_SCENE
+    from cubecast.daemon.bench import sensor_toml
+    from cubecast.daemon.sensor import parse_sensor
 
     s = parse_sensor(sensor_toml("reference"), "bench reference")
     raw = Simulator(s, parse_scene(BENCH_SCENE), seed=1).raw_frame(0)
@@ -146,8 +146,8 @@ def test_warm_up_leaves_nothing_to_compile_for_received_frames():
     import numba
     import zmq
 
-    from daemon.chain import angle, cfar, doppler, mimo, pipeline, points, rangefft
-    from daemon.workers import warm_up_pipeline
+    from cubecast.daemon.chain import angle, cfar, doppler, mimo, pipeline, points, rangefft
+    from cubecast.daemon.workers import warm_up_pipeline
 
     def signatures():
         return {f"{m.__name__}.{k}": len(v.signatures) for m in (angle, cfar, doppler, mimo, pipeline, points, rangefft)

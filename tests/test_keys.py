@@ -12,10 +12,10 @@ import sys
 
 import pytest
 
-from daemon.cli import main as cli_main
-from daemon.errors import CubecastError
-from daemon.keys import ClientKeys, ServerKeys, create_keys, load_public_key, load_secret_key, public_keys_in
-from daemon.sources import ReplaySource
+from cubecast.daemon.cli import main as cli_main
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.keys import ClientKeys, ServerKeys, create_keys, load_public_key, load_secret_key, public_keys_in
+from cubecast.daemon.sources import ReplaySource
 from tests.test_service import Collector, wait_until
 from tests.test_workers import (REPO, YARD, YARD_SENSOR, frames, ref_points, reference_bytes,  # noqa: F401
                                 sensor, serving, settled)
@@ -94,7 +94,7 @@ def test_local_workers_with_keys_give_the_single_process_result(keyring, sensor,
 
 
 def _worker(svc, *extra) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
+    return subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
                              "--results", svc.pool.results_endpoint, "--name", "remote", *extra], cwd=REPO,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 

@@ -7,13 +7,13 @@ import math
 import numpy as np
 import pytest
 
-from daemon.chain.cfar import Cfar, CfarSettings
-from daemon.chain.pipeline import Pipeline
-from daemon.errors import CubecastError
-from daemon.scene import parse_scene
-from daemon.sensor import load_sensor
-from daemon.settings import ProcessingSettings, parse_settings
-from daemon.simulate import Simulator
+from cubecast.daemon.chain.cfar import Cfar, CfarSettings
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.scene import parse_scene
+from cubecast.daemon.sensor import load_sensor
+from cubecast.daemon.settings import ProcessingSettings, parse_settings
+from cubecast.daemon.simulate import Simulator
 from tests.helpers import YARD_SENSOR, make_sensor
 
 C = 299_792_458.0
@@ -357,8 +357,8 @@ def test_point_kernel_matches_the_bound_functions(layout):
     # the tone bound (Rife and Boorstyn, IEEE Trans. IT, 1974) and the direction-cosine CRB
     # (Stoica and Nehorai, IEEE Trans. ASSP, 1989) as the angle module computes them, including the
     # infinite ones of an array without extent, and the geometry of the sensor frame.
-    from daemon.chain.angle import crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg
-    from daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points, tone_crb_bins
+    from cubecast.daemon.chain.angle import crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg
+    from cubecast.daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points, tone_crb_bins
 
     lam = 0.0039
     k = np.arange(8, dtype=np.float64)

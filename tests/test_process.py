@@ -8,11 +8,11 @@ import math
 import numpy as np
 import pytest
 
-from daemon.capture import CaptureReader
-from daemon.chain.pipeline import Pipeline
-from daemon.cli import main
-from daemon.files import capture_sensor
-from daemon.process import process_frames
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.cli import main
+from cubecast.daemon.files import capture_sensor
+from cubecast.daemon.process import process_frames
 from tests.helpers import SAMPLES
 
 CSV_COLUMNS = ["frame", "timestamp_s", "x_m", "y_m", "z_m", "range_m", "azimuth_deg", "elevation_deg",

@@ -8,10 +8,10 @@ import sys
 import threading
 from pathlib import Path
 
-from daemon.cli import build_parser
-from daemon.demo import free_port
-from daemon.sensor import load_sensor
-from daemon.sources import ReplaySource
+from cubecast.daemon.cli import build_parser
+from cubecast.daemon.demo import free_port
+from cubecast.daemon.sensor import load_sensor
+from cubecast.daemon.sources import ReplaySource
 from tests.helpers import SAMPLES, YARD_SENSOR
 from tests.test_service import running_service
 

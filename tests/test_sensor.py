@@ -9,9 +9,9 @@ import re
 import numpy as np
 import pytest
 
-from daemon.cli import main
-from daemon.errors import CubecastError
-from daemon.sensor import SPEED_OF_LIGHT_MPS, load_sensor, parse_sensor
+from cubecast.daemon.cli import main
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.sensor import SPEED_OF_LIGHT_MPS, load_sensor, parse_sensor
 from tests.helpers import YARD_SENSOR, make_sensor, sensor_text
 
 C = 299_792_458.0  # speed of light, exact by the SI definition of the metre

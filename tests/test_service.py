@@ -19,13 +19,13 @@ import numpy as np
 import pytest
 import zmq
 
-from daemon.capture import CaptureReader
-from daemon.chain.pipeline import Pipeline
-from daemon.files import capture_sensor
-from daemon.process import process_frames
-from daemon.service import AdcValidator, RateLimitedLog, Service, pool_rdmap
-from daemon.sources import AdcPublisher, ReplaySource
-from daemon.wire import WireError, decode, encode_adc
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.files import capture_sensor
+from cubecast.daemon.process import process_frames
+from cubecast.daemon.service import AdcValidator, RateLimitedLog, Service, pool_rdmap
+from cubecast.daemon.sources import AdcPublisher, ReplaySource
+from cubecast.daemon.wire import WireError, decode, encode_adc
 from tests.helpers import SAMPLES, YARD_SENSOR
 
 YARD = SAMPLES / "yard.cap"
@@ -259,9 +259,9 @@ def test_pool_rdmap_against_scipy_max_filter():
 
 @pytest.mark.parametrize("velocity_mps", [2.0, -3.1])
 def test_rdmap_axes_put_a_simulated_target_where_it_is(sensor, velocity_mps):
-    from daemon.scene import parse_scene
-    from daemon.simulate import Simulator
-    from daemon.wire import encode_rdmap
+    from cubecast.daemon.scene import parse_scene
+    from cubecast.daemon.simulate import Simulator
+    from cubecast.daemon.wire import encode_rdmap
     scene = parse_scene(f"[[target]]\nrange_m = 8.0\nazimuth_deg = 0.0\nelevation_deg = 0.0\n"
                         f"radial_velocity_mps = {velocity_mps}\nsnr_db = 15.0\n", "test")
     p = Pipeline(sensor)
@@ -532,7 +532,7 @@ def _read_lines(stream, sink: list):
 
 @pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGINT])
 def test_signal_stops_serve_subprocess_within_a_second(signum):
-    proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "serve", "--sensor", str(YARD_SENSOR),
+    proc = subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "serve", "--sensor", str(YARD_SENSOR),
                              "--sub", "tcp://127.0.0.1:1", "--pub", "tcp://127.0.0.1:*"],
                             cwd=REPO, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     lines: list[str] = []
@@ -559,7 +559,7 @@ def test_signal_stops_serve_subprocess_within_a_second(signum):
 
 def test_demo_headless_exits_zero_with_summary_lines():
     env = {k: v for k, v in os.environ.items() if k not in ("DISPLAY", "WAYLAND_DISPLAY")}
-    proc = subprocess.run([sys.executable, "-m", "daemon.cli", "demo", "--no-viewer", "--seconds", "3"], cwd="/",
+    proc = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "demo", "--no-viewer", "--seconds", "3"], cwd="/",
                           env=env, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     lines = [ln for ln in proc.stdout.splitlines() if re.match(r"demo +\d+\.\d s \| frames \d+", ln)]

@@ -10,13 +10,13 @@ import numpy as np
 import pytest
 import scipy.fft
 
-from daemon.capture import CaptureReader
-from daemon.cli import main
-from daemon.errors import CubecastError
-from daemon.files import capture_sensor, simulate_capture
-from daemon.scene import load_scene, parse_scene
-from daemon.sensor import load_sensor
-from daemon.simulate import Simulator, range_equation_snr_db
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.cli import main
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.files import capture_sensor, simulate_capture
+from cubecast.daemon.scene import load_scene, parse_scene
+from cubecast.daemon.sensor import load_sensor
+from cubecast.daemon.simulate import Simulator, range_equation_snr_db
 from tests.helpers import SAMPLES, YARD_SENSOR, make_sensor
 
 C = 299_792_458.0

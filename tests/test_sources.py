@@ -10,15 +10,15 @@ import threading
 import numpy as np
 import pytest
 
-from daemon.capture import CaptureReader
-from daemon.chain.pipeline import Pipeline
-from daemon.demo import free_port
-from daemon.errors import CubecastError
-from daemon.files import capture_sensor, write_points_csv
-from daemon.process import process_frames
-from daemon.scene import parse_scene
-from daemon.simulate import Simulator
-from daemon.sources import PointsCsvWriter, Recorder, ReplaySource, parse_speed, publish_simulation
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.demo import free_port
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.files import capture_sensor, write_points_csv
+from cubecast.daemon.process import process_frames
+from cubecast.daemon.scene import parse_scene
+from cubecast.daemon.simulate import Simulator
+from cubecast.daemon.sources import PointsCsvWriter, Recorder, ReplaySource, parse_speed, publish_simulation
 from tests.helpers import YARD_SENSOR
 from tests.test_service import REPO, YARD, Collector, running_service
 
@@ -155,7 +155,7 @@ def test_record_without_sensor_description_says_how_to_fix(tmp_path):
 
 
 def _cli(*args, **kw):
-    return subprocess.run([sys.executable, "-m", "daemon.cli", *args], cwd=REPO, capture_output=True, text=True,
+    return subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", *args], cwd=REPO, capture_output=True, text=True,
                           timeout=60, **kw)
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import math
+import re
 import subprocess
 import sys
 import threading
@@ -22,8 +23,8 @@ import msgpack
 import numpy as np
 import pytest
 
-from viewer import views as V
-from viewer.feed import (HEADER_MAX_BYTES, POINT_DTYPE, POINT_FIELDS, Feed, FeedSnapshot, WireError,
+from cubecast.viewer import views as V
+from cubecast.viewer.feed import (HEADER_MAX_BYTES, POINT_DTYPE, POINT_FIELDS, Feed, FeedSnapshot, WireError,
                          decode_parts, subscription_prefix)
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -85,7 +86,7 @@ def rdmap_parts(sensor_id: str, db: np.ndarray, seq: int = 1, **over) -> list[by
 
 def test_point_layout_is_the_wires_and_the_chains():
     # wire.md: 8 + 8 + 12 * 4 = 64 bytes per record, fields in this order
-    from daemon.chain.points import RECORD_DTYPE
+    from cubecast.daemon.chain.points import RECORD_DTYPE
     assert POINT_DTYPE.itemsize == 64
     assert POINT_DTYPE == RECORD_DTYPE
 
@@ -242,7 +243,7 @@ def test_feed_subscribes_to_one_sensor_by_prefix(pub):
 
 
 def test_collect_from_sub_waits_bounded(pub):
-    from viewer.snapshot import collect_from_sub
+    from cubecast.viewer.snapshot import collect_from_sub
     sock, endpoint, _ = pub
     stop = threading.Event()
 
@@ -411,7 +412,7 @@ def test_help_lists_the_keys():
 def test_served_map_is_pooled_to_the_wire_limits():
     # max-pooling reference: scipy.ndimage.maximum_filter over the pooling block, then subsampling
     from scipy.ndimage import maximum_filter
-    from daemon.service import pool_rdmap
+    from cubecast.daemon.service import pool_rdmap
     rng = np.random.default_rng(3)
     power = rng.exponential(1.0, (256, 128)).astype(np.float32)
     power[150, 90] = 1e4
@@ -433,18 +434,19 @@ def test_served_map_is_pooled_to_the_wire_limits():
 def test_viewer_never_imports_the_daemon():
     for path in (ROOT / "viewer").glob("*.py"):
         text = path.read_text(encoding="utf-8")
-        assert "import daemon" not in text and "from daemon" not in text, path.name
-    code = ("import sys, argparse; import viewer.feed, viewer.views, viewer.cli, viewer.snapshot; "
-            "from daemon.viewsource import register_view; p = argparse.ArgumentParser(); "
+        assert "daemon" not in "".join(re.findall(r"^\s*(?:from|import) .*$", text, re.M)), path.name
+    code = ("import sys, argparse; import cubecast.viewer.feed, cubecast.viewer.views, cubecast.viewer.cli, "
+            "cubecast.viewer.snapshot; "
+            "from cubecast.daemon.viewsource import register_view; p = argparse.ArgumentParser(); "
             "register_view(p.add_subparsers()); "
             "assert 'vispy' not in sys.modules, 'vispy imported'; "
-            "assert 'daemon.chain.pipeline' not in sys.modules, 'chain imported'")
+            "assert 'cubecast.daemon.chain.pipeline' not in sys.modules, 'chain imported'")
     r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
 
 
 def _view_parser():
-    from daemon.viewsource import register_view
+    from cubecast.daemon.viewsource import register_view
     p = argparse.ArgumentParser(prog="cubecast")
     register_view(p.add_subparsers(dest="command"))
     return p
@@ -464,12 +466,12 @@ def test_cli_rejects_bad_arguments(capsys):
 
 @pytest.fixture(scope="module")
 def canvas():
-    from viewer.snapshot import OffscreenUnavailable, offscreen_backend
+    from cubecast.viewer.snapshot import OffscreenUnavailable, offscreen_backend
     try:
         offscreen_backend()
     except OffscreenUnavailable as exc:
         pytest.skip(f"no offscreen GL context: {exc}")
-    from viewer.canvas import ViewerCanvas
+    from cubecast.viewer.canvas import ViewerCanvas
     vc = ViewerCanvas(size=(1280, 800), show=False, dpi=96)
     yield vc
     vc.canvas.close()
@@ -566,7 +568,7 @@ def _yard_truth(name: str) -> tuple[float, float, float]:
 
 @pytest.fixture(scope="module")
 def yard_messages():
-    from daemon.viewsource import capture_messages
+    from cubecast.daemon.viewsource import capture_messages
     return capture_messages(str(YARD_CAP), 5, history=6)
 
 
@@ -604,7 +606,7 @@ def test_offscreen_yard_header_beam_is_plainly_overhead(canvas, yard_messages):
 
 
 def test_app_keys_pause_step_and_stall(canvas):
-    from viewer.app import ViewerApp
+    from cubecast.viewer.app import ViewerApp
 
     class FakeFeed:
         endpoint = "tcp://127.0.0.1:5999"
@@ -682,9 +684,9 @@ def test_cli_snapshot_of_the_bundled_capture(tmp_path, canvas):
 def test_ground_line_follows_the_sensor_mount_height():
     # The side view's ground sits mount_height_m below the sensor (sensor description -> wire summary),
     # unless the command line says otherwise.
-    from daemon.sensor import load_sensor
-    from daemon.wire import encode_sensor
-    from viewer.feed import decode_parts
+    from cubecast.daemon.sensor import load_sensor
+    from cubecast.daemon.wire import encode_sensor
+    from cubecast.viewer.feed import decode_parts
     from tests.helpers import YARD_SENSOR
     sensor = load_sensor(YARD_SENSOR)
     assert sensor.mount_height_m == 1.0

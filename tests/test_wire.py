@@ -9,11 +9,11 @@ import msgpack
 import numpy as np
 import pytest
 
-from daemon.capture import CaptureReader
-from daemon.chain.points import POINT_DTYPE, RECORD_DTYPE, to_records
-from daemon.errors import CubecastError
-from daemon.sensor import load_sensor
-from daemon.wire import (MAX_HEADER_BYTES, POINT_WIRE_FIELDS, REASONS, WireError, decode, encode_adc,
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.points import POINT_DTYPE, RECORD_DTYPE, to_records
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.sensor import load_sensor
+from cubecast.daemon.wire import (MAX_HEADER_BYTES, POINT_WIRE_FIELDS, REASONS, WireError, decode, encode_adc,
                          encode_health, encode_points, encode_rdmap, encode_sensor, sensor_from_message)
 from tests.helpers import SAMPLES, YARD_SENSOR
 

@@ -22,17 +22,17 @@ import numpy as np
 import pytest
 import zmq
 
-from daemon.capture import CaptureReader
-from daemon.chain.pipeline import Pipeline
-from daemon.chain.points import RECORD_DTYPE, to_records
-from daemon.cli import main as cli_main
-from daemon.errors import CubecastError
-from daemon.files import capture_sensor, to_canonical
-from daemon.service import Service, pool_rdmap
-from daemon.settings import ProcessingSettings
-from daemon.sources import AdcPublisher, ReplaySource
-from daemon.wire import decode, encode_adc
-from daemon.workers import (ProtocolError, WorkerConfig, decode_result, decode_task, decode_welcome,
+from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.pipeline import Pipeline
+from cubecast.daemon.chain.points import RECORD_DTYPE, to_records
+from cubecast.daemon.cli import main as cli_main
+from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.files import capture_sensor, to_canonical
+from cubecast.daemon.service import Service, pool_rdmap
+from cubecast.daemon.settings import ProcessingSettings
+from cubecast.daemon.sources import AdcPublisher, ReplaySource
+from cubecast.daemon.wire import decode, encode_adc
+from cubecast.daemon.workers import (ProtocolError, WorkerConfig, decode_result, decode_task, decode_welcome,
                             encode_result, encode_task, encode_welcome, Worker)
 from tests.helpers import SAMPLES, YARD_SENSOR
 from tests.test_service import Collector, connected, run_in_thread, wait_until
@@ -459,7 +459,7 @@ def test_silent_worker_times_out_and_its_late_results_are_discarded(sensor, fram
 
 
 def _worker_cmd(svc, *extra) -> list[str]:
-    return [sys.executable, "-m", "daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
+    return [sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
             "--results", svc.pool.results_endpoint, *extra]
 
 
@@ -507,7 +507,7 @@ def _free_port() -> int:
 
 def test_remote_worker_outlives_a_serve_restart(sensor, frames, ref_points):
     tasks, results = f"tcp://127.0.0.1:{_free_port()}", f"tcp://127.0.0.1:{_free_port()}"
-    proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "worker", "--connect", tasks, "--results", results,
+    proc = subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", tasks, "--results", results,
                              "--name", "stays", "--quiet"], cwd=REPO, stderr=subprocess.PIPE, text=True)
     try:
         sessions = []
@@ -547,7 +547,7 @@ def test_worker_with_another_sensor_is_refused(sensor, tmp_path):
     text = YARD_SENSOR.read_text()
     assert "tx_power_dbm = 12.0" in text
     other.write_text(text.replace("tx_power_dbm = 12.0", "tx_power_dbm = 13.0"))  # same id, another digest
-    from daemon.sensor import load_sensor
+    from cubecast.daemon.sensor import load_sensor
     other_digest = load_sensor(other).digest
     assert other_digest != sensor.digest
     with serving(sensor, "tcp://127.0.0.1:1", tasks_endpoint="tcp://127.0.0.1:*",
@@ -562,7 +562,7 @@ def test_worker_with_another_sensor_is_refused(sensor, tmp_path):
 
 @pytest.mark.parametrize("how", ["sigterm", "sigkill"])
 def test_serve_cli_with_workers_leaves_no_worker_behind(how):
-    proc = subprocess.Popen([sys.executable, "-m", "daemon.cli", "serve", "--sensor", str(YARD_SENSOR), "--sub",
+    proc = subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "serve", "--sensor", str(YARD_SENSOR), "--sub",
                              "tcp://127.0.0.1:1", "--pub", "tcp://127.0.0.1:*", "--workers", "2"],
                             cwd=REPO, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     lines: list[str] = []

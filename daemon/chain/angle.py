@@ -99,7 +99,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from daemon.errors import CubecastError
+from ..errors import CubecastError
 
 from .fft import ifft_unnormalised_inplace
 

@@ -78,7 +78,7 @@ from functools import lru_cache
 import numpy as np
 from numba import njit
 
-from daemon.errors import CubecastError
+from ..errors import CubecastError
 
 __all__ = [
     "CFAR_KINDS",
