@@ -13,9 +13,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from .chain.windows import WINDOW_NAMES
 from .errors import CubecastError
 
-WINDOWS = ("rect", "hann", "hamming", "blackman", "kaiser")
 CFAR_KINDS = ("ca", "os", "go", "so")
 
 
@@ -59,8 +59,8 @@ class ProcessingSettings:
             return CubecastError(f"{pre}[processing] {name} = {getattr(self, name)!r}: {rule}")
 
         for name in ("range_window", "doppler_window"):
-            if getattr(self, name) not in WINDOWS:
-                raise fail(name, f"must be one of {', '.join(WINDOWS)}")
+            if getattr(self, name) not in WINDOW_NAMES:
+                raise fail(name, f"must be one of {', '.join(WINDOW_NAMES)}")
         if self.cfar_kind not in CFAR_KINDS:
             raise fail("cfar_kind", f"must be one of {', '.join(CFAR_KINDS)}")
         for name in ("range_fft_size", "doppler_fft_size"):

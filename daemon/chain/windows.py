@@ -5,6 +5,8 @@ from __future__ import annotations
 
 import numpy as np
 
+WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # what make_window knows
+
 
 def make_window(name: str, length: int, kaiser_beta: float = 6.0) -> np.ndarray:
     if name == "rect":
@@ -20,9 +22,3 @@ def make_window(name: str, length: int, kaiser_beta: float = 6.0) -> np.ndarray:
     else:  # settings validation names the field before we get here
         raise ValueError(f"unknown window {name!r}")
     return w.astype(np.float32)
-
-
-def noise_bandwidth_bins(w: np.ndarray) -> float:
-    """Equivalent noise bandwidth in bins, N sum(w^2) / (sum w)^2 (Harris 1978)."""
-    w = w.astype(np.float64)
-    return float(len(w) * np.sum(w * w) / np.sum(w) ** 2)
