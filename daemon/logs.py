@@ -51,20 +51,48 @@ class JsonFormatter(logging.Formatter):
         return json.dumps(doc, ensure_ascii=False)
 
 
+class _StderrHandler(logging.StreamHandler):
+    """A StreamHandler on whatever `sys.stderr` is when a record is emitted (so a test's capture, or a
+    stream replaced after set-up, receives the lines instead of a closed file)."""
+
+    def __init__(self):
+        logging.Handler.__init__(self)
+
+    @property
+    def stream(self):
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value):  # StreamHandler.setStream; the stream always follows sys.stderr
+        pass
+
+
 def configure(level: int = logging.INFO, json_lines: bool = False, stream=None) -> logging.Handler:
-    """Send the `cubecast` loggers' records at `level` and above to `stream` (standard error).
-    Replaces a handler an earlier call installed, so it can be called again (tests, subcommands)."""
+    """Send the `cubecast` loggers' records at `level` and above to `stream` (default: standard error,
+    as it is at each record). Replaces a handler an earlier call installed, so it can be called again
+    (tests, subcommands)."""
     root = logging.getLogger(ROOT)
     for h in list(root.handlers):
         if getattr(h, "_cubecast", False):
             root.removeHandler(h)
-    handler = logging.StreamHandler(stream or sys.stderr)
+    handler = logging.StreamHandler(stream) if stream is not None else _StderrHandler()
     handler._cubecast = True
+    handler._json_lines = json_lines
     handler.setFormatter(JsonFormatter() if json_lines else logging.Formatter("%(message)s"))
     root.addHandler(handler)
     root.setLevel(level)
     root.propagate = False
     return handler
+
+
+def uses_json_lines() -> bool:
+    """True when `configure` set up JSON lines (child processes can be started the same way)."""
+    return any(getattr(h, "_json_lines", False) for h in logging.getLogger(ROOT).handlers)
+
+
+def show_progress() -> bool:
+    """Progress bars (on standard error) are for people: shown at INFO or lower, not with JSON lines."""
+    return logging.getLogger(ROOT).isEnabledFor(logging.INFO) and not uses_json_lines()
 
 
 class RateLimitFilter(logging.Filter):
