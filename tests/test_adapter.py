@@ -1,4 +1,5 @@
-"""The hardware adapter: board datagram streams (UDP on 127.0.0.1, or datagram files) in, ADC frames out.
+"""The hardware adapter: board datagram streams (UDP on 127.0.0.1, or datagram files) in, ADC frames out
+(daemon/streamlayout.py, reassembly.py, adapter.py).
 
 The reference for every frame is the simulator's raw frame (Simulator.raw_frame, the sensor's ADC
 format). The tests turn it into a board's byte stream with their own encoder (a gather by stream
@@ -23,13 +24,14 @@ import time
 import numpy as np
 import pytest
 
-from cubecast.daemon.adapter import (Reassembler, StreamAdapter, add_parser, iter_datagram_file, load_layout,
-                            parse_layout, parse_udp_endpoint)
+from cubecast.daemon.adapter import StreamAdapter, add_parser, iter_datagram_file, parse_udp_endpoint
 from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.reassembly import Reassembler
 from cubecast.daemon.scene import parse_scene
 from cubecast.daemon.sensor import load_sensor, parse_sensor
 from cubecast.daemon.service import AdcValidator
 from cubecast.daemon.simulate import Simulator
+from cubecast.daemon.streamlayout import load_layout, parse_layout
 from tests.helpers import SAMPLES, YARD_SENSOR, sensor_text
 from tests.test_service import REPO, Collector, wait_until
 
