@@ -1,4 +1,5 @@
-"""Array calibration from a corner-reflector capture: daemon/calibrate.py and `cubecast calibrate`.
+"""Array calibration from a corner-reflector capture: daemon/calibrate.py, calibfile.py and
+`cubecast calibrate`.
 
 The bundled sensor (3 TX x 4 RX TDM, an 8-element azimuth row) gets random per-channel gain errors
 (+-2 dB, +-30 deg), applied to the simulator's canonical frames the way a front end would: chirp m of
@@ -13,13 +14,8 @@ import math
 import numpy as np
 import pytest
 
-from cubecast.daemon.calibrate import (
-    MIN_INTEGRATED_SNR_DB,
-    calibrate_capture,
-    load_calibration,
-    load_calibration_file,
-    write_calibration,
-)
+from cubecast.daemon.calibfile import load_calibration, load_calibration_file, write_calibration
+from cubecast.daemon.calibrate import MIN_INTEGRATED_SNR_DB, calibrate_capture
 from cubecast.daemon.capture import CaptureWriter
 from cubecast.daemon.chain.pipeline import Pipeline
 from cubecast.daemon.errors import CubecastError
