@@ -67,7 +67,6 @@ pair made for the run.
 from __future__ import annotations
 
 import collections
-import dataclasses
 import math
 import os
 import secrets
@@ -77,33 +76,24 @@ import subprocess
 import sys
 import threading
 import time
-import zlib
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from typing import Callable
 
-import msgpack
 import numpy as np
 import zmq
 
 from .chain.points import RECORD_DTYPE, to_records
 from .errors import CubecastError
 from .keys import LOCAL_KEYS_ENV, ClientKeys, ServerKeys
-from .sensor import Sensor, parse_sensor
-from .settings import ProcessingSettings
-from .wire import (ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, WireError, _digest, _float, _int,
-                   _shape, _str)
+from .sensor import Sensor
+from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_CONTROL_BYTES, MAX_NAME_CHARS, ProtocolError, Result, Task,
+                        WorkerConfig, decode_control, decode_hello, decode_refuse, decode_result, decode_task,
+                        decode_welcome, encode_beat, encode_bye, encode_hello, encode_ready, encode_refuse,
+                        encode_result, encode_task, encode_welcome, encode_who, task_ids)
 
-PROTOCOL = 1
-MAX_CONTROL_BYTES = 64 * 1024  # headers of every message but `welcome`
-MAX_WELCOME_BYTES = 1024 * 1024  # carries the sensor description text (wire.md allows 1 MiB for it)
-MAX_ENTRIES = 1024
-MAX_CAPACITY = 8  # tasks one worker may hold, whatever it announces
-MAX_NAME_CHARS = 64
-MAX_ERROR_CHARS = 2000
 DEFAULT_CAPACITY = 2
 DEFAULT_TASK_TIMEOUT_S = 2.0
 DEFAULT_REORDER_WINDOW = 64
-HEARTBEAT_S = 0.25
 HELLO_RETRY_S = 1.0
 STARTUP_TIMEOUT_S = 120.0  # local workers: numba loads from the cache serve filled, but a loaded host is slow
 RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up to the second
@@ -112,334 +102,11 @@ RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up
 HANDSHAKE_FAILED_EVENTS = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
                            | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
 MAX_HANDSHAKE_FAILURES = 3  # undecipherable handshakes in a row before a worker gives up
-KINDS_TO_SERVE = (b"hello", b"ready", b"beat", b"bye")
-KINDS_TO_WORKER = (b"welcome", b"refuse", b"who", b"task")
-
-
-class ProtocolError(CubecastError):
-    """A worker-protocol message that breaks the rules above (the message names the field)."""
 
 
 def _stderr_line(text: str) -> None:
     print(text, file=sys.stderr, flush=True)
 
-
-# ---- encoding and bounded decoding ----------------------------------------------------------------
-
-def _pack(fields: dict) -> bytes:
-    header = {"proto": PROTOCOL}
-    header.update(fields)
-    return msgpack.packb(header, use_bin_type=True)
-
-
-def _unpack(part: Any, what: str, limit: int = MAX_CONTROL_BYTES) -> dict:
-    view = memoryview(part)
-    if view.nbytes > limit:
-        raise ProtocolError(f"{what} header is {view.nbytes} bytes; at most {limit} allowed")
-    try:
-        header = msgpack.unpackb(view, raw=False, use_list=True, strict_map_key=True, max_str_len=limit,
-                                 max_bin_len=limit, max_array_len=MAX_ENTRIES, max_map_len=MAX_ENTRIES,
-                                 max_ext_len=0)
-    except Exception as exc:  # ValueError, FormatError, StackError, ExtraData...
-        raise ProtocolError(f"{what} header is not one valid msgpack map without ext types "
-                            f"({type(exc).__name__})") from None
-    if not isinstance(header, dict):
-        raise ProtocolError(f"{what} header is a msgpack {type(header).__name__}, not a map")
-    proto = header.get("proto")
-    if proto != PROTOCOL or isinstance(proto, bool):
-        raise ProtocolError(f"{what} header field 'proto' = {proto!r}: this cubecast speaks worker protocol "
-                            f"{PROTOCOL} only (run the same cubecast version on serve and workers)")
-    return header
-
-
-def _field(fn, h: dict, what: str, *args, **kw):
-    """The wire module's typed field readers, with the message named as ours."""
-    try:
-        return fn(h, what, *args, **kw)
-    except WireError as exc:
-        raise ProtocolError(str(exc)) from None
-
-
-def _key_str(h: dict, what: str, name: str) -> str:
-    return _field(_str, h, what, name, MAX_NAME_CHARS)
-
-
-def _bool(h: dict, what: str, name: str) -> bool:
-    v = h.get(name)
-    if not isinstance(v, bool):
-        raise ProtocolError(f"{what} header field '{name}' = {v!r}: must be true or false")
-    return v
-
-
-def _optional_digest(h: dict, what: str, name: str) -> str | None:
-    v = h.get(name)
-    if v is None:
-        return None
-    return _field(_digest, {"digest": v}, what)
-
-
-def _parts(parts: list, n_min: int, n_max: int, what: str) -> None:
-    if not n_min <= len(parts) <= n_max:
-        raise ProtocolError(f"{what} message has {len(parts)} parts; expected {n_min}..{n_max}")
-
-
-# ---- configuration carried in the handshake --------------------------------------------------------
-
-def settings_to_map(settings: ProcessingSettings) -> dict:
-    return dataclasses.asdict(settings)
-
-
-def settings_from_map(values: Any) -> ProcessingSettings:
-    """Processing settings from a `welcome` header: every field known and of the default's type."""
-    if not isinstance(values, dict):
-        raise ProtocolError(f"welcome header field 'settings' = {values!r}: must be a map")
-    fields = {f.name: f for f in dataclasses.fields(ProcessingSettings)}
-    out = {}
-    for key, value in values.items():
-        if key not in fields:
-            raise ProtocolError(f"welcome header field 'settings': unknown setting {key!r} (run the same cubecast "
-                                "version on serve and workers)")
-        kind = type(fields[key].default)
-        ok = (isinstance(value, bool) if kind is bool else
-              (isinstance(value, int) and not isinstance(value, bool)) if kind is int else
-              (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
-              if kind is float else isinstance(value, str))
-        if not ok:
-            raise ProtocolError(f"welcome header field 'settings': {key} = {value!r}: must be a {kind.__name__}")
-        out[key] = float(value) if kind is float else value
-    try:
-        return ProcessingSettings(**out).validate("welcome from serve")
-    except CubecastError as exc:
-        raise ProtocolError(str(exc)) from None
-
-
-@dataclass(frozen=True)
-class WorkerConfig:
-    """What a worker needs to compute exactly what serve would (sent in `welcome`)."""
-
-    sensor: Sensor
-    settings: ProcessingSettings
-    calibration: np.ndarray | None
-    range_bias_m: float
-
-    def same_as(self, other: "WorkerConfig | None") -> bool:
-        if other is None:
-            return False
-        a, b = self.calibration, other.calibration
-        return (self.sensor.digest == other.sensor.digest and self.sensor.source_text == other.sensor.source_text
-                and self.settings == other.settings and self.range_bias_m == other.range_bias_m
-                and (a is None) == (b is None) and (a is None or a.tobytes() == b.tobytes()))
-
-
-def encode_welcome(session: str, config: WorkerConfig) -> list:
-    cal = config.calibration
-    header = _pack({
-        "session": session, "sensor_id": config.sensor.sensor_id, "digest": config.sensor.digest,
-        "sensor_toml": config.sensor.source_text, "settings": settings_to_map(config.settings),
-        "range_bias_m": float(config.range_bias_m),
-        "calibration": None if cal is None else {"dtype": "<c8", "count": int(cal.shape[0])},
-        "heartbeat_s": HEARTBEAT_S})
-    payload = b"" if cal is None else np.ascontiguousarray(cal, "<c8").tobytes()
-    if len(header) > MAX_WELCOME_BYTES:
-        raise CubecastError(f"the sensor description is too large for a worker welcome ({len(header)} bytes; "
-                            f"at most {MAX_WELCOME_BYTES})")
-    return [b"welcome", header, payload]
-
-
-def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerConfig]:
-    """(session, configuration) from a `welcome`; the description is re-parsed and its digest checked,
-    and must match `expect_digest` (the worker's own --sensor) when given."""
-    _parts(parts, 3, 3, "welcome")
-    h = _unpack(parts[1], "welcome", MAX_WELCOME_BYTES)
-    session = _key_str(h, "welcome", "session")
-    digest = _field(_digest, h, "welcome")
-    text = _field(_str, h, "welcome", "sensor_toml", MAX_WELCOME_BYTES)
-    try:
-        sensor = parse_sensor(text, "sensor description from serve")
-    except CubecastError as exc:
-        raise ProtocolError(f"welcome header field 'sensor_toml': {exc}") from None
-    if sensor.digest != digest:
-        raise ProtocolError(f"welcome header field 'digest' = {digest!r}: the description serve sent has digest "
-                            f"{sensor.digest!r}")
-    if h.get("sensor_id") != sensor.sensor_id:
-        raise ProtocolError(f"welcome header field 'sensor_id' = {h.get('sensor_id')!r}: the description names "
-                            f"{sensor.sensor_id!r}")
-    if expect_digest is not None and digest != expect_digest:
-        raise CubecastError(f"serve processes sensor '{sensor.sensor_id}' (digest {digest}); this worker was given "
-                            f"a description with digest {expect_digest}: start the worker with serve's sensor "
-                            "description, or without --sensor")
-    settings = settings_from_map(h.get("settings"))
-    bias = _field(_float, h, "welcome", "range_bias_m")
-    cal_info = h.get("calibration")
-    payload = memoryview(parts[2])
-    calibration = None
-    if cal_info is not None:
-        if not isinstance(cal_info, dict) or cal_info.get("dtype") != "<c8":
-            raise ProtocolError(f"welcome header field 'calibration' = {cal_info!r}: must be nil or "
-                                "{dtype: '<c8', count: n}")
-        count = _field(_int, cal_info, "welcome calibration", "count", 1, MAX_ENTRIES * 64)
-        if count != sensor.n_virtual:
-            raise ProtocolError(f"welcome calibration count = {count}: sensor '{sensor.sensor_id}' has "
-                                f"{sensor.n_virtual} virtual channels")
-        if payload.nbytes != 8 * count:
-            raise ProtocolError(f"welcome calibration payload is {payload.nbytes} bytes; {count} complex64 "
-                                f"values need {8 * count}")
-        calibration = np.frombuffer(payload, "<c8").astype(np.complex64)
-        if not np.isfinite(calibration.view(np.float32)).all():
-            raise ProtocolError("welcome calibration holds values that are not finite")
-    elif payload.nbytes:
-        raise ProtocolError(f"welcome without calibration has a {payload.nbytes}-byte payload; it must be empty")
-    return session, WorkerConfig(sensor, settings, calibration, bias)
-
-
-@dataclass(frozen=True)
-class Task:
-    task_id: int
-    seq: int
-    run: str
-    timestamp_s: float
-    received_unix_s: float
-    want_rdmap: bool
-    data: np.ndarray  # the ADC payload (read-only view on the received message)
-    raw: bool  # True: the sensor's ADC format; False: canonical complex64
-
-
-def encode_task(session: str, task_id: int, header: dict, payload: memoryview, received_unix_s: float,
-                want_rdmap: bool) -> list:
-    """A task from a validated `adc` message header; the payload goes out without a copy."""
-    return [b"task", _pack({
-        "session": session, "task_id": int(task_id), "seq": header["seq"], "run": header["run"],
-        "timestamp_s": header["timestamp_s"], "received_unix_s": float(received_unix_s),
-        "digest": header["digest"], "dtype": header["dtype"], "shape": list(header["shape"]),
-        "crc32": header["crc32"], "rdmap": bool(want_rdmap)}), payload]
-
-
-def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = True) -> Task:
-    """Validate a task against the worker's sensor: session, digest, dtype, shape, length and (unless
-    check_crc is False) CRC-32."""
-    _parts(parts, 3, 3, "task")
-    h = _unpack(parts[1], "task")
-    if h.get("session") != session:
-        raise ProtocolError(f"task header field 'session' = {h.get('session')!r}: this worker was welcomed by "
-                            f"session {session!r}")
-    task_id = _field(_int, h, "task", "task_id")
-    seq = _field(_int, h, "task", "seq")
-    run = _field(_str, h, "task", "run", 64)
-    ts = _field(_float, h, "task", "timestamp_s")
-    received = _field(_float, h, "task", "received_unix_s")
-    want_map = _bool(h, "task", "rdmap")
-    digest = _field(_digest, h, "task")
-    if digest != sensor.digest:
-        raise ProtocolError(f"task header field 'digest' = {digest!r}: this worker processes sensor "
-                            f"'{sensor.sensor_id}' (digest {sensor.digest})")
-    dtype = h.get("dtype")
-    raw_dtype = sensor.adc.raw_dtype().str
-    if not isinstance(dtype, str) or dtype not in ADC_DTYPES or dtype not in (raw_dtype, "<c8"):
-        raise ProtocolError(f"task header field 'dtype' = {dtype!r}: sensor '{sensor.sensor_id}' frames are "
-                            f"{raw_dtype!r} or canonical '<c8'")
-    shape = _field(_shape, h, "task")
-    canon = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
-    expected = sensor.adc.raw_shape(*canon) if dtype == raw_dtype else canon
-    if shape != tuple(expected):
-        raise ProtocolError(f"task header field 'shape' = {list(shape)}: {dtype} frames of sensor "
-                            f"'{sensor.sensor_id}' have shape {list(expected)}")
-    crc = _field(_int, h, "task", "crc32", 0, 0xFFFFFFFF)
-    payload = memoryview(parts[2])
-    if payload.ndim != 1 or payload.itemsize != 1:
-        payload = payload.cast("B")
-    need = math.prod(shape) * np.dtype(dtype).itemsize
-    if payload.nbytes != need:
-        raise ProtocolError(f"task payload is {payload.nbytes} bytes; shape {list(shape)} of {dtype} needs {need}")
-    actual = zlib.crc32(payload) if check_crc else crc  # CRC-32 of zlib (ISO 3309 / ITU-T V.42)
-    if actual != crc:
-        raise ProtocolError(f"task header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
-    data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
-    return Task(task_id, seq, run, ts, received, want_map, data, dtype == raw_dtype)
-
-
-@dataclass
-class Result:
-    """A worker's answer to one task, decoded and checked by serve."""
-
-    worker: str
-    task_id: int
-    seq: int
-    records: np.ndarray  # RECORD_DTYPE, read-only view on the message
-    error: str | None
-    stage_ms: dict
-    process_s: float
-    rdmap: tuple | None  # (values_db float32 [r, d], range_start_m, range_step_m, velocity_start_mps, ..._step_mps)
-
-
-RDMAP_AXES = ("range_start_m", "range_step_m", "velocity_start_mps", "velocity_step_mps")
-
-
-def encode_result(worker: str, session: str, task_id: int, seq: int, records: np.ndarray | None,
-                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None) -> list:
-    recs = records if records is not None else np.empty(0, RECORD_DTYPE)
-    fields = {"worker": worker, "session": session, "task_id": int(task_id), "seq": int(seq),
-              "count": int(recs.shape[0]), "error": None if error is None else str(error)[:MAX_ERROR_CHARS],
-              "stage_ms": {k: float(v) for k, v in stage_ms.items()}, "process_s": float(process_s),
-              "rdmap": None}
-    map_payload: Any = b""
-    if rdmap is not None:
-        values = np.ascontiguousarray(rdmap[0], "<f4")
-        fields["rdmap"] = {"shape": [int(values.shape[0]), int(values.shape[1])],
-                           **{k: float(v) for k, v in zip(RDMAP_AXES, rdmap[1:])}}
-        map_payload = memoryview(values.reshape(-1).view(np.uint8))
-    rec_payload = memoryview(np.ascontiguousarray(recs).view(np.uint8)) if recs.size else b""
-    return [b"result", _pack(fields), rec_payload, map_payload]
-
-
-def decode_result(parts: list) -> tuple[str, str, Result]:
-    """(worker key, session, result), every field checked; records must carry the task's seq."""
-    _parts(parts, 4, 4, "result")
-    if bytes(parts[0]) != b"result":
-        raise ProtocolError(f"message kind {bytes(parts[0])[:16]!r} on the results socket; expected b'result'")
-    h = _unpack(parts[1], "result")
-    worker = _key_str(h, "result", "worker")
-    session = _key_str(h, "result", "session")
-    task_id = _field(_int, h, "result", "task_id")
-    seq = _field(_int, h, "result", "seq")
-    count = _field(_int, h, "result", "count", 0, 1 << 24)
-    process_s = _field(_float, h, "result", "process_s", 0.0)
-    error = h.get("error")
-    if error is not None and (not isinstance(error, str) or len(error) > MAX_ERROR_CHARS):
-        raise ProtocolError(f"result header field 'error' = {error!r:.80}: must be nil or a string of at most "
-                            f"{MAX_ERROR_CHARS} characters")
-    stage = h.get("stage_ms")
-    if (not isinstance(stage, dict) or len(stage) > 32
-            or any(not isinstance(k, str) or len(k) > 32 for k in stage)
-            or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
-                   for v in stage.values())):
-        raise ProtocolError(f"result header field 'stage_ms' = {stage!r:.80}: must map stage names to finite "
-                            "numbers")
-    rec_view = memoryview(parts[2])
-    if rec_view.nbytes != count * RECORD_DTYPE.itemsize:
-        raise ProtocolError(f"result payload is {rec_view.nbytes} bytes; count {count} x "
-                            f"{RECORD_DTYPE.itemsize}-byte records needs {count * RECORD_DTYPE.itemsize}")
-    records = np.frombuffer(rec_view, RECORD_DTYPE) if count else np.empty(0, RECORD_DTYPE)
-    if count and not (records["frame"] == seq).all():
-        raise ProtocolError(f"result records carry frame numbers other than the task's seq {seq}")
-    rd = h.get("rdmap")
-    rdmap = None
-    map_view = memoryview(parts[3])
-    if rd is not None:
-        if not isinstance(rd, dict):
-            raise ProtocolError(f"result header field 'rdmap' = {rd!r:.80}: must be nil or a map")
-        shape = _field(_shape, rd, "result rdmap", 2, 2)
-        if not (0 < shape[0] <= RDMAP_MAX_RANGE_CELLS and 0 < shape[1] <= RDMAP_MAX_DOPPLER_CELLS):
-            raise ProtocolError(f"result rdmap shape {list(shape)}: at most {RDMAP_MAX_RANGE_CELLS} x "
-                                f"{RDMAP_MAX_DOPPLER_CELLS} cells")
-        axes = [_field(_float, rd, "result rdmap", k) for k in RDMAP_AXES]
-        if map_view.nbytes != shape[0] * shape[1] * 4:
-            raise ProtocolError(f"result rdmap payload is {map_view.nbytes} bytes; shape {list(shape)} of <f4 "
-                                f"needs {shape[0] * shape[1] * 4}")
-        rdmap = (np.frombuffer(map_view, "<f4").reshape(shape), *axes)
-    elif map_view.nbytes:
-        raise ProtocolError("result without rdmap has a map payload; it must be empty")
-    return worker, session, Result(worker, task_id, seq, records, error, {k: float(v) for k, v in stage.items()},
-                                   process_s, rdmap)
 
 
 # ---- the chain in a worker ------------------------------------------------------------------------
@@ -531,9 +198,8 @@ class Worker:
             return False
 
     def _hello(self, dealer: zmq.Socket) -> bool:
-        return self._send(dealer, [b"hello", _pack({
-            "worker": self.key, "name": self.name, "pid": os.getpid(), "host": socket.gethostname()[:255],
-            "capacity": self.capacity, "expect_digest": self.expect.digest if self.expect else None})])
+        return self._send(dealer, encode_hello(self.key, self.name, os.getpid(), socket.gethostname()[:255],
+                                               self.capacity, self.expect.digest if self.expect else None))
 
     def _welcome(self, dealer: zmq.Socket, parts: list) -> None:
         session, config = decode_welcome(parts, self.expect.digest if self.expect else None)
@@ -547,8 +213,7 @@ class Worker:
             self.config = config
         warm = time.perf_counter() - t0
         self.session = session
-        self._send(dealer, [b"ready", _pack({"worker": self.key, "session": session,
-                                             "digest": config.sensor.digest, "warm_up_s": warm})])
+        self._send(dealer, encode_ready(self.key, session, config.sensor.digest, warm))
         self.ready.set()
         self._say(f"ready: sensor '{config.sensor.sensor_id}' (digest {config.sensor.digest}), session {session}, "
                   f"warm-up {warm:.2f} s")
@@ -558,11 +223,10 @@ class Worker:
         task_id = seq = None
         try:
             try:
-                h = _unpack(parts[1], "task") if len(parts) > 1 else {}
-                if h.get("session") != self.session:
+                session, task_id, seq = task_ids(parts)
+                if session != self.session:
                     self.tasks_ignored += 1  # a task of another serve session: nobody waits for it
                     return
-                task_id, seq = h.get("task_id"), h.get("seq")
             except ProtocolError:
                 pass
             task = decode_task(parts, self.config.sensor, self.session, self.check_crc)
@@ -640,7 +304,7 @@ class Worker:
                         last_hello = now
                         last_sent = now
                 if self.session is not None and now - last_sent >= self.heartbeat_s:
-                    if self._send(dealer, [b"beat", _pack({"worker": self.key, "session": self.session})]):
+                    if self._send(dealer, encode_beat(self.key, self.session)):
                         last_sent = now
                 if monitor.poll(0):
                     self._handshake_failed(monitor)
@@ -668,16 +332,15 @@ class Worker:
                         self.ready.clear()
                         last_hello = -math.inf
                     elif kind == b"refuse":
-                        h = _unpack(parts[1], "refuse") if len(parts) > 1 else {}
-                        msg = h.get("message") if isinstance(h.get("message"), str) else "no reason given"
-                        raise CubecastError(f"serve at {self.tasks_endpoint} refused this worker: {msg[:500]}")
+                        raise CubecastError(f"serve at {self.tasks_endpoint} refused this worker: "
+                                            f"{decode_refuse(parts)}")
                     # anything else is ignored: a newer serve may send kinds this worker does not know
                     if stop.is_set():
                         break
         finally:
             with_bye = self.session is not None
             if with_bye:
-                self._send(dealer, [b"bye", _pack({"worker": self.key})])
+                self._send(dealer, encode_bye(self.key))
                 dealer.setsockopt(zmq.LINGER, 200)
             if "monitor" in locals():
                 dealer.disable_monitor()
@@ -1064,17 +727,14 @@ class WorkerPool:
         except (zmq.ZMQError, AttributeError, ValueError):
             fd = None
         try:
-            h = _unpack(parts[2], kind.decode("ascii", "replace")[:16] or "control")
-            if h.get("worker") != key.decode("ascii", "replace"):
-                raise ProtocolError(f"header field 'worker' = {h.get('worker')!r:.40} differs from the sender's "
-                                    "address")
+            h = decode_control(key, kind, parts[2])
             if kind == b"hello":
                 self._hello(key, h, fd, now)
                 return
             w = self.workers.get(key)
             if w is None or w.state == "gone":
                 if kind != b"bye":
-                    self._send_to(key, [b"who", _pack({"session": self.session})])
+                    self._send_to(key, encode_who(self.session))
                 return
             if fd is not None:
                 w.fd = fd
@@ -1093,28 +753,26 @@ class WorkerPool:
                                    f"{w.capacity}")
             elif kind == b"beat":
                 if h.get("session") != self.session:
-                    self._send_to(key, [b"who", _pack({"session": self.session})])
+                    self._send_to(key, encode_who(self.session))
             elif kind == b"bye":
                 self._gone(w, "it stopped")
         except ProtocolError as exc:
             self.messages_invalid += 1
             if kind == b"hello":  # tell the worker why, so that it stops with that reason
                 self.workers_refused += 1
-                self._send_to(key, [b"refuse", _pack({"reason": "protocol", "message": str(exc)})])
+                self._send_to(key, encode_refuse("protocol", str(exc)))
             self._ignored_log("ignored worker message", f"from worker address {key[:20]!r}: {exc}")
 
     def _hello(self, key: bytes, h: dict, fd: int | None, now: float) -> None:
-        name = _key_str(h, "hello", "name")
-        pid = _field(_int, h, "hello", "pid", 0, 1 << 32)
-        host = _field(_str, h, "hello", "host", 255, 0)
-        capacity = min(_field(_int, h, "hello", "capacity", 1, 1 << 16), MAX_CAPACITY)
-        expect = _optional_digest(h, "hello", "expect_digest")
+        hello = decode_hello(h)
+        name, pid, host, expect = hello.name, hello.pid, hello.host, hello.expect_digest
+        capacity = min(hello.capacity, MAX_CAPACITY)
         s = self.config.sensor
         if expect is not None and expect != s.digest:
             self.workers_refused += 1
             text = (f"serve processes sensor '{s.sensor_id}' with digest {s.digest}; worker '{name}' was started "
                     f"with a sensor description of digest {expect}")
-            self._send_to(key, [b"refuse", _pack({"reason": "digest", "message": text})])
+            self._send_to(key, encode_refuse("digest", text))
             self.write(f"cubecast serve: refused worker '{name}' (pid {pid} on {host}): {text}")
             return
         old = self.workers.get(key)
