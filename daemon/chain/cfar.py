@@ -77,7 +77,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from ..errors import CubecastError
+from ..errors import CubecastError, is_integer, is_real
 from .cfar_kernels import _extract, _os_sparse, _os_statistic, _sum_statistic, _window_sums
 
 __all__ = [
@@ -112,14 +112,6 @@ _OS_FLOOR_STRIDE = 31
 # settings
 # ----------------------------------------------------------------------------------------------------
 
-def _is_int(value) -> bool:
-    return isinstance(value, (int, np.integer)) and not isinstance(value, (bool, np.bool_))
-
-
-def _is_real(value) -> bool:
-    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
-
-
 @dataclass(frozen=True)
 class CfarSettings:
     """What the CFAR detector does. Window sizes count cells on EACH side of the cell under test."""
@@ -140,21 +132,21 @@ class CfarSettings:
             raise CubecastError(f"cfar.kind = {self.kind!r}: must be one of {', '.join(CFAR_KINDS)}")
         for name in ("train_range", "guard_range", "train_doppler", "guard_doppler"):
             value = getattr(self, name)
-            if not _is_int(value) or value < 0:
+            if not is_integer(value) or value < 0:
                 raise CubecastError(f"cfar.{name} = {value!r}: must be an integer >= 0")
         if self.train_range + self.train_doppler < 1:
             raise CubecastError(
                 f"cfar.train_range = {self.train_range}, cfar.train_doppler = {self.train_doppler}: "
                 "at least one of them must be >= 1 (no training cells otherwise)")
-        if not _is_real(self.pfa) or not (PFA_MIN <= float(self.pfa) <= PFA_MAX):
+        if not is_real(self.pfa) or not (PFA_MIN <= float(self.pfa) <= PFA_MAX):
             raise CubecastError(f"cfar.pfa = {self.pfa!r}: must be a number in [{PFA_MIN:g}, {PFA_MAX:g}]")
-        if (not _is_real(self.os_rank_fraction) or not math.isfinite(float(self.os_rank_fraction))
+        if (not is_real(self.os_rank_fraction) or not math.isfinite(float(self.os_rank_fraction))
                 or not (0.0 < float(self.os_rank_fraction) <= 1.0)):
             raise CubecastError(
                 f"cfar.os_rank_fraction = {self.os_rank_fraction!r}: must be a number in (0, 1]")
         for name in ("range_min_bin", "range_max_bin"):
             value = getattr(self, name)
-            if value is not None and (not _is_int(value) or value < 0):
+            if value is not None and (not is_integer(value) or value < 0):
                 raise CubecastError(f"cfar.{name} = {value!r}: must be None or an integer >= 0")
         if (self.range_min_bin is not None and self.range_max_bin is not None
                 and self.range_max_bin <= self.range_min_bin):
@@ -422,15 +414,15 @@ def _quadrature_design(kind: str, n_train: int, pfa: float, k_int: int, rank: in
 def _check_design_args(kind, n_train, pfa, n_integrated, os_rank, n_near):
     if not isinstance(kind, str) or kind not in CFAR_KINDS:
         raise CubecastError(f"kind = {kind!r}: must be one of {', '.join(CFAR_KINDS)}")
-    if not _is_int(n_train) or n_train < 1:
+    if not is_integer(n_train) or n_train < 1:
         raise CubecastError(f"n_train = {n_train!r}: must be an integer >= 1")
-    if not _is_real(pfa) or not (PFA_MIN <= float(pfa) <= PFA_MAX):
+    if not is_real(pfa) or not (PFA_MIN <= float(pfa) <= PFA_MAX):
         raise CubecastError(f"pfa = {pfa!r}: must be a number in [{PFA_MIN:g}, {PFA_MAX:g}]")
-    if not _is_int(n_integrated) or not (1 <= n_integrated <= N_INTEGRATED_MAX):
+    if not is_integer(n_integrated) or not (1 <= n_integrated <= N_INTEGRATED_MAX):
         raise CubecastError(f"n_integrated = {n_integrated!r}: must be an integer in [1, {N_INTEGRATED_MAX}]")
-    if os_rank is not None and (not _is_int(os_rank) or not (1 <= os_rank <= n_train)):
+    if os_rank is not None and (not is_integer(os_rank) or not (1 <= os_rank <= n_train)):
         raise CubecastError(f"os_rank = {os_rank!r}: must be an integer in [1, n_train = {n_train}]")
-    if n_near is not None and (not _is_int(n_near) or not (0 <= n_near <= n_train)):
+    if n_near is not None and (not is_integer(n_near) or not (0 <= n_near <= n_train)):
         raise CubecastError(f"n_near = {n_near!r}: must be an integer in [0, n_train = {n_train}]")
 
 
@@ -494,9 +486,9 @@ class Cfar:
         if not isinstance(settings, CfarSettings):
             raise CubecastError(f"settings = {settings!r}: must be a CfarSettings")
         for name, value in (("n_range", n_range), ("n_doppler", n_doppler)):
-            if not _is_int(value) or value < 1:
+            if not is_integer(value) or value < 1:
                 raise CubecastError(f"cfar {name} = {value!r}: must be an integer >= 1")
-        if not _is_int(n_integrated) or not (1 <= n_integrated <= N_INTEGRATED_MAX):
+        if not is_integer(n_integrated) or not (1 <= n_integrated <= N_INTEGRATED_MAX):
             raise CubecastError(
                 f"cfar n_integrated = {n_integrated!r}: must be an integer in [1, {N_INTEGRATED_MAX}]")
         s = settings
