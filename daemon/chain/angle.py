@@ -99,7 +99,7 @@ from dataclasses import dataclass
 import numpy as np
 from numba import njit
 
-from ..errors import CubecastError
+from ..errors import CubecastError, is_integer, is_real
 
 from .fft import ifft_unnormalised_inplace
 
@@ -237,13 +237,11 @@ class VirtualGrid:
         if not np.all(np.isfinite(pos)):
             bad = int(np.argwhere(~np.all(np.isfinite(pos), axis=1))[0, 0])
             raise CubecastError(f"virtual_positions_m: element {bad} has a non-finite coordinate")
-        if not (isinstance(wavelength_m, (int, float, np.floating, np.integer))
-                and math.isfinite(wavelength_m) and wavelength_m > 0):
+        if not (is_real(wavelength_m) and math.isfinite(wavelength_m) and wavelength_m > 0):
             raise CubecastError(f"wavelength_m must be a finite number > 0, got {wavelength_m!r}")
         if pitch_m is None:
             pitch_m = wavelength_m / 2.0
-        if not (isinstance(pitch_m, (int, float, np.floating, np.integer))
-                and math.isfinite(pitch_m) and pitch_m > 0):
+        if not (is_real(pitch_m) and math.isfinite(pitch_m) and pitch_m > 0):
             raise CubecastError(f"pitch_m must be a finite number > 0, got {pitch_m!r}")
         pitch = float(pitch_m)
         tol = _OFF_GRID_FRACTION
@@ -311,10 +309,6 @@ class VirtualGrid:
 # --------------------------------------------------------------------------------------------
 
 
-def _is_int(v) -> bool:
-    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
-
-
 @dataclass(frozen=True)
 class AngleSettings:
     """Angle estimation settings (validated on construction, CubecastError on a bad value).
@@ -343,13 +337,12 @@ class AngleSettings:
     def __post_init__(self) -> None:
         for name in ("fft_size_azimuth", "fft_size_elevation"):
             v = getattr(self, name)
-            if not _is_int(v) or not 1 <= v <= 65536:
+            if not is_integer(v) or not 1 <= v <= 65536:
                 raise CubecastError(f"{name} must be an integer in 1..65536, got {v!r}")
         v = self.peak_threshold_db
-        if (isinstance(v, (bool, np.bool_)) or not isinstance(v, (int, float, np.floating, np.integer))
-                or not math.isfinite(v) or v > 0):
+        if not is_real(v) or not math.isfinite(v) or v > 0:
             raise CubecastError(f"peak_threshold_db must be a finite number <= 0 dB, got {v!r}")
-        if not _is_int(self.max_peaks) or not 1 <= self.max_peaks <= 64:
+        if not is_integer(self.max_peaks) or not 1 <= self.max_peaks <= 64:
             raise CubecastError(f"max_peaks must be an integer in 1..64, got {self.max_peaks!r}")
         if not isinstance(self.refine, (bool, np.bool_)):
             raise CubecastError(f"refine must be true or false, got {self.refine!r}")
@@ -849,7 +842,6 @@ def _damped_solve(h, g, n, lam, chol, out):
 def _joint_gauss_newton(
     y, kx, kz, act, n_act, gu, gw, ph, amp, gu_try, gw_try, ph_try, amp_try, res, gram, rhs,
     work, vif, jac, hess, chol, grad, step, do_u, do_w, max_du, max_dw, max_iter, tol_bins,
-    n_trials,
 ):
     """Joint local refinement of all active directions: Levenberg-Marquardt iterations on
     ||y - sum_a amp_a steer(u_a, w_a)||^2 over directions and amplitudes (the direction part of
@@ -928,7 +920,6 @@ def _joint_gauss_newton(
                 gu_try[p] = u
                 gw_try[p] = w
                 _phasors(kx, kz, u, w, ph_try[p])
-            n_trials[0] += 1
             if _joint_amplitudes(ph_try, act, n_act, y, gram, rhs, work, amp_try, vif):
                 cost_try = _residual_cost(y, ph_try, act, n_act, amp_try)
                 if cost_try <= cost or big * scale <= tol_bins:
@@ -983,8 +974,7 @@ def _relax_peaks(
     """Joint refinement of every snapshot with two or more kept peaks (step 6 of the module
     doc: RELAX sweeps, then joint Gauss-Newton), in place on the output of _refine_peaks.
     Within a snapshot the kept peaks are written back first, strongest first; the others get
-    keep = False. Returns (sweeps run, peaks dropped during the iterations, joint trial steps)
-    for diagnostics."""
+    keep = False."""
     n_virt = snapshots.shape[1]
     mp = _largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
@@ -1014,9 +1004,6 @@ def _relax_peaks(
     chol = np.empty((dim_max, dim_max), np.float64)
     grad = np.empty(dim_max, np.float64)
     step = np.empty(dim_max, np.float64)
-    n_trials = np.zeros(1, np.int64)
-    n_sweeps_total = 0
-    n_dropped = 0
     k0 = 0
     while k0 < n_found:
         k1 = _group_end(det, n_found, k0)
@@ -1040,7 +1027,6 @@ def _relax_peaks(
             _phasors(kx, kz, gu[p], gw[p], ph[p])
         n_act, _ = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr,
                                   max_vif)
-        sweep = 0
         for _round in range(_MAX_RELAX_ROUNDS):
             # RELAX sweeps: get every peak into the basin of the joint optimum
             n_sw = 0
@@ -1066,32 +1052,26 @@ def _relax_peaks(
                     move = max(move, abs(u - gu[p]) / max_du, abs(w - gw[p]) / max_dw)
                     gu[p] = u
                     gw[p] = w
-                    n_before = n_act
                     n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp,
                                                     vif, rank, rel_thr, max_vif)
-                    n_dropped += n_before - n_act
                     if dropped:
                         move = np.inf  # the others were refined against a different model
                         break
                     a += 1
                 if move <= move_tol:
                     break
-            sweep += n_sw
             if n_act < 2:
                 break
             # joint Gauss-Newton finish: the cyclic sweeps converge slowly for close peaks
             _joint_gauss_newton(
                 y, kx, kz, act, n_act, gu, gw, ph, amp, gu_try, gw_try, ph_try, amp_try, res,
                 gram, rhs, work, vif, jac, hess, chol, grad, step, do_u, do_w, max_du, max_dw,
-                gn_iter, gn_tol, n_trials,
+                gn_iter, gn_tol,
             )
-            n_before = n_act
             n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif,
                                             rank, rel_thr, max_vif)
-            n_dropped += n_before - n_act
             if not dropped:
                 break
-        n_sweeps_total += sweep
         if n_act == 1:
             # back to one target: its single-target refinement on the whole snapshot, as for a
             # snapshot with a single FFT peak
@@ -1120,7 +1100,6 @@ def _relax_peaks(
             out_w[k0 + a] = gw[p]
             out_p[k0 + a] = gp[p]
         k0 = k1
-    return n_sweeps_total, n_dropped, n_trials[0]
 
 
 @njit(cache=True)
@@ -1360,9 +1339,6 @@ class AngleEstimator:
         self._chan_win = chan_win.astype(np.float64)
         self._cal128 = cal.astype(np.complex128)
         self._win_sum2 = float(chan_win.sum()) ** 2
-        # diagnostics of the last estimate(): (RELAX sweeps, peaks dropped while iterating,
-        # joint trial steps), summed over the snapshots
-        self._relax_stats = (0, 0, 0)
         # channel weights into the grid cells: cell means (windowed, calibrated) for the estimation
         # image; cell sums (calibrated, no window) for coherence, where the on-grid beam is a^H x
         self._w_mean = (self._chan_weight / grid.cell_counts[grid.channel_cell]).astype(np.complex64)
@@ -1459,7 +1435,7 @@ class AngleEstimator:
         )
         keep, u, w, p = self._pk_keep, self._pk_u, self._pk_w, self._pk_p
         if self.settings.refine and self.settings.max_peaks > 1:
-            self._relax_stats = self._relax(x, n_found, det, keep, u, w, p)
+            self._relax(x, n_found, det, keep, u, w, p)
             n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
@@ -1470,7 +1446,7 @@ class AngleEstimator:
 
     def _relax(self, x, n_found, det, keep, u, w, p):
         """Step 6 on the peak arrays, in place."""
-        return _relax_peaks(
+        _relax_peaks(
             x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det,
             self._do_u, self._do_w, self.bin_u, self.bin_w, self._rel_thr,
             _MAX_VARIANCE_INFLATION, self._win_sum2,
