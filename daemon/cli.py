@@ -1,15 +1,21 @@
 """The `cubecast` command: argparse subcommands, each a thin call into a module.
 
-Errors a user can cause (CubecastError) print as one line on stderr and exit with code 2.
+A command's result (a table, a JSON document) goes to stdout; status lines go through the logging
+module to stderr: -v / -q (repeatable) and --log-json, before or after the subcommand, set the level
+and the format. Errors a user can cause (CubecastError) print as one line on stderr and exit with code 2.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import logging
 import sys
 
+from . import logs
 from .errors import CubecastError
+
+log = logging.getLogger("cubecast.daemon.cli" if __name__ == "__main__" else __name__)
 
 
 def _describe(args) -> int:
@@ -63,9 +69,8 @@ def _simulate(args) -> int:
     if args.out:
         from .files import simulate_capture
         simulate_capture(sensor, scene, args.out, args.frames, args.seed, quantize=not args.no_quantize,
-                         progress=not args.quiet)
-        if not args.quiet:
-            print(f"wrote {args.frames} frames of '{scene.name}' to {args.out}")
+                         progress=logs.show_progress())
+        log.info("wrote %d frames of '%s' to %s", args.frames, scene.name, args.out)
         return 0
     from .sources import publish_simulation
     return publish_simulation(sensor, scene, args.pub, frames=args.frames_live, seed=args.seed)
@@ -74,7 +79,7 @@ def _simulate(args) -> int:
 def _process(args) -> int:
     from .process import process_capture
     return process_capture(args.capture, args.out, fmt=args.format, settings_path=args.settings,
-                           calibration_path=args.calibration, progress=not args.quiet,
+                           calibration_path=args.calibration, progress=logs.show_progress(),
                            skip_corrupt=args.skip_corrupt)
 
 
@@ -82,34 +87,34 @@ def _serve(args) -> int:
     from .service import DEFAULT_SUB, serve
     return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
-                 quiet=args.quiet, workers=args.workers, tasks=args.tasks, results=args.results,
+                 workers=args.workers, tasks=args.tasks, results=args.results,
                  task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys)
 
 
 def _worker(args) -> int:
     from .workers import run_worker
     return run_worker(args.connect, args.results, sensor_path=args.sensor, name=args.name,
-                      capacity=args.capacity, quiet=args.quiet, check_crc=not args.skip_crc,
+                      capacity=args.capacity, check_crc=not args.skip_crc,
                       server_key=args.server_key, key=args.key)
 
 
 def _keys(args) -> int:
     from .keys import create_keys
     public, secret = create_keys(args.name, args.dir)
-    print(f"wrote {public} (public: give it to the other side) and {secret} (secret: keep it on this host)")
+    log.info("wrote %s (public: give it to the other side) and %s (secret: keep it on this host)", public, secret)
     return 0
 
 
 def _replay(args) -> int:
     from .sources import replay
     return replay(args.capture, args.pub, speed=args.speed, loop=args.loop, frames=args.frames,
-                  wait_s=args.wait_subscriber, quiet=args.quiet)
+                  wait_s=args.wait_subscriber)
 
 
 def _record(args) -> int:
     from .sources import record
     return record(args.sub, args.out, args.points_out, frames=args.frames, duration_s=args.duration,
-                  sensor_path=args.sensor, quiet=args.quiet)
+                  sensor_path=args.sensor)
 
 
 def _demo(args) -> int:
@@ -132,6 +137,7 @@ def _bench(args) -> int:
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="cubecast", description="FMCW MIMO radar processing chain: ADC frames in, "
                                 "point clouds out.")
+    _add_log_options(p)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     d = sub.add_parser("describe", help="print a sensor's derived figures")
@@ -148,7 +154,6 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--frames-live", type=int, default=0, help="with --pub: stop after N frames (0 = run until stopped)")
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--no-quantize", action="store_true", help="store canonical complex64 instead of the ADC format")
-    s.add_argument("--quiet", action="store_true")
     s.set_defaults(func=_simulate)
 
     pr = sub.add_parser("process", help="process a capture offline into a point-cloud file")
@@ -159,7 +164,6 @@ def build_parser() -> argparse.ArgumentParser:
     pr.add_argument("--calibration", help="calibration file (TOML)")
     pr.add_argument("--skip-corrupt", action="store_true",
                     help="skip frames whose CRC fails (each is reported); default: stop with an error")
-    pr.add_argument("--quiet", action="store_true")
     pr.set_defaults(func=_process)
 
     sv = sub.add_parser("serve", help="the streaming daemon: ADC frames in over ZeroMQ, point clouds out")
@@ -174,7 +178,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="frames waiting for processing; when full the oldest is dropped (default 2)")
     sv.add_argument("--rdmap-rate", type=float, default=5.0, metavar="HZ",
                     help="range-Doppler maps per second at most (default 5, 0 = none)")
-    sv.add_argument("--quiet", action="store_true", help="no start/stop lines (rejections are still logged)")
     sv.add_argument("--workers", type=int, default=0, metavar="N",
                     help="process frames in N local worker processes (default 0: in serve itself)")
     sv.add_argument("--tasks", metavar="ENDPOINT",
@@ -200,7 +203,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="frames this worker may hold at once, one processed and the rest waiting (default 2)")
     wk.add_argument("--skip-crc", action="store_true",
                     help="do not re-check each frame's CRC-32 (serve checked it on receipt); for a trusted link")
-    wk.add_argument("--quiet", action="store_true", help="no start/stop lines (errors are still printed)")
     wk.add_argument("--server-key", metavar="FILE", help="serve's public key (its NAME.key), for a serve that "
                                                          "requires keys")
     wk.add_argument("--key", metavar="FILE", help="with --server-key: this worker's secret key (NAME.key_secret)")
@@ -220,7 +222,6 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--frames", type=int, default=0, metavar="N", help="stop after N frames (default: all)")
     rp.add_argument("--wait-subscriber", type=float, default=1.0, metavar="S",
                     help="after binding, wait up to S seconds for a subscriber before sending (default 1)")
-    rp.add_argument("--quiet", action="store_true")
     rp.set_defaults(func=_replay)
 
     rc = sub.add_parser("record", help="record ADC frames to a capture and/or point clouds to CSV from ZeroMQ")
@@ -233,7 +234,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="stop after N ADC frames (N point clouds without --out); default: no limit")
     rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
     rc.add_argument("--sensor", help="sensor description (TOML), if no daemon's description is received")
-    rc.add_argument("--quiet", action="store_true")
     rc.set_defaults(func=_record)
 
     dm = sub.add_parser("demo", help="replay the bundled sample through the daemon and report once a second")
@@ -261,7 +261,39 @@ def build_parser() -> argparse.ArgumentParser:
     except ImportError as exc:  # pragma: no cover - only without the viewer package
         v = sub.add_parser("view", help="live viewer (needs the viewer extra)")
         v.set_defaults(func=lambda args, exc=exc: _missing_viewer(exc))
+    for sp in sub.choices.values():
+        _add_log_options(sp, SUBCOMMAND_LOG_SUFFIX)
     return p
+
+
+SUBCOMMAND_LOG_SUFFIX = "_sub"
+_LOG_OPTIONS = (
+    (("-v", "--verbose"), "log_verbose", dict(action="count", help="more log lines (-v: debug)")),
+    (("-q", "--quiet"), "log_quiet", dict(action="count", help="fewer log lines (-q: warnings and errors only, "
+                                                               "-qq: errors only)")),
+    (("--log-json",), "log_json", dict(action="store_true", help="log lines as JSON objects, one per line")),
+)
+
+
+def _add_log_options(parser: argparse.ArgumentParser, suffix: str = "") -> None:
+    """-v / -q / --log-json on the top-level parser (suffix "") or, with defaults suppressed, on a
+    subcommand (suffix "_sub"), where they add to the top-level ones. An option whose name the
+    subcommand already uses for itself is left to it (there, only the top-level one sets the level)."""
+    group = parser.add_argument_group("logging")
+    for flags, dest, kw in _LOG_OPTIONS:
+        default = argparse.SUPPRESS if suffix else (False if kw["action"] == "store_true" else 0)
+        try:
+            group.add_argument(*flags, dest=dest + suffix, default=default, **kw)
+        except argparse.ArgumentError:
+            pass
+
+
+def log_level_and_json(args: argparse.Namespace) -> tuple[int, bool]:
+    """The logging level and format the parsed command line asks for."""
+    s = SUBCOMMAND_LOG_SUFFIX
+    verbose = args.log_verbose + getattr(args, "log_verbose" + s, 0)
+    quiet = args.log_quiet + getattr(args, "log_quiet" + s, 0)
+    return logs.level_for(verbose, quiet), bool(args.log_json or getattr(args, "log_json" + s, False))
 
 
 def _missing_viewer(exc) -> int:
@@ -270,6 +302,7 @@ def _missing_viewer(exc) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
+    logs.configure(*log_level_and_json(args))
     try:
         return int(args.func(args) or 0)
     except CubecastError as exc:

@@ -14,13 +14,12 @@ On close a source lingers at most 1 s to deliver the frames still queued.
 from __future__ import annotations
 
 import collections
+import logging
 import math
 import secrets
-import sys
 import threading
 import time
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 import zmq
@@ -29,18 +28,17 @@ from .capture import CaptureReader, CaptureWriter, CorruptFrameError
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
 from .files import _fmt, capture_sensor
+from .logs import RateLimitFilter
 from .scene import Scene
 from .sensor import Sensor
-from .service import (DEFAULT_PUB, DEFAULT_SUB, AdcValidator, RateLimitedLog, bind_socket, connect_socket,
-                      stop_on_signals)
+from .service import DEFAULT_PUB, DEFAULT_SUB, AdcValidator, bind_socket, connect_socket, stop_on_signals
 from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
 
 DEFAULT_SOURCE = DEFAULT_SUB  # sources bind where serve connects by default
 SOURCE_LINGER_MS = 1000
+REJECT_LOG_INTERVAL_S = 5.0
 
-
-def _stderr_line(text: str) -> None:
-    print(text, file=sys.stderr, flush=True)
+log = logging.getLogger(__name__)
 
 
 def new_run_id() -> str:
@@ -154,8 +152,7 @@ class ReplaySource:
 
     def __init__(self, capture: str | Path, endpoint: str = DEFAULT_SOURCE, *, speed: float | None = 1.0,
                  loop: bool = False, frames: int = 0, wait_subscribers: int = 1, wait_s: float = 1.0,
-                 sndhwm: int = 1000, context: zmq.Context | None = None,
-                 log: Callable[[str], None] | None = None, quiet: bool = False):
+                 sndhwm: int = 1000, context: zmq.Context | None = None):
         if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
             raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = all)")
         self.reader = CaptureReader(capture)
@@ -178,8 +175,6 @@ class ReplaySource:
         self.speed, self.loop, self.frames = speed, loop, frames
         self.wait_subscribers, self.wait_s = wait_subscribers, wait_s
         self.sndhwm, self.context = sndhwm, context
-        self.write = log or _stderr_line
-        self.quiet = quiet
         self.publisher: AdcPublisher | None = None
         self.frames_sent = 0
         self.corrupt_skipped: set[int] = set()
@@ -201,9 +196,8 @@ class ReplaySource:
         try:
             if self.wait_subscribers > 0 and self.wait_s > 0:
                 pub.wait_for_subscribers(self.wait_subscribers, self.wait_s, stop)
-            if not self.quiet:
-                self.write(f"cubecast replay: publishing {self.reader.path} (sensor '{self.sensor.sensor_id}', "
-                           f"{len(self.reader)} frames, run {pub.run_id}) on {pub.endpoint}")
+            log.info("cubecast replay: publishing %s (sensor '%s', %d frames, run %s) on %s", self.reader.path,
+                     self.sensor.sensor_id, len(self.reader), pub.run_id, pub.endpoint)
             pacer = _Pacer(self.speed, stop)
             n = len(self.reader)
             k = 0
@@ -222,7 +216,7 @@ class ReplaySource:
                 except CorruptFrameError as exc:
                     if j not in self.corrupt_skipped:
                         self.corrupt_skipped.add(j)
-                        self.write(f"cubecast replay: warning: skipping frame: {exc}")
+                        log.warning("cubecast replay: warning: skipping frame: %s", exc)
                     if len(self.corrupt_skipped) == n:
                         raise CubecastError(f"{self.reader.path}: every frame is corrupt") from None
                     continue
@@ -240,28 +234,24 @@ class ReplaySource:
 
 
 def replay(capture: str, endpoint: str = DEFAULT_SOURCE, speed: str = "1", loop: bool = False, frames: int = 0,
-           wait_s: float = 1.0, quiet: bool = False) -> int:
+           wait_s: float = 1.0) -> int:
     """`cubecast replay`: until the end (or --frames, or forever with --loop), SIGINT or SIGTERM."""
     stop = threading.Event()
     with stop_on_signals(stop):
-        src = ReplaySource(capture, endpoint, speed=parse_speed(speed), loop=loop, frames=frames, wait_s=wait_s,
-                           quiet=quiet)
+        src = ReplaySource(capture, endpoint, speed=parse_speed(speed), loop=loop, frames=frames, wait_s=wait_s)
         sent = src.run(stop)
-    if not quiet:
-        _stderr_line(f"cubecast replay: sent {sent} frames")
+    log.info("cubecast replay: sent %d frames", sent)
     return 0
 
 
 def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int = 0, seed: int = 0, *,
                        wait_s: float = 1.0, stop: threading.Event | None = None,
-                       context: zmq.Context | None = None, quiet: bool = False,
-                       log: Callable[[str], None] | None = None) -> int:
+                       context: zmq.Context | None = None) -> int:
     """`cubecast simulate SCENE --sensor S --pub ENDPOINT`: simulated frames (ADC format, scene time
     as timestamp_s) published live at the frame period; frames = 0 runs until stopped."""
     from .simulate import Simulator
     if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
         raise CubecastError(f"--frames-live {frames!r}: must be a whole number >= 0 (0 = until stopped)")
-    write = log or _stderr_line
     own_stop = stop is None
     stop = stop or threading.Event()
     sim = Simulator(sensor, scene, seed=seed)
@@ -269,9 +259,8 @@ def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int 
         pub = AdcPublisher(sensor, endpoint, context=context)
         try:
             pub.wait_for_subscribers(1, wait_s, stop)
-            if not quiet:
-                write(f"cubecast simulate: publishing '{scene.name}' as sensor '{sensor.sensor_id}' on "
-                      f"{pub.endpoint} (run {pub.run_id}, frame period {sensor.frame_period_s * 1e3:g} ms)")
+            log.info("cubecast simulate: publishing '%s' as sensor '%s' on %s (run %s, frame period %g ms)",
+                     scene.name, sensor.sensor_id, pub.endpoint, pub.run_id, sensor.frame_period_s * 1e3)
             pacer = _Pacer(1.0, stop)
             late_warned = False
             i = 0
@@ -280,16 +269,15 @@ def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int 
                 payload = sim.raw_frame(i)
                 if not late_warned and i > 0 and time.monotonic() - t_make > sensor.frame_period_s:
                     late_warned = True
-                    write(f"cubecast simulate: warning: making a frame takes longer than the frame period "
-                          f"{sensor.frame_period_s * 1e3:g} ms; frames go out late")
+                    log.warning("cubecast simulate: warning: making a frame takes longer than the frame period "
+                                "%g ms; frames go out late", sensor.frame_period_s * 1e3)
                 if not pacer.wait(sim.frame_time_s(i)):
                     break
                 pub.send(payload, sim.frame_time_s(i))
                 i += 1
         finally:
             pub.close()
-    if not quiet:
-        write(f"cubecast simulate: sent {i} frames")
+    log.info("cubecast simulate: sent %d frames", i)
     return 0
 
 
@@ -338,8 +326,7 @@ class Recorder:
 
     def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
                  frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
-                 context: zmq.Context | None = None, log: Callable[[str], None] | None = None,
-                 quiet: bool = False):
+                 context: zmq.Context | None = None):
         if not subs:
             raise CubecastError("record: give at least one --sub ENDPOINT")
         if out is None and points_out is None:
@@ -352,11 +339,12 @@ class Recorder:
         self.frames, self.duration_s = frames, duration_s
         self.sensor = sensor
         self.context = context
-        self.write_line = log or _stderr_line
-        self.quiet = quiet
         self.sensor_known = threading.Event()
         self.connected = threading.Event()
-        self._reject_log = RateLimitedLog(self.write_line, 5.0, "cubecast record: ignored message, ")
+        # ignored messages: at most one line per reason per interval (the filter sits on this
+        # Recorder's own logger while it runs)
+        self._reject_logger = logging.getLogger(f"{__name__}.record")
+        self._reject_limit = RateLimitFilter(REJECT_LOG_INTERVAL_S)
         self.writer: CaptureWriter | None = None
         self.csv: PointsCsvWriter | None = None
         self.validator: AdcValidator | None = None
@@ -367,6 +355,13 @@ class Recorder:
         self.rejected: collections.Counter = collections.Counter()
         self.runs: list[str] = []
         self._last_frame: tuple[str, int] | None = None
+
+    def _reject_log(self, reason: str, text: str) -> None:
+        self._reject_logger.warning("cubecast record: ignored message, %s: %s", reason, text,
+                                    extra={"reason": reason})
+
+    def _flush_rejects(self, force: bool = False) -> None:
+        self._reject_limit.flush(self._reject_logger, force=force, prefix="cubecast record: ignored message, ")
 
     def _set_sensor(self, sensor: Sensor) -> None:
         self.sensor = sensor
@@ -446,6 +441,7 @@ class Recorder:
         sock = ctx.socket(zmq.SUB)
         sock.setsockopt(zmq.LINGER, 0)
         sock.setsockopt(zmq.RCVHWM, 64)
+        self._reject_logger.addFilter(self._reject_limit)
         try:
             if self.points_out is not None:
                 self.csv = PointsCsvWriter(self.points_out)
@@ -476,7 +472,7 @@ class Recorder:
                         if self._on_message(parts) and self._limit_reached():
                             done = True
                             break
-                self._reject_log.flush()
+                self._flush_rejects()
         finally:
             sock.close(linger=0)
             if self.context is None:
@@ -485,7 +481,8 @@ class Recorder:
                 self.writer.close()
             if self.csv is not None:
                 self.csv.close()
-            self._reject_log.flush(force=True)
+            self._flush_rejects(force=True)
+            self._reject_logger.removeFilter(self._reject_limit)
         if self.out is not None and self.sensor is None:
             raise CubecastError(f"record: no sensor description received ({len(self.pending)} ADC frames held, "
                                 f"nothing written to {self.out}): also subscribe to the daemon's endpoint "
@@ -500,7 +497,7 @@ class Recorder:
 
 
 def record(subs: list[str], out: str | None, points_out: str | None = None, frames: int = 0,
-           duration_s: float = 0.0, sensor_path: str | None = None, quiet: bool = False) -> int:
+           duration_s: float = 0.0, sensor_path: str | None = None) -> int:
     """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM."""
     sensor = None
     if sensor_path is not None:
@@ -508,17 +505,15 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, fram
         sensor = load_sensor(sensor_path)
     stop = threading.Event()
     with stop_on_signals(stop):
-        rec = Recorder(subs or [DEFAULT_PUB], out, points_out, frames=frames, duration_s=duration_s, sensor=sensor,
-                       quiet=quiet)
+        rec = Recorder(subs or [DEFAULT_PUB], out, points_out, frames=frames, duration_s=duration_s, sensor=sensor)
         s = rec.run(stop)
-    if not quiet:
-        parts = []
-        if out is not None:
-            parts.append(f"{s['frames_written']} frames ({len(s['runs'])} source run(s), {s['sequence_gaps']} "
-                         f"missing by sequence) -> {out}")
-        if points_out is not None:
-            parts.append(f"{s['clouds_written']} point clouds, {s['points_written']} points -> {points_out}")
-        if s["rejected"]:
-            parts.append("ignored: " + ", ".join(f"{k} {v}" for k, v in sorted(s["rejected"].items())))
-        print("cubecast record: " + "; ".join(parts))
+    parts = []
+    if out is not None:
+        parts.append(f"{s['frames_written']} frames ({len(s['runs'])} source run(s), {s['sequence_gaps']} "
+                     f"missing by sequence) -> {out}")
+    if points_out is not None:
+        parts.append(f"{s['clouds_written']} point clouds, {s['points_written']} points -> {points_out}")
+    if s["rejected"]:
+        parts.append("ignored: " + ", ".join(f"{k} {v}" for k, v in sorted(s["rejected"].items())))
+    log.info("cubecast record: %s", "; ".join(parts))
     return 0

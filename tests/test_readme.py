@@ -27,13 +27,13 @@ def test_tracker_example_receives_points_from_a_live_daemon():
     block = next(b for b in python_blocks(README) if "recv_multipart" in b)
     sensor = load_sensor(YARD_SENSOR)
     src_ep = f"tcp://127.0.0.1:{free_port()}"
-    source = ReplaySource(SAMPLES / "yard.cap", src_ep, speed=1.0, loop=True, frames=0, quiet=True)
+    source = ReplaySource(SAMPLES / "yard.cap", src_ep, speed=1.0, loop=True, frames=0)
     source.bind()
     stop = threading.Event()
     t = threading.Thread(target=source.run, args=(stop,), daemon=True)
     t.start()
     try:
-        with running_service(sensor, src_ep, quiet=True) as svc:
+        with running_service(sensor, src_ep) as svc:
             code = block.replace("tcp://127.0.0.1:5602", svc.pub_endpoint).replace("range(20)", "range(3)")
             out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=30)
             assert out.returncode == 0, out.stderr

@@ -42,7 +42,7 @@ def test_parse_speed():
 def test_replay_keeps_recorded_timing_and_content(capture):
     sensor, frames = capture
     speed = 4.0
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=speed, wait_s=10, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=speed, wait_s=10)
     col = Collector(src.bind())
     try:
         assert src.run() == 20
@@ -67,7 +67,7 @@ def test_replay_loop_keeps_counting_and_new_run_per_start(capture):
     sensor, frames = capture
     runs = []
     for _ in range(2):
-        src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, loop=True, frames=45, wait_s=10, quiet=True)
+        src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, loop=True, frames=45, wait_s=10)
         col = Collector(src.bind())
         try:
             assert src.run() == 45
@@ -93,7 +93,7 @@ def test_publish_simulation_live(capture):
     ep = f"tcp://127.0.0.1:{free_port()}"
     col = Collector(ep)
     try:
-        assert publish_simulation(sensor, scene, ep, frames=3, seed=4, wait_s=10, quiet=True) == 0
+        assert publish_simulation(sensor, scene, ep, frames=3, seed=4, wait_s=10) == 0
         assert col.wait_for(lambda c: len(c.of("adc")) >= 3, 5)
         timed = col.timed("adc")
         sim = Simulator(sensor, scene, seed=4)
@@ -123,9 +123,9 @@ def test_record_adc_and_points_from_source_and_daemon(tmp_path, capture):
     sensor, frames = capture
     with CaptureReader(YARD) as r:
         records = process_frames(r, Pipeline(sensor))
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_subscribers=2, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_subscribers=2, wait_s=30)
     ep = src.bind()
-    with running_service(sensor, ep, queue_depth=64, quiet=True) as svc:
+    with running_service(sensor, ep, queue_depth=64) as svc:
         rec = Recorder([ep, svc.pub_endpoint], tmp_path / "rec.cap", tmp_path / "rec.csv", frames=20)
         result = {}
         t = threading.Thread(target=lambda: result.update(rec.run()), daemon=True)
@@ -164,14 +164,14 @@ def test_cli_replay_and_record(tmp_path, capture):
     bad = _cli("replay", str(YARD), "--speed", "0")
     assert bad.returncode == 2 and "--speed" in bad.stderr and bad.stderr.count("\n") == 1
     # cubecast record (a subprocess) from an in-process replay; replay waits for the recorder
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=10.0, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=10.0, wait_s=30)
     ep = src.bind()
     t = threading.Thread(target=src.run, daemon=True)
     t.start()
     out = tmp_path / "cli.cap"
     done = _cli("record", "--sub", ep, "--sensor", str(YARD_SENSOR), "--out", str(out), "--frames", "5")
     assert done.returncode == 0, done.stderr
-    assert "5 frames" in done.stdout
+    assert "cubecast record: 5 frames" in done.stderr and done.stdout == ""  # a status line, on stderr
     t.join(10)
     with CaptureReader(out) as r:
         assert len(r) == 5
@@ -182,8 +182,13 @@ def test_cli_replay_and_record(tmp_path, capture):
     try:
         done = _cli("replay", str(YARD), "--pub", ep, "--speed", "max", "--frames", "3", "--wait-subscriber", "10")
         assert done.returncode == 0, done.stderr
-        assert "sent 3 frames" in done.stderr
+        assert "publishing" in done.stderr and "sent 3 frames" in done.stderr
         assert col.wait_for(lambda c: len(c.of("adc")) >= 3, 5)
         assert [m.seq for m in col.of("adc")] == [0, 1, 2]
+        # -q before the subcommand: warnings only, so no status lines
+        done = _cli("-q", "replay", str(YARD), "--pub", ep, "--speed", "max", "--frames", "2",
+                    "--wait-subscriber", "10")
+        assert done.returncode == 0 and done.stderr == "", done.stderr
+        assert col.wait_for(lambda c: len(c.of("adc")) >= 5, 5)
     finally:
         col.close()
