@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 from pathlib import Path
 
 import numpy as np
@@ -12,6 +13,8 @@ from .chain.pipeline import Pipeline
 from .chain.points import to_records
 from .files import capture_sensor, iter_capture_frames, write_points_csv, write_points_npz
 from .settings import load_settings
+
+log = logging.getLogger(__name__)
 
 
 def load_calibration_for(path, sensor) -> tuple[np.ndarray | None, float]:
@@ -53,7 +56,6 @@ def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None
         problems = reader.problems
     n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
     for p in problems:
-        print(f"cubecast process: warning: {capture}: {p}")
-    if progress:
-        print(f"{len(records)} frames, {n} points -> {out}")
+        log.warning("cubecast process: warning: %s: %s", capture, p)
+    log.info("%d frames, %d points -> %s", len(records), n, out)
     return 0

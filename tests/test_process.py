@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import json
 import math
 
 import numpy as np
@@ -80,9 +81,10 @@ def test_fast_van_is_unfolded():
     assert good >= 0.9 * len(truth["frames"])
 
 
-def test_process_cli_csv_columns_and_content(tmp_path):
+def test_process_cli_csv_columns_and_content(tmp_path, capsys):
     out = tmp_path / "points.csv"
     assert main(["process", str(SAMPLES / "gate.cap"), "--out", str(out), "--quiet"]) == 0
+    assert capsys.readouterr() == ("", "")  # --quiet after the subcommand: no status line, no progress bar
     with open(out, newline="") as f:
         rows = list(csv.reader(f))
     assert rows[0] == CSV_COLUMNS
@@ -91,10 +93,15 @@ def test_process_cli_csv_columns_and_content(tmp_path):
     first = records[0][0]
     assert float(rows[1][CSV_COLUMNS.index("range_m")]) == pytest.approx(float(first["range_m"]), rel=1e-5)
     npz = tmp_path / "points.npz"
-    assert main(["process", str(SAMPLES / "gate.cap"), "--out", str(npz), "--quiet"]) == 0
+    assert main(["--log-json", "process", str(SAMPLES / "gate.cap"), "--out", str(npz)]) == 0
     data = np.load(npz)
     assert list(data.files) == CSV_COLUMNS
     assert data["range_m"].shape[0] == len(rows) - 1
+    out, err = capsys.readouterr()
+    docs = [json.loads(line) for line in err.splitlines()]  # JSON lines only: no progress bar
+    assert out == "" and [d["level"] for d in docs] == ["info"]
+    assert docs[0]["logger"] == "cubecast.daemon.process"
+    assert docs[0]["message"] == f"{len(records)} frames, {len(rows) - 1} points -> {npz}"
 
 
 def test_process_cli_reports_corrupt_frame(tmp_path, capsys):
@@ -106,9 +113,10 @@ def test_process_cli_reports_corrupt_frame(tmp_path, capsys):
     bad.write_bytes(bytes(data))
     assert main(["process", str(bad), "--out", str(tmp_path / "p.csv"), "--quiet"]) == 2
     err = capsys.readouterr().err
-    assert f"frame {n - 1}" in err and "CRC" in err.upper()
-    assert main(["process", str(bad), "--out", str(tmp_path / "p.csv"), "--quiet", "--skip-corrupt"]) == 0
-    assert f"frame {n - 1}" in capsys.readouterr().out
+    assert f"frame {n - 1}" in err and "CRC" in err.upper() and err.count("\n") == 1
+    assert main(["-q", "process", str(bad), "--out", str(tmp_path / "p.csv"), "--skip-corrupt"]) == 0
+    out, err = capsys.readouterr()
+    assert out == "" and f"frame {n - 1}" in err and "warning" in err  # warnings pass -q
 
 
 def test_process_cli_bad_inputs(tmp_path, capsys):
