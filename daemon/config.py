@@ -248,12 +248,13 @@ class Section(_Tables):
 
     def string(self, name: str, default: Any = REQUIRED, *, pattern: str | None = None,
                rule: str | None = None) -> str:
-        """A string; with `pattern`, one that re.fullmatch-es it (`rule` says so in words)."""
+        """A string; with `pattern`, one that re.fullmatch-es it (`rule` says so in words, and is
+        the message for a value that is not a string too)."""
         given, value = self._get(name, default)
         if not given:
             return value
         if not isinstance(value, str):
-            raise self.fail(name, value, "must be a string" + (f": {rule}" if rule else ""))
+            raise self.fail(name, value, rule or "must be a string")
         if pattern is not None and not re.fullmatch(pattern, value):
             raise self.fail(name, value, rule or f"must match {pattern}")
         return value

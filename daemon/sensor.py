@@ -16,13 +16,13 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .config import Document, Section, parse_toml, read_toml
 from .errors import CubecastError
 
 SPEED_OF_LIGHT_MPS = 299_792_458.0
@@ -323,184 +323,69 @@ class Sensor:
 
 
 # ---- loading and validation -------------------------------------------------------------
+# One reader per section, in the order the rules need them: each returns Sensor fields; rules
+# across sections come after both are read.
 
-def _where(path: str | None) -> str:
-    return f"{path}: " if path else ""
-
-
-class _Fields:
-    """Typed access to a TOML table with errors that name the field, the value and the rule."""
-
-    def __init__(self, doc: dict, section: str, origin: str | None):
-        self.origin = origin
-        self.section = section
-        table = doc.get(section)
-        if table is None:
-            raise CubecastError(f"{_where(origin)}missing section [{section}]")
-        if not isinstance(table, dict):
-            raise CubecastError(f"{_where(origin)}[{section}] must be a table")
-        self.table = table
-        self.used: set[str] = set()
-
-    def fail(self, name: str, value: Any, rule: str) -> CubecastError:
-        return CubecastError(f"{_where(self.origin)}[{self.section}] {name} = {value!r}: {rule}")
-
-    def has(self, name: str) -> bool:
-        return name in self.table
-
-    def raw(self, name: str, default: Any = ...) -> Any:
-        self.used.add(name)
-        if name not in self.table:
-            if default is ...:
-                raise CubecastError(f"{_where(self.origin)}[{self.section}] {name} is missing")
-            return default
-        return self.table[name]
-
-    def number(self, name: str, default: Any = ..., *, positive: bool = False, min_value: float | None = None) -> float:
-        value = self.raw(name, default)
-        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-            raise self.fail(name, value, "must be a finite number")
-        if positive and value <= 0:
-            raise self.fail(name, value, "must be greater than zero")
-        if min_value is not None and value < min_value:
-            raise self.fail(name, value, f"must be at least {min_value}")
-        return float(value)
-
-    def integer(self, name: str, default: Any = ..., *, min_value: int = 1) -> int:
-        value = self.raw(name, default)
-        if isinstance(value, bool) or not isinstance(value, int):
-            raise self.fail(name, value, "must be a whole number")
-        if value < min_value:
-            raise self.fail(name, value, f"must be at least {min_value}")
-        return int(value)
-
-    def choice(self, name: str, options: tuple[str, ...], default: Any = ...) -> str:
-        value = self.raw(name, default)
-        if value not in options:
-            raise self.fail(name, value, f"must be one of {', '.join(options)}")
-        return value
-
-    def boolean(self, name: str, default: Any = ...) -> bool:
-        value = self.raw(name, default)
-        if not isinstance(value, bool):
-            raise self.fail(name, value, "must be true or false")
-        return value
-
-    def check_unknown(self) -> None:
-        unknown = sorted(set(self.table) - self.used)
-        if unknown:
-            raise CubecastError(
-                f"{_where(self.origin)}[{self.section}] has unknown field(s) {', '.join(unknown)}"
-            )
+SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc")
 
 
-def _positions(f: _Fields, which: str, half_wavelength_m: float) -> np.ndarray:
-    """TX/RX positions: `{which}_positions_m = [[x, y, z], ...]` in metres, or the shorthand
-    `{which}_positions_half_wavelength = [[x, z], ...]` in half design wavelengths on the x-z plane."""
-    name_m, name_hw = f"{which}_positions_m", f"{which}_positions_half_wavelength"
-    if f.has(name_m) == f.has(name_hw):
-        raise CubecastError(f"{_where(f.origin)}[{f.section}] give exactly one of {name_m} or {name_hw}")
-    name = name_m if f.has(name_m) else name_hw
-    value = f.raw(name)
-    width = 3 if name == name_m else 2
-    if not isinstance(value, list) or not value:
-        raise f.fail(name, value, f"must be a non-empty list of [{'x, y, z' if width == 3 else 'x, z'}] entries")
-    for i, item in enumerate(value):
-        if (not isinstance(item, list) or len(item) != width
-                or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) for v in item)):
-            raise f.fail(f"{name}[{i}]", item, f"must be a list of {width} finite numbers")
-    arr = np.asarray(value, dtype=np.float64)
-    if width == 2:
-        arr = np.stack([arr[:, 0], np.zeros(len(arr)), arr[:, 1]], axis=1) * half_wavelength_m
-    return arr
-
-
-def _mimo(f: _Fields, n_tx: int, chirps_per_frame: int) -> tuple[str, np.ndarray]:
-    scheme = f.choice("scheme", MIMO_SCHEMES)
-    if scheme == "tdm":
-        order = f.raw("tx_order", list(range(n_tx)))
-        if (not isinstance(order, list) or not order
-                or any(isinstance(v, bool) or not isinstance(v, int) for v in order)):
-            raise f.fail("tx_order", order, "must be a list of TX indices")
-        if sorted(order) != list(range(n_tx)):
-            raise f.fail("tx_order", order, f"must name each of the {n_tx} TX (0..{n_tx - 1}) exactly once")
-        code = np.zeros((n_tx, n_tx), np.float64)
-        for slot, k in enumerate(order):
-            code[slot, k] = 1.0
-    else:
-        codes = f.raw("codes")
-        if (not isinstance(codes, list) or not codes
-                or any(not isinstance(row, list) or len(row) != n_tx for row in codes)):
-            raise f.fail("codes", codes, f"must be a list of slots, each a list of {n_tx} signs (one per TX)")
-        code = np.asarray(codes, dtype=np.float64)
-        if not np.all(np.isin(code, (-1.0, 1.0))):
-            raise f.fail("codes", codes, "BPM code entries must be +1 or -1")
-        if code.shape[0] < n_tx or np.linalg.matrix_rank(code) < n_tx:
-            raise f.fail("codes", codes, f"need at least {n_tx} slots with linearly independent codes to separate {n_tx} TX")
-    if chirps_per_frame % code.shape[0]:
-        raise CubecastError(
-            f"{_where(f.origin)}[frame] chirps_per_frame = {chirps_per_frame}: must be a multiple of the "
-            f"{code.shape[0]} MIMO slots ({scheme.upper()})"
-        )
-    return scheme, code
-
-
-def parse_sensor(text: str, origin: str | None = None) -> Sensor:
-    """Parse and validate the text of a sensor description. Raises CubecastError naming the problem."""
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CubecastError(f"{_where(origin)}not valid TOML: {exc}") from None
-    known = {"sensor", "chirp", "frame", "antennas", "link", "mimo", "adc"}
-    unknown = sorted(set(doc) - known)
-    if unknown:
-        raise CubecastError(f"{_where(origin)}unknown section(s) {', '.join('[' + u + ']' for u in unknown)}")
-
-    s = _Fields(doc, "sensor", origin)
-    sensor_id = s.raw("id")
-    if not isinstance(sensor_id, str) or not sensor_id or not all(c.isalnum() or c in "-_." for c in sensor_id):
-        raise s.fail("id", sensor_id, "must be a non-empty name of letters, digits, '-', '_' or '.'")
-    s.raw("description", "")
+def _read_id(s: Section) -> str:
+    sensor_id = s.string("id", pattern=r"[\w.-]+",
+                         rule="must be a non-empty name of letters, digits, '-', '_' or '.'")
+    s.string("description", "")
     s.check_unknown()
+    return sensor_id
 
-    c = _Fields(doc, "chirp", origin)
-    f0 = c.number("start_frequency_hz", positive=True)
-    slope = c.number("slope_hz_per_s", positive=True)
-    fs = c.number("sample_rate_hz", positive=True)
-    n_samples = c.integer("samples_per_chirp", min_value=8)
-    adc_start = c.number("adc_start_delay_s", min_value=0.0)
-    ramp_end = c.number("ramp_end_time_s", positive=True)
-    chirp_period = c.number("chirp_period_s", positive=True)
-    design_range = c.number("design_max_range_m", 0.0, min_value=0.0)
+
+def _read_chirp(c: Section) -> dict[str, Any]:
+    out = dict(
+        start_frequency_hz=c.number("start_frequency_hz", gt=0),
+        slope_hz_per_s=c.number("slope_hz_per_s", gt=0),
+        sample_rate_hz=c.number("sample_rate_hz", gt=0),
+        samples_per_chirp=c.integer("samples_per_chirp", ge=8),
+        adc_start_delay_s=c.number("adc_start_delay_s", ge=0),
+        ramp_end_time_s=c.number("ramp_end_time_s", gt=0),
+        chirp_period_s=c.number("chirp_period_s", gt=0),
+        design_max_range_m=c.number("design_max_range_m", 0.0, ge=0),
+    )
     c.check_unknown()
-    adc_end = adc_start + n_samples / fs
+    adc_end = out["adc_start_delay_s"] + out["samples_per_chirp"] / out["sample_rate_hz"]
+    ramp_end = out["ramp_end_time_s"]
     if ramp_end < adc_end:
         raise c.fail("ramp_end_time_s", ramp_end,
                      f"the ramp must outlast the ADC window, which ends at adc_start_delay_s + "
                      f"samples_per_chirp / sample_rate_hz = {adc_end:.6g} s")
-    if chirp_period < ramp_end:
-        raise c.fail("chirp_period_s", chirp_period, f"must be at least ramp_end_time_s = {ramp_end:.6g} s")
+    if out["chirp_period_s"] < ramp_end:
+        raise c.fail("chirp_period_s", out["chirp_period_s"], f"must be at least ramp_end_time_s = {ramp_end:.6g} s")
+    return out
 
-    if_band = fs if (doc.get("adc") or {}).get("sampling", "complex") == "complex" else fs / 2.0
-    if design_range > 0 and 2.0 * slope * design_range / SPEED_OF_LIGHT_MPS > if_band:
+
+def _check_design_range(c: Section, chirp: dict[str, Any], adc: AdcFormat) -> None:
+    """The beat frequency of a target at the design range, 2 S R / c, must lie in the IF band."""
+    fs, slope, design_range = chirp["sample_rate_hz"], chirp["slope_hz_per_s"], chirp["design_max_range_m"]
+    if_band = fs if adc.is_complex else fs / 2.0
+    beat_hz = 2.0 * slope * design_range / SPEED_OF_LIGHT_MPS
+    if design_range > 0 and beat_hz > if_band:
         raise c.fail("sample_rate_hz", fs,
                      f"too low for design_max_range_m = {design_range:g}: its beat frequency "
-                     f"2 * slope * range / c = {2.0 * slope * design_range / SPEED_OF_LIGHT_MPS:.6g} Hz exceeds "
-                     f"the IF band {if_band:.6g} Hz the ADC covers")
+                     f"2 * slope * range / c = {beat_hz:.6g} Hz exceeds the IF band {if_band:.6g} Hz the ADC covers")
 
-    fr = _Fields(doc, "frame", origin)
-    chirps = fr.integer("chirps_per_frame")
-    frame_period = fr.number("frame_period_s", positive=True)
+
+def _read_frame(fr: Section, chirp_period_s: float) -> dict[str, Any]:
+    chirps = fr.integer("chirps_per_frame", ge=1)
+    frame_period = fr.number("frame_period_s", gt=0)
     fr.check_unknown()
-    if chirps * chirp_period > frame_period:
+    if chirps * chirp_period_s > frame_period:
         raise fr.fail("frame_period_s", frame_period,
-                      f"must be at least chirps_per_frame * chirp_period_s = {chirps * chirp_period:.6g} s")
+                      f"must be at least chirps_per_frame * chirp_period_s = {chirps * chirp_period_s:.6g} s")
+    return dict(chirps_per_frame=chirps, frame_period_s=frame_period)
 
-    a = _Fields(doc, "adc", origin)
+
+def _read_adc(a: Section) -> AdcFormat:
     adc = AdcFormat(
         sampling=a.choice("sampling", ADC_FORMATS, "complex"),
         sample_type=a.choice("sample_type", ADC_SAMPLE_TYPES, "int16"),
-        full_scale=a.number("full_scale", positive=True),
+        full_scale=a.number("full_scale", gt=0),
         swap_iq=a.boolean("swap_iq", False),
         conjugate=a.boolean("conjugate", False),
     )
@@ -509,61 +394,106 @@ def parse_sensor(text: str, origin: str | None = None) -> Sensor:
         raise a.fail("full_scale", adc.full_scale, "int16 samples cannot exceed 32767")
     if not adc.is_complex and (adc.swap_iq or adc.conjugate):
         raise a.fail("swap_iq" if adc.swap_iq else "conjugate", True, "I/Q conventions apply to complex sampling only")
+    return adc
 
-    center = f0 + slope * (adc_start + 0.5 * n_samples / fs)
+
+def _positions(an: Section, which: str, half_wavelength_m: float) -> np.ndarray:
+    """TX/RX positions: `{which}_positions_m = [[x, y, z], ...]` in metres, or the shorthand
+    `{which}_positions_half_wavelength = [[x, z], ...]` in half design wavelengths on the x-z plane."""
+    name_m, name_hw = f"{which}_positions_m", f"{which}_positions_half_wavelength"
+    if an.has(name_m) == an.has(name_hw):
+        raise an.error(f"give exactly one of {name_m} or {name_hw}")
+    if an.has(name_m):
+        return np.asarray(an.number_rows(name_m, 3, columns="x, y, z"), dtype=np.float64)
+    arr = np.asarray(an.number_rows(name_hw, 2, columns="x, z"), dtype=np.float64)
+    return np.stack([arr[:, 0], np.zeros(len(arr)), arr[:, 1]], axis=1) * half_wavelength_m
+
+
+def _read_antennas(an: Section, chirp: dict[str, Any]) -> dict[str, Any]:
+    # positions in half wavelengths use the design wavelength: the centre of the sampled sweep
+    center = chirp["start_frequency_hz"] + chirp["slope_hz_per_s"] * (
+        chirp["adc_start_delay_s"] + 0.5 * chirp["samples_per_chirp"] / chirp["sample_rate_hz"])
     half_wavelength_m = SPEED_OF_LIGHT_MPS / center / 2.0
-    an = _Fields(doc, "antennas", origin)
-    tx = _positions(an, "tx", half_wavelength_m)
-    rx = _positions(an, "rx", half_wavelength_m)
-    fov_az = an.number("fov_half_azimuth_deg", 60.0, positive=True)
-    fov_el = an.number("fov_half_elevation_deg", 20.0, positive=True)
-    mount = an.number("mount_height_m", None, min_value=0.0) if an.has("mount_height_m") else None
+    out = dict(
+        tx_positions_m=_positions(an, "tx", half_wavelength_m),
+        rx_positions_m=_positions(an, "rx", half_wavelength_m),
+        fov_half_azimuth_deg=an.number("fov_half_azimuth_deg", 60.0, gt=0, le=90),
+        fov_half_elevation_deg=an.number("fov_half_elevation_deg", 20.0, gt=0, le=90),
+        mount_height_m=an.number("mount_height_m", None, ge=0),
+    )
     an.check_unknown()
-    if fov_az > 90 or fov_el > 90:
-        raise an.fail("fov_half_azimuth_deg" if fov_az > 90 else "fov_half_elevation_deg",
-                      max(fov_az, fov_el), "a half field of view must be at most 90 degrees")
+    return out
 
-    m = _Fields(doc, "mimo", origin)
-    scheme, code = _mimo(m, tx.shape[0], chirps)
+
+def _read_mimo(m: Section, fr: Section, n_tx: int, chirps_per_frame: int) -> dict[str, Any]:
+    """MIMO code[slot, tx]: TDM from the TX order (one TX per slot), BPM from the given sign codes."""
+    scheme = m.choice("scheme", MIMO_SCHEMES)
+    if scheme == "tdm":
+        order = m.numbers("tx_order", list(range(n_tx)), integer=True)
+        if sorted(order) != list(range(n_tx)):
+            raise m.fail("tx_order", order, f"must name each of the {n_tx} TX (0..{n_tx - 1}) exactly once")
+        code = np.zeros((n_tx, n_tx), np.float64)
+        for slot, k in enumerate(order):
+            code[slot, k] = 1.0
+    else:
+        code = np.asarray(m.number_rows("codes", n_tx, columns=f"{n_tx} signs, one per TX"), dtype=np.float64)
+        codes = m.table["codes"]
+        if not np.all(np.isin(code, (-1.0, 1.0))):
+            raise m.fail("codes", codes, "BPM code entries must be +1 or -1")
+        if code.shape[0] < n_tx or np.linalg.matrix_rank(code) < n_tx:
+            raise m.fail("codes", codes, f"need at least {n_tx} slots with linearly independent codes to separate {n_tx} TX")
     m.check_unknown()
+    if chirps_per_frame % code.shape[0]:
+        raise fr.fail("chirps_per_frame", chirps_per_frame,
+                      f"must be a multiple of the {code.shape[0]} MIMO slots ({scheme.upper()})")
+    return dict(mimo_scheme=scheme, mimo_code=code)
 
-    ln = _Fields(doc, "link", origin)
-    link = dict(
+
+def _read_link(ln: Section, adc: AdcFormat) -> dict[str, Any]:
+    out = dict(
         tx_power_dbm=ln.number("tx_power_dbm"),
         tx_gain_dbi=ln.number("tx_gain_dbi"),
         rx_gain_dbi=ln.number("rx_gain_dbi"),
-        noise_figure_db=ln.number("noise_figure_db", min_value=0.0),
-        system_loss_db=ln.number("system_loss_db", 0.0, min_value=0.0),
-        noise_rms_counts=ln.number("noise_rms_counts", positive=True),
+        noise_figure_db=ln.number("noise_figure_db", ge=0),
+        system_loss_db=ln.number("system_loss_db", 0.0, ge=0),
+        noise_rms_counts=ln.number("noise_rms_counts", gt=0),
     )
     ln.check_unknown()
-    if link["noise_rms_counts"] >= adc.full_scale:
-        raise ln.fail("noise_rms_counts", link["noise_rms_counts"], f"must be below the ADC full scale {adc.full_scale}")
+    if out["noise_rms_counts"] >= adc.full_scale:
+        raise ln.fail("noise_rms_counts", out["noise_rms_counts"], f"must be below the ADC full scale {adc.full_scale}")
+    return out
 
+
+def sensor_from_document(doc: Document) -> Sensor:
+    """Validate a parsed sensor description. Raises CubecastError naming the file, the field, the
+    value and the rule. `digest` is of the parsed content (not its formatting): capture and
+    calibration files record it."""
+    doc.check_sections(SECTIONS)
+    sensor_id = _read_id(doc.section("sensor"))
+    chirp_section = doc.section("chirp")
+    chirp = _read_chirp(chirp_section)
+    frame_section = doc.section("frame")
+    frame = _read_frame(frame_section, chirp["chirp_period_s"])
+    adc = _read_adc(doc.section("adc"))
+    _check_design_range(chirp_section, chirp, adc)
+    antennas = _read_antennas(doc.section("antennas"), chirp)
+    mimo = _read_mimo(doc.section("mimo"), frame_section, antennas["tx_positions_m"].shape[0],
+                      frame["chirps_per_frame"])
+    link = _read_link(doc.section("link"), adc)
     # The maximum range follows from the IF band the ADC covers; a range gate beyond is rejected by the chain.
     sensor = Sensor(
-        sensor_id=sensor_id, source_text=text,
-        start_frequency_hz=f0, slope_hz_per_s=slope, sample_rate_hz=fs, samples_per_chirp=n_samples,
-        adc_start_delay_s=adc_start, ramp_end_time_s=ramp_end, chirp_period_s=chirp_period,
-        design_max_range_m=design_range,
-        chirps_per_frame=chirps, frame_period_s=frame_period,
-        tx_positions_m=tx, rx_positions_m=rx, fov_half_azimuth_deg=fov_az, fov_half_elevation_deg=fov_el,
-        mount_height_m=mount,
-        mimo_scheme=scheme, mimo_code=code, adc=adc,
-        digest=hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()[:16],
-        **link,
+        sensor_id=sensor_id, source_text=doc.text, **chirp, **frame, **antennas, **link, **mimo, adc=adc,
+        digest=hashlib.sha256(json.dumps(doc.data, sort_keys=True).encode()).hexdigest()[:16],
     )
     for arr in (sensor.tx_positions_m, sensor.rx_positions_m, sensor.mimo_code):
         arr.setflags(write=False)
     return sensor
 
 
+def parse_sensor(text: str, origin: str | None = None) -> Sensor:
+    """Parse and validate the text of a sensor description. Raises CubecastError naming the problem."""
+    return sensor_from_document(parse_toml(text, origin))
+
+
 def load_sensor(path: str | Path) -> Sensor:
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"cannot read sensor description {path}: {exc.strerror}") from None
-    except UnicodeDecodeError:
-        raise CubecastError(f"{path}: not UTF-8 text") from None
-    return parse_sensor(text, str(path))
+    return sensor_from_document(read_toml(path, "sensor description"))

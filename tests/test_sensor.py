@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import re
+import tomllib
 
 import numpy as np
 import pytest
@@ -117,26 +119,30 @@ BAD_CASES = [
      r"rx_positions_half_wavelength\[1\] = \[1, 0, 3\]: must be a list of 2 finite numbers"),
     (('tx_order = [0, 1, 2]', 'tx_order = [0, 1, 1]'), r"tx_order = \[0, 1, 1\]: must name each of the 3 TX"),
     (('tx_order = [0, 1, 2]', 'tx_order = [0, 1]'), r"tx_order = \[0, 1\]: must name each of the 3 TX"),
-    (('sample_rate_hz = 5000000.0', 'sample_rate_hz = -5.0'), r"sample_rate_hz = -5.0: must be greater than zero"),
+    (('sample_rate_hz = 5000000.0', 'sample_rate_hz = -5.0'), r"\[chirp\] sample_rate_hz = -5.0: must be > 0$"),
     (('samples_per_chirp = 128', 'samples_per_chirp = 12.5'), r"samples_per_chirp = 12.5: must be a whole number"),
-    (('sampling = "complex"', 'sampling = "analog"'), r"sampling = 'analog': must be one of complex, real"),
-    (('sample_type = "int16"', 'sample_type = "int12"'), r"sample_type = 'int12': must be one of int16, float32"),
+    (('sampling = "complex"', 'sampling = "analog"'), r"sampling = 'analog': must be one of 'complex', 'real'"),
+    (('sample_type = "int16"', 'sample_type = "int12"'), r"sample_type = 'int12': must be one of 'int16', 'float32'"),
     (('full_scale = 8191', 'full_scale = 40000'), r"full_scale = 40000.0: int16 samples cannot exceed 32767"),
     (('noise_rms_counts = 8.0', 'noise_rms_counts = 9000.0'), r"noise_rms_counts = 9000.0: must be below the ADC full scale"),
     (('frame_period_s = 0.1', 'frame_period_s = 0.001'), r"frame_period_s = 0.001: must be at least chirps_per_frame \* chirp_period_s"),
-    (('scheme = "tdm"', 'scheme = "fdm"'), r"scheme = 'fdm': must be one of tdm, bpm"),
-    (('[link]', '[link]\nantenna_temp = 3'), r"\[link\] has unknown field\(s\) antenna_temp"),
+    (('scheme = "tdm"', 'scheme = "fdm"'), r"scheme = 'fdm': must be one of 'tdm', 'bpm'"),
+    (('[link]', '[link]\nantenna_temp = 3'), r"\[link\] unknown field antenna_temp"),
     (('id = "test-sensor"', 'id = "bad id!"'), r"id = 'bad id!': must be a non-empty name"),
     (('noise_figure_db = 12.0', 'noise_figure_db = "twelve"'), r"noise_figure_db = 'twelve': must be a finite number"),
     (('swap_iq = false', 'swap_iq = "no"'), r"swap_iq = 'no': must be true or false"),
-    (('[adc]', '[adcc]\nx = 1\n[adc]'), r"unknown section\(s\) \[adcc\]"),
+    (('[adc]', '[adcc]\nx = 1\n[adc]'), r"unknown section \[adcc\] \(did you mean \[adc\]\?\)"),
     (('rx_positions_half_wavelength', 'rx_positions_m = [[0.0, 0.0, 0.0]]\nrx_positions_half_wavelength'),
      r"give exactly one of rx_positions_m or rx_positions_half_wavelength"),
     (('[chirp]', '[chirp]\ndesign_max_range_m = 40.0'), r"sample_rate_hz = 5000000.0: too low for design_max_range_m = 40"),
     (('tx_power_dbm = 12.0\n', ''), r"\[link\] tx_power_dbm is missing"),
-    (('[antennas]', '[antennas]\nmount_height_m = -1.0'), r"mount_height_m = -1.0: must be at least 0"),
+    (('[antennas]', '[antennas]\nmount_height_m = -1.0'), r"mount_height_m = -1.0: must be >= 0"),
     (('[sensor]', 'sensor = 1\n[sensorx]'), r"unknown section|must be a table"),
     (('chirps_per_frame = 96', 'chirps_per_frame = 96 96'), r"not valid TOML"),
+    (('[antennas]', '[antennas]\nfov_half_azimuth_deg = 95.0'), r"\[antennas\] fov_half_azimuth_deg = 95.0: must be in \(0, 90\]"),
+    (('id = "test-sensor"', 'id = "test-sensor"\ndescription = 3'), r"\[sensor\] description = 3: must be a string"),
+    (('tx_order = [0, 1, 2]', 'tx_order = [0, 1, true]'), r"tx_order = \[0, 1, True\]: must be a list of one or more whole"),
+    (('[adc]', '[adc]\nfull_scal = 3'), r"\[adc\] unknown field full_scal \(did you mean full_scale\?\)"),
 ]
 
 
@@ -155,6 +161,10 @@ def test_bpm_codes_validated():
         make_sensor(scheme="bpm", elevation_tx=False, bpm_codes=[[1, 1], [1, 1]])
     with pytest.raises(CubecastError, match=r"BPM code entries must be \+1 or -1"):
         make_sensor(scheme="bpm", elevation_tx=False, bpm_codes=[[1, 0], [0, 1]])
+    with pytest.raises(CubecastError, match=r"\[mimo\] codes\[1\] = \[1, 'a'\]: must be a list of 2 finite numbers"):
+        make_sensor(scheme="bpm", elevation_tx=False, bpm_codes=[[1, 1], [1, "a"]])
+    with pytest.raises(CubecastError, match=r"\[mimo\] codes\[0\] = \[1\]: must be a list of 2 finite numbers"):
+        make_sensor(scheme="bpm", elevation_tx=False, bpm_codes=[[1], [1, -1]])
 
 
 def test_cli_bad_sensor_is_one_line_exit_2(tmp_path, capsys):
@@ -165,6 +175,10 @@ def test_cli_bad_sensor_is_one_line_exit_2(tmp_path, capsys):
     assert err.count("\n") == 0 and "chirps_per_frame = 95" in err and "Traceback" not in err
     assert main(["describe", str(tmp_path / "missing.toml")]) == 2
     assert "cannot read sensor description" in capsys.readouterr().err
+    latin = tmp_path / "latin1.toml"
+    latin.write_bytes(GOOD.replace('"test-sensor"', '"capteur-\xe9"').encode("latin-1"))
+    assert main(["describe", str(latin)]) == 2
+    assert re.search(r"cannot read sensor description .*latin1\.toml: not UTF-8 text", capsys.readouterr().err)
 
 
 def test_adc_conventions_round_trip():
@@ -191,3 +205,12 @@ def test_digest_changes_with_content_not_formatting():
     c = parse_sensor(GOOD.replace("noise_figure_db = 12.0", "noise_figure_db = 13.0"))
     assert a.digest == b.digest != c.digest
     assert re.fullmatch(r"[0-9a-f]{16}", a.digest)
+
+
+def test_bundled_sensor_digest_unchanged():
+    # The digest is the first 16 hex digits of SHA-256 (FIPS 180-4) of the parsed document as sorted
+    # JSON; the bundled captures and calibration files record this value for yard_sensor.toml.
+    text = YARD_SENSOR.read_text(encoding="utf-8")
+    expected = hashlib.sha256(json.dumps(tomllib.loads(text), sort_keys=True).encode()).hexdigest()[:16]
+    assert expected == "00677cacdeaf1fdb"
+    assert load_sensor(YARD_SENSOR).digest == parse_sensor(text).digest == expected
