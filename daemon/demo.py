@@ -4,13 +4,16 @@ Starts, as child processes on free loopback ports,
     cubecast replay replay_samples/yard.cap --loop --pub tcp://127.0.0.1:P1
     cubecast serve --sensor <the capture's sensor> --sub tcp://127.0.0.1:P1 --pub tcp://127.0.0.1:P2
 and, when a display is available and the viewer package is installed, `cubecast view --sub ...P2`.
-It prints a one-line summary per second from the daemon's health messages and stops every child on
-Ctrl-C, SIGTERM or after --seconds (counted from the daemon's first report, so start-up is excluded).
+It prints a one-line summary per second from the daemon's health messages (its output, on stdout; the
+start and stop lines are logged) and stops every child on Ctrl-C, SIGTERM or after --seconds (counted
+from the daemon's first report, so start-up is excluded). The replay and the daemon log warnings only;
+with --log-json they log JSON lines too.
 """
 
 from __future__ import annotations
 
 import importlib.util
+import logging
 import math
 import os
 import signal
@@ -28,12 +31,15 @@ import zmq
 from .capture import CaptureReader
 from .errors import CubecastError
 from .files import capture_sensor
+from .logs import uses_json_lines
 from .service import stop_on_signals
 from .wire import WireError, decode
 
 SAMPLES_DIR = Path(__file__).resolve().parent.parent / "replay_samples"
 DEFAULT_CAPTURE = SAMPLES_DIR / "yard.cap"
 STARTUP_TIMEOUT_S = 120.0  # a cold numba cache compiles the chain on first start
+
+log = logging.getLogger(__name__)
 
 
 def free_port() -> int:
@@ -62,7 +68,7 @@ def _die_with_parent() -> None:
 
 
 def _spawn(args: list[str]) -> subprocess.Popen:
-    cmd = [sys.executable, "-m", "cubecast.daemon.cli"] + args
+    cmd = [sys.executable, "-m", "cubecast.daemon.cli"] + (["--log-json"] if uses_json_lines() else []) + args
     kw = {"preexec_fn": _die_with_parent} if sys.platform.startswith("linux") else {}
     return subprocess.Popen(cmd, stdin=subprocess.DEVNULL, **kw)
 
@@ -122,9 +128,9 @@ def run_demo(capture: str | Path | None = None, seconds: float = 0.0, viewer: bo
                                         "--quiet"])
             if launch_viewer:
                 children["view"] = _spawn(["view", "--sub", out_ep])
-            print(f"demo: replaying {capture.name} (sensor '{sensor.sensor_id}') on {src_ep}; daemon publishes on "
-                  f"{out_ep}" + ("; viewer started" if launch_viewer else "; no viewer (headless or not installed)"),
-                  file=out, flush=True)
+            log.info("demo: replaying %s (sensor '%s') on %s; daemon publishes on %s; %s", capture.name,
+                     sensor.sensor_id, src_ep, out_ep,
+                     "viewer started" if launch_viewer else "no viewer (headless or not installed)")
             sub.setsockopt(zmq.SUBSCRIBE, f"{sensor.sensor_id}/health".encode())
             sub.connect(out_ep)
             t_launch = time.monotonic()
@@ -139,7 +145,7 @@ def run_demo(capture: str | Path | None = None, seconds: float = 0.0, viewer: bo
                     code = p.poll()
                     if code is not None and not stop.is_set():
                         if name == "view":
-                            print(f"demo: the viewer exited (code {code}); carrying on", file=out, flush=True)
+                            log.warning("demo: the viewer exited (code %s); carrying on", code)
                             children.pop(name)
                             break
                         raise CubecastError(f"demo: '{name}' exited early with code {code}")
@@ -159,5 +165,5 @@ def run_demo(capture: str | Path | None = None, seconds: float = 0.0, viewer: bo
             sub.close(linger=0)
             ctx.term()
             _stop_children(children)
-    print("demo: stopped", file=out, flush=True)
+    log.info("demo: stopped")
     return 0
