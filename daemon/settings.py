@@ -6,14 +6,11 @@ ignored). See README "Processing settings" for the table of fields.
 
 from __future__ import annotations
 
-import dataclasses
-import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 from .chain.windows import WINDOW_NAMES
+from .config import Document, parse_toml, read_toml
 from .errors import CubecastError
 
 CFAR_KINDS = ("ca", "os", "go", "so")
@@ -99,39 +96,18 @@ class ProcessingSettings:
         return self
 
 
+def settings_from_document(doc: Document) -> ProcessingSettings:
+    """Validate parsed settings: only a [processing] section, each field of the type of its default."""
+    doc.check_sections(("processing",), hint="settings live in [processing]")
+    values = doc.section("processing", required=False).dataclass_values(ProcessingSettings)
+    return ProcessingSettings(**values).validate(doc.origin)
+
+
 def parse_settings(text: str, origin: str | None = None) -> ProcessingSettings:
-    pre = f"{origin}: " if origin else ""
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CubecastError(f"{pre}not valid TOML: {exc}") from None
-    extra = sorted(set(doc) - {"processing"})
-    if extra:
-        raise CubecastError(f"{pre}unknown section(s) {', '.join(extra)}; settings live in [processing]")
-    table: dict[str, Any] = doc.get("processing", {})
-    fields = {f.name: f for f in dataclasses.fields(ProcessingSettings)}
-    values = {}
-    for key, value in table.items():
-        if key not in fields:
-            raise CubecastError(f"{pre}[processing] unknown field {key}")
-        default = fields[key].default
-        kind = type(default)
-        ok = (isinstance(value, bool) if kind is bool else
-              (isinstance(value, int) and not isinstance(value, bool)) if kind is int else
-              (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
-              if kind is float else isinstance(value, str))
-        if not ok:
-            raise CubecastError(f"{pre}[processing] {key} = {value!r}: must be a {kind.__name__}")
-        values[key] = float(value) if kind is float else value
-    return ProcessingSettings(**values).validate(origin)
+    return settings_from_document(parse_toml(text, origin))
 
 
 def load_settings(path: str | Path | None) -> ProcessingSettings:
     if path is None:
         return ProcessingSettings().validate()
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"cannot read settings {path}: {exc.strerror}") from None
-    return parse_settings(text, str(path))
+    return settings_from_document(read_toml(path, "settings"))

@@ -246,3 +246,23 @@ def test_document_data_is_left_as_parsed():
     c.numbers("position_m", length=3)
     d.section("adc", required=False).boolean("swap_iq", False)
     assert json.dumps(d.data) == json.dumps(before) == json.dumps(tomllib.loads(TEXT))  # json: nan == nan
+
+
+def test_settings_file_through_the_reader(tmp_path):
+    # the processing settings are the dataclass section in use: file, section, field, value, rule
+    from cubecast.daemon.settings import load_settings, parse_settings
+    path = tmp_path / "settings.toml"
+    path.write_text('[processing]\ncfar_kind = "ca"\ncfar_pfa = 1\nmin_range_m = 2\n')
+    with raises(r"settings\.toml: \[processing\] cfar_pfa = 1\.0: must be between 0 and 0\.5$"):
+        load_settings(path)
+    path.write_text('[processing]\ncfar_kind = "ca"\nmin_range_m = 2\nremove_static = true\n')
+    s = load_settings(path)
+    assert (s.cfar_kind, s.min_range_m, s.remove_static, s.cfar_pfa) == ("ca", 2.0, True, 1e-6)
+    with raises(r"^p\.toml: \[processing\] cfar_train_range = 'eight': must be a whole number$"):
+        parse_settings('[processing]\ncfar_train_range = "eight"\n', "p.toml")
+    with raises(r"^p\.toml: processing = 3: must be a table"):
+        parse_settings("processing = 3\n", "p.toml")
+    with raises(r"^p\.toml: unknown section \[proccessing\] \(did you mean \[processing\]\?\); settings live in"):
+        parse_settings("[proccessing]\ncfar_pfa = 1e-3\n", "p.toml")
+    with raises(r"^cannot read settings .*absent\.toml: No such file"):
+        load_settings(tmp_path / "absent.toml")
