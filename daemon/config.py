@@ -32,7 +32,7 @@ API (everything else in this module is private):
                  .section(name, required=True) / .tables(name, start=0): nested tables
                  .raw(name, default), .has(name): unchecked access (marks the field as known)
                  .fail(name, value, rule), .error(message) -> CubecastError to raise
-                 .check_unknown()                    fields never asked for are errors
+                 .check_unknown(expected=())         fields never asked for are errors
 
 `default` omitted means the field is required ("[link] tx_power_dbm is missing"). A default is
 returned as given, unchecked (so None can mean "not given"). Values in messages are shown with
@@ -314,9 +314,11 @@ class Section(_Tables):
             out[f.name] = readers[kind](f.name, f.default)
         return out
 
-    def check_unknown(self) -> None:
-        """Fields this section was never asked for are errors: "[link] unknown field antena_gain
-        (did you mean antenna_gain?)" naming the known fields it is closest to."""
-        unknown = sorted(set(self.table) - self.used)
+    def check_unknown(self, expected: Iterable[str] = ()) -> None:
+        """Fields this section was never asked for (and not in `expected`, the fields still to be
+        read) are errors: "[link] unknown field antena_gain (did you mean antenna_gain?)", naming
+        the known field it is closest to."""
+        known = self.used | set(expected)
+        unknown = sorted(set(self.table) - known)
         if unknown:
-            raise self.error(_unknown("field", unknown, self.used))
+            raise self.error(_unknown("field", unknown, known))

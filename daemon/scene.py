@@ -24,13 +24,12 @@ A scene file is TOML (our own layout, see README "Scene description"):
 from __future__ import annotations
 
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from .errors import CubecastError
+from .config import Document, Section, parse_toml, read_toml
 
 
 @dataclass(frozen=True)
@@ -62,82 +61,48 @@ def polar_to_cartesian(range_m: float, azimuth_deg: float, elevation_deg: float)
                      range_m * math.sin(el)])
 
 
-def _vector(value, where: str) -> np.ndarray:
-    if (not isinstance(value, list) or len(value) != 3
-            or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) for v in value)):
-        raise CubecastError(f"{where} = {value!r}: must be a list of 3 finite numbers [x, y, z]")
-    return np.asarray(value, np.float64)
+CARTESIAN_FIELDS = ("position_m", "velocity_mps")
+POLAR_FIELDS = ("range_m", "azimuth_deg", "elevation_deg", "radial_velocity_mps")
+COMMON_FIELDS = ("name", "rcs_dbsm", "snr_db")
 
 
-def _number(table: dict, key: str, where: str, default=...) -> float:
-    if key not in table:
-        if default is ...:
-            raise CubecastError(f"{where} {key} is missing")
-        return default
-    value = table[key]
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise CubecastError(f"{where} {key} = {value!r}: must be a finite number")
-    return float(value)
+def _read_target(t: Section, index: int) -> Target:
+    t.check_unknown(CARTESIAN_FIELDS + POLAR_FIELDS + COMMON_FIELDS)
+    name = t.string("name", f"target {index}")
+    if t.has("name"):
+        t.label += f" ({name})"
+    if set(t.table) & set(CARTESIAN_FIELDS) and set(t.table) & set(POLAR_FIELDS):
+        raise t.error("mixes the Cartesian fields position_m/velocity_mps with the polar fields range_m/"
+                      "azimuth_deg/elevation_deg/radial_velocity_mps: give either, not both")
+    if t.has("position_m"):
+        pos = np.asarray(t.numbers("position_m", length=3), np.float64)
+        if np.linalg.norm(pos) <= 0:
+            raise t.fail("position_m", t.table["position_m"], "a target cannot sit at the sensor origin")
+        vel = np.asarray(t.numbers("velocity_mps", [0.0, 0.0, 0.0], length=3), np.float64)
+    else:  # r > 0, so the position is never the origin
+        r = t.number("range_m", gt=0)
+        az = t.number("azimuth_deg", 0.0)
+        el = t.number("elevation_deg", 0.0, ge=-90, le=90)
+        pos = polar_to_cartesian(r, az, el)
+        vel = pos / r * t.number("radial_velocity_mps", 0.0)
+    return Target(name, pos, vel, t.number("rcs_dbsm", 0.0), t.number("snr_db", None))
+
+
+def scene_from_document(doc: Document) -> Scene:
+    """Validate a parsed scene: an optional [scene] (its name) and one or more [[target]]."""
+    doc.check_sections(("scene", "target"))
+    head = doc.section("scene", required=False)
+    name = head.string("name", "unnamed scene")
+    head.check_unknown()
+    targets = tuple(_read_target(t, i) for i, t in enumerate(doc.tables("target")))
+    if not targets:
+        raise doc.error("a scene needs at least one [[target]]")
+    return Scene(name=name, source_text=doc.text, targets=targets)
 
 
 def parse_scene(text: str, origin: str | None = None) -> Scene:
-    pre = f"{origin}: " if origin else ""
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CubecastError(f"{pre}not valid TOML: {exc}") from None
-    unknown = sorted(set(doc) - {"scene", "target"})
-    if unknown:
-        raise CubecastError(f"{pre}unknown section(s) {', '.join(unknown)}")
-    head = doc.get("scene", {})
-    name = head.get("name", "unnamed scene") if isinstance(head, dict) else None
-    if not isinstance(name, str):
-        raise CubecastError(f"{pre}[scene] name must be a string")
-    raw_targets = doc.get("target", [])
-    if not isinstance(raw_targets, list) or not raw_targets:
-        raise CubecastError(f"{pre}a scene needs at least one [[target]]")
-    cart = {"position_m", "velocity_mps"}
-    polar = {"range_m", "azimuth_deg", "elevation_deg", "radial_velocity_mps"}
-    common = {"name", "rcs_dbsm", "snr_db"}
-    targets = []
-    for i, t in enumerate(raw_targets):
-        where = f"{pre}[[target]] #{i}" + (f" ({t.get('name')})" if isinstance(t, dict) and "name" in t else "")
-        if not isinstance(t, dict):
-            raise CubecastError(f"{where}: must be a table")
-        extra = sorted(set(t) - cart - polar - common)
-        if extra:
-            raise CubecastError(f"{where}: unknown field(s) {', '.join(extra)}")
-        if set(t) & cart and set(t) & polar:
-            raise CubecastError(f"{where}: give either position_m/velocity_mps or range_m/azimuth_deg/"
-                                f"elevation_deg/radial_velocity_mps, not both")
-        if "position_m" in t:
-            pos = _vector(t["position_m"], f"{where} position_m")
-            vel = _vector(t.get("velocity_mps", [0.0, 0.0, 0.0]), f"{where} velocity_mps")
-        else:
-            r = _number(t, "range_m", where)
-            if r <= 0:
-                raise CubecastError(f"{where} range_m = {r}: must be greater than zero")
-            az = _number(t, "azimuth_deg", where, 0.0)
-            el = _number(t, "elevation_deg", where, 0.0)
-            if not -90 <= el <= 90:
-                raise CubecastError(f"{where} elevation_deg = {el}: must be within -90..90")
-            pos = polar_to_cartesian(r, az, el)
-            vel = pos / r * _number(t, "radial_velocity_mps", where, 0.0)
-        if np.linalg.norm(pos) <= 0:
-            raise CubecastError(f"{where}: a target cannot sit at the sensor origin")
-        rcs = _number(t, "rcs_dbsm", where, 0.0)
-        snr = _number(t, "snr_db", where, None)
-        tname = t.get("name", f"target {i}")
-        if not isinstance(tname, str):
-            raise CubecastError(f"{where} name must be a string")
-        targets.append(Target(tname, pos, vel, rcs, snr))
-    return Scene(name=name, source_text=text, targets=tuple(targets))
+    return scene_from_document(parse_toml(text, origin))
 
 
 def load_scene(path: str | Path) -> Scene:
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"cannot read scene {path}: {exc.strerror}") from None
-    return parse_scene(text, str(path))
+    return scene_from_document(read_toml(path, "scene"))

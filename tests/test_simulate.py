@@ -131,12 +131,44 @@ def test_real_sampling_and_bpm_frames():
 def test_scene_errors_are_named():
     with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 \(a\) position_m = \[1, 2\]: must be a list of 3"):
         parse_scene('[[target]]\nname = "a"\nposition_m = [1, 2]\n')
-    with pytest.raises(CubecastError, match=r"give either position_m"):
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 mixes the Cartesian fields position_m/velocity_mps "
+                                            r"with the polar fields range_m/.*: give either, not both"):
         parse_scene('[[target]]\nposition_m = [1, 2, 3]\nrange_m = 4.0\n')
-    with pytest.raises(CubecastError, match=r"unknown field\(s\) speed"):
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 unknown field speed"):
         parse_scene('[[target]]\nrange_m = 4.0\nspeed = 3\n')
-    with pytest.raises(CubecastError, match=r"at least one \[\[target\]\]"):
-        parse_scene('[scene]\nname = "empty"\n')
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #1 unknown field rang_m \(did you mean range_m\?\)"):
+        parse_scene('[[target]]\nrange_m = 4.0\n[[target]]\nrang_m = 3.0\n')
+    with pytest.raises(CubecastError, match=r"^s\.toml: a scene needs at least one \[\[target\]\]$"):
+        parse_scene('[scene]\nname = "empty"\n', "s.toml")
+    with pytest.raises(CubecastError, match=r"^s\.toml: \[\[target\]\] #0 \(w\) range_m = -1.0: must be > 0$"):
+        parse_scene('[[target]]\nname = "w"\nrange_m = -1.0\n', "s.toml")
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 elevation_deg = 91: must be in \[-90, 90\]$"):
+        parse_scene('[[target]]\nrange_m = 2.0\nelevation_deg = 91\n')
+    with pytest.raises(CubecastError, match=r"position_m = \[0, 0, 0\]: a target cannot sit at the sensor origin$"):
+        parse_scene('[[target]]\nposition_m = [0, 0, 0]\n')
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 name = 3: must be a string$"):
+        parse_scene('[[target]]\nname = 3\nrange_m = 1.0\n')
+    with pytest.raises(CubecastError, match=r"\[scene\] name = 3: must be a string$"):
+        parse_scene('[scene]\nname = 3\n[[target]]\nrange_m = 1.0\n')
+    with pytest.raises(CubecastError, match=r"\[scene\] unknown field nmae \(did you mean name\?\)$"):
+        parse_scene('[scene]\nnmae = "yard"\n[[target]]\nrange_m = 1.0\n')
+    with pytest.raises(CubecastError, match=r"target = 3: must be an array of tables"):
+        parse_scene('target = 3\n')
+    with pytest.raises(CubecastError, match=r"unknown section \[targets\] \(did you mean \[target\]\?\)"):
+        parse_scene('[[targets]]\nrange_m = 1.0\n')
+
+
+def test_scene_file_errors_are_named(tmp_path):
+    with pytest.raises(CubecastError, match=r"^cannot read scene .*absent\.toml: No such file or directory$"):
+        load_scene(tmp_path / "absent.toml")
+    latin = tmp_path / "latin1.toml"
+    latin.write_bytes('[scene]\nname = "entrepôt"\n[[target]]\nrange_m = 1.0\n'.encode("latin-1"))
+    with pytest.raises(CubecastError, match=r"^cannot read scene .*latin1\.toml: not UTF-8 text"):
+        load_scene(latin)
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[[target]]\nrange_m = \n")
+    with pytest.raises(CubecastError, match=r"bad\.toml: not valid TOML"):
+        load_scene(bad)
 
 
 def test_simulate_cli_errors(tmp_path, capsys):
