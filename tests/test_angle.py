@@ -10,14 +10,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from cubecast.daemon.chain.angle import (
-    AngleEstimator,
-    AngleSettings,
-    VirtualGrid,
-    crb_direction_cosine,
-    sigma_azimuth_deg,
-    sigma_elevation_deg,
-)
+from cubecast.daemon.chain.angle import AngleEstimator, AngleSettings, VirtualGrid
+from cubecast.daemon.chain.bounds import crb_direction_cosine, sigma_azimuth_deg, sigma_elevation_deg
 from cubecast.daemon.errors import CubecastError
 
 LAM_M = 3.9e-3

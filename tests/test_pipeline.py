@@ -357,8 +357,9 @@ def test_point_kernel_matches_the_bound_functions(layout):
     # the tone bound (Rife and Boorstyn, IEEE Trans. IT, 1974) and the direction-cosine CRB
     # (Stoica and Nehorai, IEEE Trans. ASSP, 1989) as the angle module computes them, including the
     # infinite ones of an array without extent, and the geometry of the sensor frame.
-    from cubecast.daemon.chain.angle import crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg
-    from cubecast.daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points, tone_crb_bins
+    from cubecast.daemon.chain.bounds import (crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg,
+                                              tone_crb_bins)
+    from cubecast.daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points
 
     lam = 0.0039
     k = np.arange(8, dtype=np.float64)

@@ -101,6 +101,7 @@ from numba import njit
 
 from ..errors import CubecastError, is_integer, is_real
 
+from .bounds import crb_unit_covariance
 from .fft import ifft_unnormalised_inplace
 
 __all__ = [
@@ -108,9 +109,7 @@ __all__ = [
     "AngleSettings",
     "AngleResult",
     "AngleEstimator",
-    "crb_direction_cosine",
-    "sigma_azimuth_deg",
-    "sigma_elevation_deg",
+    "crb_unit_covariance",
     "WINDOW_NAMES",
 ]
 
@@ -1513,115 +1512,3 @@ class AngleEstimator:
 def _empty_result() -> AngleResult:
     f = np.empty(0, dtype=np.float32)
     return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy())
-
-
-# --------------------------------------------------------------------------------------------
-# Cramer-Rao bound
-# --------------------------------------------------------------------------------------------
-
-
-def _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel):
-    """CRB covariance (var_u, var_w, cov_uw) for one source with unknown complex amplitude.
-
-    Deterministic (conditional) model, white complex Gaussian noise: the Fisher matrix of (u, w)
-    after eliminating the amplitude is F = 2 * SNR * k0^2 * sum_i (q_i - q_mean)(q_i - q_mean)^T,
-    q_i = (x_i, z_i), SNR = |a|^2 / sigma^2 per channel. Unidentifiable directions (no extent)
-    get infinite variance.
-    """
-    pos = np.asarray(positions_m, dtype=np.float64)
-    if pos.ndim != 2 or pos.shape[1] != 3 or pos.shape[0] < 1:
-        raise CubecastError(f"positions_m: expected shape (n_virt, 3), got {pos.shape}")
-    if not (math.isfinite(wavelength_m) and wavelength_m > 0):
-        raise CubecastError(f"wavelength_m must be a finite number > 0, got {wavelength_m!r}")
-    k0 = 2.0 * np.pi / wavelength_m
-    q = pos[:, [0, 2]] - pos[:, [0, 2]].mean(axis=0)
-    g = k0 * k0 * (q.T @ q)  # geometry part of the Fisher matrix
-    gxx, gzz, gxz = g[0, 0], g[1, 1], g[0, 1]
-    scale = k0 * k0 * wavelength_m * wavelength_m * 1e-12  # relative zero for extents
-    snr = np.asarray(snr_per_channel, dtype=np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        two_snr = np.where(snr > 0, 2.0 * snr, 0.0)
-        det = gxx * gzz - gxz * gxz
-        has_x = gxx > scale
-        has_z = gzz > scale
-        if has_x and has_z and det > scale * max(gxx, gzz):
-            var_u = gzz / det / two_snr
-            var_w = gxx / det / two_snr
-            cov = -gxz / det / two_snr
-        elif has_x and not has_z:
-            var_u = 1.0 / (gxx * two_snr)
-            var_w = np.full_like(snr, np.inf)
-            cov = np.zeros_like(snr)
-        elif has_z and not has_x:
-            var_u = np.full_like(snr, np.inf)
-            var_w = 1.0 / (gzz * two_snr)
-            cov = np.zeros_like(snr)
-        else:  # single element, or collinear along a slanted line: (u, w) not identifiable
-            var_u = np.full_like(snr, np.inf)
-            var_w = np.full_like(snr, np.inf)
-            cov = np.zeros_like(snr)
-    var_u = np.where(two_snr > 0, var_u, np.inf)
-    var_w = np.where(two_snr > 0, var_w, np.inf)
-    cov = np.where(two_snr > 0, cov, 0.0)
-    return var_u, var_w, cov, has_x, has_z
-
-
-def crb_direction_cosine(positions_m, wavelength_m, snr_per_channel):
-    """(sigma_u, sigma_w), float32 arrays shaped like snr_per_channel.
-
-    Cramer-Rao bound for one far-field source with unknown complex amplitude in white noise
-    (deterministic model of Stoica and Nehorai, 1989). snr_per_channel is the linear power
-    ratio |a|^2 / sigma^2 at one virtual channel (sigma^2 the total complex noise power); any
-    shape, vectorised. For a lambda/2 ULA of M elements this equals Rife and Boorstyn's (1974)
-    single-tone bound var(omega) = 6 / (SNR M (M^2 - 1)) with omega = pi * u. With both u and w
-    unknown the 2x2 Fisher matrix of the centred (x, z) positions is inverted, so a coupling
-    between x and z (non-separable layouts) is included. A direction the array has no extent in
-    gets sigma = inf; snr <= 0 gives inf.
-    """
-    var_u, var_w, _, _, _ = _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel)
-    return np.sqrt(var_u).astype(np.float32), np.sqrt(var_w).astype(np.float32)
-
-
-def sigma_azimuth_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg, elevation_deg=0.0):
-    """CRB standard deviation of azimuth in degrees (float32, broadcast over the inputs).
-
-    Jacobian of az = atan2(u, v), v = sqrt(1 - u^2 - w^2): d az/du = 1/v,
-    d az/dw = u w / (v cos^2 el). For an array without elevation extent w is not estimated and
-    the elevation is taken as known (the value given), so only the u term remains.
-    """
-    var_u, var_w, cov, _, has_z = _direction_cosine_covariance(
-        positions_m, wavelength_m, snr_per_channel
-    )
-    az = np.radians(np.asarray(azimuth_deg, dtype=np.float64))
-    el = np.radians(np.asarray(elevation_deg, dtype=np.float64))
-    u = np.sin(az) * np.cos(el)
-    w = np.sin(el)
-    cos_el2 = np.cos(el) ** 2
-    v = np.sqrt(np.maximum(0.0, 1.0 - u * u - w * w))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ju = 1.0 / v
-        jw = u * w / (v * cos_el2) if has_z else np.zeros_like(u)
-        var = ju * ju * var_u
-        if has_z:
-            var = var + 2.0 * ju * jw * cov + jw * jw * var_w
-            var = np.where(jw == 0.0, ju * ju * var_u, var)
-    return np.degrees(np.sqrt(var)).astype(np.float32)
-
-
-def sigma_elevation_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg=0.0, elevation_deg=0.0):
-    """CRB standard deviation of elevation in degrees (float32, broadcast): el = asin(w), so
-    sigma_el = sigma_w / cos(el); inf for an array without elevation extent.
-    (azimuth_deg is accepted for symmetry with sigma_azimuth_deg; the bound does not depend on it.)"""
-    var_u, var_w, _, _, _ = _direction_cosine_covariance(positions_m, wavelength_m, snr_per_channel)
-    el = np.radians(np.asarray(elevation_deg, dtype=np.float64))
-    az = np.asarray(azimuth_deg, dtype=np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        sig = np.sqrt(var_w) / np.cos(el) + 0.0 * az
-    return np.degrees(sig).astype(np.float32)
-
-
-def crb_unit_covariance(positions_m, wavelength_m) -> tuple[float, float, float, bool, bool]:
-    """(var_u, var_w, cov_uw) of the CRB above at 2 SNR = 1, and whether the array has extent in x
-    and in z: the covariance at any SNR is these divided by 2 SNR (inf where not identifiable)."""
-    var_u, var_w, cov, has_x, has_z = _direction_cosine_covariance(positions_m, wavelength_m, 0.5)
-    return float(var_u), float(var_w), float(cov), bool(has_x), bool(has_z)
