@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
+from .calibchecks import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS
 from .errors import CubecastError
 from .sensor import Sensor
 
@@ -65,8 +66,6 @@ def _r(x: float, digits: int = 6) -> float:
 
 def format_calibration(result: CalibrationResult, created_utc: str | None = None) -> str:
     """The calibration file's text (TOML, our own layout; README "Calibration file")."""
-    from .calibrate import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS  # the rules it reports
-
     s = result.sensor
     created = created_utc or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
     lines = [

@@ -23,25 +23,8 @@ place the gains can be measured:
 Range bias: the reflector's range measured with a fine (16x zero-padded) range spectrum of the
 loop-averaged fast-time samples, minus the given range. The chain subtracts it from every range.
 
-Checks (each produces a warning, on stderr and in the file's [report] section; the rule is stated
-in the warning):
-- weak: the per-channel SNR of the reflector's cell integrated over the frames used is below
-  MIN_INTEGRATED_SNR_DB. The phase of a complex sample with SNR rho has standard deviation
-  1 / sqrt(2 rho) rad at high SNR (Rife and Boorstyn, "Single-tone parameter estimation from
-  discrete-time observations", IEEE Trans. IT, 1974): 30 dB gives 1.3 deg.
-- near: the range is below max(2 D^2 / lambda, NEAR_RANGE_CELLS range resolutions), D the largest
-  distance between two virtual elements (the far-field distance of the aperture, common practice)
-  and the first range cells being where TX-RX coupling and the DC leakage live.
-- not alone: another local maximum of the range-Doppler map within NEIGHBOUR_CELLS range and
-  Doppler cells of the reflector, at most NEIGHBOUR_LEVEL_DB below it (and 15 dB above the noise);
-  or, after calibration, the two range cells beside the reflector's fit one point in the known
-  direction worse than MISFIT_LIMIT_DB (a second scatterer at a slightly different range); or the
-  uncalibrated azimuth beam has a second peak outside the main lobe at most SECOND_ANGLE_PEAK_DB
-  below the main one where a lone reflector's beam would be lower (a second reflector at the same
-  range, or multipath; very large channel errors can also do this).
-- not static: the reflector's cell is not the Doppler maximum of its range cell.
-- clipping: ADC samples at full scale in any frame.
-- channel: a channel's gain more than CHANNEL_GAIN_LIMIT_DB from the mean amplitude.
+Checks: see calibchecks.py (reflector too weak, too near, not alone, not static; clipping; a
+channel far from the others).
 
 The calibration file is TOML in our own layout (see README "Calibration file"), written and read
 back in calibfile.py (its names are also importable from here); `load_calibration` gives the
@@ -59,6 +42,10 @@ from typing import Iterable
 
 import numpy as np
 
+from .calibchecks import (CHANNEL_GAIN_LIMIT_DB, MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS,
+                          NEIGHBOUR_CELLS, NEIGHBOUR_LEVEL_DB, SECOND_ANGLE_PEAK_DB, azimuth_beams, cell_snr,
+                          channel_gain_warnings, clipping_warnings, db, near_limit, neighbour_misfit,
+                          not_static_warnings, other_peak_warnings, weak_reflector_warnings)
 from .calibfile import (CALIBRATION_FORMAT, CALIBRATION_VERSION, RANGE_BIAS_NOTE, CalibrationFile, format_calibration,
                         load_calibration, load_calibration_file, write_calibration)
 from .errors import CubecastError
@@ -91,15 +78,6 @@ __all__ = [
     "run",
 ]
 
-MIN_INTEGRATED_SNR_DB = 30.0  # per-channel cell SNR x frames; 1 / sqrt(2 rho) = 1.3 deg at 30 dB
-NEAR_RANGE_CELLS = 5  # the reflector must be at least this many range resolutions away ...
-# ... and beyond the far-field distance 2 D^2 / lambda of the virtual aperture
-NEIGHBOUR_CELLS = 6  # range and Doppler cells either side searched for other peaks
-NEIGHBOUR_LEVEL_DB = -20.0  # another peak there at or above this level (re the reflector) warns
-NEIGHBOUR_NOISE_MARGIN_DB = 15.0  # ... if it also stands this far above the map's noise floor
-MISFIT_LIMIT_DB = -20.0  # calibrated cells beside the reflector must fit one point this well
-SECOND_ANGLE_PEAK_DB = -6.0  # a second uncalibrated beam peak at or above this level warns
-CHANNEL_GAIN_LIMIT_DB = 6.0  # a channel this far from the mean amplitude is suspect (dead, unplugged)
 DEFAULT_SEARCH_CELLS = 4
 FINE_RANGE_PADDING = 16  # zero padding of the fine range spectrum for the range bias
 
@@ -138,32 +116,11 @@ def ideal_snapshot(sensor: Sensor, position_m: np.ndarray, range_bins, window: n
     return kernel @ x.T  # [B, V]
 
 
-def _virtual_aperture_m(sensor: Sensor) -> float:
-    pos = sensor.virtual_positions_m
-    return float(np.sqrt(((pos[:, None, :] - pos[None, :, :]) ** 2).sum(-1)).max())
-
-
 def _log_parabola(lo: float, mid: float, hi: float) -> float:
     """Fractional peak offset from three power samples (Gaussian interpolation, common practice)."""
     a, b, c = (math.log(max(v, 1e-300)) for v in (lo, mid, hi))
     den = a - 2.0 * b + c
     return float(np.clip(0.5 * (a - c) / den, -0.5, 0.5)) if den < 0 else 0.0
-
-
-def _beam_u(snapshot: np.ndarray, pos_m: np.ndarray, wavelength_m: float, w: float, u: np.ndarray) -> np.ndarray:
-    """|sum_v conj(steer_v(u, w)) s_v|^2 with steer_v = exp(-j 2 pi / lambda (u x_v + w z_v))."""
-    k0 = 2.0 * np.pi / wavelength_m
-    ph = k0 * (u[:, None] * pos_m[None, :, 0] + w * pos_m[None, :, 2])
-    return np.abs(np.exp(1j * ph) @ snapshot) ** 2
-
-
-def _local_maxima(p: np.ndarray) -> np.ndarray:
-    inner = np.flatnonzero((p[1:-1] > p[:-2]) & (p[1:-1] >= p[2:])) + 1
-    return inner
-
-
-def _db(x: float) -> float:
-    return 10.0 * math.log10(x) if x > 0 else -math.inf
 
 
 # ---- result -----------------------------------------------------------------------------------
@@ -229,33 +186,33 @@ def _check_number(name: str, value, low: float | None = None, high: float | None
     return value
 
 
-def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_range_m: float,
-                         azimuth_deg: float = 0.0, elevation_deg: float = 0.0, *,
-                         search_cells: int = DEFAULT_SEARCH_CELLS) -> CalibrationResult:
-    """Measure the virtual channels' gains and the range bias from canonical frames (complex64
-    [chirp, rx, sample]) of a static point reflector at (target_range_m, azimuth_deg,
-    elevation_deg). Pure: no I/O. Raises CubecastError when the reflector cannot be found."""
-    from .chain.pipeline import Pipeline  # the chain imports numba kernels: load on use
-
+def _check_target(target_range_m: float, azimuth_deg: float, elevation_deg: float,
+                  search_cells: int) -> tuple[float, float, float]:
+    """The given place of the reflector (range, azimuth, elevation), checked."""
     r0 = _check_number("--target-range-m", target_range_m, positive=True)
     az0 = _check_number("--azimuth-deg", azimuth_deg, -90.0, 90.0)
     el0 = _check_number("--elevation-deg", elevation_deg, -90.0, 90.0)
     if isinstance(search_cells, bool) or not isinstance(search_cells, (int, np.integer)) or search_cells < 1:
         raise CubecastError(f"--search-cells {search_cells!r}: must be a whole number of at least 1")
-    settings = calibration_settings()
-    pipe = Pipeline(sensor, settings)
-    rng_fft, dop = pipe.range_fft, pipe.doppler_fft
-    bin_m, n_range, n_dop = rng_fft.bin_m, rng_fft.n_bins, dop.fft_size
+    return r0, az0, el0
+
+
+def _search_window(sensor: Sensor, r0: float, search_cells: int, bin_m: float, n_range: int) -> tuple[int, int]:
+    """The range cells lo..hi (inclusive) searched for the reflector: `search_cells` either side of
+    the given range, keeping one cell spare at each end of the spectrum."""
     expected_bin = r0 / bin_m
     lo = max(1, int(math.floor(expected_bin - search_cells)))
     hi = min(n_range - 2, int(math.ceil(expected_bin + search_cells)))
     if expected_bin > n_range - 2 or lo > hi:
         raise CubecastError(f"--target-range-m {r0:g}: beyond the sensor's maximum range "
                             f"{sensor.max_range_m:.2f} m")
-    c0 = n_dop // 2  # zero Doppler in the (shifted) detection map; column 0 of the spectrum
-    n_loops, n_slots, n_rx, n_samp = sensor.n_loops, sensor.n_slots, sensor.n_rx, sensor.samples_per_chirp
-    # noise reference: cells well away from zero Doppler (where every static echo sits); with too few
-    # Doppler bins for that, the range cells away from the search window
+    return lo, hi
+
+
+def _noise_cells(sensor: Sensor, n_range: int, n_dop: int, c0: int, lo: int, hi: int) -> np.ndarray:
+    """Mask [range, Doppler] of the cells that measure the noise: cells well away from zero Doppler
+    (where every static echo sits); with too few Doppler bins for that, the range cells away from
+    the search window."""
     noise_mask = np.zeros((n_range, n_dop), bool)
     noise_mask[:, np.abs(np.arange(n_dop) - c0) >= max(3, n_dop // 8)] = True
     if not noise_mask.any():
@@ -263,8 +220,27 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
         noise_mask[hi + NEIGHBOUR_CELLS + 1:] = True
     if not noise_mask.any():
         raise CubecastError(f"sensor '{sensor.sensor_id}': too few range and Doppler cells to measure the noise")
-    full_scale = sensor.adc.full_scale
+    return noise_mask
 
+
+@dataclass
+class _FrontEndSums:
+    """What the chain's front end gave over the frames (_run_front_end)."""
+
+    cells: np.ndarray  # complex128 [F, rx, slot, hi - lo + 3]: zero-Doppler slot values, search window +- 1 cell
+    loop_means: np.ndarray  # complex128 [F, slot, rx, N]: the loop average of the fast-time samples
+    mean_map: np.ndarray  # float64 [range, Doppler]: the detection map averaged over the frames
+    noise: list[float]  # per frame: median of the detection map over the noise cells
+    clipped: int  # ADC samples at full scale, all frames
+    n_frames: int
+
+
+def _run_front_end(pipe, sensor: Sensor, frames: Iterable[np.ndarray], lo: int, hi: int,
+                   noise_mask: np.ndarray) -> _FrontEndSums:
+    """Every frame through the front end (range and Doppler FFTs); keeps what the estimation needs."""
+    dop = pipe.doppler_fft
+    n_loops, n_slots, n_rx, n_samp = sensor.n_loops, sensor.n_slots, sensor.n_rx, sensor.samples_per_chirp
+    full_scale = sensor.adc.full_scale
     cells, loop_means, noise, maps = [], [], [], None
     clipped = 0
     for frame in frames:
@@ -281,93 +257,57 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     n_frames = len(cells)
     if n_frames == 0:
         raise CubecastError("calibration needs at least one frame; the capture has no readable frames")
+    return _FrontEndSums(np.stack(cells), np.stack(loop_means), maps / n_frames, noise, clipped, n_frames)
 
-    mean_map = maps / n_frames
-    zero_col = mean_map[:, c0]
-    window_power = zero_col[lo: hi + 1]
-    rb = lo + int(np.argmax(window_power))
+
+def _find_reflector(zero_col: np.ndarray, lo: int, hi: int, bin_m: float, r0: float, search_cells: int) -> int:
+    """The reflector's range cell: the strongest zero-Doppler cell of the search window, which must be
+    a local maximum of the zero-Doppler column `zero_col` (not the slope of something outside)."""
+    rb = lo + int(np.argmax(zero_col[lo: hi + 1]))
     lo_m, hi_m = lo * bin_m, hi * bin_m
     if not (zero_col[rb] > zero_col[rb - 1] and zero_col[rb] >= zero_col[rb + 1]):
         raise CubecastError(
             f"--target-range-m {r0:g}: no reflector peak at zero Doppler within {search_cells} range cells "
             f"({lo_m:.2f}..{hi_m:.2f} m); the strongest zero-Doppler cell there ({rb * bin_m:.2f} m) is on the "
             f"slope of something outside the window: check the range or widen --search-cells")
+    return rb
 
-    warnings: list[str] = []
-    # ---- noise and SNR ----
-    k_channels = dop.n_channels
+
+def _noise_power(pipe, noise: list[float], n_rx: int) -> tuple[float, np.ndarray]:
+    """(one channel's noise power in the detection map, the noise power of each virtual channel
+    after MIMO decoding [V], v = k * n_rx + l)."""
     # the map is a sum of K exponential noise powers: its median is about K - 1/3 times one
     # channel's noise power (median of a Gamma(K) variable; from memory, common practice)
-    sigma2_c = float(np.mean(noise)) / (k_channels - 1.0 / 3.0)
+    sigma2_c = float(np.mean(noise)) / (pipe.doppler_fft.n_channels - 1.0 / 3.0)
     decode = pipe.mimo.decode  # [tx, slot]
-    sigma2_v = np.repeat(sigma2_c * (np.abs(decode) ** 2).sum(axis=1), n_rx)  # [V], v = k * n_rx + l
+    sigma2_v = np.repeat(sigma2_c * (np.abs(decode) ** 2).sum(axis=1), n_rx)
+    return sigma2_c, sigma2_v
 
-    slot_vals = np.stack(cells)  # [F, rx, slot, bins]
-    j = rb - lo + 1  # index of the reflector's bin in the stored window
-    zero_hz = np.zeros((n_frames, 1))
 
-    frames_index = np.arange(n_frames)
-    first_col = np.zeros(n_frames, np.int64)
+def _virtual_snapshots(pipe, cells: np.ndarray, jj: int) -> np.ndarray:
+    """The frames' virtual snapshots of stored range cell `jj`: complex128 [F, V]. Each frame is one
+    "cell" of a spectrum [rx, slot, frame, 1], decoded at zero Doppler (the reflector is static)."""
+    n_frames = cells.shape[0]
+    sv = np.ascontiguousarray(cells[:, :, :, jj].transpose(1, 2, 0), np.complex64)[..., None]
+    return pipe.mimo.snapshots(sv, np.arange(n_frames), np.zeros(n_frames, np.int64),
+                               np.zeros((n_frames, 1)))[:, 0, :].astype(np.complex128)
 
-    def snapshots(jj: int) -> np.ndarray:
-        # the frames' values of bin jj as a spectrum [rx, slot, frame, 1], one "cell" per frame
-        sv = np.ascontiguousarray(slot_vals[:, :, :, jj].transpose(1, 2, 0), np.complex64)[..., None]
-        return pipe.mimo.snapshots(sv, frames_index, first_col, zero_hz)[:, 0, :].astype(np.complex128)
 
-    z = snapshots(j)  # [F, V]
-    rho = max(float(np.mean(np.abs(z) ** 2 / sigma2_v[None, :])) - 1.0, 1e-12)
-    cell_snr_db = _db(rho)
-    integrated_snr_db = cell_snr_db + 10.0 * math.log10(n_frames)
-    predicted_phase_deg = math.degrees(1.0 / math.sqrt(2.0 * rho * n_frames))
-    if integrated_snr_db < MIN_INTEGRATED_SNR_DB:
-        warnings.append(
-            f"reflector too weak: per-channel SNR {cell_snr_db:.1f} dB in its cell, {integrated_snr_db:.1f} dB "
-            f"over {n_frames} frames, below the {MIN_INTEGRATED_SNR_DB:.0f} dB limit (expected gain phase error "
-            f"{predicted_phase_deg:.2f} deg rms, 1 / sqrt(2 SNR)); use a larger reflector, a shorter range or "
-            f"more frames")
+@dataclass
+class _Gains:
+    """The channel gains measured from the snapshots (_channel_gains)."""
 
-    # ---- near ----
-    lam = sensor.wavelength_m
-    aperture = _virtual_aperture_m(sensor)
-    far_field_m = 2.0 * aperture ** 2 / lam
-    near_limit_m = max(far_field_m, NEAR_RANGE_CELLS * sensor.range_resolution_m)
-    if r0 < near_limit_m:
-        warnings.append(
-            f"reflector too near: {r0:.3f} m is inside {near_limit_m:.3f} m = max(2 D^2 / lambda = "
-            f"{far_field_m:.3f} m with D = {aperture * 1e3:.1f} mm the virtual aperture, {NEAR_RANGE_CELLS} range "
-            f"cells = {NEAR_RANGE_CELLS * sensor.range_resolution_m:.3f} m); move it further away")
+    gain: np.ndarray  # complex128 [V]: unit mean amplitude, channel 0 at phase 0
+    common: np.ndarray  # complex128 [F]: each frame's common phase rotation
+    ratio: np.ndarray  # complex128 [F, V]: measured over ideal snapshot, common phase removed
+    mean_ratio: np.ndarray  # complex128 [V]: its coherent mean over the frames
 
-    # ---- other peaks in range / Doppler ----
-    floor = k_channels * sigma2_c
-    p_ref = mean_map[rb, c0]
-    r_a, r_b = max(0, rb - NEIGHBOUR_CELLS), min(n_range, rb + NEIGHBOUR_CELLS + 1)
-    d_a, d_b = max(0, c0 - NEIGHBOUR_CELLS), min(n_dop, c0 + NEIGHBOUR_CELLS + 1)
-    level = max(p_ref * 10.0 ** (NEIGHBOUR_LEVEL_DB / 10.0), floor * 10.0 ** (NEIGHBOUR_NOISE_MARGIN_DB / 10.0))
-    vel_per_col = dop.bin_hz * lam / 2.0
-    for rr in range(r_a, r_b):
-        for dd in range(d_a, d_b):
-            if rr == rb and dd == c0:
-                continue
-            v = mean_map[rr, dd]
-            if v < level:
-                continue
-            nb = mean_map[max(0, rr - 1): rr + 2, max(0, dd - 1): dd + 2]
-            if v < nb.max():
-                continue
-            warnings.append(
-                f"reflector not alone: another peak at {rr * bin_m:.2f} m, {(dd - c0) * vel_per_col:+.2f} m/s, "
-                f"{_db(v / p_ref):.1f} dB re the reflector (limit: nothing within {NEIGHBOUR_CELLS} range and "
-                f"Doppler cells above {NEIGHBOUR_LEVEL_DB:.0f} dB); clear the area around the reflector")
-    row = mean_map[rb]
-    if row[c0 - 1] > row[c0] or row[(c0 + 1) % n_dop] > row[c0]:
-        warnings.append(
-            f"reflector not static: at {rb * bin_m:.2f} m the Doppler maximum is not at zero velocity; "
-            f"the calibration assumes a still reflector and sensor")
 
-    # ---- gains ----
-    pos_t = polar_to_cartesian(r0, az0, el0)
-    ideal = ideal_snapshot(sensor, pos_t, [rb - 1, rb, rb + 1], rng_fft.window, rng_fft.fft_size)  # [3, V]
-    ratio = z / ideal[1][None, :]
+def _channel_gains(z: np.ndarray, ideal_cell: np.ndarray) -> _Gains:
+    """Steps 4 and 5 of the method (module docstring): the ratios measured / ideal, rotated by each
+    frame's common phase, averaged over frames, normalised to unit mean amplitude and to zero phase
+    on channel 0."""
+    ratio = z / ideal_cell[None, :]
     common = np.exp(-1j * np.angle(ratio.sum(axis=1)))  # [F] common phase per frame
     ratio *= common[:, None]
     mean_ratio = ratio.mean(axis=0)
@@ -375,114 +315,97 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     if np.any(amp <= 0) or not np.all(np.isfinite(mean_ratio)):
         raise CubecastError("calibration failed: a virtual channel has no signal from the reflector")
     gain = mean_ratio / amp.mean() * np.exp(-1j * np.angle(mean_ratio[0]))
-    vector = (1.0 / gain).astype(np.complex64)
-    gain_db = 20.0 * np.log10(np.abs(gain))
-    for v in np.flatnonzero(np.abs(gain_db) > CHANNEL_GAIN_LIMIT_DB):
-        warnings.append(
-            f"channel {v} (TX {v // n_rx}, RX {v % n_rx}) gain {gain_db[v]:+.1f} dB re the mean, beyond "
-            f"+-{CHANNEL_GAIN_LIMIT_DB:.0f} dB: a dead, unplugged or saturated channel? its correction "
-            f"{-gain_db[v]:+.1f} dB also scales its noise")
-    if n_frames > 1:
-        dev = ratio / mean_ratio[None, :]
+    return _Gains(gain, common, ratio, mean_ratio)
+
+
+def _frame_residuals(g: _Gains, n_virtual: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per channel, the rms frame-to-frame deviation from the mean ratio: (phase in degrees,
+    amplitude in dB); NaN with a single frame."""
+    if g.ratio.shape[0] > 1:
+        dev = g.ratio / g.mean_ratio[None, :]
         residual_phase_deg = np.degrees(np.sqrt(np.mean(np.angle(dev) ** 2, axis=0)))
         residual_amplitude_db = np.sqrt(np.mean((20.0 * np.log10(np.abs(dev))) ** 2, axis=0))
-    else:
-        residual_phase_deg = np.full(sensor.n_virtual, np.nan)
-        residual_amplitude_db = np.full(sensor.n_virtual, np.nan)
+        return residual_phase_deg, residual_amplitude_db
+    return np.full(n_virtual, np.nan), np.full(n_virtual, np.nan)
 
-    # ---- calibrated cells beside the reflector: one point in the known direction? ----
-    misfits, expected = [], []
-    n_virt = sensor.n_virtual
-    for side, jj in ((0, j - 1), (2, j + 1)):
-        zb = snapshots(jj)
-        y = (zb * common[:, None]).mean(axis=0) / gain
-        a = ideal[side]
-        fit = abs(np.vdot(a, y)) ** 2 / (np.vdot(y, y).real * np.vdot(a, a).real)
-        misfits.append(max(1.0 - fit, 1e-16))
-        # noise alone leaves (V - 1) / V of its power outside the fitted direction: misfit 1 / (V rho F) x (V - 1)
-        rho_b = max(float(np.mean(np.abs(zb) ** 2 / sigma2_v[None, :])) - 1.0, 1e-12)
-        expected.append((n_virt - 1) / n_virt / (rho_b * n_frames))
-    worst = int(np.argmax(misfits))
-    neighbour_misfit_db = _db(misfits[worst])
-    expected_misfit_db = _db(expected[worst])
-    if neighbour_misfit_db > MISFIT_LIMIT_DB and misfits[worst] > 10.0 * expected[worst]:
-        warnings.append(
-            f"reflector not alone: after calibration the range cell {'before' if worst == 0 else 'after'} the "
-            f"reflector fits one point in the given direction only to {neighbour_misfit_db:.1f} dB (limit "
-            f"{MISFIT_LIMIT_DB:.0f} dB, noise alone gives {expected_misfit_db:.1f} dB): a second scatterer close "
-            f"in range")
 
-    # ---- uncalibrated azimuth beam: a second angle peak? ----
-    pos_v = sensor.virtual_positions_m
-    w0 = math.sin(math.radians(el0))
-    u0 = math.sin(math.radians(az0)) * math.cos(math.radians(el0))
-    z_mean = (z * common[:, None]).mean(axis=0)
-    psl_unc = psl_cal = math.nan
-    if np.ptp(pos_v[:, 0]) > 0:
-        u = np.linspace(-1.0, 1.0, 4001)
-        b_ideal = _beam_u(ideal[1], pos_v, lam, w0, u)
-        b_meas = _beam_u(z_mean, pos_v, lam, w0, u)
-        b_cal = _beam_u(z_mean / gain, pos_v, lam, w0, u)
-        i0 = int(np.argmin(np.abs(u - u0)))
-        # main lobe of a lone reflector: from its peak down to the nearest minima either side
-        pk = i0
-        while 0 < pk < len(u) - 1 and max(b_ideal[pk - 1], b_ideal[pk + 1]) > b_ideal[pk]:
-            pk += 1 if b_ideal[pk + 1] > b_ideal[pk - 1] else -1
-        a_i = pk
-        while a_i > 0 and b_ideal[a_i - 1] < b_ideal[a_i]:
-            a_i -= 1
-        b_i = pk
-        while b_i < len(u) - 1 and b_ideal[b_i + 1] < b_ideal[b_i]:
-            b_i += 1
-        outside = np.ones(len(u), bool)
-        outside[a_i: b_i + 1] = False
-        ideal_rel = b_ideal / b_ideal.max()
-
-        def psl(beam: np.ndarray) -> float:
-            mx = _local_maxima(beam)
-            mx = mx[outside[mx]]
-            main = beam[a_i: b_i + 1].max()
-            return _db(beam[mx].max() / main) if mx.size else -math.inf
-
-        psl_unc, psl_cal = psl(b_meas), psl(b_cal)
-        main = b_meas[a_i: b_i + 1].max()
-        thr = 10.0 ** (SECOND_ANGLE_PEAK_DB / 10.0)
-        for m in _local_maxima(b_meas):
-            if outside[m] and b_meas[m] >= thr * main and ideal_rel[m] < thr:
-                az_m = math.degrees(math.asin(float(np.clip(u[m] / max(math.cos(math.radians(el0)), 1e-9), -1, 1))))
-                warnings.append(
-                    f"second angle peak: the uncalibrated azimuth beam has a peak at {az_m:.1f} deg only "
-                    f"{_db(b_meas[m] / main):.1f} dB below the main one (limit {SECOND_ANGLE_PEAK_DB:.0f} dB): a "
-                    f"second reflector at the same range or multipath would spoil the calibration (channel "
-                    f"errors far above 45 deg rms can also cause this)")
-
-    # ---- the chain's own angle estimate, without and with the calibration ----
-    az_u, el_u = _chain_angles(pipe.angle, z)
-    cal_pipe = Pipeline(sensor, settings, vector)
-    az_c, el_c = _chain_angles(cal_pipe.angle, z)
-
-    # ---- fine range: 16x zero-padded range spectrum of the loop averages, power over channels ----
-    lm = np.stack(loop_means)  # [F, slot, rx, N]
-    n_fine = FINE_RANGE_PADDING * rng_fft.fft_size
-    spec = np.fft.fft(lm * rng_fft.window.astype(np.float64), n=n_fine, axis=-1)
+def _fine_range(loop_means: np.ndarray, window: np.ndarray, fft_size: int, rb: int,
+                bin_m: float) -> tuple[float, float]:
+    """The reflector's range from a FINE_RANGE_PADDING x zero-padded range spectrum of the loop
+    averages [F, slot, rx, N], power summed over channels: (over all frames, rms over frames; NaN with
+    one frame)."""
+    n_fine = FINE_RANGE_PADDING * fft_size
+    spec = np.fft.fft(loop_means * window.astype(np.float64), n=n_fine, axis=-1)
     kc = rb * FINE_RANGE_PADDING
     ka, kb = kc - 2 * FINE_RANGE_PADDING, kc + 2 * FINE_RANGE_PADDING + 1
     pw = (np.abs(spec[..., ka:kb]) ** 2).sum(axis=(1, 2))  # [F, window]
 
-    def fine_range(p: np.ndarray) -> float:
+    def peak_m(p: np.ndarray) -> float:
         i = int(np.argmax(p[1:-1])) + 1
         return (ka + i + _log_parabola(p[i - 1], p[i], p[i + 1])) / FINE_RANGE_PADDING * bin_m
 
-    measured_range_m = fine_range(pw.sum(axis=0))
-    per_frame = np.array([fine_range(p) for p in pw])
+    measured_range_m = peak_m(pw.sum(axis=0))
+    per_frame = np.array([peak_m(p) for p in pw])
+    n_frames = loop_means.shape[0]
     range_rms_m = float(np.sqrt(np.mean((per_frame - per_frame.mean()) ** 2))) if n_frames > 1 else math.nan
+    return measured_range_m, range_rms_m
 
-    if clipped:
-        warnings.append(f"ADC clipping: {clipped} samples at full scale ({full_scale:g}); the clipped "
-                        f"channels' gains are wrong: reduce the reflector's size or move it further away")
+
+def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_range_m: float,
+                         azimuth_deg: float = 0.0, elevation_deg: float = 0.0, *,
+                         search_cells: int = DEFAULT_SEARCH_CELLS) -> CalibrationResult:
+    """Measure the virtual channels' gains and the range bias from canonical frames (complex64
+    [chirp, rx, sample]) of a static point reflector at (target_range_m, azimuth_deg,
+    elevation_deg). Pure: no I/O. Raises CubecastError when the reflector cannot be found.
+    The steps and checks are those of the module docstring, in that order."""
+    from .chain.pipeline import Pipeline  # the chain imports numba kernels: load on use
+
+    r0, az0, el0 = _check_target(target_range_m, azimuth_deg, elevation_deg, search_cells)
+    settings = calibration_settings()
+    pipe = Pipeline(sensor, settings)
+    rng_fft, dop = pipe.range_fft, pipe.doppler_fft
+    bin_m, n_range, n_dop = rng_fft.bin_m, rng_fft.n_bins, dop.fft_size
+    lo, hi = _search_window(sensor, r0, search_cells, bin_m, n_range)
+    c0 = n_dop // 2  # zero Doppler in the (shifted) detection map; column 0 of the spectrum
+    sums = _run_front_end(pipe, sensor, frames, lo, hi, _noise_cells(sensor, n_range, n_dop, c0, lo, hi))
+    n_frames, mean_map = sums.n_frames, sums.mean_map
+    rb = _find_reflector(mean_map[:, c0], lo, hi, bin_m, r0, search_cells)
+    j = rb - lo + 1  # index of the reflector's bin in the stored window
+
+    sigma2_c, sigma2_v = _noise_power(pipe, sums.noise, sensor.n_rx)
+    z = _virtual_snapshots(pipe, sums.cells, j)  # [F, V]
+    rho = cell_snr(z, sigma2_v)
+    cell_snr_db = db(rho)
+    integrated_snr_db = cell_snr_db + 10.0 * math.log10(n_frames)
+    predicted_phase_deg = math.degrees(1.0 / math.sqrt(2.0 * rho * n_frames))
+    warnings = weak_reflector_warnings(cell_snr_db, integrated_snr_db, n_frames, predicted_phase_deg)
+    far_field_m, near_limit_m, near = near_limit(sensor, r0)
+    warnings += near
+    warnings += other_peak_warnings(mean_map, rb, c0, dop.n_channels * sigma2_c, bin_m,
+                                     dop.bin_hz * sensor.wavelength_m / 2.0)
+    warnings += not_static_warnings(mean_map[rb], c0, rb * bin_m)
+
+    pos_t = polar_to_cartesian(r0, az0, el0)
+    ideal = ideal_snapshot(sensor, pos_t, [rb - 1, rb, rb + 1], rng_fft.window, rng_fft.fft_size)  # [3, V]
+    g = _channel_gains(z, ideal[1])
+    vector = (1.0 / g.gain).astype(np.complex64)
+    warnings += channel_gain_warnings(g.gain, sensor.n_rx)
+    residual_phase_deg, residual_amplitude_db = _frame_residuals(g, sensor.n_virtual)
+    beside = (_virtual_snapshots(pipe, sums.cells, j - 1), _virtual_snapshots(pipe, sums.cells, j + 1))
+    neighbour_misfit_db, expected_misfit_db, misfit = neighbour_misfit(beside, g.common, g.gain, ideal, sigma2_v)
+    warnings += misfit
+    z_mean = (z * g.common[:, None]).mean(axis=0)
+    psl_unc, psl_cal, second = azimuth_beams(sensor, ideal[1], z_mean, g.gain, az0, el0)
+    warnings += second
+
+    # the chain's own angle estimate, without and with the calibration
+    az_u, el_u = _chain_angles(pipe.angle, z)
+    az_c, el_c = _chain_angles(Pipeline(sensor, settings, vector).angle, z)
+    measured_range_m, range_rms_m = _fine_range(sums.loop_means, rng_fft.window, rng_fft.fft_size, rb, bin_m)
+    warnings += clipping_warnings(sums.clipped, sensor.adc.full_scale)
 
     return CalibrationResult(
-        sensor=sensor, gain=gain, vector=vector, target_range_m=r0, azimuth_deg=az0, elevation_deg=el0,
+        sensor=sensor, gain=g.gain, vector=vector, target_range_m=r0, azimuth_deg=az0, elevation_deg=el0,
         target_position_m=pos_t, measured_range_m=measured_range_m, range_bias_m=measured_range_m - r0,
         range_rms_m=range_rms_m, range_bin=rb, frames_used=n_frames, cell_snr_db=cell_snr_db,
         integrated_snr_db=integrated_snr_db, predicted_phase_deg=predicted_phase_deg,
@@ -493,7 +416,7 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
         azimuth_calibrated_deg=float(np.mean(az_c)), elevation_calibrated_deg=float(np.mean(el_c)),
         azimuth_calibrated_std_deg=float(np.std(az_c)),
         psl_uncalibrated_db=psl_unc, psl_calibrated_db=psl_cal,
-        far_field_m=far_field_m, near_limit_m=near_limit_m, clipped_samples=clipped, warnings=warnings)
+        far_field_m=far_field_m, near_limit_m=near_limit_m, clipped_samples=sums.clipped, warnings=warnings)
 
 
 def _chain_angles(estimator, snapshots: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
