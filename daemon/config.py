@@ -17,7 +17,7 @@ API (everything else in this module is private):
                  .check_sections(known, hint="")     unknown top-level names are errors
                  .section(name, required=True)       -> Section ([name]; absent and not required:
                                                         an empty section, so defaults apply)
-                 .tables(name)                       -> list[Section] ([[name]] #0, #1, ...)
+                 .tables(name, start=0)              -> list[Section] ([[name]] #0, #1, ...)
                  .error(message)                     -> CubecastError "origin: message"
     Section      .label ("[chirp]", "[[target]] #0"; may be reassigned), .table, .origin
                  .number(name, default, gt=, ge=, lt=, le=) -> float (finite; ints accepted)
@@ -26,17 +26,21 @@ API (everything else in this module is private):
                  .string(name, default, pattern=, rule=) -> str (pattern: re.fullmatch)
                  .choice(name, options, default) -> str
                  .numbers(name, default, length=, integer=) -> list of float (or int)
-                 .number_rows(name, width, default) -> list of lists of float, e.g. [[x, z], ...]
+                 .number_rows(name, width, default, columns=) -> list of lists of float, e.g.
+                                          [[x, z], ...]; a bad row is named: `tx[1] = [1, 0, 3]`
                  .dataclass_values(cls) -> dict: every field of a dataclass with simple defaults
                                           (bool, int, float, str), typed as its default, for cls(**d)
                  .section(name, required=True) / .tables(name, start=0): nested tables
-                 .raw(name, default), .has(name): unchecked access (marks the field as known)
+                 .raw(name, default): unchecked value (marks the field as known); .has(name)
                  .fail(name, value, rule), .error(message) -> CubecastError to raise
-                 .check_unknown(expected=())         fields never asked for are errors
+                 .check_unknown(expected=())         fields never asked for (nor in expected)
+                                                     are errors
 
 `default` omitted means the field is required ("[link] tx_power_dbm is missing"). A default is
 returned as given, unchecked (so None can mean "not given"). Values in messages are shown with
-repr(). The parsed document is left as TOML produced it, so a digest of `Document.data` is a digest
+repr(). Rules read "must be > 0", "must be >= 8", "must be in [0, 50]" (interval notation),
+"must be a whole number", "must be one of 'complex', 'real'"; a misspelt name is answered with
+"unknown field antena_gain (did you mean antenna_gain?)". The parsed document is left as TOML produced it, so a digest of `Document.data` is a digest
 of the file's content, not of its formatting.
 """
 

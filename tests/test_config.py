@@ -266,3 +266,13 @@ def test_settings_file_through_the_reader(tmp_path):
         parse_settings("[proccessing]\ncfar_pfa = 1e-3\n", "p.toml")
     with raises(r"^cannot read settings .*absent\.toml: No such file"):
         load_settings(tmp_path / "absent.toml")
+
+
+def test_unknown_fields_checked_before_reading():
+    # fields still to be read count as known, so a typo is named before any "is missing"
+    t = parse_toml("[t]\nrang_m = 3.0\n", "s.toml").section("t")
+    with raises(r"^s\.toml: \[t\] unknown field rang_m \(did you mean range_m\?\)$"):
+        t.check_unknown(("range_m", "azimuth_deg"))
+    ok = parse_toml("[t]\nrange_m = 3.0\n").section("t")
+    ok.check_unknown(("range_m", "azimuth_deg"))
+    assert ok.number("range_m", gt=0) == 3.0
