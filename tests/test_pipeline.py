@@ -302,7 +302,7 @@ def test_settings_errors_named():
         parse_settings('[processing]\ncfar_pfa = 0.7\n')
     with pytest.raises(CubecastError, match=r"range_fft_size = 100: must be 0"):
         parse_settings('[processing]\nrange_fft_size = 100\n')
-    with pytest.raises(CubecastError, match=r"cfar_train_range = 'eight': must be a int"):
+    with pytest.raises(CubecastError, match=r"cfar_train_range = 'eight': must be a whole number"):
         parse_settings('[processing]\ncfar_train_range = "eight"\n')
 
 
