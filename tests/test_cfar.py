@@ -15,6 +15,7 @@ from cubecast.daemon.chain import cfar as cfar_mod
 from cubecast.daemon.chain import cfar_design
 from cubecast.daemon.chain.cfar import Cfar, CfarSettings, noise_statistic_mean, threshold_factor
 from cubecast.daemon.errors import CubecastError
+from cubecast.daemon.settings import ProcessingSettings
 
 PFA_GRID = [1e-2, 1e-4, 1e-6]
 
@@ -462,17 +463,28 @@ def test_bad_settings_raise(kwargs, field):
         CfarSettings(**kwargs)
 
 
+def test_defaults_are_the_processing_defaults():
+    # the chain is always built from [processing]; a detector made without arguments must not
+    # silently design something else
+    p = ProcessingSettings()
+    s = CfarSettings()
+    assert (s.kind, s.train_range, s.guard_range, s.train_doppler, s.guard_doppler, s.pfa, s.os_rank_fraction) == (
+        p.cfar_kind, p.cfar_train_range, p.cfar_guard_range, p.cfar_train_doppler, p.cfar_guard_doppler, p.cfar_pfa,
+        p.cfar_os_rank_fraction)
+
+
 def test_bad_geometry_and_maps_raise():
-    s = CfarSettings(train_doppler=20, guard_doppler=2)
+    ca = dict(kind="ca", train_range=8, guard_range=2, train_doppler=4, guard_doppler=1, pfa=1e-4)
+    s = CfarSettings(**{**ca, "train_doppler": 20, "guard_doppler": 2})
     with pytest.raises(CubecastError, match="n_doppler"):
         Cfar(s, 128, 32, 12)
     with pytest.raises(CubecastError, match="range_max_bin"):
-        Cfar(CfarSettings(range_max_bin=200), 128, 64, 12)
+        Cfar(CfarSettings(**ca, range_max_bin=200), 128, 64, 12)
     with pytest.raises(CubecastError, match="n_integrated"):
-        Cfar(CfarSettings(), 128, 64, 0)
+        Cfar(CfarSettings(**ca), 128, 64, 0)
     with pytest.raises(CubecastError, match="training cells"):
-        Cfar(CfarSettings(train_range=1, guard_range=3, train_doppler=0), 3, 16, 1)
-    det = Cfar(CfarSettings(), 128, 64, 12)
+        Cfar(CfarSettings(**{**ca, "train_range": 1, "guard_range": 3, "train_doppler": 0}), 3, 16, 1)
+    det = Cfar(CfarSettings(**ca), 128, 64, 12)
     with pytest.raises(CubecastError, match="shape"):
         det.detect(np.zeros((64, 128), dtype=np.float32))
     with pytest.raises(CubecastError, match="float32"):

@@ -63,6 +63,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import CubecastError, is_integer, is_real
+from ..settings import ProcessingSettings
 from .cfar_design import (CFAR_KINDS, N_INTEGRATED_MAX, PFA_MAX, PFA_MIN, noise_statistic_mean, range_bin_designs,
                           threshold_factor)
 from .cfar_kernels import _extract, _os_sparse, _os_statistic, _sum_statistic, _window_sums
@@ -95,17 +96,21 @@ _OS_FLOOR_STRIDE = 31
 # settings
 # ----------------------------------------------------------------------------------------------------
 
+_DEFAULTS = ProcessingSettings()  # the chain is always built from these: one set of defaults
+
+
 @dataclass(frozen=True)
 class CfarSettings:
-    """What the CFAR detector does. Window sizes count cells on EACH side of the cell under test."""
+    """What the CFAR detector does. Window sizes count cells on EACH side of the cell under test.
+    Defaults are those of the [processing] settings (ProcessingSettings.cfar_*)."""
 
-    kind: str = "ca"
-    train_range: int = 8
-    guard_range: int = 2
-    train_doppler: int = 4
-    guard_doppler: int = 1
-    pfa: float = 1e-4
-    os_rank_fraction: float = 0.75
+    kind: str = _DEFAULTS.cfar_kind
+    train_range: int = _DEFAULTS.cfar_train_range
+    guard_range: int = _DEFAULTS.cfar_guard_range
+    train_doppler: int = _DEFAULTS.cfar_train_doppler
+    guard_doppler: int = _DEFAULTS.cfar_guard_doppler
+    pfa: float = _DEFAULTS.cfar_pfa
+    os_rank_fraction: float = _DEFAULTS.cfar_os_rank_fraction
     range_min_bin: int | None = None  # first range bin reported (inclusive); None = 0
     range_max_bin: int | None = None  # end of reported range bins (exclusive); None = n_range
     local_max: bool = True  # keep only crossings that are the maximum of their 3x3 neighbourhood
