@@ -173,6 +173,31 @@ class CfarDetections:
 # the detector
 # ----------------------------------------------------------------------------------------------------
 
+def _training_counts(s: CfarSettings, n_range: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Training cells per range bin (window truncated at the range edges): all of them, the near half
+    and the far half (see the module docstring)."""
+    wd = s.guard_doppler + s.train_doppler
+    wr = s.guard_range + s.train_range
+    width_full = 2 * wd + 1
+    width_guard = 2 * s.guard_doppler + 1
+    n_all = np.zeros(n_range, dtype=np.int64)
+    n_near = np.zeros(n_range, dtype=np.int64)
+    n_far = np.zeros(n_range, dtype=np.int64)
+    for r in range(n_range):
+        r0, r1 = max(r - wr, 0), min(r + wr + 1, n_range)
+        g0, g1 = max(r - s.guard_range, 0), min(r + s.guard_range + 1, n_range)
+        n_all[r] = (r1 - r0) * width_full - (g1 - g0) * width_guard
+        n_near[r] = (r - r0) * width_full - (r - g0) * width_guard + s.train_doppler
+        n_far[r] = (r1 - r - 1) * width_full - (g1 - r - 1) * width_guard + s.train_doppler
+    if np.any(n_all < 1):
+        bad = int(np.nonzero(n_all < 1)[0][0])
+        raise CubecastError(
+            f"cfar window: range bin {bad} has no training cells with n_range = {n_range}, "
+            f"train_range = {s.train_range}, guard_range = {s.guard_range}, train_doppler = 0: "
+            "every range bin needs at least one training cell")
+    return n_all, n_near, n_far
+
+
 class Cfar:
     """2D CFAR detector for one map geometry; all thresholds and buffers are prepared here."""
 
@@ -208,37 +233,22 @@ class Cfar:
         self._r_lo, self._r_hi = int(r_lo), int(r_hi)
         self._kind_code = _KIND_CODE[s.kind]
 
-        # training-cell counts per range bin (window truncated at the range edges)
-        width_full = 2 * wd + 1
-        width_guard = 2 * s.guard_doppler + 1
-        n_all = np.zeros(n_range, dtype=np.int64)
-        n_near = np.zeros(n_range, dtype=np.int64)
-        n_far = np.zeros(n_range, dtype=np.int64)
-        for r in range(n_range):
-            r0, r1 = max(r - wr, 0), min(r + wr + 1, n_range)
-            g0, g1 = max(r - s.guard_range, 0), min(r + s.guard_range + 1, n_range)
-            n_all[r] = (r1 - r0) * width_full - (g1 - g0) * width_guard
-            n_near[r] = (r - r0) * width_full - (r - g0) * width_guard + s.train_doppler
-            n_far[r] = (r1 - r - 1) * width_full - (g1 - r - 1) * width_guard + s.train_doppler
-        if np.any(n_all < 1):
-            bad = int(np.nonzero(n_all < 1)[0][0])
-            raise CubecastError(
-                f"cfar window: range bin {bad} has no training cells with n_range = {n_range}, "
-                f"train_range = {s.train_range}, guard_range = {s.guard_range}, train_doppler = 0: "
-                "every range bin needs at least one training cell")
-        self.n_train = n_all.copy()
-        self.n_train_near = n_near.copy()
-        self.n_train_far = n_far.copy()
+        self.n_train, self.n_train_near, self.n_train_far = _training_counts(s, n_range)
 
         # threshold factor and noise scale per range bin (one design per distinct training set)
         factor, noise_scale, rank0, mean_w_all = range_bin_designs(
-            s.kind, float(s.pfa), float(s.os_rank_fraction), n_integrated, n_all, n_near)
+            s.kind, float(s.pfa), float(s.os_rank_fraction), n_integrated, self.n_train, self.n_train_near)
         self.factor = factor
         self.noise_scale = noise_scale
         self._factor32 = factor.astype(np.float32)[:, None]
         self._rank0 = rank0
 
-        # buffers reused every frame
+        self._prepare_buffers(mean_w_all)
+
+    def _prepare_buffers(self, mean_w_all: np.ndarray) -> None:
+        """Buffers reused every frame, and the sparse OS floor."""
+        s, n_range, n_doppler, wd, wr = self.settings, self.n_range, self.n_doppler, self._wd, self._wr
+        factor, n_integrated = self.factor, self.n_integrated
         shape = (n_range, n_doppler)
         self._stat = np.zeros(shape, dtype=np.float32)
         self._threshold = np.zeros(shape, dtype=np.float32)
@@ -248,7 +258,7 @@ class Cfar:
         self._out_p = np.empty(n_cells, dtype=np.float32)
         self._out_n = np.empty(n_cells, dtype=np.float32)
         if s.kind == "os":
-            n_max = int(n_all.max())
+            n_max = int(self.n_train.max())
             self._padded = np.zeros((n_range, n_doppler + 2 * wd), dtype=np.float32)
             self._scratch = np.empty(n_max + 1, dtype=np.float32)
             self._band = np.empty(n_max + 1, dtype=np.float32)
