@@ -20,21 +20,26 @@ from a file, k x frame_period_s (the file holds no clock).
 Layers: the stream layout (streamlayout.py: the file, FrameConverter), the Reassembler (reassembly.py:
 datagrams -> frames and counters; pure, no I/O), and here StreamAdapter (sockets, files, publishing,
 health lines once a second, SIGINT/SIGTERM via the CLI).
+
+Logging (logger `cubecast.daemon.adapter`): the start line, the first datagram's header fields, the
+health lines and the summary at INFO; warnings, dropped frames, malformed datagrams and restarts at
+WARNING, each kind at most once per EVENT_LOG_INTERVAL_S (logs.RateLimitFilter).
 """
 
 from __future__ import annotations
 
+import logging
 import math
 import re
 import select
 import socket
 import struct
-import sys
 import threading
 import time
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import Iterator
 
+from . import logs
 from .errors import CubecastError
 from .reassembly import DEFAULT_WINDOW_FRAMES, AssembledFrame, Reassembler
 from .sensor import Sensor
@@ -42,10 +47,9 @@ from .streamlayout import MAX_DATAGRAM_BYTES, StreamLayout, load_layout
 
 DEFAULT_RCVBUF_BYTES = 8 * 1024 * 1024
 DATAGRAM_LENGTH = struct.Struct("<I")
+EVENT_LOG_INTERVAL_S = 5.0  # at most one line per kind of event (dropped, malformed, restart) in this time
 
-
-def _stderr_line(text: str) -> None:
-    print(text, file=sys.stderr, flush=True)
+log = logging.getLogger(__name__)
 
 
 # ---- datagram files -------------------------------------------------------------------------------
@@ -82,9 +86,9 @@ class DatagramFileWriter:
         return False
 
 
-def iter_datagram_file(path: str | Path, warn: Callable[[str], None] | None = None) -> Iterator[memoryview]:
+def iter_datagram_file(path: str | Path) -> Iterator[memoryview]:
     """Yields each datagram of a datagram file as a memoryview of a reused buffer (valid until the next
-    one). A truncated last record is reported through `warn` and ends the iteration; a length above
+    one). A truncated last record is logged as a warning and ends the iteration; a length above
     65535 bytes (no UDP datagram is larger: not a datagram file) raises CubecastError."""
     try:
         f = open(path, "rb")
@@ -99,8 +103,8 @@ def iter_datagram_file(path: str | Path, warn: Callable[[str], None] | None = No
             if not head:
                 return
             if len(head) < 4:
-                if warn:
-                    warn(f"{path}: the last record is truncated at byte {pos} ({len(head)} of 4 length bytes); ignored")
+                log.warning("cubecast adapter: warning: %s: the last record is truncated at byte %d (%d of 4 length "
+                            "bytes); ignored", path, pos, len(head))
                 return
             (n,) = DATAGRAM_LENGTH.unpack(head)
             if n > MAX_DATAGRAM_BYTES:
@@ -108,8 +112,8 @@ def iter_datagram_file(path: str | Path, warn: Callable[[str], None] | None = No
                                     f"{MAX_DATAGRAM_BYTES} bytes (is this a datagram file?)")
             got = f.readinto(view[:n])
             if got < n:
-                if warn:
-                    warn(f"{path}: the last record is truncated at byte {pos} ({got} of {n} bytes); ignored")
+                log.warning("cubecast adapter: warning: %s: the last record is truncated at byte %d (%d of %d bytes); "
+                            "ignored", path, pos, got, n)
                 return
             pos += 4 + n
             yield view[:n]
@@ -150,8 +154,7 @@ class StreamAdapter:
                  listen: str | None = None, file: str | Path | None = None, frames: int = 0,
                  speed: float | None = None, window_frames: int = DEFAULT_WINDOW_FRAMES, wait_s: float = 1.0,
                  rcvbuf_bytes: int = DEFAULT_RCVBUF_BYTES, save_datagrams: str | Path | None = None,
-                 context=None, log: Callable[[str], None] | None = None, quiet: bool = False,
-                 health_interval_s: float = 1.0):
+                 context=None, health_interval_s: float = 1.0):
         if (listen is None) == (file is None):
             raise CubecastError("adapter: give exactly one of --listen udp://HOST:PORT or --file PATH")
         if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
@@ -170,8 +173,6 @@ class StreamAdapter:
         self.frames, self.speed, self.wait_s = frames, speed, wait_s
         self.rcvbuf_bytes, self.save_datagrams = rcvbuf_bytes, save_datagrams
         self.context = context
-        self.write = log or _stderr_line
-        self.quiet = quiet
         self.health_interval_s = health_interval_s
         self.ready = threading.Event()
         self.udp_address: tuple | None = None
@@ -182,8 +183,7 @@ class StreamAdapter:
         self._epoch = 0
         self._pace: tuple[float, int] | None = None
         self._warned: set[str] = set()
-        from .service import RateLimitedLog
-        self._event_log = RateLimitedLog(self.write, 5.0, "cubecast adapter: ")
+        self._event_limit = logs.RateLimitFilter(EVENT_LOG_INTERVAL_S)  # attached to `log` while running
 
     def bind(self) -> str:
         """Bind the publishing socket (before run, to learn the endpoint of tcp://...:*); returns it."""
@@ -242,24 +242,22 @@ class StreamAdapter:
                 continue
             if kind == "frame_number":
                 self._warned.add(kind)
-                self.write(f"cubecast adapter: warning: {text}; check that the sensor description's frame "
-                           f"(chirps_per_frame x rx x samples_per_chirp) matches what the board streams")
+                log.warning("cubecast adapter: warning: %s; check that the sensor description's frame "
+                            "(chirps_per_frame x rx x samples_per_chirp) matches what the board streams", text)
                 continue
-            self._event_log(kind, text)
-        self._event_log.flush()
+            log.warning("cubecast adapter: %s: %s", kind, text, extra={"reason": kind})
+        self._event_limit.flush(log, prefix="cubecast adapter: ")
 
     def _show_first(self) -> None:
         first = self.reassembler.first_header
         if first is not None and "first" not in self._warned:
             self._warned.add("first")
-            if not self.quiet:
-                self.write("cubecast adapter: first datagram: " + ", ".join(f"{k} {v}" for k, v in first.items()))
+            log.info("cubecast adapter: first datagram: %s", ", ".join(f"{k} {v}" for k, v in first.items()))
 
     def _health(self) -> None:
         s = self.stats()
         self.last_health = s
-        if not self.quiet:
-            self.write(f"cubecast adapter: {_format_stats(s)}; published {s['frames_published']}")
+        log.info("cubecast adapter: %s; published %d", _format_stats(s), s["frames_published"])
 
     def _open_udp(self) -> socket.socket:
         family, host, port = self.udp
@@ -268,8 +266,8 @@ class StreamAdapter:
             sock.setsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF, self.rcvbuf_bytes)
             got = sock.getsockopt(socket.SOL_SOCKET, socket.SO_RCVBUF)
             if got < self.rcvbuf_bytes:  # Linux reports twice the size it grants
-                self.write(f"cubecast adapter: warning: the UDP receive buffer is {got} bytes, {self.rcvbuf_bytes} "
-                           "asked for; bursts may be lost (on Linux raise net.core.rmem_max)")
+                log.warning("cubecast adapter: warning: the UDP receive buffer is %d bytes, %d asked for; bursts "
+                            "may be lost (on Linux raise net.core.rmem_max)", got, self.rcvbuf_bytes)
             sock.bind((host, port))
         except OSError as exc:
             sock.close()
@@ -286,10 +284,9 @@ class StreamAdapter:
         buf = bytearray(MAX_DATAGRAM_BYTES + 1)
         view = memoryview(buf)
         r = self.reassembler
-        if not self.quiet:
-            self.write(f"cubecast adapter: listening on udp {self.udp_address[0]}:{self.udp_address[1]}, publishing "
-                       f"'{self.sensor.sensor_id}' on {self.publisher.endpoint} (run {self.publisher.run_id}, "
-                       f"frames of {r.frame_bytes} stream bytes)")
+        log.info("cubecast adapter: listening on udp %s:%s, publishing '%s' on %s (run %s, frames of %d stream "
+                 "bytes)", self.udp_address[0], self.udp_address[1], self.sensor.sensor_id, self.publisher.endpoint,
+                 self.publisher.run_id, r.frame_bytes)
         self.ready.set()
         next_health = time.monotonic() + self.health_interval_s
         try:
@@ -320,13 +317,11 @@ class StreamAdapter:
 
     def _run_file(self, stop: threading.Event) -> None:
         r = self.reassembler
-        if not self.quiet:
-            self.write(f"cubecast adapter: reading {self.file}, publishing '{self.sensor.sensor_id}' on "
-                       f"{self.publisher.endpoint} (run {self.publisher.run_id}, frames of {r.frame_bytes} stream "
-                       "bytes)")
+        log.info("cubecast adapter: reading %s, publishing '%s' on %s (run %s, frames of %d stream bytes)",
+                 self.file, self.sensor.sensor_id, self.publisher.endpoint, self.publisher.run_id, r.frame_bytes)
         self.ready.set()
         next_health = time.monotonic() + self.health_interval_s
-        for dg in iter_datagram_file(self.file, warn=lambda t: self.write(f"cubecast adapter: warning: {t}")):
+        for dg in iter_datagram_file(self.file):
             if stop.is_set() or self._done():
                 break
             with self._lock:
@@ -344,6 +339,7 @@ class StreamAdapter:
         """Until the stream ends (file), --frames, or `stop`; then flush. Returns the final stats."""
         stop = stop or threading.Event()
         self.bind()
+        log.addFilter(self._event_limit)
         try:
             self.publisher.wait_for_subscribers(1, self.wait_s, stop)
             if self.udp is not None:
@@ -358,35 +354,37 @@ class StreamAdapter:
                 self.publisher.close()
                 self.publisher = None
             self._log_events()
-            self._event_log.flush(force=True)
+            self._event_limit.flush(log, force=True, prefix="cubecast adapter: ")
+            log.removeFilter(self._event_limit)
         s = self.stats()
         self.last_health = s
-        if not self.quiet:
-            self.write(f"cubecast adapter: published {s['frames_published']} frames; {_format_stats(s)}")
+        log.info("cubecast adapter: published %d frames; %s", s["frames_published"], _format_stats(s))
         return s
 
 
 def adapter(layout_path: str, sensor_path: str, pub: str, *, listen: str | None = None, file: str | None = None,
             frames: int = 0, speed: str = "1", window_frames: int = DEFAULT_WINDOW_FRAMES,
-            save_datagrams: str | None = None, quiet: bool = False) -> int:
+            save_datagrams: str | None = None) -> int:
     """`cubecast adapter`: until the file ends, --frames, SIGINT or SIGTERM."""
     from .sensor import load_sensor
-    from .service import stop_on_signals
+    from .netio import stop_on_signals
     from .sources import parse_speed
     layout = load_layout(layout_path)
     sensor = load_sensor(sensor_path)
     stop = threading.Event()
     with stop_on_signals(stop):
         a = StreamAdapter(layout, sensor, pub, listen=listen, file=file, frames=frames, speed=parse_speed(speed),
-                          window_frames=window_frames, save_datagrams=save_datagrams, quiet=quiet)
+                          window_frames=window_frames, save_datagrams=save_datagrams)
         a.run(stop)
     return 0
 
 
 def _run_args(args) -> int:
+    if args.quiet:  # the subcommand's own --quiet: only the log level, as the command's -q
+        root = logging.getLogger(logs.ROOT)
+        root.setLevel(max(root.level, logging.WARNING))
     return adapter(args.layout, args.sensor, args.pub, listen=args.listen, file=args.file, frames=args.frames,
-                   speed=args.speed, window_frames=args.window_frames, save_datagrams=args.save_datagrams,
-                   quiet=args.quiet)
+                   speed=args.speed, window_frames=args.window_frames, save_datagrams=args.save_datagrams)
 
 
 def add_parser(subparsers):
@@ -409,7 +407,7 @@ def add_parser(subparsers):
                         f"(default {DEFAULT_WINDOW_FRAMES})")
     p.add_argument("--save-datagrams", metavar="PATH",
                    help="with --listen: also write every datagram to a datagram file")
-    p.add_argument("--quiet", action="store_true", help="no start, per-second and summary lines (warnings and "
-                                                        "dropped frames are still reported)")
+    p.add_argument("--quiet", action="store_true", help="log warnings only: no start, per-second and summary lines "
+                                                        "(dropped frames are still reported)")
     p.set_defaults(func=_run_args)
     return p

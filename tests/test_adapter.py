@@ -13,6 +13,7 @@ Every wait is bounded; UDP uses 127.0.0.1 and a port the OS picks.
 from __future__ import annotations
 
 import argparse
+import logging
 import signal
 import socket
 import struct
@@ -258,6 +259,22 @@ def expected_counts(sent, withheld, frame_bytes):
     return {"lost": len(withheld), "duplicates": dups, "reordered": reordered}, dropped
 
 
+ADAPTER_LOGGER = "cubecast.daemon.adapter"
+
+
+@pytest.fixture
+def adapter_log(caplog, monkeypatch):
+    """The adapter's log records at INFO and above, whatever logging set-up an earlier test left
+    (logs.configure stops propagation at the `cubecast` logger, before caplog's handler)."""
+    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
+    caplog.set_level(logging.INFO, logger=ADAPTER_LOGGER)
+    return caplog
+
+
+def adapter_records(caplog, level=None):
+    return [r for r in caplog.records if r.name == ADAPTER_LOGGER and (level is None or r.levelno == level)]
+
+
 def write_file(path, datagrams):
     with open(path, "wb") as f:
         for d in datagrams:
@@ -266,7 +283,7 @@ def write_file(path, datagrams):
 
 def run_file(layout, sensor, path, **kw):
     """Run the adapter over a datagram file at full speed; collect what a SUB on its PUB receives."""
-    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", file=path, speed=None, wait_s=10, quiet=True, **kw)
+    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", file=path, speed=None, wait_s=10, **kw)
     col = Collector(a.bind())
     try:
         stats = a.run()
@@ -488,17 +505,18 @@ def test_example_layout_with_the_bundled_sensor(tmp_path):
     check_published(msgs, frames, sensor, {0, 1})
 
 
-def test_datagram_file_reader(tmp_path):
+def test_datagram_file_reader(tmp_path, adapter_log):
     path = tmp_path / "d.dgram"
     data = [b"", b"x" * 7, bytes(range(256)) * 4]
     write_file(path, data)
     assert [bytes(v) for v in iter_datagram_file(path)] == data
-    # a truncated tail is reported and ignored
+    assert adapter_records(adapter_log) == []
+    # a truncated tail is reported (a warning) and ignored
     with open(path, "ab") as f:
         f.write(struct.pack("<I", 100) + b"abc")
-    warnings = []
-    assert [bytes(v) for v in iter_datagram_file(path, warnings.append)] == data
-    assert len(warnings) == 1 and "truncated" in warnings[0]
+    assert [bytes(v) for v in iter_datagram_file(path)] == data
+    warnings = adapter_records(adapter_log, logging.WARNING)
+    assert len(warnings) == 1 and "truncated" in warnings[0].getMessage() and str(path) in warnings[0].getMessage()
     # a length no UDP datagram can have (its length field is 16 bits: Postel, RFC 768, 1980)
     bad = tmp_path / "bad.dgram"
     bad.write_bytes(struct.pack("<I", 70000) + b"\0" * 10)
@@ -534,7 +552,7 @@ def test_udp_live_matches_the_simulated_frames_and_the_saved_datagrams(tmp_path)
     counts, dropped = expected_counts(sent, withheld, fb)
     saved = tmp_path / "live.dgram"
 
-    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", wait_s=10, quiet=True,
+    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", wait_s=10,
                       save_datagrams=saved, rcvbuf_bytes=4 * 1024 * 1024)
     col = Collector(a.bind())
     stop = threading.Event()
@@ -575,6 +593,8 @@ def test_udp_live_matches_the_simulated_frames_and_the_saved_datagrams(tmp_path)
 def _adapter_command(*args):
     code = ("import argparse, sys\n"
             "from cubecast.daemon.adapter import add_parser\n"
+            "from cubecast.daemon.logs import configure\n"
+            "configure()\n"  # what the cubecast command does before it runs a subcommand
             "p = argparse.ArgumentParser(prog='cubecast')\n"
             "add_parser(p.add_subparsers(dest='command', required=True))\n"
             "a = p.parse_args(sys.argv[1:])\n"
@@ -716,9 +736,9 @@ def test_serve_turns_the_adapter_frames_into_the_offline_point_clouds(tmp_path):
     path = tmp_path / "yard.dgram"
     write_file(path, [p[3] for p in packetize(stream, 1456, header, fb)])
     a = StreamAdapter(load_layout(SAMPLES / "example_layout.toml"), sensor, "tcp://127.0.0.1:*", file=path,
-                      speed=None, wait_s=30, quiet=True)
+                      speed=None, wait_s=30)
     ep = a.bind()
-    with running_service(sensor, ep, queue_depth=16, quiet=True) as svc:
+    with running_service(sensor, ep, queue_depth=16) as svc:
         col = Collector(svc.pub_endpoint)
         try:
             assert col.wait_for(lambda c: c.of("sensor"), 10)
@@ -733,7 +753,7 @@ def test_serve_turns_the_adapter_frames_into_the_offline_point_clouds(tmp_path):
         assert len(rec) > 0 and m.data.tobytes() == rec.tobytes()
 
 
-def test_health_lines_while_running_and_the_summary(tmp_path):
+def test_health_lines_while_running_and_the_summary(tmp_path, adapter_log):
     """Paced at the frame period (0.1 s), 6 frames take 0.5 s: with a 0.1 s health interval the adapter
     reports its counters several times, names the first datagram's fields, logs the dropped frame."""
     sensor = small_sensor()
@@ -742,13 +762,42 @@ def test_health_lines_while_running_and_the_summary(tmp_path):
     packets = packetize(stream, 512, header_a, 1536)
     path = tmp_path / "h.dgram"
     write_file(path, [p[3] for i, p in enumerate(packets) if i != 7])  # frame 2 loses a datagram
-    lines = []
     a = StreamAdapter(parse_layout(LAYOUT_A), sensor, "tcp://127.0.0.1:*", file=path, speed=1.0, wait_s=0,
-                      log=lines.append, health_interval_s=0.1)
+                      health_interval_s=0.1)
     s = a.run()
     assert s["frames_published"] == 5 and s["frames_dropped"] == 1 and s["lost"] == 1
+    info = [r.getMessage() for r in adapter_records(adapter_log, logging.INFO)]
+    warnings = [r.getMessage() for r in adapter_records(adapter_log, logging.WARNING)]
     assert any(line.startswith("cubecast adapter: first datagram: seq 0, flags -2, offset 0, frame 100")
-               for line in lines), lines
-    assert sum("; published " in line for line in lines) >= 2, lines
-    assert any("frame 2: 512 of 1536 bytes missing" in line for line in lines), lines
-    assert lines[-1].startswith("cubecast adapter: published 5 frames; packets 17")
+               for line in info), info
+    assert sum("; published " in line for line in info) >= 2, info
+    assert any("frame 2: 512 of 1536 bytes missing" in line for line in warnings), warnings
+    assert adapter_records(adapter_log)[-1].getMessage().startswith("cubecast adapter: published 5 frames; packets 17")
+    assert logging.getLogger(ADAPTER_LOGGER).filters == []  # the rate limit is the run's own
+
+
+def test_cli_quiet_only_sets_the_log_level(tmp_path, caplog, monkeypatch):
+    """--quiet: the warning of a truncated datagram file passes, the start, health and summary lines do not."""
+    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
+    sensor = small_sensor()
+    stream = encode_frame(raw_frames(sensor, 1)[0], ["chirp", "rx", "sample", "iq"], "iq")
+    path = tmp_path / "q.dgram"
+    write_file(path, [p[3] for p in packetize(stream, 512, header_a, 1536)])
+    with open(path, "ab") as f:
+        f.write(b"\x01")
+    (tmp_path / "layout.toml").write_text(LAYOUT_A)
+    (tmp_path / "sensor.toml").write_text(sensor_text(**SMALL))
+    p = argparse.ArgumentParser(prog="cubecast")
+    add_parser(p.add_subparsers(dest="command", required=True))
+    args = p.parse_args(["adapter", "--file", str(path), "--layout", str(tmp_path / "layout.toml"), "--sensor",
+                         str(tmp_path / "sensor.toml"), "--pub", "tcp://127.0.0.1:*", "--speed", "max", "--quiet"])
+    root = logging.getLogger("cubecast")
+    saved = root.level
+    try:
+        assert args.func(args) == 0
+        assert root.level == logging.WARNING
+    finally:
+        root.setLevel(saved)
+    records = adapter_records(caplog)
+    assert [r.levelno for r in records] == [logging.WARNING], [r.getMessage() for r in records]
+    assert "truncated" in records[0].getMessage()
