@@ -7,11 +7,15 @@ The contract is /work/notes/wire.md (README "Wire format"). Every message is thr
 Encoders return the three parts as a list (the payload a zero-copy memoryview of the array passed in;
 the caller must not modify that array afterwards, since ZeroMQ may still be sending it). `decode`
 validates everything before any value is used: sizes first (topic, header, payload), then msgpack
-with bounded lengths (no pickle, no eval, no ext types), then every header field's type and range,
-then the payload against the header (length, CRC-32). A failure raises WireError, a CubecastError
-with `reason` (one of REASONS) and a message naming the field, its value and the rule.
+with bounded lengths (no pickle, no eval, no ext types), then every header field's type and range
+against the kind's schema (the Structs below; daemon/schema.py), then the payload against the
+header (length, CRC-32). A failure raises WireError, a CubecastError with `reason` (one of REASONS)
+and a message naming the field, its value and the rule.
 
 Header keys a kind does not define are ignored (forward compatibility within version 1).
+
+This module is the contract shared by the daemon, the workers and the viewer: it imports nothing of
+the chain or the service (the viewer imports it), only errors.py and schema.py.
 """
 
 from __future__ import annotations
@@ -20,14 +24,18 @@ import math
 import re
 import zlib
 from dataclasses import dataclass
-from typing import Any, Iterable, Sequence
+from typing import TYPE_CHECKING, Annotated, Any, Literal, Sequence
 
 import msgpack
 import numpy as np
+from msgspec import Meta
 
-from .chain.points import FRAME_FIELDS, POINT_FIELDS, RECORD_DTYPE
 from .errors import CubecastError
-from .sensor import Sensor, parse_sensor
+from .schema import (MAX_ENTRIES, Count, Digest, Finite, NonNegative, Positive, Schema, integer, optional,
+                     shape_rule, short, text, unpack, validate)
+
+if TYPE_CHECKING:
+    from .sensor import Sensor
 
 WIRE_VERSION = 1
 KINDS = ("adc", "points", "rdmap", "sensor", "health")
@@ -43,14 +51,30 @@ MAX_NDIM = 4
 MAX_DIM = 1 << 31
 MAX_RUN_CHARS = 64
 MAX_SENSOR_ID_CHARS = 64
-MAX_FIELD_ENTRIES = 1024  # msgpack array and map lengths
+MAX_FIELD_ENTRIES = MAX_ENTRIES  # msgpack array and map lengths
 RDMAP_MAX_RANGE_CELLS = 128
 RDMAP_MAX_DOPPLER_CELLS = 64
 
-# [name, unit, dtype] of each record field, in order: exactly RECORD_DTYPE (64 bytes, no padding)
-POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = tuple(FRAME_FIELDS) + tuple(
-    (name, unit, "<f4") for name, unit in POINT_FIELDS)
-assert RECORD_DTYPE.itemsize == 64 and tuple(f[0] for f in POINT_WIRE_FIELDS) == RECORD_DTYPE.names
+# The sensor file's rule for ids (sensor.py: letters, digits, '-', '_' or '.'); `\w` is exactly
+# str.isalnum() plus '_'. At most 64 characters on the wire; never '/', which ends the id in a topic.
+SENSOR_ID_RULE = f"1..{MAX_SENSOR_ID_CHARS} letters, digits, '-', '_' or '.'"
+_SENSOR_ID_RE = re.compile(r"[\w.-]{1,%d}" % MAX_SENSOR_ID_CHARS)
+
+# [name, unit, dtype] of each record field, in order: 64 bytes, no padding (README "Wire format").
+# The chain's point records (chain/points.RECORD_DTYPE) have exactly this layout (tests check it).
+POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
+    ("frame", "", "<u8"), ("timestamp_s", "s", "<f8"),
+    ("x_m", "m", "<f4"), ("y_m", "m", "<f4"), ("z_m", "m", "<f4"),
+    ("range_m", "m", "<f4"), ("azimuth_deg", "deg", "<f4"), ("elevation_deg", "deg", "<f4"),
+    ("velocity_mps", "m/s", "<f4"), ("snr_db", "dB", "<f4"),
+    ("sigma_range_m", "m", "<f4"), ("sigma_azimuth_deg", "deg", "<f4"),
+    ("sigma_elevation_deg", "deg", "<f4"), ("sigma_velocity_mps", "m/s", "<f4"),
+)
+RECORD_DTYPE = np.dtype([(name, dtype) for name, _, dtype in POINT_WIRE_FIELDS])
+assert RECORD_DTYPE.itemsize == 64
+_FIELDS_LIST = [list(f) for f in POINT_WIRE_FIELDS]
+FIELDS_RULE = ("must be exactly the record layout of wire.md (64-byte records, frame <u8, timestamp_s <f8, "
+               "then 12 <f4 fields)")
 
 SENSOR_SUMMARY_KEYS = ("max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
                        "range_resolution_m", "velocity_resolution_mps")
@@ -58,8 +82,6 @@ HEALTH_INT_FIELDS = ("frames_received", "frames_processed", "frames_dropped", "f
                      "sequence_gaps", "source_restarts", "queue_depth", "points_last")
 HEALTH_FLOAT_FIELDS = ("uptime_s", "cpu_share", "fps")
 HEALTH_OPTIONAL_FLOAT_FIELDS = ("latency_p50_ms", "latency_p99_ms")  # nil when no frame in the interval
-
-_DIGEST_RE = re.compile(r"[0-9a-f]{16}")
 
 
 class WireError(CubecastError):
@@ -69,6 +91,89 @@ class WireError(CubecastError):
         assert reason in REASONS, reason
         super().__init__(message)
         self.reason = reason
+
+
+# ---- the schema of each kind's header (besides wire, kind and sensor_id, checked against the topic) ----
+
+# (annotations are names of module-level types: the Structs' string annotations resolve to these)
+Seq = Count  # 0..2^64-1: the records' `frame` field and the capture's sequence are u64
+RunId = text(MAX_RUN_CHARS)
+AdcShape = shape_rule(1, MAX_NDIM, MAX_DIM)
+MapShape = shape_rule(2, 2, MAX_DIM)
+Crc32 = integer(0, 0xFFFFFFFF)
+PointCount = integer(0, MAX_DIM)
+SensorToml = text(MAX_SENSOR_HEADER_BYTES)
+NonNegativeOrNil = optional(NonNegative)
+
+
+class AdcHeader(Schema):
+    seq: Seq
+    run: RunId
+    timestamp_s: Finite
+    digest: Digest
+    dtype: Annotated[Literal[ADC_DTYPES], Meta(description=f"must be one of {', '.join(ADC_DTYPES)}",
+                                               extra={"reason": "dtype"})]
+    shape: AdcShape
+    crc32: Crc32
+
+
+class PointsHeader(Schema):
+    seq: Seq
+    run: RunId
+    timestamp_s: Finite
+    latency_s: NonNegative
+    count: PointCount
+    fields: Annotated[list, Meta(description=FIELDS_RULE, extra={"reason": "dtype"})]
+
+
+class RdmapHeader(Schema):
+    seq: Seq
+    timestamp_s: Finite
+    shape: MapShape
+    dtype: Annotated[Literal["<f4"], Meta(description="must be '<f4'", extra={"reason": "dtype"})]
+    range_start_m: Finite
+    range_step_m: Positive
+    velocity_start_mps: Finite
+    velocity_step_mps: Positive
+    unit: Annotated[Literal["dB"], Meta(description="must be 'dB'")]
+
+
+class SensorSummary(Schema):
+    max_range_m: Positive
+    max_velocity_mps: Positive
+    fov_half_azimuth_deg: Positive
+    fov_half_elevation_deg: Positive
+    range_resolution_m: Positive
+    velocity_resolution_mps: Positive
+    mount_height_m: NonNegativeOrNil = None
+
+
+class SensorHeader(Schema):
+    digest: Digest
+    sensor_toml: SensorToml
+    summary: Annotated[SensorSummary, Meta(description="must be a map")]
+
+
+class HealthHeader(Schema):
+    frames_received: Count
+    frames_processed: Count
+    frames_dropped: Count
+    frames_rejected: Count
+    sequence_gaps: Count
+    source_restarts: Count
+    queue_depth: Count
+    points_last: Count
+    uptime_s: NonNegative
+    cpu_share: NonNegative
+    fps: NonNegative
+    latency_p50_ms: NonNegativeOrNil  # nil when no frame was processed in the interval
+    latency_p99_ms: NonNegativeOrNil
+    rejected: Annotated[dict[Literal[REASONS], Count],
+                        Meta(description=f"must map reasons ({', '.join(REASONS)}) to counts >= 0")]
+
+
+SCHEMAS: dict[str, type[Schema]] = {"adc": AdcHeader, "points": PointsHeader, "rdmap": RdmapHeader,
+                                    "sensor": SensorHeader, "health": HealthHeader}
 
 
 @dataclass(frozen=True)
@@ -100,6 +205,10 @@ class Message:
         return self.header.get("timestamp_s")
 
 
+def valid_sensor_id(sensor_id: Any) -> bool:
+    return isinstance(sensor_id, str) and _SENSOR_ID_RE.fullmatch(sensor_id) is not None
+
+
 # ---- encoding ---------------------------------------------------------------------------------
 
 def topic_of(sensor_id: str, kind: str) -> bytes:
@@ -117,9 +226,8 @@ def _pack(kind: str, sensor_id: str, fields: dict) -> bytes:
 
 
 def _check_sensor_id(sensor_id: str) -> None:
-    if not isinstance(sensor_id, str) or not 0 < len(sensor_id) <= MAX_SENSOR_ID_CHARS or "/" in sensor_id:
-        raise WireError("malformed", f"sensor_id {sensor_id!r}: must be 1..{MAX_SENSOR_ID_CHARS} characters "
-                                     "without '/'")
+    if not valid_sensor_id(sensor_id):
+        raise WireError("malformed", f"sensor_id {sensor_id!r}: must be {SENSOR_ID_RULE}")
 
 
 def _array_view(arr: np.ndarray) -> memoryview:
@@ -204,13 +312,131 @@ def encode_health(sensor_id: str, fields: dict) -> list:
 
 # ---- decoding ---------------------------------------------------------------------------------
 
-def _short(value: Any) -> str:
-    text = repr(value)
-    return text if len(text) <= 80 else text[:77] + "..."
+def _as_view(part: Any, index: int) -> memoryview:
+    try:
+        view = memoryview(part)
+    except TypeError:
+        raise WireError("malformed", f"message part {index} is a {type(part).__name__}, not bytes") from None
+    if view.ndim != 1 or view.itemsize != 1:
+        view = view.cast("B")
+    return view
 
+
+def _split_topic(topic_v: memoryview) -> tuple[str, str]:
+    """(sensor_id, kind) of a topic `<sensor_id>/<kind>`."""
+    if topic_v.nbytes > MAX_TOPIC_BYTES:
+        raise WireError("oversized", f"topic is {topic_v.nbytes} bytes; at most {MAX_TOPIC_BYTES} allowed")
+    try:
+        topic = topic_v.tobytes().decode("utf-8")
+    except UnicodeDecodeError:
+        raise WireError("malformed", f"topic {short(topic_v.tobytes())} is not UTF-8") from None
+    sensor_id, sep, kind = topic.rpartition("/")
+    if not sep or kind not in KINDS:
+        raise WireError("malformed", f"topic {topic!r}: must be '<sensor_id>/<kind>' with kind one of "
+                                     f"{', '.join(KINDS)}")
+    if not valid_sensor_id(sensor_id):
+        raise WireError("malformed", f"topic {topic!r}: the sensor id must be {SENSOR_ID_RULE}")
+    return sensor_id, kind
+
+
+def _check_envelope(header: dict, kind: str, sensor_id: str) -> None:
+    """wire, kind and sensor_id: the version first, since another version may define other fields."""
+    if "wire" not in header:
+        raise WireError("malformed", f"{kind} header field 'wire' is missing")
+    wire = header["wire"]
+    if wire != WIRE_VERSION or isinstance(wire, bool):
+        raise WireError("wire_version", f"{kind} header field 'wire' = {short(wire)}: this receiver speaks "
+                                        f"wire version {WIRE_VERSION} only")
+    for name, want in (("kind", kind), ("sensor_id", sensor_id)):
+        if header.get(name) != want:
+            raise WireError("malformed", f"{kind} header field '{name}' = {short(header.get(name))}: must equal "
+                                         f"the topic's {name.replace('_', ' ')} '{want}'")
+
+
+def _payload_size(kind: str, payload: memoryview, expected: int, max_payload_bytes: int, what: str) -> None:
+    if payload.nbytes > max_payload_bytes:
+        raise WireError("oversized", f"{kind} payload is {payload.nbytes} bytes; this receiver accepts at most "
+                                     f"{max_payload_bytes}")
+    if payload.nbytes != expected:
+        raise WireError("shape", f"{kind} payload is {payload.nbytes} bytes; {what} needs {expected}")
+
+
+def _adc_data(h: AdcHeader, payload: memoryview, max_payload_bytes: int) -> np.ndarray:
+    dtype = np.dtype(h.dtype)
+    _payload_size("adc", payload, math.prod(h.shape) * dtype.itemsize, max_payload_bytes,
+                  f"shape {h.shape} of {h.dtype}")
+    actual = zlib.crc32(payload)  # CRC-32 of zlib (ISO 3309 / ITU-T V.42), as in the capture format
+    if actual != h.crc32:
+        raise WireError("crc", f"adc header field 'crc32' = 0x{h.crc32:08X}: the payload's CRC-32 is 0x{actual:08X}")
+    return np.frombuffer(payload, dtype).reshape(h.shape)
+
+
+def _points_data(h: PointsHeader, payload: memoryview, max_payload_bytes: int) -> np.ndarray:
+    if h.fields != _FIELDS_LIST:
+        raise WireError("dtype", f"points header field 'fields' = {short(h.fields)}: {FIELDS_RULE}")
+    _payload_size("points", payload, h.count * RECORD_DTYPE.itemsize, max_payload_bytes,
+                  f"count {h.count} x {RECORD_DTYPE.itemsize}-byte records")
+    return np.frombuffer(payload, RECORD_DTYPE) if h.count else np.empty(0, RECORD_DTYPE)
+
+
+def _rdmap_data(h: RdmapHeader, payload: memoryview, max_payload_bytes: int) -> np.ndarray:
+    n_range, n_doppler = h.shape
+    if not (0 < n_range <= RDMAP_MAX_RANGE_CELLS and 0 < n_doppler <= RDMAP_MAX_DOPPLER_CELLS):
+        raise WireError("shape", f"rdmap header field 'shape' = {h.shape}: must be within "
+                                 f"1..{RDMAP_MAX_RANGE_CELLS} x 1..{RDMAP_MAX_DOPPLER_CELLS} cells")
+    _payload_size("rdmap", payload, n_range * n_doppler * 4, max_payload_bytes, f"shape {h.shape} of <f4")
+    return np.frombuffer(payload, "<f4").reshape(n_range, n_doppler)
+
+
+def _no_payload(kind: str):
+    def check(h: Schema, payload: memoryview, max_payload_bytes: int) -> None:
+        if payload.nbytes:
+            raise WireError("malformed", f"{kind} message has a {payload.nbytes}-byte payload; it must be empty")
+    return check
+
+
+_PAYLOAD_CHECKS = {"adc": _adc_data, "points": _points_data, "rdmap": _rdmap_data,
+                   "sensor": _no_payload("sensor"), "health": _no_payload("health")}
+
+
+def decode(parts: Sequence[Any], *, max_payload_bytes: int = DEFAULT_MAX_PAYLOAD_BYTES) -> Message:
+    """Validate one multipart message (bytes, memoryviews or zmq.Frame objects) and return it decoded.
+    Raises WireError naming the reason and the field."""
+    if not isinstance(parts, (list, tuple)) or len(parts) != 3:
+        n = len(parts) if isinstance(parts, (list, tuple)) else type(parts).__name__
+        raise WireError("malformed", f"message has {n} parts; the wire has exactly 3 [topic, header, payload]")
+    topic_v, header_v, payload = (_as_view(p, i) for i, p in enumerate(parts))
+    sensor_id, kind = _split_topic(topic_v)
+    limit = MAX_SENSOR_HEADER_BYTES if kind == "sensor" else MAX_HEADER_BYTES
+    header = unpack(header_v, kind, limit, WireError)
+    _check_envelope(header, kind, sensor_id)
+    fields = validate(header, SCHEMAS[kind], kind, WireError)
+    data = _PAYLOAD_CHECKS[kind](fields, payload, max_payload_bytes)
+    return Message(kind, sensor_id, header, payload, data)
+
+
+def sensor_from_message(msg: Message) -> Sensor:
+    """Parse the sensor description of a `sensor` message and check it against the header."""
+    from .sensor import parse_sensor  # here, not at the top: the viewer imports this module, not sensor.py
+    if msg.kind != "sensor":
+        raise WireError("malformed", f"expected a sensor message, got kind '{msg.kind}'")
+    try:
+        sensor = parse_sensor(msg.header["sensor_toml"], f"sensor message from '{msg.sensor_id}'")
+    except CubecastError as exc:
+        raise WireError("malformed", f"sensor header field 'sensor_toml': {exc}") from None
+    if sensor.sensor_id != msg.sensor_id:
+        raise WireError("unknown_sensor", f"sensor header field 'sensor_toml' describes sensor "
+                                          f"'{sensor.sensor_id}', the topic names '{msg.sensor_id}'")
+    if sensor.digest != msg.header["digest"]:
+        raise WireError("digest", f"sensor header field 'digest' = {msg.header['digest']!r}: the description's "
+                                  f"digest is {sensor.digest!r}")
+    return sensor
+
+
+# ---- field readers of the worker protocol (until it validates with schemas of its own) -------------
 
 def _bad(kind: str, name: str, value: Any, rule: str, reason: str = "malformed") -> WireError:
-    return WireError(reason, f"{kind} header field '{name}' = {_short(value)}: {rule}")
+    return WireError(reason, f"{kind} header field '{name}' = {short(value)}: {rule}")
 
 
 def _get(h: dict, kind: str, name: str) -> Any:
@@ -245,7 +471,7 @@ def _str(h: dict, kind: str, name: str, max_chars: int, min_chars: int = 1) -> s
 
 def _digest(h: dict, kind: str) -> str:
     v = _get(h, kind, "digest")
-    if not isinstance(v, str) or not _DIGEST_RE.fullmatch(v):
+    if not isinstance(v, str) or not re.fullmatch(r"[0-9a-f]{16}", v):
         raise _bad(kind, "digest", v, "must be 16 lowercase hex characters (Sensor.digest)")
     return v
 
@@ -256,164 +482,3 @@ def _shape(h: dict, kind: str, ndim_lo: int = 1, ndim_hi: int = MAX_NDIM) -> tup
             or any(isinstance(d, bool) or not isinstance(d, int) or not 0 <= d < MAX_DIM for d in v)):
         raise _bad(kind, "shape", v, f"must be a list of {ndim_lo}..{ndim_hi} integers in 0..{MAX_DIM - 1}")
     return tuple(v)
-
-
-def _empty_payload(kind: str, payload: memoryview) -> None:
-    if payload.nbytes:
-        raise WireError("malformed", f"{kind} message has a {payload.nbytes}-byte payload; it must be empty")
-
-
-def _payload_size(kind: str, payload: memoryview, expected: int, max_payload_bytes: int, what: str) -> None:
-    if payload.nbytes > max_payload_bytes:
-        raise WireError("oversized", f"{kind} payload is {payload.nbytes} bytes; this receiver accepts at most "
-                                     f"{max_payload_bytes}")
-    if payload.nbytes != expected:
-        raise WireError("shape", f"{kind} payload is {payload.nbytes} bytes; {what} needs {expected}")
-
-
-def _as_view(part: Any, index: int) -> memoryview:
-    try:
-        view = memoryview(part)
-    except TypeError:
-        raise WireError("malformed", f"message part {index} is a {type(part).__name__}, not bytes") from None
-    if view.ndim != 1 or view.itemsize != 1:
-        view = view.cast("B")
-    return view
-
-
-def decode(parts: Sequence[Any], *, max_payload_bytes: int = DEFAULT_MAX_PAYLOAD_BYTES) -> Message:
-    """Validate one multipart message (bytes, memoryviews or zmq.Frame objects) and return it decoded.
-    Raises WireError naming the reason and the field."""
-    if not isinstance(parts, (list, tuple)) or len(parts) != 3:
-        n = len(parts) if isinstance(parts, (list, tuple)) else type(parts).__name__
-        raise WireError("malformed", f"message has {n} parts; the wire has exactly 3 [topic, header, payload]")
-    topic_v, header_v, payload = (_as_view(p, i) for i, p in enumerate(parts))
-
-    if topic_v.nbytes > MAX_TOPIC_BYTES:
-        raise WireError("oversized", f"topic is {topic_v.nbytes} bytes; at most {MAX_TOPIC_BYTES} allowed")
-    try:
-        topic = topic_v.tobytes().decode("utf-8")
-    except UnicodeDecodeError:
-        raise WireError("malformed", f"topic {_short(topic_v.tobytes())} is not UTF-8") from None
-    sensor_id, sep, kind = topic.rpartition("/")
-    if not sep or kind not in KINDS or not sensor_id or "/" in sensor_id or len(sensor_id) > MAX_SENSOR_ID_CHARS:
-        raise WireError("malformed", f"topic {topic!r}: must be '<sensor_id>/<kind>' with kind one of "
-                                     f"{', '.join(KINDS)}")
-
-    limit = MAX_SENSOR_HEADER_BYTES if kind == "sensor" else MAX_HEADER_BYTES
-    if header_v.nbytes > limit:
-        raise WireError("oversized", f"{kind} header is {header_v.nbytes} bytes; at most {limit} allowed")
-    try:
-        header = msgpack.unpackb(header_v, raw=False, use_list=True, strict_map_key=True,
-                                 max_str_len=limit, max_bin_len=limit, max_array_len=MAX_FIELD_ENTRIES,
-                                 max_map_len=MAX_FIELD_ENTRIES, max_ext_len=0)
-    except ValueError as exc:
-        if "max_ext_len" in str(exc):
-            raise WireError("malformed", f"{kind} header holds a msgpack ext type; the wire allows none") from None
-        if "exceeds max" in str(exc):
-            raise WireError("oversized", f"{kind} header: {exc}") from None
-        raise WireError("malformed", f"{kind} header is not one valid msgpack value ({type(exc).__name__}"
-                                     f"{': ' + str(exc) if str(exc) else ''})") from None
-    except Exception as exc:  # msgpack's FormatError, StackError and friends
-        raise WireError("malformed", f"{kind} header is not valid msgpack ({type(exc).__name__})") from None
-    if not isinstance(header, dict):
-        raise WireError("malformed", f"{kind} header is a msgpack {type(header).__name__}, not a map")
-
-    wire = _get(header, kind, "wire")
-    if wire != WIRE_VERSION or isinstance(wire, bool):
-        raise WireError("wire_version", f"{kind} header field 'wire' = {_short(wire)}: this receiver speaks "
-                                        f"wire version {WIRE_VERSION} only")
-    if header.get("kind") != kind:
-        raise _bad(kind, "kind", header.get("kind"), f"must equal the topic's kind '{kind}'")
-    if header.get("sensor_id") != sensor_id:
-        raise _bad(kind, "sensor_id", header.get("sensor_id"), f"must equal the topic's sensor id '{sensor_id}'")
-
-    data = None
-    if kind == "adc":
-        _int(header, kind, "seq")
-        _str(header, kind, "run", MAX_RUN_CHARS)
-        _float(header, kind, "timestamp_s")
-        _digest(header, kind)
-        dtype = _get(header, kind, "dtype")
-        if dtype not in ADC_DTYPES or not isinstance(dtype, str):
-            raise _bad(kind, "dtype", dtype, f"must be one of {', '.join(ADC_DTYPES)}", "dtype")
-        shape = _shape(header, kind)
-        crc = _int(header, kind, "crc32", 0, 0xFFFFFFFF)
-        itemsize = np.dtype(dtype).itemsize
-        _payload_size(kind, payload, math.prod(shape) * itemsize, max_payload_bytes, f"shape {list(shape)} of {dtype}")
-        # CRC-32 of zlib (ISO 3309 / ITU-T V.42), as in the capture format
-        actual = zlib.crc32(payload)
-        if actual != crc:
-            raise WireError("crc", f"adc header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
-        data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
-    elif kind == "points":
-        _int(header, kind, "seq")
-        _str(header, kind, "run", MAX_RUN_CHARS)
-        _float(header, kind, "timestamp_s")
-        _float(header, kind, "latency_s", 0.0)
-        count = _int(header, kind, "count", 0, MAX_DIM)
-        fields = _get(header, kind, "fields")
-        if fields != [list(f) for f in POINT_WIRE_FIELDS]:
-            raise _bad(kind, "fields", fields, "must be exactly the record layout of wire.md (64-byte records, "
-                                               "frame <u8, timestamp_s <f8, then 12 <f4 fields)", "dtype")
-        _payload_size(kind, payload, count * RECORD_DTYPE.itemsize, max_payload_bytes,
-                      f"count {count} x {RECORD_DTYPE.itemsize}-byte records")
-        data = np.frombuffer(payload, RECORD_DTYPE) if count else np.empty(0, RECORD_DTYPE)
-    elif kind == "rdmap":
-        _int(header, kind, "seq")
-        _float(header, kind, "timestamp_s")
-        shape = _shape(header, kind, 2, 2)
-        if not (0 < shape[0] <= RDMAP_MAX_RANGE_CELLS and 0 < shape[1] <= RDMAP_MAX_DOPPLER_CELLS):
-            raise _bad(kind, "shape", list(shape), f"must be within 1..{RDMAP_MAX_RANGE_CELLS} x "
-                                                   f"1..{RDMAP_MAX_DOPPLER_CELLS} cells", "shape")
-        if _get(header, kind, "dtype") != "<f4":
-            raise _bad(kind, "dtype", header["dtype"], "must be '<f4'", "dtype")
-        for name in ("range_start_m", "range_step_m", "velocity_start_mps", "velocity_step_mps"):
-            _float(header, kind, name)
-        if _get(header, kind, "unit") != "dB":
-            raise _bad(kind, "unit", header["unit"], "must be 'dB'")
-        _payload_size(kind, payload, shape[0] * shape[1] * 4, max_payload_bytes, f"shape {list(shape)} of <f4")
-        data = np.frombuffer(payload, "<f4").reshape(shape)
-    elif kind == "sensor":
-        _digest(header, kind)
-        _str(header, kind, "sensor_toml", MAX_SENSOR_HEADER_BYTES)
-        summary = _get(header, kind, "summary")
-        if not isinstance(summary, dict):
-            raise _bad(kind, "summary", summary, "must be a map")
-        for name in SENSOR_SUMMARY_KEYS:
-            _float(summary, "sensor summary", name)
-        _empty_payload(kind, payload)
-    else:  # health
-        for name in HEALTH_INT_FIELDS:
-            _int(header, kind, name)
-        for name in HEALTH_FLOAT_FIELDS:
-            _float(header, kind, name, 0.0)
-        for name in HEALTH_OPTIONAL_FLOAT_FIELDS:
-            _float(header, kind, name, 0.0, optional=True)
-        rejected = _get(header, kind, "rejected")
-        if (not isinstance(rejected, dict) or any(k not in REASONS for k in rejected)
-                or any(isinstance(v, bool) or not isinstance(v, int) or v < 0 for v in rejected.values())):
-            raise _bad(kind, "rejected", rejected, f"must map reasons ({', '.join(REASONS)}) to counts >= 0")
-        _empty_payload(kind, payload)
-    return Message(kind, sensor_id, header, payload, data)
-
-
-def sensor_from_message(msg: Message) -> Sensor:
-    """Parse the sensor description of a `sensor` message and check it against the header."""
-    if msg.kind != "sensor":
-        raise WireError("malformed", f"expected a sensor message, got kind '{msg.kind}'")
-    try:
-        sensor = parse_sensor(msg.header["sensor_toml"], f"sensor message from '{msg.sensor_id}'")
-    except CubecastError as exc:
-        raise WireError("malformed", f"sensor header field 'sensor_toml': {exc}") from None
-    if sensor.sensor_id != msg.sensor_id:
-        raise WireError("unknown_sensor", f"sensor header field 'sensor_toml' describes sensor "
-                                          f"'{sensor.sensor_id}', the topic names '{msg.sensor_id}'")
-    if sensor.digest != msg.header["digest"]:
-        raise WireError("digest", f"sensor header field 'digest' = {msg.header['digest']!r}: the description's "
-                                  f"digest is {sensor.digest!r}")
-    return sensor
-
-
-def parts_nbytes(parts: Iterable[Any]) -> int:
-    return sum(memoryview(p).nbytes for p in parts)

@@ -3,6 +3,7 @@ Pure functions, no sockets."""
 
 from __future__ import annotations
 
+import json
 import zlib
 
 import msgpack
@@ -13,9 +14,11 @@ from cubecast.daemon.capture import CaptureReader
 from cubecast.daemon.chain.points import POINT_DTYPE, RECORD_DTYPE, to_records
 from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.sensor import load_sensor
+from cubecast.daemon import wire
+from cubecast.daemon.sensor import parse_sensor
 from cubecast.daemon.wire import (MAX_HEADER_BYTES, POINT_WIRE_FIELDS, REASONS, WireError, decode, encode_adc,
-                         encode_health, encode_points, encode_rdmap, encode_sensor, sensor_from_message)
-from tests.helpers import SAMPLES, YARD_SENSOR
+                                  encode_health, encode_points, encode_rdmap, encode_sensor, sensor_from_message)
+from tests.helpers import SAMPLES, YARD_SENSOR, sensor_text
 
 
 @pytest.fixture(scope="module")
@@ -241,3 +244,99 @@ def test_reasons_are_the_documented_list():
         WireError("nonsense", "x")
     err = WireError("crc", "adc header field 'crc32' = 0x1: mismatch")
     assert err.reason == "crc" and str(err) == "adc header field 'crc32' = 0x1: mismatch"
+
+
+# ---- the bytes on the wire -------------------------------------------------------------------------
+
+def test_encoded_headers_are_the_documented_msgpack_maps(sensor, yard_frame):
+    # README "Wire format": the header is a msgpack map of exactly these keys in this order, packed by
+    # the msgpack reference implementation (msgpack.org spec; use_bin_type=True, the str/bin types of
+    # the 2013 revision); the bytes must not change across versions of the encoder.
+    fields = [list(f) for f in POINT_WIRE_FIELDS]
+    rec = np.zeros(2, RECORD_DTYPE)
+    cases = [
+        (encode_adc("yard-a", 7, "r1", 0.7, yard_frame, sensor.digest),
+         {"wire": 1, "kind": "adc", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
+          "dtype": "<i2", "shape": [96, 4, 128, 2], "digest": sensor.digest,
+          "crc32": zlib.crc32(yard_frame.tobytes())}, yard_frame.tobytes()),
+        (encode_points("yard-a", 7, "r1", 0.7, 0.004, rec),
+         {"wire": 1, "kind": "points", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
+          "latency_s": 0.004, "count": 2, "fields": fields}, rec.tobytes()),
+        (encode_rdmap("yard-a", 3, 0.3, np.ones((2, 3), np.float32), 0.0, 0.2, -1.0, 0.5),
+         {"wire": 1, "kind": "rdmap", "sensor_id": "yard-a", "seq": 3, "timestamp_s": 0.3, "shape": [2, 3],
+          "dtype": "<f4", "range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0,
+          "velocity_step_mps": 0.5, "unit": "dB"}, np.ones((2, 3), "<f4").tobytes()),
+        (encode_health("yard-a", health_fields()),
+         {"wire": 1, "kind": "health", "sensor_id": "yard-a"} | health_fields(), b""),
+    ]
+    for parts, header, payload in cases:
+        assert bytes(parts[1]) == msgpack.packb(header, use_bin_type=True), header["kind"]
+        assert bytes(parts[0]) == f"yard-a/{header['kind']}".encode() and bytes(parts[2]) == payload
+    # the point record: 8 + 8 + 12 * 4 bytes, little-endian, no padding, the chain's record exactly
+    assert wire.RECORD_DTYPE == RECORD_DTYPE and wire.RECORD_DTYPE.itemsize == 64
+
+
+# ---- the rules the daemon, the workers and the viewer share --------------------------------------
+
+def test_idle_health_with_nil_latencies_is_valid():
+    # serve's health when no frame was processed in the interval: both latencies are nil (wire.md)
+    msg = decode(encode_health("yard-a", health_fields(latency_p50_ms=None, latency_p99_ms=None, fps=0.0)))
+    assert msg.header["latency_p50_ms"] is None and msg.header["latency_p99_ms"] is None
+    h = {"wire": 1, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p50_ms=-1.0)
+    rejected(raw("yard-a/health", h), "malformed", "'latency_p50_ms'", "or nil")
+    h = {"wire": 1, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p99_ms="n/a")
+    rejected(raw("yard-a/health", h), "malformed", "'latency_p99_ms'")
+
+
+def test_sensor_ids_follow_the_sensor_files_rule(sensor, yard_frame):
+    p = yard_frame.tobytes()
+    for good in ("yard-a", "a", "S_1.b", "x" * 64):
+        h = adc_header(sensor, yard_frame, sensor_id=good)
+        assert decode(raw(f"{good}/adc", h, p)).sensor_id == good
+    for bad in ("site/yard-a", "yard a", "yard:a", "x" * 65, ""):
+        h = adc_header(sensor, yard_frame, sensor_id=bad)
+        rejected(raw(f"{bad}/adc", h, p), "malformed", "topic")
+        with pytest.raises(WireError):
+            encode_adc(bad, 0, "r", 0.0, yard_frame, sensor.digest)
+    # the same verdict as the sensor file's `id` rule, for every id short enough for the wire
+    for candidate in ("yard-a", "S_1.b", "ünï-2", "site/yard-a", "yard a", "a+b", "x²", "tab\t", "end\n"):
+        text = sensor_text().replace('id = "test-sensor"', f"id = {json.dumps(candidate)}")  # a TOML basic string
+        try:
+            parse_sensor(text)
+            ok_in_file = True
+        except CubecastError:
+            ok_in_file = False
+        assert wire.valid_sensor_id(candidate) == ok_in_file, candidate
+
+
+def test_seq_spans_u64_everywhere(sensor, yard_frame):
+    # seq is the records' `frame` field and the capture's u64 sequence (README): 0..2^64-1
+    p = yard_frame.tobytes()
+    top = (1 << 64) - 1
+    assert decode(raw("yard-a/adc", adc_header(sensor, yard_frame, seq=top), p)).seq == top
+    assert decode(encode_points("yard-a", top, "r", 0.0, 0.0, np.empty(0, RECORD_DTYPE))).seq == top
+    assert decode(encode_rdmap("yard-a", top, 0.0, np.zeros((2, 2), np.float32), 0, 1, 0, 1)).seq == top
+    rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, seq=-1), p), "malformed", "'seq'",
+             "0..18446744073709551615")
+
+
+def test_errors_name_the_kind_the_field_and_the_rule(sensor):
+    s = decode(encode_sensor(sensor)).header
+    bad = s | {"summary": s["summary"] | {"range_resolution_m": 0.0}}
+    rejected(raw("yard-a/sensor", bad), "malformed", "sensor header field 'summary.range_resolution_m' = 0.0",
+             "> 0")
+    bad = s | {"summary": "far"}
+    rejected(raw("yard-a/sensor", bad), "malformed", "'summary' = 'far'", "must be a map")
+    summary = dict(s["summary"])
+    del summary["max_range_m"]
+    rejected(raw("yard-a/sensor", s | {"summary": summary}), "malformed", "'summary.max_range_m' is missing")
+    h = {"wire": 1, "kind": "rdmap", "sensor_id": "yard-a", "seq": 0, "timestamp_s": 0.0, "shape": [2, 2],
+         "dtype": "<f4", "range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0,
+         "velocity_step_mps": 0.1, "unit": "dB"}
+    assert decode(raw("yard-a/rdmap", h, bytes(16))).data.shape == (2, 2)
+    rejected(raw("yard-a/rdmap", h | {"dtype": "<f8"}, bytes(16)), "dtype", "rdmap header field 'dtype'", "'<f4'")
+    rejected(raw("yard-a/rdmap", h | {"range_step_m": 0.0}, bytes(16)), "malformed", "'range_step_m'", "> 0")
+    rejected(raw("yard-a/rdmap", h | {"unit": "dBFS"}, bytes(16)), "malformed", "'unit'", "'dB'")
+    rejected(raw("yard-a/rdmap", h | {"shape": [2, True]}, bytes(16)), "malformed", "'shape'")
+    # keys a kind does not define are ignored, whatever they hold (within the msgpack bounds)
+    assert decode(raw("yard-a/rdmap", h | {"note": {"any": [1, "x", None]}}, bytes(16))).kind == "rdmap"
