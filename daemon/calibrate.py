@@ -34,14 +34,15 @@ complex64 vector the Pipeline takes, checking that the file was made for the sen
 from __future__ import annotations
 
 import dataclasses
+import logging
 import math
-import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterable
 
 import numpy as np
 
+from . import logs
 from .calibchecks import (CHANNEL_GAIN_LIMIT_DB, MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS,
                           NEIGHBOUR_CELLS, NEIGHBOUR_LEVEL_DB, SECOND_ANGLE_PEAK_DB, azimuth_beams, cell_snr,
                           channel_gain_warnings, clipping_warnings, db, near_limit, neighbour_misfit,
@@ -80,6 +81,8 @@ __all__ = [
 
 DEFAULT_SEARCH_CELLS = 4
 FINE_RANGE_PADDING = 16  # zero padding of the fine range spectrum for the range bias
+
+log = logging.getLogger(__name__)
 
 
 def calibration_settings(base: ProcessingSettings | None = None) -> ProcessingSettings:
@@ -489,14 +492,17 @@ def format_report(result: CalibrationResult) -> str:
 # ---- command line -----------------------------------------------------------------------------
 
 def run(args) -> int:
+    """`cubecast calibrate`: the report and the file written at INFO, each warning at WARNING."""
+    if args.quiet:  # the subcommand's own --quiet: only the log level, as the command's -q
+        root = logging.getLogger(logs.ROOT)
+        root.setLevel(max(root.level, logging.WARNING))
     result = calibrate_capture(args.capture, args.target_range_m, args.azimuth_deg, args.elevation_deg,
                                search_cells=args.search_cells, skip_corrupt=args.skip_corrupt)
     write_calibration(args.out, result)
-    if not args.quiet:
-        print(format_report(result))
-        print(f"wrote {args.out}")
+    log.info("%s", format_report(result))
+    log.info("wrote %s", args.out)
     for w in result.warnings:
-        print(f"cubecast calibrate: warning: {w}", file=sys.stderr)
+        log.warning("cubecast calibrate: warning: %s", w)
     return 0
 
 
@@ -514,6 +520,6 @@ def add_parser(subparsers):
                    help=f"look for the reflector within this many range cells of the given range "
                         f"(default {DEFAULT_SEARCH_CELLS})")
     p.add_argument("--skip-corrupt", action="store_true", help="skip frames whose CRC fails")
-    p.add_argument("--quiet", action="store_true", help="no report on stdout (warnings still go to stderr)")
+    p.add_argument("--quiet", action="store_true", help="log warnings only: no report (warnings are still logged)")
     p.set_defaults(func=run)
     return p

@@ -9,6 +9,7 @@ scene geometry, the radar range equation and the uniform array's sidelobe level.
 
 from __future__ import annotations
 
+import logging
 import math
 
 import numpy as np
@@ -419,30 +420,51 @@ def cli(argv):
     return main(argv)
 
 
-def test_cli_writes_the_file_and_a_readable_report(calibration, sensor, tmp_path, capsys):
+CALIBRATE_LOGGER = "cubecast.daemon.calibrate"
+
+
+@pytest.fixture
+def calibrate_log(caplog, monkeypatch):
+    """The calibrate command's log records, straight to caplog's handler (the command's own logging
+    set-up stops propagation at the `cubecast` logger); the `cubecast` level is restored after."""
+    logger, root = logging.getLogger(CALIBRATE_LOGGER), logging.getLogger("cubecast")
+    saved = root.level
+    monkeypatch.setattr(logger, "propagate", False)
+    logger.addHandler(caplog.handler)
+    yield caplog
+    logger.removeHandler(caplog.handler)
+    root.setLevel(saved)
+
+
+def test_cli_writes_the_file_and_a_readable_report(calibration, sensor, tmp_path, capsys, calibrate_log):
     out = tmp_path / "cli.toml"
     rc = cli(["calibrate", str(calibration["capture"]), "--target-range-m", "5", "--out", str(out)])
     assert rc == 0
-    text = capsys.readouterr()
-    assert "range bias" not in text.err and "warning" not in text.err
-    for word in ("sensor", "yard-a", "bias", "SNR", "residuals", "azimuth", "channel", f"wrote {out}"):
-        assert word in text.out
-    assert len([ln for ln in text.out.splitlines() if ln.startswith("  ") and ln.split()[0].isdigit()]) \
+    assert capsys.readouterr().out == ""  # the report is a log record, not a result on stdout
+    records = [r for r in calibrate_log.records if r.name == CALIBRATE_LOGGER]
+    assert [r.levelno for r in records] == [logging.INFO, logging.INFO]  # no warning
+    report, wrote = (r.getMessage() for r in records)
+    for word in ("sensor", "yard-a", "bias", "SNR", "residuals", "azimuth", "channel"):
+        assert word in report
+    assert wrote == f"wrote {out}"
+    assert len([ln for ln in report.splitlines() if ln.startswith("  ") and ln.split()[0].isdigit()]) \
         == sensor.n_virtual
     np.testing.assert_allclose(load_calibration(out, sensor), calibration["result"].vector, atol=1e-6)
 
 
-def test_cli_warnings_go_to_stderr_and_the_file(tmp_path, sensor, gains, capsys):
+def test_cli_warnings_are_logged_and_kept_in_the_file(tmp_path, sensor, gains, capsys, calibrate_log):
     cap = write_reflector_capture(tmp_path / "near.cap", sensor, reflector_scene(0.8, 0.0), 3, gains)
     out = tmp_path / "near.toml"
     assert cli(["calibrate", str(cap), "--target-range-m", "0.8", "--out", str(out), "--quiet"]) == 0
-    text = capsys.readouterr()
-    assert text.out == ""
-    assert "cubecast calibrate: warning: reflector too near" in text.err
+    assert capsys.readouterr().out == ""
+    # --quiet: the warnings only, no report and no "wrote" line
+    records = [r for r in calibrate_log.records if r.name == CALIBRATE_LOGGER]
+    assert records and all(r.levelno == logging.WARNING for r in records)
+    assert any(r.getMessage().startswith("cubecast calibrate: warning: reflector too near") for r in records)
     assert any("too near" in w for w in load_calibration_file(out, sensor).warnings)
 
 
-def test_process_applies_gains_and_range_bias(calibration, tmp_path):
+def test_process_applies_gains_and_range_bias(calibration, tmp_path, calibrate_log):
     # A calibration made with the reflector's range given 5 cm short measures a +5 cm bias; processing
     # with that file puts the reflector at the given range, on boresight (the gains applied).
     short = REFLECTOR_RANGE_M - 0.05
