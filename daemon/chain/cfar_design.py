@@ -42,6 +42,7 @@ import numpy as np
 from scipy import optimize, special
 
 from ..errors import CubecastError, is_integer, is_real
+from ..settings import CFAR_KINDS
 
 __all__ = [
     "CFAR_KINDS",
@@ -54,7 +55,6 @@ __all__ = [
     "range_bin_designs",
 ]
 
-CFAR_KINDS = ("ca", "os", "go", "so")
 PFA_MIN = 1e-15
 PFA_MAX = 0.5
 N_INTEGRATED_MAX = 4096
