@@ -98,9 +98,6 @@ def test_decode_points_round_trip():
     assert m["header"]["seq"] == 4
     assert m["data"].dtype == POINT_DTYPE and m["data"].shape == (1,)
     assert m["data"]["x_m"][0] == np.float32(1.5) and m["data"]["velocity_mps"][0] == np.float32(-1.25)
-    # a sensor id may contain '/': the kind is after the last one
-    m2 = decode_parts(points_parts("site/yard-a", 4, pts))
-    assert m2["sensor_id"] == "site/yard-a"
 
 
 def _reason(parts) -> str:
@@ -122,14 +119,14 @@ def test_decode_rejects_what_breaks_the_contract():
     assert _reason([b"b/points", good[1], good[2]]) == "malformed"            # sensor id differs
     assert _reason([b"a/rdmap", good[1], good[2]]) == "malformed"             # kind differs
     assert _reason([b"a/video", good[1], good[2]]) == "malformed"             # unknown kind
-    assert _reason([b"a/points", good[1], good[2][:-1]]) == "malformed"       # payload size
-    assert _reason([b"a/points", msgpack.packb({**h, "count": 2}), good[2]]) == "malformed"
+    assert _reason([b"a/points", good[1], good[2][:-1]]) == "shape"           # payload size
+    assert _reason([b"a/points", msgpack.packb({**h, "count": 2}), good[2]]) == "shape"
     assert _reason([b"a/points", msgpack.packb({**h, "seq": True}), good[2]]) == "malformed"  # bool
     assert _reason([b"a/points", msgpack.packb({**h, "seq": -1}), good[2]]) == "malformed"
     assert _reason([b"a/points", msgpack.packb({**h, "timestamp_s": float("nan")}), good[2]]) == "malformed"
     swapped = [list(f) for f in POINT_FIELDS]
     swapped[2], swapped[3] = swapped[3], swapped[2]
-    assert _reason([b"a/points", msgpack.packb({**h, "fields": swapped}), good[2]]) == "malformed"
+    assert _reason([b"a/points", msgpack.packb({**h, "fields": swapped}), good[2]]) == "dtype"
     big = msgpack.packb({**h, "pad": "x" * HEADER_MAX_BYTES})
     assert _reason([b"a/points", big, good[2]]) == "oversized"
     # the sensor kind may carry up to 1 MiB of header (its TOML text)
@@ -146,9 +143,44 @@ def test_decode_rejects_what_breaks_the_contract():
     assert _reason([hh[0], msgpack.packb(hd), b""]) == "malformed"
     r = rdmap_parts("a", np.zeros((4, 8)))
     assert decode_parts(r)["data"].shape == (4, 8)
-    assert _reason([r[0], r[1], r[2][:-4]]) == "malformed"
-    assert _reason(rdmap_parts("a", np.zeros((4, 8)), shape=[4, 0])) == "malformed"
+    assert _reason([r[0], r[1], r[2][:-4]]) == "shape"
+    assert _reason(rdmap_parts("a", np.zeros((4, 8)), shape=[4, 0])) == "shape"
+    assert _reason(rdmap_parts("a", np.zeros((4, 8)), shape=[4, -1])) == "malformed"
     assert _reason(rdmap_parts("a", np.zeros((4, 8)), range_step_m=0.0)) == "malformed"
+
+
+# The viewer decodes with the daemon's wire module: the rules below are the ones serve and the workers
+# apply, written out here from wire.md rather than read back from the module.
+
+def test_idle_health_with_nil_latencies_is_shown():
+    # wire.md: latency_p50_ms and latency_p99_ms are nil when serve processed nothing in the interval
+    idle = decode_parts(health_parts("yard-a", latency_p50_ms=None, latency_p99_ms=None, fps=0.0), 0.0)
+    assert idle["header"]["latency_p99_ms"] is None
+    assert _reason(health_parts("yard-a", latency_p99_ms=-1.0)) == "malformed"
+    st = V.ViewerState(endpoint="tcp://127.0.0.1:5602")
+    st.ingest(decode_parts(points_parts("yard-a", 3, cloud({"y_m": 4.0})), 0.0))
+    st.ingest(idle)
+    text, level = V.status_line(st)
+    assert level == "ok" and "latency 4.0 ms" in text and "p99" not in text and "0.0 fps" in text
+
+
+def test_sensor_ids_follow_the_sensor_files_rule():
+    # README, sensor file: `id` is made of letters, digits, '-', '_' and '.'; a '/' would end it in a topic
+    pts = cloud({"x_m": 1.0, "y_m": 5.0})
+    for good in ("yard-a", "Site_2.north"):
+        assert decode_parts(points_parts(good, 1, pts))["sensor_id"] == good
+    for bad in ("site/yard-a", "yard a", "a:b"):
+        assert _reason(points_parts(bad, 1, pts)) == "malformed", bad
+
+
+def test_seq_is_bounded_as_a_u64():
+    # seq is the records' u64 `frame` field: 0..2^64-1, as the daemon and the workers bound it
+    pts = cloud({"x_m": 1.0, "y_m": 5.0})
+    top = (1 << 64) - 1
+    assert decode_parts(points_parts("a", top, pts))["header"]["seq"] == top
+    assert decode_parts(rdmap_parts("a", np.zeros((4, 8)), seq=top))["header"]["seq"] == top
+    assert _reason(points_parts("a", -1, pts)) == "malformed"
+    assert _reason(rdmap_parts("a", np.zeros((4, 8)), seq=-1)) == "malformed"
 
 
 # ---- the subscriber thread (loopback only) ---------------------------------------------------------
@@ -432,13 +464,25 @@ def test_served_map_is_pooled_to_the_wire_limits():
 # ---- import boundaries and the command line ------------------------------------------------------
 
 def test_viewer_never_imports_the_daemon():
+    # the wire module is the contract the viewer shares with the daemon: it alone may be imported
     for path in (ROOT / "viewer").glob("*.py"):
         text = path.read_text(encoding="utf-8")
-        assert "daemon" not in "".join(re.findall(r"^\s*(?:from|import) .*$", text, re.M)), path.name
-    code = ("import sys, argparse; import cubecast.viewer.feed, cubecast.viewer.views, cubecast.viewer.cli, "
-            "cubecast.viewer.snapshot; "
-            "from cubecast.daemon.viewsource import register_view; p = argparse.ArgumentParser(); "
-            "register_view(p.add_subparsers()); "
+        for line in re.findall(r"^\s*(?:from|import) .*$", text, re.M):
+            if "daemon" in line:
+                assert re.fullmatch(r"\s*from \.\.daemon(?: import wire|\.wire import \w+(?:, \w+)*)", line), \
+                    f"{path.name}: {line.strip()}"
+    code = ("import sys; import cubecast.viewer.feed, cubecast.viewer.views, cubecast.viewer.cli, "
+            "cubecast.viewer.snapshot, cubecast.viewer.app; "
+            "print(' '.join(sorted(m for m in sys.modules if m.startswith('cubecast.daemon') or m == 'vispy' "
+            "or m.split('.')[0] == 'numba')))")
+    r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    # exactly the wire module and the two small ones it needs; no numba, no chain, no service, no vispy
+    assert r.stdout.split() == ["cubecast.daemon", "cubecast.daemon.errors", "cubecast.daemon.schema",
+                                "cubecast.daemon.wire"], r.stdout
+    # `cubecast view` registered by the daemon still loads neither vispy nor the chain
+    code = ("import sys, argparse; from cubecast.daemon.viewsource import register_view; "
+            "p = argparse.ArgumentParser(); register_view(p.add_subparsers()); "
             "assert 'vispy' not in sys.modules, 'vispy imported'; "
             "assert 'cubecast.daemon.chain.pipeline' not in sys.modules, 'chain imported'")
     r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=120)

@@ -50,7 +50,6 @@ VELOCITY_STOPS = (
     (0.50, (1.00, 0.58, 0.15)),
     (1.00, (0.92, 0.26, 0.12)),
 )
-NEUTRAL_RGB = (0.80, 0.79, 0.76)
 # sequential, for SNR: dusk violet -> copper -> warm white
 SNR_STOPS = (
     (0.00, (0.34, 0.28, 0.62)),
@@ -534,8 +533,9 @@ def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple
     parts.append(f"{fps:.1f} fps" if fps is not None else "– fps")
     if pm:
         lat = f"latency {pm['header']['latency_s'] * 1e3:.1f} ms"
-        if hm:
-            lat += f" (p99 {hm['header']['latency_p99_ms']:.1f})"
+        p99 = hm["header"]["latency_p99_ms"] if hm else None   # nil while serve is idle
+        if p99 is not None:
+            lat += f" (p99 {p99:.1f})"
         parts.append(lat)
         parts.append(f"{pm['header']['count']} points")
     if hm:
