@@ -629,8 +629,8 @@ def test_three_targets_are_refined_jointly():
 
 def test_single_targets_lose_their_elevation_ghosts_on_the_bundled_layout():
     # With rows of 8 and 4 elements, the beam of one target at its own u but w shifted by one
-    # (the rows in antiphase) is (8 - 4)^2 / 12^2 = -9.5 dB (worked by hand), above the default
-    # -10 dB threshold: the FFT stage reports such a ghost for some directions. The joint fit
+    # (the rows in antiphase) is (8 - 4)^2 / 12^2 = -9.5 dB (worked by hand), above a -10 dB
+    # threshold: the FFT stage reports such a ghost for some directions. The joint fit
     # explains the snapshot by the target alone (the ghost's amplitude is at the noise level),
     # so with refinement every snapshot keeps exactly one peak, on the target.
     n = 400
@@ -639,9 +639,9 @@ def test_single_targets_lose_their_elevation_ghosts_on_the_bundled_layout():
     el = rng.uniform(-15.0, 15.0, n)
     x = add_noise(plane_waves(TWO_ROW, az, el, np.exp(2j * np.pi * rng.random(n))), SNR_DB, rng)
     grid = VirtualGrid.from_positions(TWO_ROW, LAM_M)
-    coarse = AngleEstimator(grid, AngleSettings(refine=False)).estimate(x)
+    coarse = AngleEstimator(grid, AngleSettings(peak_threshold_db=-10.0, refine=False)).estimate(x)
     assert len(coarse) > n + 10  # ghosts exist at the FFT stage
-    res = AngleEstimator(grid).estimate(x)
+    res = AngleEstimator(grid, AngleSettings(peak_threshold_db=-10.0)).estimate(x)
     assert len(res) == n
     assert np.max(np.abs(res.azimuth_deg - az)) < 3.0 and np.max(np.abs(res.elevation_deg - el)) < 5.0
 

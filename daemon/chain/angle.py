@@ -64,6 +64,7 @@ import numpy as np
 from numba import njit
 
 from ..errors import CubecastError, is_integer, is_real
+from ..settings import ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
@@ -80,18 +81,28 @@ __all__ = [
     "crb_unit_covariance",
 ]
 
+_DEFAULTS = ProcessingSettings()
+
+
 @dataclass(frozen=True)
 class AngleSettings:
     """Angle estimation settings (validated on construction, CubecastError on a bad value).
 
-    fft_size_azimuth    FFT size along x (>= grid n_x, checked by AngleEstimator); default 64.
-    fft_size_elevation  FFT size along z (>= grid n_z); default 16. Ignored (treated as 1) when
-                        the array has a single grid row, i.e. no elevation extent.
+    The chain builds them from ProcessingSettings (pipeline.py); the defaults of the fields both
+    have are ProcessingSettings' defaults, so a default AngleSettings is the chain's.
+
+    fft_size_azimuth    FFT size along x (>= grid n_x, checked by AngleEstimator); default 64,
+                        what ProcessingSettings' automatic size (0) gives up to 32 grid columns.
+    fft_size_elevation  FFT size along z (>= grid n_z); default 16, the automatic size up to 4
+                        grid rows. Ignored (treated as 1) when the array has a single grid row,
+                        i.e. no elevation extent.
     peak_threshold_db   a peak is kept when its FFT power is at least this many dB relative to
                         the strongest visible FFT point of the same snapshot; must be <= 0.
-                        Default -10 dB: above the -13.3 dB first sidelobe of a uniform
-                        rectangular aperture (common practice) with a few dB margin for noise.
-    max_peaks           peaks reported per snapshot at most, strongest first; default 2.
+                        Default -9 dB (angle_peak_threshold_db): above the -13.3 dB first
+                        sidelobe of a uniform rectangular aperture (common practice) with a few
+                        dB margin for noise.
+    max_peaks           peaks reported per snapshot at most, strongest first; default 2
+                        (angle_max_peaks).
     refine              Newton refinement on the actual element positions; default True.
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
@@ -100,8 +111,8 @@ class AngleSettings:
 
     fft_size_azimuth: int = 64
     fft_size_elevation: int = 16
-    peak_threshold_db: float = -10.0
-    max_peaks: int = 2
+    peak_threshold_db: float = _DEFAULTS.angle_peak_threshold_db
+    max_peaks: int = _DEFAULTS.angle_max_peaks
     refine: bool = True
     window: str = "rect"
 
