@@ -9,6 +9,7 @@ Offscreen tests need an EGL (or OSMesa) GL context; they are skipped only when n
 from __future__ import annotations
 
 import argparse
+import logging
 import math
 import re
 import subprocess
@@ -496,14 +497,18 @@ def _view_parser():
     return p
 
 
-def test_cli_rejects_bad_arguments(capsys):
+def test_cli_rejects_bad_arguments(caplog, monkeypatch):
+    # errors are logged (logs.configure stops propagation at the `cubecast` logger, before caplog's handler)
+    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
+    caplog.set_level(logging.ERROR, logger="cubecast.viewer.cli")
     p = _view_parser()
     with pytest.raises(SystemExit):
         p.parse_args(["view", "--size", "12x"])
     a = p.parse_args(["view", "--capture", str(YARD_CAP)])
-    assert a.func(a) == 2 and "--snapshot" in capsys.readouterr().err
+    assert a.func(a) == 2 and "--snapshot" in caplog.records[-1].getMessage()
     a = p.parse_args(["view", "--snapshot", "x.png", "--frame", "3"])
-    assert a.func(a) == 2 and "--capture" in capsys.readouterr().err
+    assert a.func(a) == 2 and "--capture" in caplog.records[-1].getMessage()
+    assert all(r.levelno == logging.ERROR and r.name == "cubecast.viewer.cli" for r in caplog.records)
 
 
 # ---- offscreen renders ---------------------------------------------------------------------------

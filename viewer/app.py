@@ -7,11 +7,13 @@ one set_data per visual per displayed frame. The GUI never waits on the network.
 
 from __future__ import annotations
 
-import sys
+import logging
 import time
 
 from . import views as V
 from .feed import Feed
+
+log = logging.getLogger(__name__)
 
 TICK_S = 1.0 / 30.0
 STATUS_EVERY_S = 0.25
@@ -181,14 +183,14 @@ def run_window(endpoint: str, sensor: str | None = None, size=(1280, 800), stall
     try:
         feed.start()
     except Exception as exc:
-        print(f"cubecast view: error: --sub {endpoint}: {exc}", file=sys.stderr)
+        log.error("cubecast view: error: --sub %s: %s", endpoint, exc)
         return 2
     try:
         viewer = ViewerApp(feed, size=size, sensor=sensor, show=True, stall_after_s=stall_after_s, **options)
     except Exception as exc:  # no display, no GL: say so in one line
         feed.stop()
-        print(f"cubecast view: error: cannot open a window ({type(exc).__name__}: {' '.join(str(exc).split())}); "
-              f"use --snapshot PNG to render without a display", file=sys.stderr)
+        log.error("cubecast view: error: cannot open a window (%s: %s); use --snapshot PNG to render without "
+                  "a display", type(exc).__name__, " ".join(str(exc).split()))
         return 2
     viewer.start()
     try:

@@ -11,8 +11,10 @@ needs the daemon's chain, so the daemon passes `capture_snapshot` (daemon.viewso
 from __future__ import annotations
 
 import argparse
+import logging
 import re
-import sys
+
+log = logging.getLogger(__name__)
 
 DEFAULT_ENDPOINT = "tcp://127.0.0.1:5602"
 
@@ -89,7 +91,7 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
 
 
 def _err(msg: str) -> int:
-    print(f"cubecast view: error: {msg}", file=sys.stderr)
+    log.error("cubecast view: error: %s", msg)
     return 2
 
 
@@ -142,8 +144,8 @@ def _snapshot_sub(args, options) -> int:
     write_png(args.snapshot, img[..., :3])
     n_pts = sum(1 for m in msgs if m["kind"] == "points")
     if not msgs:
-        print(f"cubecast view: no messages from {endpoint} within {args.wait_s:g} s; wrote the waiting screen "
-              f"to {args.snapshot}", file=sys.stderr)
+        log.warning("cubecast view: no messages from %s within %g s; wrote the waiting screen to %s", endpoint,
+                    args.wait_s, args.snapshot)
         return 1
     print(f"wrote {args.snapshot}: {len(msgs)} messages, {n_pts} point clouds from {endpoint}")
     return 0
