@@ -44,15 +44,14 @@ carries index 0 first, "qi" index 1 first; "real" is for real sampling (no iq ax
 
 from __future__ import annotations
 
-import re
 import struct
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
 import numpy as np
 
+from .config import Section, parse_toml, read_text
 from .errors import CubecastError
 from .sensor import Sensor
 
@@ -126,121 +125,55 @@ def _where(origin: str | None) -> str:
     return f"{origin}: " if origin else ""
 
 
-class _Table:
-    """Typed access to one TOML table; errors name the table, the field, the value and the rule."""
-
-    def __init__(self, table: Any, label: str, origin: str | None):
-        self.origin, self.label = origin, label
-        if not isinstance(table, dict):
-            raise CubecastError(f"{_where(origin)}{label} must be a table")
-        self.table = table
-        self.used: set[str] = set()
-
-    def fail(self, name: str, value: Any, rule: str) -> CubecastError:
-        return CubecastError(f"{_where(self.origin)}{self.label} {name} = {value!r}: {rule}")
-
-    def raw(self, name: str, default: Any = ...) -> Any:
-        self.used.add(name)
-        if name not in self.table:
-            if default is ...:
-                raise CubecastError(f"{_where(self.origin)}{self.label} {name} is missing")
-            return default
-        return self.table[name]
-
-    def integer(self, name: str, lo: int, hi: int, default: Any = ...) -> int:
-        v = self.raw(name, default)
-        if isinstance(v, bool) or not isinstance(v, int) or not lo <= v <= hi:
-            raise self.fail(name, v, f"must be a whole number in {lo}..{hi}")
-        return v
-
-    def choice(self, name: str, options: tuple[str, ...], default: Any = ...) -> str:
-        v = self.raw(name, default)
-        if v not in options:
-            raise self.fail(name, v, f"must be one of {', '.join(repr(o) for o in options)}")
-        return v
-
-    def check_unknown(self) -> None:
-        unknown = sorted(set(self.table) - self.used)
-        if unknown:
-            raise CubecastError(f"{_where(self.origin)}{self.label} has unknown field(s) {', '.join(unknown)}")
+def _header_field(ft: Section, header_size: int, fields: list[HeaderField]) -> HeaderField:
+    """One [[packet.field]] entry, checked against the header size and the fields before it."""
+    name = ft.string("name", pattern=r"[A-Za-z0-9_.-]{1,64}", rule="must be 1..64 letters, digits, '_', '.' or '-'")
+    ft.label = f"[[packet.field]] '{name}'"
+    offset = ft.integer("offset_bytes", ge=0, le=MAX_DATAGRAM_BYTES - 1)
+    size = ft.integer("size_bytes", ge=1, le=8)
+    ftype = ft.choice("type", FIELD_TYPES)
+    order = ft.choice("byte_order", BYTE_ORDERS)
+    meaning = ft.choice("meaning", MEANINGS)
+    ft.check_unknown()
+    if offset + size > header_size:
+        raise ft.fail("offset_bytes", offset, f"the field (bytes {offset}..{offset + size - 1}) must lie inside "
+                                              f"the header of header_size_bytes = {header_size}")
+    if meaning in ("byte_offset", "payload_size") and ftype != "uint":
+        raise ft.fail("type", ftype, f"a {meaning} field must be 'uint'")
+    if meaning == "payload_size" and size > 4:
+        raise ft.fail("size_bytes", size, "a payload_size field has at most 4 bytes (datagrams are < 64 KiB)")
+    for other in fields:
+        if offset < other.offset_bytes + other.size_bytes and other.offset_bytes < offset + size:
+            raise ft.fail("offset_bytes", offset, f"bytes {offset}..{offset + size - 1} overlap field "
+                                                  f"'{other.name}' (bytes {other.offset_bytes}.."
+                                                  f"{other.offset_bytes + other.size_bytes - 1})")
+        if other.name == name:
+            raise ft.fail("name", name, "must be unique among the header fields")
+    return HeaderField(name, offset, size, ftype == "int", order, meaning)
 
 
-def parse_layout(text: str, origin: str | None = None) -> StreamLayout:
-    """Parse and validate the text of a stream layout. Raises CubecastError naming the field, the value
-    and the rule."""
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CubecastError(f"{_where(origin)}not valid TOML: {exc}") from None
-    unknown = sorted(set(doc) - {"layout", "packet", "samples"})
-    if unknown:
-        raise CubecastError(f"{_where(origin)}unknown section(s) {', '.join('[' + u + ']' for u in unknown)}; "
-                            "a stream layout has [layout], [packet] and [samples]")
-    for section in ("packet", "samples"):
-        if section not in doc:
-            raise CubecastError(f"{_where(origin)}missing section [{section}]")
-
-    description = ""
-    if "layout" in doc:
-        lt = _Table(doc["layout"], "[layout]", origin)
-        description = lt.raw("description", "")
-        if not isinstance(description, str):
-            raise lt.fail("description", description, "must be a string")
-        lt.check_unknown()
-
-    pk = _Table(doc["packet"], "[packet]", origin)
-    header_size = pk.integer("header_size_bytes", 0, MAX_DATAGRAM_BYTES - 1)
-    entries = pk.raw("field", [])
-    if not isinstance(entries, list) or any(not isinstance(e, dict) for e in entries):
-        raise pk.fail("field", entries, "must be an array of tables ([[packet.field]] entries)")
-    pk.check_unknown()
-    fields: list[HeaderField] = []
-    for i, entry in enumerate(entries):
-        ft = _Table(entry, f"[[packet.field]] #{i + 1}", origin)
-        name = ft.raw("name")
-        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9_.-]{1,64}", name):
-            raise ft.fail("name", name, "must be 1..64 letters, digits, '_', '.' or '-'")
-        ft.label = f"[[packet.field]] '{name}'"
-        offset = ft.integer("offset_bytes", 0, MAX_DATAGRAM_BYTES - 1)
-        size = ft.integer("size_bytes", 1, 8)
-        ftype = ft.choice("type", FIELD_TYPES)
-        order = ft.choice("byte_order", BYTE_ORDERS)
-        meaning = ft.choice("meaning", MEANINGS)
-        ft.check_unknown()
-        if offset + size > header_size:
-            raise ft.fail("offset_bytes", offset, f"the field (bytes {offset}..{offset + size - 1}) must lie inside "
-                                                  f"the header of header_size_bytes = {header_size}")
-        if meaning in ("byte_offset", "payload_size") and ftype != "uint":
-            raise ft.fail("type", ftype, f"a {meaning} field must be 'uint'")
-        if meaning == "payload_size" and size > 4:
-            raise ft.fail("size_bytes", size, "a payload_size field has at most 4 bytes (datagrams are < 64 KiB)")
-        for other in fields:
-            if offset < other.offset_bytes + other.size_bytes and other.offset_bytes < offset + size:
-                raise ft.fail("offset_bytes", offset, f"bytes {offset}..{offset + size - 1} overlap field "
-                                                      f"'{other.name}' (bytes {other.offset_bytes}.."
-                                                      f"{other.offset_bytes + other.size_bytes - 1})")
-            if other.name == name:
-                raise ft.fail("name", name, "must be unique among the header fields")
-        fields.append(HeaderField(name, offset, size, ftype == "int", order, meaning))
+def _check_meanings(pk: Section, fields: list[HeaderField]) -> None:
+    """One packet_sequence and one byte_offset field; at most one frame_number and payload_size."""
     for meaning, required in (("packet_sequence", True), ("byte_offset", True), ("frame_number", False),
                               ("payload_size", False)):
         n = sum(f.meaning == meaning for f in fields)
         if n > 1:
-            raise CubecastError(f"{_where(origin)}[packet] has {n} fields with meaning = {meaning!r}: at most one")
+            raise pk.error(f"has {n} fields with meaning = {meaning!r}: at most one")
         if required and n == 0:
             what = ("a counter incremented per datagram" if meaning == "packet_sequence"
                     else "the offset of the payload in the continuous stream")
-            raise CubecastError(f"{_where(origin)}[packet] needs one [[packet.field]] with meaning = {meaning!r} "
-                                f"({what})")
+            raise pk.error(f"needs one [[packet.field]] with meaning = {meaning!r} ({what})")
 
-    st = _Table(doc["samples"], "[samples]", origin)
+
+def _sample_format(st: Section) -> tuple[str, str, str, tuple[str, ...]]:
+    """[samples]: (type, byte order, iq order, axis order)."""
     sample_type = st.choice("type", SAMPLE_TYPES)
     if sample_type == "int16":
         sample_order = st.choice("byte_order", BYTE_ORDERS)
     else:
-        if "byte_order" in st.table:
-            raise st.fail("byte_order", st.table["byte_order"], "applies to int16 samples only; packed12 has "
-                                                                "one fixed bit order (see the README)")
+        if st.has("byte_order"):
+            raise st.fail("byte_order", st.raw("byte_order"), "applies to int16 samples only; packed12 has "
+                                                              "one fixed bit order (see the README)")
         sample_order = "little"
     iq_order = st.choice("iq_order", IQ_ORDERS)
     axes = st.raw("axis_order")
@@ -252,19 +185,32 @@ def parse_layout(text: str, origin: str | None = None) -> StreamLayout:
                 "must name chirp, rx, sample and iq once each, slowest first, e.g. ['chirp', 'rx', 'sample', 'iq']")
         raise st.fail("axis_order", axes, rule)
     st.check_unknown()
-    return StreamLayout(header_size, tuple(fields), sample_type, sample_order, iq_order, tuple(axes),
-                        description, origin)
+    return sample_type, sample_order, iq_order, tuple(axes)
+
+
+def parse_layout(text: str, origin: str | None = None) -> StreamLayout:
+    """Parse and validate the text of a stream layout. Raises CubecastError naming the field, the value
+    and the rule (config.py's format)."""
+    doc = parse_toml(text, origin)
+    doc.check_sections(("layout", "packet", "samples"), "a stream layout has [layout], [packet] and [samples]")
+    pk, st = doc.section("packet"), doc.section("samples")
+    lt = doc.section("layout", required=False)
+    description = lt.string("description", "")
+    lt.check_unknown()
+
+    header_size = pk.integer("header_size_bytes", ge=0, le=MAX_DATAGRAM_BYTES - 1)
+    entries = pk.tables("field", start=1)
+    pk.check_unknown()
+    fields: list[HeaderField] = []
+    for ft in entries:
+        fields.append(_header_field(ft, header_size, fields))
+    _check_meanings(pk, fields)
+    sample_type, sample_order, iq_order, axes = _sample_format(st)
+    return StreamLayout(header_size, tuple(fields), sample_type, sample_order, iq_order, axes, description, origin)
 
 
 def load_layout(path: str | Path) -> StreamLayout:
-    path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"cannot read stream layout {path}: {exc.strerror or exc}") from None
-    except UnicodeDecodeError:
-        raise CubecastError(f"{path}: not UTF-8 text") from None
-    return parse_layout(text, str(path))
+    return parse_layout(read_text(path, "stream layout"), str(path))
 
 
 # ---- stream frame -> ADC frame --------------------------------------------------------------------

@@ -630,7 +630,9 @@ def _mutate(text, old, new):
 
 
 @pytest.mark.parametrize("old,new,expected", [
-    ("size_bytes = 4\ntype", "size_bytes = 9\ntype", ["size_bytes = 9", "1..8"]),
+    ("size_bytes = 4\ntype", "size_bytes = 9\ntype", ["'seq' size_bytes = 9", "must be in [1, 8]"]),
+    ("size_bytes = 4\ntype", "size_bytes = 2.5\ntype", ["size_bytes = 2.5", "must be a whole number"]),
+    ('name = "flags"\n', "", ["[[packet.field]] #2 name is missing"]),
     ('meaning = "packet_sequence"', 'meaning = "counter"', ["meaning = 'counter'", "must be one of"]),
     ('type = "uint"\nbyte_order = "little"\nmeaning = "byte_offset"',
      'type = "int"\nbyte_order = "little"\nmeaning = "byte_offset"', ["'offset'", "type = 'int'", "'uint'"]),
@@ -645,10 +647,12 @@ def _mutate(text, old, new):
     ('iq_order = "iq"', 'iq_order = "ab"', ["iq_order = 'ab'", "'iq', 'qi', 'real'"]),
     ('type = "int16"', 'type = "int12"', ["[samples] type = 'int12'", "'int16', 'packed12'"]),
     ('type = "int16"', 'type = "packed12"', ["byte_order = 'little'", "int16 samples only"]),
-    ("[samples]", "[samples]\nscale = 2", ["[samples] has unknown field(s) scale"]),
-    ("[packet]", "[packets]\n[packet]", ["unknown section(s) [packets]"]),
+    ("[samples]", "[samples]\nscale = 2", ["[samples] unknown field scale"]),
+    ("[samples]", "[samples]\niq_ordr = 1", ["[samples] unknown field iq_ordr (did you mean iq_order?)"]),
+    ("[packet]", "[packets]\n[packet]", ["unknown section [packets] (did you mean [packet]?)",
+                                         "a stream layout has [layout], [packet] and [samples]"]),
     ('name = "flags"', 'name = "seq"', ["name = 'seq'", "unique"]),
-    ("header_size_bytes = 16", "header_size_bytes = -1", ["header_size_bytes = -1", "0..65534"]),
+    ("header_size_bytes = 16", "header_size_bytes = -1", ["[packet] header_size_bytes = -1", "must be in [0, 65534]"]),
     ("header_size_bytes = 16", "header_size_bytes = 16\nheader_size_bytes = 17", ["not valid TOML"]),
 ])
 def test_bad_layouts_name_field_value_and_rule(old, new, expected):
@@ -658,6 +662,15 @@ def test_bad_layouts_name_field_value_and_rule(old, new, expected):
     assert msg.startswith("bad.toml: ")
     for part in expected:
         assert part in msg, (part, msg)
+
+
+def test_a_layout_file_that_cannot_be_read_is_named(tmp_path):
+    with pytest.raises(CubecastError, match=r"cannot read stream layout .*absent\.toml"):
+        load_layout(tmp_path / "absent.toml")
+    latin1 = tmp_path / "latin1.toml"
+    latin1.write_bytes(LAYOUT_A.replace("test board A", "test board \xe9").encode("latin-1"))
+    with pytest.raises(CubecastError, match=r"cannot read stream layout .*latin1\.toml: not UTF-8"):
+        load_layout(latin1)
 
 
 def test_layout_and_sensor_must_agree_and_options_are_checked(tmp_path):
