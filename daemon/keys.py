@@ -1,6 +1,6 @@
 """Keys for the worker endpoints: ZeroMQ's CURVE security, in ZeroMQ's own key-file format.
 
-With keys, every connection to serve's --tasks and --results endpoints is authenticated and
+With keys, every connection to serve's tasks and results endpoints is authenticated and
 encrypted (CurveZMQ: Curve25519 key exchange, then authenticated encryption of every message).
 serve holds its secret key and a folder of the public keys of the workers it accepts; a worker holds
 its own secret key and serve's public key. A connection with any other key is refused during the
@@ -35,6 +35,9 @@ LOCAL_KEYS_ENV = "CUBECAST_WORKER_KEYS"
 _NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")
 # a client key not in the folder: read the folder again at most this often (new workers join)
 RESCAN_S = 1.0
+# security handshakes that failed: refused key (AUTH), keys on one side only (PROTOCOL), undecipherable
+HANDSHAKE_FAILED_EVENTS = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
+                           | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
 
 
 def curve_available() -> bool:
@@ -65,7 +68,7 @@ def create_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
     try:
         d.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise CubecastError(f"keys --dir {d}: cannot create it: {exc.strerror or exc}") from None
+        raise CubecastError(f"key folder {d}: cannot create it: {exc.strerror or exc}") from None
     public, secret = d / f"{name}{PUBLIC_SUFFIX}", d / f"{name}{SECRET_SUFFIX}"
     for p in (public, secret):
         if p.exists():
@@ -75,7 +78,7 @@ def create_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
     try:
         zmq.auth.create_certificates(str(d), name)
     except OSError as exc:
-        raise CubecastError(f"keys --dir {d}: cannot write: {exc.strerror or exc}") from None
+        raise CubecastError(f"key folder {d}: cannot write: {exc.strerror or exc}") from None
     finally:
         os.umask(old)
     os.chmod(secret, 0o600)
@@ -121,7 +124,7 @@ def public_keys_in(directory: str | Path) -> set[bytes]:
     """The public keys of every NAME.key file in a folder (a file that is not a key is an error)."""
     d = Path(directory)
     if not d.is_dir():
-        raise CubecastError(f"--worker-keys {d}: not a folder")
+        raise CubecastError(f"worker keys folder {d}: not a folder")
     return {load_public_key(p) for p in sorted(d.glob(f"*{PUBLIC_SUFFIX}"))}
 
 

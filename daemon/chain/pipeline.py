@@ -31,6 +31,7 @@ from .doppler import DopplerFft
 from .mimo import MimoDecoder
 from .points import POINT_DTYPE, POINT_FIELDS, fill_points
 from .rangefft import RangeFft
+from .rdmap import pool_rdmap
 
 STAGES = ("range_fft", "doppler_fft", "cfar", "mimo", "angle", "points")
 
@@ -140,6 +141,29 @@ class Pipeline:
     def detection_map(self) -> np.ndarray:
         """The last frame's range-Doppler map (float32 [range, doppler], Doppler fft-shifted)."""
         return self.doppler_fft.power
+
+    def display_map(self) -> tuple[np.ndarray, float, float, float, float]:
+        """The last frame's map pooled for display (rdmap.pool_rdmap), velocity bins by v = f_D
+        lambda / 2 (common practice)."""
+        bin_v = self.doppler_fft.bin_hz * self.sensor.wavelength_m / 2.0
+        return pool_rdmap(self.detection_map, self.range_fft.bin_m, bin_v)
+
+    def warm_up(self) -> None:
+        """Run every compiled path once: canonical frames (zeros, then a tone in noise so that the
+        per-detection stages run) and the sensor's ADC format both from a writable buffer (a frame
+        received over ZeroMQ is writable) and from a read-only one (bytes; numba compiles read-only
+        arrays separately). serve runs it before it subscribes and before it starts workers, so that
+        the numba cache is filled once and nothing compiles at the first real frame."""
+        self.process(np.zeros(self.frame_shape, np.complex64))
+        rng = np.random.default_rng(0)
+        noise = rng.standard_normal(self.frame_shape) + 1j * rng.standard_normal(self.frame_shape)
+        tone = 50.0 * np.exp(2j * np.pi * 0.23 * np.arange(self.frame_shape[2]))
+        self.process((noise + tone).astype(np.complex64))
+        raw_dtype = self.sensor.adc.raw_dtype()
+        raw_shape = self.sensor.adc.raw_shape(*self.frame_shape)
+        self.process_raw(np.zeros(raw_shape, raw_dtype))
+        raw = np.frombuffer(bytes(int(np.prod(raw_shape)) * raw_dtype.itemsize), raw_dtype).reshape(raw_shape)
+        self.process_raw(raw)
 
     def process(self, frame: np.ndarray) -> np.ndarray:
         """Points of one canonical frame (complex64 [chirp, rx, sample])."""
