@@ -316,10 +316,9 @@ def warm(name: str) -> None:
     """Compile (or load) every numba function the chain uses for this sensor."""
     from .chain.pipeline import Pipeline
     from .sensor import parse_sensor
-    from .workers import warm_up_pipeline
     sensor = parse_sensor(sensor_toml(name), f"bench sensor {name}")
     pipe = Pipeline(sensor)
-    warm_up_pipeline(pipe)  # every compiled path, the per-detection ones included
+    pipe.warm_up()  # every compiled path, the per-detection ones included
     pipe.process_raw(np.zeros(sensor.adc.raw_shape(*pipe.frame_shape), sensor.adc.raw_dtype()))
 
 

@@ -84,7 +84,15 @@ def _process(args) -> int:
 
 
 def _serve(args) -> int:
-    from .service import DEFAULT_SUB, serve
+    from .netio import DEFAULT_SUB
+    from .service import serve
+    if (args.server_key is None) != (args.worker_keys is None):
+        raise CubecastError("--server-key and --worker-keys: give both (serve's secret key and the folder of "
+                            "accepted worker keys) or neither")
+    if (args.tasks is None) != (args.results is None):
+        raise CubecastError("--tasks and --results: give both endpoints for workers, or neither")
+    if args.server_key is not None and not (args.workers or args.tasks is not None):
+        raise CubecastError("--server-key and --worker-keys: only with --workers or --tasks")
     return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
                  workers=args.workers, tasks=args.tasks, results=args.results,
@@ -92,7 +100,10 @@ def _serve(args) -> int:
 
 
 def _worker(args) -> int:
-    from .workers import run_worker
+    from .worker import run_worker
+    if (args.server_key is None) != (args.key is None):
+        raise CubecastError("--server-key and --key: give both (serve's public key and this worker's secret "
+                            "key) or neither")
     return run_worker(args.connect, args.results, sensor_path=args.sensor, name=args.name,
                       capacity=args.capacity, check_crc=not args.skip_crc,
                       server_key=args.server_key, key=args.key)

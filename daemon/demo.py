@@ -32,7 +32,7 @@ from .capture import CaptureReader
 from .errors import CubecastError
 from .files import capture_sensor
 from .logs import uses_json_lines
-from .service import stop_on_signals
+from .netio import stop_on_signals
 from .wire import WireError, decode
 
 SAMPLES_DIR = Path(__file__).resolve().parent.parent / "replay_samples"

@@ -28,10 +28,11 @@ from .capture import CaptureReader, CaptureWriter, CorruptFrameError
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
 from .files import _fmt, capture_sensor
+from .intake import AdcValidator
 from .logs import RateLimitFilter
+from .netio import DEFAULT_PUB, DEFAULT_SUB, bind_socket, connect_socket, stop_on_signals
 from .scene import Scene
 from .sensor import Sensor
-from .service import DEFAULT_PUB, DEFAULT_SUB, AdcValidator, bind_socket, connect_socket, stop_on_signals
 from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
 
 DEFAULT_SOURCE = DEFAULT_SUB  # sources bind where serve connects by default

@@ -33,7 +33,7 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
     from . import wire
     from .capture import CaptureReader
     from .chain.pipeline import Pipeline
-    from .service import pool_rdmap
+    from .chain.rdmap import pool_rdmap
     from .chain.points import RECORD_DTYPE, to_records
     from .files import capture_sensor, iter_capture_frames
     from .settings import load_settings

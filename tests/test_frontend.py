@@ -147,7 +147,6 @@ def test_warm_up_leaves_nothing_to_compile_for_received_frames():
     import zmq
 
     from cubecast.daemon.chain import angle, cfar, doppler, mimo, pipeline, points, rangefft
-    from cubecast.daemon.workers import warm_up_pipeline
 
     def signatures():
         return {f"{m.__name__}.{k}": len(v.signatures) for m in (angle, cfar, doppler, mimo, pipeline, points, rangefft)
@@ -155,7 +154,7 @@ def test_warm_up_leaves_nothing_to_compile_for_received_frames():
 
     s = make_sensor()
     pipe = Pipeline(s)
-    warm_up_pipeline(pipe)
+    pipe.warm_up()
     before = signatures()
     raw = Simulator(s, parse_scene(SCENE), seed=5).raw_frame(0)
     ctx = zmq.Context()

@@ -81,7 +81,7 @@ def _server_keys(keyring):
 
 
 def test_local_workers_with_keys_give_the_single_process_result(keyring, sensor, ref_points):
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
     with serving(sensor, ep, workers=2, queue_depth=64, worker_keys=_server_keys(keyring)) as svc:
         col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
@@ -94,13 +94,14 @@ def test_local_workers_with_keys_give_the_single_process_result(keyring, sensor,
 
 
 def _worker(svc, *extra) -> subprocess.Popen:
-    return subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
-                             "--results", svc.pool.results_endpoint, "--name", "remote", *extra], cwd=REPO,
+    pool = svc.processor.pool
+    return subprocess.Popen([sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", pool.tasks_endpoint,
+                             "--results", pool.results_endpoint, "--name", "remote", *extra], cwd=REPO,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
 
 
 def test_remote_worker_with_an_accepted_key_joins(keyring, sensor, ref_points):
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
     with serving(sensor, ep, tasks_endpoint="tcp://127.0.0.1:*", results_endpoint="tcp://127.0.0.1:*",
                  queue_depth=64, worker_keys=_server_keys(keyring)) as svc:
@@ -127,8 +128,7 @@ def test_refused_workers_exit_with_what_to_fix(keyring, sensor, case):
     expect = {"unknown key": "refused this worker's key", "no keys": "this worker has no keys: serve requires them",
               "wrong serve key": "--server-key is not serve's public key"}[case]
     with serving(sensor, "tcp://127.0.0.1:1", tasks_endpoint="tcp://127.0.0.1:*",
-                 results_endpoint="tcp://127.0.0.1:*", worker_keys=_server_keys(keyring),
-                 log=lambda line: None) as svc:
+                 results_endpoint="tcp://127.0.0.1:*", worker_keys=_server_keys(keyring)) as svc:
         proc = _worker(svc, *args)
         try:
             _, err = proc.communicate(timeout=60)
@@ -142,7 +142,7 @@ def test_refused_workers_exit_with_what_to_fix(keyring, sensor, case):
 
 def test_keys_on_the_worker_only_are_refused(keyring, sensor):
     with serving(sensor, "tcp://127.0.0.1:1", tasks_endpoint="tcp://127.0.0.1:*",
-                 results_endpoint="tcp://127.0.0.1:*", log=lambda line: None) as svc:
+                 results_endpoint="tcp://127.0.0.1:*") as svc:
         proc = _worker(svc, "--server-key", str(keyring / "serve" / "serve.key"), "--key",
                        str(keyring / "accepted" / "worker-a.key_secret"))
         try:

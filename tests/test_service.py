@@ -4,6 +4,7 @@ slow and late subscribers, rejections, floods, signals and the headless demo. Ev
 from __future__ import annotations
 
 import contextlib
+import logging
 import os
 import re
 import signal
@@ -23,7 +24,11 @@ from cubecast.daemon.capture import CaptureReader
 from cubecast.daemon.chain.pipeline import Pipeline
 from cubecast.daemon.files import capture_sensor
 from cubecast.daemon.process import process_frames
-from cubecast.daemon.service import AdcValidator, RateLimitedLog, Service, pool_rdmap
+from cubecast.daemon.chain.rdmap import pool_rdmap
+from cubecast.daemon.intake import AdcValidator
+from cubecast.daemon.logs import RateLimitFilter
+from cubecast.daemon.netio import log_limited
+from cubecast.daemon.service import Service
 from cubecast.daemon.sources import AdcPublisher, ReplaySource
 from cubecast.daemon.wire import WireError, decode, encode_adc
 from tests.helpers import SAMPLES, YARD_SENSOR
@@ -289,25 +294,38 @@ def test_validator_real_float32_sensor():
     assert info.value.reason == "dtype"
 
 
-def test_rate_limited_log_one_line_per_reason_per_interval():
-    lines: list[str] = []
-    log = RateLimitedLog(lines.append, interval_s=0.3, prefix="p: ")
+@pytest.fixture()
+def cubecast_log(caplog, monkeypatch):
+    """Records of the cubecast loggers at INFO and above, whatever an earlier CLI run in this process
+    set up (logs.configure stops them propagating to pytest's handler)."""
+    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
+    caplog.set_level(logging.INFO, logger="cubecast")
+    return caplog
+
+
+def test_limited_log_one_record_per_reason_per_interval(cubecast_log):
+    logger = logging.getLogger("cubecast.test")
+    limit = RateLimitFilter(interval_s=0.3)
     for i in range(50):
-        log("crc", f"frame {i}")
-    log("digest", "other")
-    assert lines == ["p: crc: frame 0", "p: digest: other"]
+        log_limited(logger, limit, logging.WARNING, "crc", "p: crc: frame %d", i)
+    log_limited(logger, limit, logging.WARNING, "digest", "p: digest: other")
+    assert [r.getMessage() for r in cubecast_log.records] == ["p: crc: frame 0", "p: digest: other"]
+    assert all(r.levelno == logging.WARNING and r.name == "cubecast.test" for r in cubecast_log.records)
     time.sleep(0.35)
-    log.flush()
-    assert lines[-1] == "p: crc: 49 more in the last 0.3 s; latest: frame 49"
+    limit.flush(logger, prefix="p: ")
+    assert cubecast_log.records[-1].getMessage() == "p: crc: 49 more in the last 0.3 s; latest: p: crc: frame 49"
+    # a second limiter keeps its own intervals (one per Service)
+    log_limited(logger, RateLimitFilter(interval_s=60.0), logging.WARNING, "crc", "p: crc: elsewhere")
+    assert cubecast_log.records[-1].getMessage() == "p: crc: elsewhere"
 
 
 # ---- end to end -----------------------------------------------------------------------------------
 
 def test_points_equal_offline_processing_byte_for_byte(sensor, offline):
     records, frames = offline
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
-    with running_service(sensor, ep, queue_depth=64, quiet=True) as svc:
+    with running_service(sensor, ep, queue_depth=64) as svc:
         col = Collector(svc.pub_endpoint)
         try:
             connected(col)
@@ -340,16 +358,16 @@ def test_points_equal_offline_processing_byte_for_byte(sensor, offline):
 
 def test_source_restart_is_picked_up(sensor, offline):
     records, _ = offline
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
-    with running_service(sensor, ep, queue_depth=64, quiet=True) as svc:
+    with running_service(sensor, ep, queue_depth=64) as svc:
         col = Collector(svc.pub_endpoint)
         try:
             connected(col)
             src.run()
             assert wait_until(lambda: svc.stats()["frames_processed"] == 20, 20), svc.stats()
             # the source restarts on the same endpoint with a new run id and seq from 0 again
-            src2 = ReplaySource(YARD, ep, speed=None, wait_s=30, quiet=True)
+            src2 = ReplaySource(YARD, ep, speed=None, wait_s=30)
             assert src2.run() == 20
             assert wait_until(lambda: svc.stats()["frames_processed"] == 40, 20), svc.stats()
             s = quiescent(svc)
@@ -367,10 +385,10 @@ def test_source_restart_is_picked_up(sensor, offline):
 
 def test_slow_subscriber_does_not_slow_serve(sensor):
     n = 60
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=5.0, loop=True, frames=n, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=5.0, loop=True, frames=n, wait_s=30)
     ep = src.bind()
     # a map with every frame (32 KiB each) and small send buffers make the slow subscriber's queue overflow
-    with running_service(sensor, ep, rdmap_max_hz=1000.0, sndhwm=4, sndbuf_bytes=64 * 1024, quiet=True) as svc:
+    with running_service(sensor, ep, rdmap_max_hz=1000.0, sndhwm=4, sndbuf_bytes=64 * 1024) as svc:
         fast = Collector(svc.pub_endpoint)
         slow = Collector(svc.pub_endpoint, rcvhwm=1, rcvbuf=4096, read=False)
         try:
@@ -400,7 +418,7 @@ def test_slow_subscriber_does_not_slow_serve(sensor):
 
 
 def test_late_subscriber_gets_sensor_description(sensor):
-    with running_service(sensor, "tcp://127.0.0.1:1", quiet=True) as svc:
+    with running_service(sensor, "tcp://127.0.0.1:1") as svc:
         time.sleep(0.5)
         t0 = time.perf_counter()
         col = Collector(svc.pub_endpoint, prefix=b"yard-a/sensor")
@@ -420,7 +438,7 @@ def _raw(topic: bytes, header: dict, payload: bytes = b"") -> list:
     return [topic, msgpack.packb(header, use_bin_type=True), payload]
 
 
-def test_malformed_and_oversized_rejected_and_counted(sensor, offline):
+def test_malformed_and_oversized_rejected_and_counted(sensor, offline, cubecast_log):
     records, frames = offline
     frame = frames[0]
     ctx = zmq.Context()
@@ -428,9 +446,8 @@ def test_malformed_and_oversized_rejected_and_counted(sensor, offline):
     pub.setsockopt(zmq.LINGER, 0)
     pub.bind("tcp://127.0.0.1:*")
     ep = pub.getsockopt_string(zmq.LAST_ENDPOINT)
-    lines: list[str] = []
     try:
-        with running_service(sensor, ep, queue_depth=64, log=lines.append) as svc:
+        with running_service(sensor, ep, queue_depth=64) as svc:
             assert pub.poll(10_000, zmq.POLLIN) and pub.recv()[:1] == b"\x01"  # serve subscribed
             col = Collector(svc.pub_endpoint)
             connected(col)
@@ -475,7 +492,9 @@ def test_malformed_and_oversized_rejected_and_counted(sensor, offline):
             assert col.wait_for(lambda c: len(c.of("points")) >= 3, 5)
             assert [m.seq for m in col.of("points")] == [0, 1, 2]
             assert col.of("points")[0].data.tobytes() == records[0].tobytes()
-            # one log line per reason per interval (two crc failures, one line)
+            # one log line per reason per interval (two crc failures, one line), at WARNING
+            lines = [r.getMessage() for r in cubecast_log.records if r.name == "cubecast.daemon.service"]
+            assert all(r.levelno == logging.WARNING for r in cubecast_log.records if "rejected" in r.getMessage())
             for reason in expected:
                 assert sum(f"rejected frame, {reason}:" in ln for ln in lines) == 1, (reason, lines)
             assert any("'crc32'" in ln for ln in lines) and any("'digest'" in ln for ln in lines)
@@ -489,7 +508,7 @@ def test_flood_drops_oldest_counts_everything_and_memory_stays_flat(sensor, yard
     rounds, per_round = 3, 300
     pub = AdcPublisher(sensor, "tcp://127.0.0.1:*", sndhwm=8)
     try:
-        with running_service(sensor, pub.endpoint, queue_depth=2, quiet=True) as svc:
+        with running_service(sensor, pub.endpoint, queue_depth=2) as svc:
             health = Collector(svc.pub_endpoint, prefix=b"yard-a/health")
             assert pub.wait_for_subscribers(1, 10, threading.Event())
             rss = []
@@ -566,4 +585,4 @@ def test_demo_headless_exits_zero_with_summary_lines():
     assert len(lines) >= 3, proc.stdout
     frames = [int(re.search(r"frames (\d+)", ln).group(1)) for ln in lines]
     assert frames == sorted(frames) and frames[-1] > frames[0]  # frames keep flowing
-    assert "latency p50" in lines[-1] and proc.stdout.rstrip().endswith("demo: stopped")
+    assert "latency p50" in lines[-1] and proc.stderr.rstrip().endswith("demo: stopped")  # a status line

@@ -28,12 +28,14 @@ from cubecast.daemon.chain.points import RECORD_DTYPE, to_records
 from cubecast.daemon.cli import main as cli_main
 from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.files import capture_sensor, to_canonical
-from cubecast.daemon.service import Service, pool_rdmap
+from cubecast.daemon.chain.rdmap import pool_rdmap
+from cubecast.daemon.service import Service
 from cubecast.daemon.settings import ProcessingSettings
 from cubecast.daemon.sources import AdcPublisher, ReplaySource
 from cubecast.daemon.wire import decode, encode_adc
-from cubecast.daemon.workers import (ProtocolError, WorkerConfig, decode_result, decode_task, decode_welcome,
-                            encode_result, encode_task, encode_welcome, Worker)
+from cubecast.daemon.worker import Worker
+from cubecast.daemon.workproto import (ProtocolError, WorkerConfig, decode_result, decode_task, decode_welcome,
+                                       encode_result, encode_task, encode_welcome)
 from tests.helpers import SAMPLES, YARD_SENSOR
 from tests.test_service import Collector, connected, run_in_thread, wait_until
 
@@ -76,15 +78,14 @@ def full_invariant(s: dict) -> bool:
 @contextlib.contextmanager
 def serving(sensor, sub, **kw):
     """A Service with workers in a thread; on exit it must stop within 3 s and leave no local worker."""
-    kw.setdefault("quiet", True)
     svc = Service(sensor, sub, "tcp://127.0.0.1:*", **kw)
     t, stop, errors = run_in_thread(svc)
     assert wait_until(lambda: svc.ready.is_set() or errors, 90) and not errors, errors
-    pids = [p for p in svc.pool.local_pids() if p is not None]
+    pids = [p for p in svc.processor.pool.local_pids() if p is not None]
     try:
         yield svc
     finally:
-        pids += [p for p in svc.pool.local_pids() if p is not None]
+        pids += [p for p in svc.processor.pool.local_pids() if p is not None]
         stop.set()
         t.join(5)
         assert not t.is_alive(), "serve did not stop within 5 s"
@@ -214,7 +215,7 @@ def test_worker_validates_tasks_against_a_scripted_serve(sensor, frames, ref_poi
         s.setsockopt(zmq.LINGER, 0)
         s.bind("tcp://127.0.0.1:*")
     w = Worker(router.getsockopt_string(zmq.LAST_ENDPOINT), pull.getsockopt_string(zmq.LAST_ENDPOINT),
-               name="scripted", quiet=True)
+               name="scripted")
     stop = threading.Event()
     t = threading.Thread(target=w.run, args=(stop,), daemon=True)
     t.start()
@@ -275,7 +276,7 @@ def test_worker_validates_tasks_against_a_scripted_serve(sensor, frames, ref_poi
 # ---- serve with workers, end to end ------------------------------------------------------------------
 
 def test_two_workers_equal_single_process_byte_for_byte(sensor, ref_points, frames):
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
     with serving(sensor, ep, workers=2, queue_depth=64, rdmap_max_hz=1000.0) as svc:
         col = Collector(svc.pub_endpoint)
@@ -409,7 +410,7 @@ def test_killed_worker_costs_the_frames_it_held_and_the_stream_goes_on(sensor, f
                 assert r is not None and not r["alive"] and r["tasks_lost"] == held
                 # serve restarts its local worker (after ~1 s) and it joins again
                 assert wait_until(lambda: svc.stats()["workers_alive"] == 2, 20), svc.stats()
-                assert victim not in [p for p in svc.pool.local_pids()]
+                assert victim not in [p for p in svc.processor.pool.local_pids()]
                 assert col.wait_for(lambda c: c.of("health") and full_invariant(c.of("health")[-1].header), 3)
                 assert all(full_invariant(h.header) for h in col.of("health"))
             finally:
@@ -459,16 +460,17 @@ def test_silent_worker_times_out_and_its_late_results_are_discarded(sensor, fram
 
 
 def _worker_cmd(svc, *extra) -> list[str]:
-    return [sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", svc.pool.tasks_endpoint,
-            "--results", svc.pool.results_endpoint, *extra]
+    pool = svc.processor.pool
+    return [sys.executable, "-m", "cubecast.daemon.cli", "worker", "--connect", pool.tasks_endpoint,
+            "--results", pool.results_endpoint, *extra]
 
 
 def test_remote_style_worker_joins_and_processes(sensor, ref_points):
-    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30, quiet=True)
+    src = ReplaySource(YARD, "tcp://127.0.0.1:*", speed=None, wait_s=30)
     ep = src.bind()
     with serving(sensor, ep, tasks_endpoint="tcp://127.0.0.1:*", results_endpoint="tcp://127.0.0.1:*",
                  queue_depth=64) as svc:
-        assert svc.stats()["workers"] == [] and svc.pool.slots == []  # no local workers
+        assert svc.stats()["workers"] == [] and svc.processor.pool.slots == []  # no local workers
         proc = subprocess.Popen(_worker_cmd(svc, "--sensor", str(YARD_SENSOR), "--name", "remote-a"), cwd=REPO,
                                 stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
         col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
@@ -522,7 +524,7 @@ def test_remote_worker_outlives_a_serve_restart(sensor, frames, ref_points):
                         assert wait_until(lambda: svc.stats()["workers_alive"] == 1 or proc.poll() is not None, 60), \
                             svc.stats()
                         assert proc.poll() is None, proc.stderr.read()
-                        sessions.append(svc.pool.session)
+                        sessions.append(svc.processor.pool.session)
                         assert pub.wait_for_subscribers(1, 10, threading.Event())
                         time.sleep(0.3)  # the collector's subscription reaches serve
                         n = _send(pub, frames, 0, 5)
@@ -551,7 +553,7 @@ def test_worker_with_another_sensor_is_refused(sensor, tmp_path):
     other_digest = load_sensor(other).digest
     assert other_digest != sensor.digest
     with serving(sensor, "tcp://127.0.0.1:1", tasks_endpoint="tcp://127.0.0.1:*",
-                 results_endpoint="tcp://127.0.0.1:*", log=lambda line: None) as svc:
+                 results_endpoint="tcp://127.0.0.1:*") as svc:
         out = subprocess.run(_worker_cmd(svc, "--sensor", str(other)), cwd=REPO, capture_output=True, text=True,
                              timeout=60)
         assert out.returncode == 2, out.stderr

@@ -1,4 +1,4 @@
-"""Worker processes: `cubecast serve --workers N` and `cubecast worker`.
+"""serve's end of the workers: `serve --workers N` and workers on other hosts (`cubecast worker`).
 
 serve fans frames out to worker processes (local subprocesses it starts itself, or workers on other
 hosts) and re-sequences their point clouds in frame order before publishing them. The sockets:
@@ -17,31 +17,11 @@ serve a per-worker address, so frames go only to workers with free capacity (cre
 announces how many tasks it may hold, 2 by default: one being processed, one waiting); a plain PUSH
 would deal tasks round robin, blindly, and stall on a dead worker's pipe.
 
-This is an internal protocol, version 1 (`proto` in every header), not the public wire of wire.md;
-its messages are multipart [kind, header (msgpack map), payload...] decoded with bounded msgpack
-(no pickle, no ext types) and validated field by field:
-
-    worker -> serve (DEALER)  hello {worker, name, pid, host, capacity, expect_digest}
-                              ready {worker, session, digest, warm_up_s}
-                              beat  {worker, session}                     every 0.25 s when idle
-                              bye   {worker}                              on a clean exit
-    serve -> worker (ROUTER)  welcome {session, sensor_toml, digest, settings, range_bias_m,
-                                       calibration} + calibration bytes   the whole configuration
-                              refuse  {reason, message}                   e.g. a sensor digest mismatch
-                              who     {session}                           "introduce yourself again"
-                              task    {session, task_id, seq, run, timestamp_s, received_unix_s,
-                                       digest, dtype, shape, crc32, rdmap} + the raw ADC payload
-    worker -> serve (PUSH)    result  {worker, session, task_id, seq, count, error, stage_ms,
-                                       process_s, rdmap} + point records + pooled map (or empty)
-
-Handshake: a worker sends `hello`; serve answers `welcome` with the sensor description (TOML text,
-re-parsed and digest-checked by the worker), the processing settings and the calibration, so every
-worker computes exactly what serve would. A worker started with `--sensor` states that description's
-digest in its hello; serve refuses a mismatch and the worker exits with an error naming both. The
-worker builds its Pipeline, warms it up and sends `ready`; only then does serve count its capacity.
-A task carries the ADC payload exactly as received from the source (zero-copy), the worker checks
-its digest, dtype, shape, length and CRC-32 before processing (local workers, over loopback, skip
-the CRC: serve checked it on receipt, and for a large frame it costs a quarter of the chain's time).
+The messages are those of daemon/workproto.py; the worker's side is daemon/worker.py. Handshake:
+a worker says hello; serve answers welcome with the whole configuration, or refuses it (a worker
+started with another sensor description); the worker builds and warms up its Pipeline and says
+ready; only then does serve count its capacity. A task carries the ADC payload exactly as received
+from the source (zero-copy).
 
 Re-sequencing: serve numbers tasks in dispatch order (which is arrival order) and publishes results
 strictly in that order from a bounded reorder window. A task whose worker died (its local process
@@ -67,322 +47,34 @@ pair made for the run.
 from __future__ import annotations
 
 import collections
+import logging
 import math
 import os
 import secrets
-import signal
 import socket
 import subprocess
 import sys
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Callable
 
-import numpy as np
 import zmq
 
-from .chain.points import RECORD_DTYPE, to_records
+from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
-from .keys import LOCAL_KEYS_ENV, ClientKeys, ServerKeys
-from .sensor import Sensor
-from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_CONTROL_BYTES, MAX_NAME_CHARS, ProtocolError, Result, Task,
-                        WorkerConfig, decode_control, decode_hello, decode_refuse, decode_result, decode_task,
-                        decode_welcome, encode_beat, encode_bye, encode_hello, encode_ready, encode_refuse,
-                        encode_result, encode_task, encode_welcome, encode_who, task_ids)
+from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ServerKeys
+from .logs import RateLimitFilter, uses_json_lines
+from .netio import PARENT_PID_ENV, bind_socket, local_endpoint, log_limited
+from .workproto import (MAX_CAPACITY, MAX_CONTROL_BYTES, ProtocolError, Result, WorkerConfig, decode_control,
+                        decode_hello, decode_result, encode_refuse, encode_task, encode_welcome, encode_who)
 
-DEFAULT_CAPACITY = 2
+log = logging.getLogger(__name__)
+
 DEFAULT_TASK_TIMEOUT_S = 2.0
 DEFAULT_REORDER_WINDOW = 64
-HELLO_RETRY_S = 1.0
 STARTUP_TIMEOUT_S = 120.0  # local workers: numba loads from the cache serve filled, but a loaded host is slow
 RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up to the second
-
-# security handshakes that failed: refused key (AUTH), keys on one side only (PROTOCOL), undecipherable
-HANDSHAKE_FAILED_EVENTS = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
-                           | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
-MAX_HANDSHAKE_FAILURES = 3  # undecipherable handshakes in a row before a worker gives up
-
-
-def _stderr_line(text: str) -> None:
-    print(text, file=sys.stderr, flush=True)
-
-
-
-# ---- the chain in a worker ------------------------------------------------------------------------
-
-def warm_up_pipeline(pipeline) -> None:
-    """Run every compiled path serve and its workers use once: canonical frames (zeros, then a tone in
-    noise so the per-detection stages run) and the sensor's ADC format both from a writable buffer
-    (a received ZeroMQ frame is writable) and from a read-only one (bytes; numba compiles read-only
-    arrays separately). Run by serve before it subscribes and before it starts workers, so that the
-    numba cache is filled once and nothing compiles at the first real frame."""
-    p = pipeline
-    p.process(np.zeros(p.frame_shape, np.complex64))
-    rng = np.random.default_rng(0)
-    noise = rng.standard_normal(p.frame_shape) + 1j * rng.standard_normal(p.frame_shape)
-    tone = 50.0 * np.exp(2j * np.pi * 0.23 * np.arange(p.frame_shape[2]))
-    p.process((noise + tone).astype(np.complex64))
-    s = p.sensor
-    raw_dtype = s.adc.raw_dtype()
-    raw_shape = s.adc.raw_shape(*p.frame_shape)
-    p.process_raw(np.zeros(raw_shape, raw_dtype))
-    raw = np.frombuffer(bytes(int(np.prod(raw_shape)) * raw_dtype.itemsize), raw_dtype).reshape(raw_shape)
-    p.process_raw(raw)
-
-
-def compute(pipeline, task: Task, canon: np.ndarray) -> tuple[np.ndarray, tuple | None]:
-    """Records of one task (exactly those serve computes in-process) and, when asked, the pooled map."""
-    from .files import to_canonical
-    from .service import pool_rdmap
-    if task.raw:
-        points = pipeline.process_raw(task.data)
-    else:
-        points = pipeline.process(to_canonical(pipeline.sensor, task.data, canon))
-    records = to_records(points, task.seq, task.timestamp_s)
-    rdmap = None
-    if task.want_rdmap:
-        bin_v = pipeline.doppler_fft.bin_hz * pipeline.sensor.wavelength_m / 2.0
-        rdmap = pool_rdmap(pipeline.detection_map, pipeline.range_fft.bin_m, bin_v)
-    return records, rdmap
-
-
-# ---- the worker ----------------------------------------------------------------------------------
-
-class Worker:
-    """`cubecast worker`: connects to serve's tasks (DEALER) and results (PUSH) endpoints, introduces
-    itself, is told the configuration, processes tasks until stopped. Worker(...).run(stop_event)."""
-
-    def __init__(self, tasks_endpoint: str, results_endpoint: str, *, sensor: Sensor | None = None,
-                 name: str | None = None, capacity: int = DEFAULT_CAPACITY, heartbeat_s: float = HEARTBEAT_S,
-                 log: Callable[[str], None] | None = None, quiet: bool = False,
-                 context: zmq.Context | None = None, check_crc: bool = True, keys: ClientKeys | None = None):
-        """check_crc=False skips re-computing each frame's CRC-32 (serve checked it on receipt); serve
-        starts its local workers so, since over loopback it is ~a quarter of a large frame's time.
-        keys: serve's public key and this worker's key pair, for a serve that requires them."""
-        if isinstance(capacity, bool) or not isinstance(capacity, int) or not 1 <= capacity <= MAX_CAPACITY:
-            raise CubecastError(f"--capacity {capacity!r}: must be a whole number in 1..{MAX_CAPACITY}")
-        self.name = name or f"{socket.gethostname()}-{os.getpid()}"
-        if not 0 < len(self.name) <= MAX_NAME_CHARS:
-            raise CubecastError(f"--name {self.name!r}: must be 1..{MAX_NAME_CHARS} characters")
-        self.tasks_endpoint, self.results_endpoint = tasks_endpoint, results_endpoint
-        self.expect = sensor
-        self.capacity = capacity
-        self.heartbeat_s = heartbeat_s
-        self.check_crc = check_crc
-        self.keys = keys
-        self.key = "w" + secrets.token_hex(8)
-        self.write = log or _stderr_line
-        self.quiet = quiet
-        self.context = context
-        self.ready = threading.Event()
-        self.session: str | None = None
-        self.config: WorkerConfig | None = None
-        self.pipeline = None
-        self._canon: np.ndarray | None = None
-        self.tasks_done = 0
-        self.tasks_failed = 0
-        self.tasks_ignored = 0  # tasks of another session (a serve that has gone)
-        self.welcomes = 0
-        self._handshake_failures = 0
-
-    def _say(self, text: str) -> None:
-        if not self.quiet:
-            self.write(f"cubecast worker {self.name}: {text}")
-
-    def _send(self, sock: zmq.Socket, parts: list) -> bool:
-        try:
-            sock.send_multipart(parts, flags=zmq.NOBLOCK, copy=False)
-            return True
-        except zmq.Again:  # not connected (IMMEDIATE) or serve does not keep up: retried or dropped
-            return False
-
-    def _hello(self, dealer: zmq.Socket) -> bool:
-        return self._send(dealer, encode_hello(self.key, self.name, os.getpid(), socket.gethostname()[:255],
-                                               self.capacity, self.expect.digest if self.expect else None))
-
-    def _welcome(self, dealer: zmq.Socket, parts: list) -> None:
-        session, config = decode_welcome(parts, self.expect.digest if self.expect else None)
-        self.welcomes += 1
-        t0 = time.perf_counter()
-        if not config.same_as(self.config):
-            from .chain.pipeline import Pipeline
-            self.pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m)
-            self._canon = np.empty(self.pipeline.frame_shape, np.complex64)
-            warm_up_pipeline(self.pipeline)
-            self.config = config
-        warm = time.perf_counter() - t0
-        self.session = session
-        self._send(dealer, encode_ready(self.key, session, config.sensor.digest, warm))
-        self.ready.set()
-        self._say(f"ready: sensor '{config.sensor.sensor_id}' (digest {config.sensor.digest}), session {session}, "
-                  f"warm-up {warm:.2f} s")
-
-    def _task(self, push: zmq.Socket, parts: list) -> None:
-        t0 = time.perf_counter()
-        task_id = seq = None
-        try:
-            try:
-                session, task_id, seq = task_ids(parts)
-                if session != self.session:
-                    self.tasks_ignored += 1  # a task of another serve session: nobody waits for it
-                    return
-            except ProtocolError:
-                pass
-            task = decode_task(parts, self.config.sensor, self.session, self.check_crc)
-            records, rdmap = compute(self.pipeline, task, self._canon)
-            error = None
-            self.tasks_done += 1
-        except CubecastError as exc:
-            records, rdmap, error = None, None, str(exc)
-            self.tasks_failed += 1
-        except Exception as exc:  # one bad frame must not stop the worker
-            records, rdmap, error = None, None, f"{type(exc).__name__}: {exc}"
-            self.tasks_failed += 1
-        if error is not None:
-            self._say(f"task failed: {error}")
-            if not (isinstance(task_id, int) and isinstance(seq, int)) or isinstance(task_id, bool):
-                return  # nothing to answer to; serve counts it lost after its timeout
-        stage = dict(self.pipeline.stage_ms) if error is None else {}
-        self._send(push, encode_result(self.key, self.session, task_id, seq, records, error, stage,
-                                       time.perf_counter() - t0, rdmap))
-
-    def _handshake_failed(self, monitor: zmq.Socket) -> None:
-        """Raise CubecastError on a security handshake serve refused or that cannot work; count the
-        undecipherable ones (a wrong serve key looks like that) and give up after a few in a row."""
-        from zmq.utils.monitor import recv_monitor_message
-        while monitor.poll(0):
-            ev = recv_monitor_message(monitor)
-            if ev["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
-                self._handshake_failures = 0
-                continue
-            where = f"serve at {self.tasks_endpoint}"
-            if ev["event"] == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
-                raise CubecastError(f"{where} refused this worker's key: add its public key (the .key file of "
-                                    "--key) to serve's --worker-keys folder")
-            if self.keys is None:
-                raise CubecastError(f"security handshake with {where} failed and this worker has no keys: serve "
-                                    "requires them (worker --server-key --key, see `cubecast keys`)")
-            self._handshake_failures += 1
-            if (ev["event"] == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
-                    or self._handshake_failures >= MAX_HANDSHAKE_FAILURES):
-                raise CubecastError(f"security handshake with {where} failed: either serve does not use keys "
-                                    "(serve and worker must both use them or both not), or --server-key is not "
-                                    "serve's public key (the .key file of its --server-key)")
-
-    def run(self, stop: threading.Event | None = None) -> int:
-        """Serve tasks until `stop` is set; returns the number of tasks processed. Raises CubecastError
-        when serve refuses this worker."""
-        from .service import connect_socket
-        stop = stop or threading.Event()
-        ctx = self.context or zmq.Context()
-        dealer = ctx.socket(zmq.DEALER)
-        push = ctx.socket(zmq.PUSH)
-        try:
-            dealer.setsockopt(zmq.ROUTING_ID, self.key.encode())
-            dealer.setsockopt(zmq.LINGER, 0)
-            dealer.setsockopt(zmq.IMMEDIATE, 1)  # a hello is sent only over a live connection (else retried)
-            dealer.setsockopt(zmq.RCVHWM, 4 * MAX_CAPACITY)
-            push.setsockopt(zmq.LINGER, 500)
-            push.setsockopt(zmq.IMMEDIATE, 1)
-            push.setsockopt(zmq.SNDHWM, 4 * MAX_CAPACITY)
-            for sock in (dealer, push):  # ZMTP heartbeats: a dead peer's connection is noticed and redialled
-                sock.setsockopt(zmq.HEARTBEAT_IVL, 1000)
-                sock.setsockopt(zmq.HEARTBEAT_TIMEOUT, 5000)
-                if self.keys is not None:
-                    self.keys.apply(sock)
-            monitor = dealer.get_monitor_socket(HANDSHAKE_FAILED_EVENTS | zmq.EVENT_HANDSHAKE_SUCCEEDED)
-            connect_socket(dealer, self.tasks_endpoint, "--connect")
-            connect_socket(push, self.results_endpoint, "--results")
-            self._say(f"connecting to tasks {self.tasks_endpoint}, results {self.results_endpoint}")
-            last_hello = -math.inf
-            last_sent = time.monotonic()
-            while not stop.is_set():
-                now = time.monotonic()
-                if self.session is None and now - last_hello >= HELLO_RETRY_S:
-                    if self._hello(dealer):
-                        last_hello = now
-                        last_sent = now
-                if self.session is not None and now - last_sent >= self.heartbeat_s:
-                    if self._send(dealer, encode_beat(self.key, self.session)):
-                        last_sent = now
-                if monitor.poll(0):
-                    self._handshake_failed(monitor)
-                if not dealer.poll(int(self.heartbeat_s * 1000) if self.session else 100, zmq.POLLIN):
-                    continue
-                for _ in range(4 * MAX_CAPACITY):
-                    try:
-                        parts = dealer.recv_multipart(zmq.NOBLOCK, copy=False)
-                    except zmq.Again:
-                        break
-                    kind = parts[0].bytes
-                    if kind == b"task":
-                        if self.session is not None:
-                            self._task(push, parts)
-                            last_sent = time.monotonic()  # a result also tells serve we are alive
-                        else:
-                            self.tasks_ignored += 1
-                    elif kind == b"welcome":
-                        self._welcome(dealer, parts)
-                        last_sent = time.monotonic()
-                    elif kind == b"who":
-                        self._say("serve asks this worker to introduce itself again (serve restarted, or "
-                                  "it thought this worker was gone)")
-                        self.session = None
-                        self.ready.clear()
-                        last_hello = -math.inf
-                    elif kind == b"refuse":
-                        raise CubecastError(f"serve at {self.tasks_endpoint} refused this worker: "
-                                            f"{decode_refuse(parts)}")
-                    # anything else is ignored: a newer serve may send kinds this worker does not know
-                    if stop.is_set():
-                        break
-        finally:
-            with_bye = self.session is not None
-            if with_bye:
-                self._send(dealer, encode_bye(self.key))
-                dealer.setsockopt(zmq.LINGER, 200)
-            if "monitor" in locals():
-                dealer.disable_monitor()
-                monitor.close(linger=0)
-            dealer.close()
-            push.close(linger=200)
-            if self.context is None:
-                ctx.term()
-        return self.tasks_done
-
-
-def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | None = None,
-               name: str | None = None, capacity: int = DEFAULT_CAPACITY, quiet: bool = False,
-               check_crc: bool = True, server_key: str | None = None, key: str | None = None) -> int:
-    """`cubecast worker`: run until SIGINT/SIGTERM; exit code 0 (2 with an error when refused)."""
-    from .service import stop_on_signals
-    if (server_key is None) != (key is None):
-        raise CubecastError("--server-key and --key: give both (serve's public key and this worker's secret "
-                            "key) or neither")
-    parent = os.environ.get(PARENT_PID_ENV)
-    if parent is not None and not _die_with_parent(parent):
-        return 0  # a local worker whose serve is already gone
-    keys = None
-    if key is not None:
-        keys = ClientKeys.from_files(server_key, key)
-    elif parent is not None and os.environ.get(LOCAL_KEYS_ENV):
-        keys = ClientKeys.from_env(os.environ[LOCAL_KEYS_ENV])
-    sensor = None
-    if sensor_path is not None:
-        from .sensor import load_sensor
-        sensor = load_sensor(sensor_path)
-    stop = threading.Event()
-    with stop_on_signals(stop):
-        w = Worker(tasks_endpoint, results_endpoint, sensor=sensor, name=name, capacity=capacity, quiet=quiet,
-                   check_crc=check_crc, keys=keys)
-        done = w.run(stop)
-    if not quiet:
-        _stderr_line(f"cubecast worker {w.name}: stopped: {done} tasks processed, {w.tasks_failed} failed")
-    return 0
-
-
-# ---- the serve side ------------------------------------------------------------------------------
+STOPPED = "it stopped"  # a worker's clean exit (bye)
 
 SENT, DONE, LOST = 0, 1, 2
 
@@ -436,30 +128,6 @@ class LocalSlot:
     started: float = 0.0
 
 
-PARENT_PID_ENV = "CUBECAST_SERVE_PID"  # set by serve for its local workers
-
-
-def _die_with_parent(parent_pid: str) -> bool:
-    """In a local worker: ask Linux to send SIGTERM when serve dies (no orphans). False if serve is
-    gone already (its pid is no longer our parent)."""
-    if sys.platform.startswith("linux"):
-        try:
-            import ctypes
-            ctypes.CDLL("libc.so.6", use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1
-        except Exception:
-            pass
-    return str(os.getppid()) == parent_pid
-
-
-def local_endpoint(endpoint: str) -> str:
-    """Where a process on this host connects to reach a bound endpoint (wildcard hosts -> loopback)."""
-    for wild, loop in (("tcp://0.0.0.0:", "tcp://127.0.0.1:"), ("tcp://*:", "tcp://127.0.0.1:"),
-                       ("tcp://[::]:", "tcp://[::1]:")):
-        if endpoint.startswith(wild):
-            return loop + endpoint[len(wild):]
-    return endpoint
-
-
 class WorkerPool:
     """serve's end: binds the tasks ROUTER and results PULL, starts and watches local workers, hands
     frames to workers with free capacity, collects results and returns them in task order.
@@ -469,12 +137,14 @@ class WorkerPool:
 
     def __init__(self, config: WorkerConfig, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
                  task_timeout_s: float = DEFAULT_TASK_TIMEOUT_S, reorder_window: int = DEFAULT_REORDER_WINDOW,
-                 restart_local: bool = True, log: Callable[[str], None] | None = None, quiet: bool = False,
-                 worker_quiet: bool = True, local_check_crc: bool = False, keys: ServerKeys | None = None):
+                 restart_local: bool = True, local_check_crc: bool = False, keys: ServerKeys | None = None,
+                 log_interval_s: float = 5.0):
+        """Local workers log warnings and errors only (to serve's standard error). Ignored worker
+        messages are logged at most once per reason per log_interval_s."""
         if isinstance(local_workers, bool) or not isinstance(local_workers, int) or not 0 <= local_workers <= 256:
-            raise CubecastError(f"--workers {local_workers!r}: must be a whole number in 0..256")
+            raise CubecastError(f"local workers {local_workers!r}: must be a whole number in 0..256")
         if not (task_timeout_s > 0 and math.isfinite(task_timeout_s)):
-            raise CubecastError(f"--task-timeout {task_timeout_s!r}: must be a number of seconds > 0")
+            raise CubecastError(f"task timeout {task_timeout_s!r}: must be a number of seconds > 0")
         self.config = config
         self.tasks_endpoint_requested = tasks_endpoint
         self.results_endpoint_requested = results_endpoint
@@ -485,9 +155,6 @@ class WorkerPool:
         self.reorder_window = max(1, int(reorder_window))
         self.restart_local = restart_local
         self.session = secrets.token_hex(8)
-        self.write = log or _stderr_line
-        self.quiet = quiet
-        self.worker_quiet = worker_quiet
         self.local_check_crc = local_check_crc
         self.keys = keys
         self.handshakes_refused = 0
@@ -507,12 +174,10 @@ class WorkerPool:
         self._fd_to_key: dict[int, bytes] = {}
         self._dirty = True
         self._welcome_parts = encode_welcome(self.session, config)
-        from .service import RateLimitedLog
-        self._ignored_log = RateLimitedLog(self.write, 5.0, "cubecast serve: ")
+        self._ignored_log = RateLimitFilter(log_interval_s)
 
     # ---- set-up and tear-down --------------------------------------------------------------
     def bind(self, ctx: zmq.Context, wake: zmq.Socket | None = None) -> None:
-        from .service import bind_socket
         self.router = ctx.socket(zmq.ROUTER)
         self.router.setsockopt(zmq.LINGER, 0)
         self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)  # sending to a vanished worker raises, never drops
@@ -537,8 +202,8 @@ class WorkerPool:
             self.monitor = self.router.get_monitor_socket(zmq.EVENT_DISCONNECTED | HANDSHAKE_FAILED_EVENTS)
         except zmq.ZMQError:
             self.monitor = None
-        self.tasks_endpoint = bind_socket(self.router, self.tasks_endpoint_requested, "--tasks")
-        self.results_endpoint = bind_socket(self.pull, self.results_endpoint_requested, "--results")
+        self.tasks_endpoint = bind_socket(self.router, self.tasks_endpoint_requested, "tasks endpoint")
+        self.results_endpoint = bind_socket(self.pull, self.results_endpoint_requested, "results endpoint")
         self.poller.register(self.router, zmq.POLLIN)
         self.poller.register(self.pull, zmq.POLLIN)
         if self.monitor is not None:
@@ -556,8 +221,9 @@ class WorkerPool:
                "--results", local_endpoint(self.results_endpoint), "--name", f"local-{slot.index}"]
         if not self.local_check_crc:
             cmd.append("--skip-crc")
-        if self.worker_quiet:
-            cmd.append("--quiet")
+        cmd.append("--quiet")  # warnings and errors only
+        if uses_json_lines():
+            cmd.append("--log-json")  # serve logs for a collector: so do its workers
         env = dict(os.environ)
         for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMBA_NUM_THREADS"):
             env.setdefault(var, "1")  # one core per worker process
@@ -587,7 +253,7 @@ class WorkerPool:
             self.poll(100)
 
     def close(self, deadline_s: float = 0.7) -> None:
-        self._ignored_log.flush(force=True)
+        self._ignored_log.flush(log, force=True, prefix="cubecast serve: ")
         procs = [s.proc for s in self.slots if s.proc is not None]
         for p in procs:
             if p.poll() is None:
@@ -692,6 +358,9 @@ class WorkerPool:
             self._refresh_rows()
         return completed, lost
 
+    def _ignored(self, reason: str, text: str) -> None:
+        log_limited(log, self._ignored_log, logging.WARNING, reason, "cubecast serve: %s: %s", reason, text)
+
     def _send_to(self, key: bytes, parts: list) -> bool:
         try:
             self.router.send_multipart([key] + parts, flags=zmq.NOBLOCK, copy=False)
@@ -708,7 +377,7 @@ class WorkerPool:
                 break
             if ev["event"] & HANDSHAKE_FAILED_EVENTS:
                 self.handshakes_refused += 1
-                self._ignored_log("worker handshake", f"refused a worker connection on {self.tasks_endpoint}: "
+                self._ignored("worker handshake", f"refused a worker connection on {self.tasks_endpoint}: "
                                       "unknown key, wrong serve key, or no keys")
             elif ev["event"] == zmq.EVENT_DISCONNECTED:
                 key = self._fd_to_key.pop(int(ev["value"]), None)
@@ -747,21 +416,20 @@ class WorkerPool:
                 if w.state != "ready":
                     w.state = "ready"
                     self._dirty = True
-                    if not self.quiet:
-                        where = "local" if w.local_slot is not None else f"on {w.host}"
-                        self.write(f"cubecast serve: worker '{w.name}' ({where}, pid {w.pid}) ready, capacity "
-                                   f"{w.capacity}")
+                    where = "local" if w.local_slot is not None else f"on {w.host}"
+                    log.info("cubecast serve: worker '%s' (%s, pid %d) ready, capacity %d", w.name, where, w.pid,
+                             w.capacity)
             elif kind == b"beat":
                 if h.get("session") != self.session:
                     self._send_to(key, encode_who(self.session))
             elif kind == b"bye":
-                self._gone(w, "it stopped")
+                self._gone(w, STOPPED)
         except ProtocolError as exc:
             self.messages_invalid += 1
             if kind == b"hello":  # tell the worker why, so that it stops with that reason
                 self.workers_refused += 1
                 self._send_to(key, encode_refuse("protocol", str(exc)))
-            self._ignored_log("ignored worker message", f"from worker address {key[:20]!r}: {exc}")
+            self._ignored("ignored worker message", f"from worker address {key[:20]!r}: {exc}")
 
     def _hello(self, key: bytes, h: dict, fd: int | None, now: float) -> None:
         hello = decode_hello(h)
@@ -773,7 +441,7 @@ class WorkerPool:
             text = (f"serve processes sensor '{s.sensor_id}' with digest {s.digest}; worker '{name}' was started "
                     f"with a sensor description of digest {expect}")
             self._send_to(key, encode_refuse("digest", text))
-            self.write(f"cubecast serve: refused worker '{name}' (pid {pid} on {host}): {text}")
+            log.warning("cubecast serve: refused worker '%s' (pid %d on %s): %s", name, pid, host, text)
             return
         old = self.workers.get(key)
         if old is not None and old.state != "gone":
@@ -798,7 +466,7 @@ class WorkerPool:
             worker, session, res = decode_result(parts)
         except ProtocolError as exc:
             self.results_invalid += 1
-            self._ignored_log("ignored worker result", str(exc))
+            self._ignored("ignored worker result", str(exc))
             return
         key = worker.encode()
         w = self.workers.get(key)
@@ -808,8 +476,8 @@ class WorkerPool:
             return
         if res.seq != entry.seq:
             self.results_invalid += 1
-            self.write(f"cubecast serve: worker '{w.name}' answered task {res.task_id} with seq {res.seq}; the task "
-                       f"was frame {entry.seq}; counted as lost")
+            log.warning("cubecast serve: worker '%s' answered task %d with seq %d; the task was frame %d; counted as "
+                        "lost", w.name, res.task_id, res.seq, entry.seq)
             self._lose(entry)
             return
         w.last_heard = time.monotonic()
@@ -843,8 +511,9 @@ class WorkerPool:
         if w.fd is not None and self._fd_to_key.get(w.fd) == w.key:
             del self._fd_to_key[w.fd]
         self._dirty = True
-        self.write(f"cubecast serve: worker '{w.name}' (pid {w.pid} on {w.host}) is gone: {reason}; "
-                   f"{len(held)} frame(s) it held counted as lost")
+        log.log(logging.INFO if reason == STOPPED else logging.WARNING,
+                "cubecast serve: worker '%s' (pid %d on %s) is gone: %s; %d frame(s) it held counted as lost",
+                w.name, w.pid, w.host, reason, len(held))
 
     def _maintain(self, now: float) -> None:
         for slot in self.slots:
@@ -862,7 +531,7 @@ class WorkerPool:
             elif p is None and self.restart_local and now >= slot.restart_at:
                 slot.restarts += 1
                 self._spawn(slot)
-                self.write(f"cubecast serve: restarting local worker local-{slot.index} (restart {slot.restarts})")
+                log.warning("cubecast serve: restarting local worker local-%d (restart %d)", slot.index, slot.restarts)
         for w in list(self.workers.values()):
             if w.state == "ready" and now - w.last_heard > self.worker_timeout_s:
                 self._gone(w, f"silent for more than {self.worker_timeout_s:g} s")
@@ -876,8 +545,9 @@ class WorkerPool:
                 w = self.workers.get(entry.worker)
                 self._lose(entry)
                 if w is not None:
-                    self.write(f"cubecast serve: worker '{w.name}' did not answer frame {entry.seq} within "
-                               f"{self.task_timeout_s:g} s; counted as lost")
+                    log.warning("cubecast serve: worker '%s' did not answer frame %d within %g s; counted as lost",
+                                w.name, entry.seq, self.task_timeout_s)
+        self._ignored_log.flush(log, prefix="cubecast serve: ")
 
     # ---- reporting -----------------------------------------------------------------------------
     def _refresh_rows(self) -> None:
