@@ -33,7 +33,6 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
     from . import wire
     from .capture import CaptureReader
     from .chain.pipeline import Pipeline
-    from .chain.rdmap import pool_rdmap
     from .chain.points import RECORD_DTYPE, to_records
     from .files import capture_sensor, iter_capture_frames
     from .settings import load_settings
@@ -67,9 +66,7 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
             if k >= last - history + 1:
                 raw.append(wire.encode_points(sid, int(seq), run, float(ts), float(latency), rec))
             if k == last:
-                vbin = pipe.doppler_fft.bin_hz * sensor.wavelength_m / 2.0
-                rd = wire.encode_rdmap(sid, int(seq), float(ts),
-                                       *pool_rdmap(pipe.detection_map, pipe.range_fft.bin_m, vbin))
+                rd = wire.encode_rdmap(sid, int(seq), float(ts), *pipe.display_map())
         processed = len(latencies)
         lat_ms = np.array(latencies[1:] or latencies) * 1e3  # the first frame includes compilation
         span_s = stamps[-1] - stamps[0] if len(stamps) > 1 else 0.0
