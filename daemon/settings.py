@@ -9,11 +9,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 from pathlib import Path
 
-from .chain.windows import WINDOW_NAMES
 from .config import Document, parse_toml, read_toml
 from .errors import CubecastError
 
 CFAR_KINDS = ("ca", "os", "go", "so")
+WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # chain/windows.py makes each
 
 
 @dataclass(frozen=True)

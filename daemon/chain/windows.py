@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 
-WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # what make_window knows
+from ..settings import WINDOW_NAMES  # noqa: F401  (what make_window knows; the settings validate against it)
 
 
 def make_window(name: str, length: int, kaiser_beta: float = 6.0) -> np.ndarray:
