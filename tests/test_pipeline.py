@@ -354,11 +354,9 @@ def test_deterministic(sensor):
 @pytest.mark.parametrize("layout", ["planar", "azimuth_only", "elevation_only"])
 def test_point_kernel_matches_the_bound_functions(layout):
     # The chain fills the point records in one compiled kernel; its standard deviations must equal
-    # the tone bound (Rife and Boorstyn, IEEE Trans. IT, 1974) and the direction-cosine CRB
-    # (Stoica and Nehorai, IEEE Trans. ASSP, 1989) as the angle module computes them, including the
-    # infinite ones of an array without extent, and the geometry of the sensor frame.
-    from cubecast.daemon.chain.bounds import (crb_unit_covariance, sigma_azimuth_deg, sigma_elevation_deg,
-                                              tone_crb_bins)
+    # the tone bound and the direction-cosine CRB, both written out below from their papers, including
+    # the infinite ones of an array without extent, and the geometry of the sensor frame.
+    from cubecast.daemon.chain.bounds import crb_unit_covariance
     from cubecast.daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points
 
     lam = 0.0039
@@ -394,10 +392,42 @@ def test_point_kernel_matches_the_bound_functions(layout):
     np.testing.assert_allclose(out["z_m"], rng_m * np.sin(e), rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl, rtol=1e-6)
     np.testing.assert_allclose(out["snr_db"], 10 * np.log10(snr_pt), rtol=1e-5)
-    np.testing.assert_allclose(out["sigma_range_m"], tone_crb_bins(snr_pt, 8, 256) * 0.0469, rtol=1e-5)
-    np.testing.assert_allclose(out["sigma_velocity_mps"], tone_crb_bins(snr_pt, 8, 64) * 0.077, rtol=1e-5)
-    np.testing.assert_allclose(out["sigma_azimuth_deg"], sigma_azimuth_deg(pos, lam, snr_pt, az, el), rtol=1e-5)
-    np.testing.assert_allclose(out["sigma_elevation_deg"], sigma_elevation_deg(pos, lam, snr_pt, az, el), rtol=1e-5)
+    # Tone bound written out (Rife and Boorstyn, "Single-tone parameter estimation from discrete-time
+    # observations", IEEE Trans. IT, 1974; complex samples, from memory): var(omega) >= 6 / (eta N (N^2 - 1))
+    # rad^2/sample^2 with eta = |A|^2 / sigma^2 per sample (sigma^2 the complex noise power), 1/K for K
+    # channels of equal SNR. snr_pt is the SNR of the DFT peak, N eta; a bin is omega N / (2 pi).
+    def tone_bins(n, k):
+        eta = snr_pt.astype(np.float64) / n
+        return n / (2 * np.pi) * np.sqrt(6.0 / (eta * k * n * (n * n - 1.0)))
+    np.testing.assert_allclose(out["sigma_range_m"], tone_bins(256, 8) * 0.0469, rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_velocity_mps"], tone_bins(64, 8) * 0.077, rtol=1e-5)
+    # Direction bound written out (Stoica and Nehorai, "MUSIC, maximum likelihood and Cramer-Rao bound",
+    # IEEE Trans. ASSP, 1989; one snapshot, unknown amplitude): F = 2 eta k0^2 sum_i (q_i - q_mean)(q_i - q_mean)^T
+    # over q_i = (x_i, z_i) for the direction cosines (u, w); az = atan2(u, sqrt(1 - u^2 - w^2)), el = asin(w).
+    k0 = 2 * np.pi / lam
+    u, w = np.cos(e) * np.sin(a), np.sin(e)
+    v = np.sqrt(np.maximum(1 - u * u - w * w, 1e-12))
+    q = pos[:, [0, 2]] - pos[:, [0, 2]].mean(axis=0)
+    geometry = 2 * k0 ** 2 * (q.T @ q)
+    var_u = np.full(n_pts, np.inf)
+    var_w = np.full(n_pts, np.inf)
+    cov_uw = np.zeros(n_pts)
+    has_u, has_w = geometry[0, 0] > 0, geometry[1, 1] > 0
+    for i in range(n_pts):
+        if has_u and has_w:
+            c = np.linalg.inv(geometry * snr_pt[i])
+            var_u[i], var_w[i], cov_uw[i] = c[0, 0], c[1, 1], c[0, 1]
+        elif has_u:
+            var_u[i] = 1 / (geometry[0, 0] * snr_pt[i])
+        elif has_w:
+            var_w[i] = 1 / (geometry[1, 1] * snr_pt[i])
+    d_az_du, d_az_dw = 1 / v, u * w / (v * np.cos(e) ** 2)
+    if has_w:
+        var_az = d_az_du ** 2 * var_u + 2 * d_az_du * d_az_dw * cov_uw + d_az_dw ** 2 * var_w
+    else:   # no elevation extent: the elevation is taken as known, only the u term remains
+        var_az = d_az_du ** 2 * var_u
+    np.testing.assert_allclose(out["sigma_azimuth_deg"], np.degrees(np.sqrt(var_az)), rtol=1e-4)
+    np.testing.assert_allclose(out["sigma_elevation_deg"], np.degrees(np.sqrt(var_w) / np.cos(e)), rtol=1e-4)
     if layout == "azimuth_only":
         assert np.all(np.isinf(out["sigma_elevation_deg"])) and np.all(np.isfinite(out["sigma_azimuth_deg"]))
     if layout == "elevation_only":
