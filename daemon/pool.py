@@ -59,6 +59,7 @@ import time
 from dataclasses import dataclass, field
 
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
@@ -369,7 +370,6 @@ class WorkerPool:
             return False
 
     def _monitor_events(self) -> None:
-        from zmq.utils.monitor import recv_monitor_message
         while True:
             try:
                 ev = recv_monitor_message(self.monitor, zmq.NOBLOCK)

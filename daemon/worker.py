@@ -28,6 +28,7 @@ import time
 
 import numpy as np
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from .chain.pipeline import Pipeline
 from .chain.points import to_records
@@ -36,7 +37,7 @@ from .files import to_canonical
 from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ClientKeys
 from .logs import RateLimitFilter
 from .netio import PARENT_PID_ENV, connect_socket, die_with_parent, log_limited, stop_on_signals
-from .sensor import Sensor
+from .sensor import Sensor, load_sensor
 from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_NAME_CHARS, ProtocolError, Task, WorkerConfig, decode_refuse,
                         decode_task, decode_welcome, encode_beat, encode_bye, encode_hello, encode_ready,
                         encode_result, task_ids)
@@ -158,7 +159,6 @@ class Worker:
     def _handshake_failed(self, monitor: zmq.Socket) -> None:
         """Raise CubecastError on a security handshake serve refused or that cannot work; count the
         undecipherable ones (a wrong serve key looks like that) and give up after a few in a row."""
-        from zmq.utils.monitor import recv_monitor_message
         while monitor.poll(0):
             ev = recv_monitor_message(monitor)
             if ev["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
@@ -277,7 +277,6 @@ def run_worker(tasks_endpoint: str, results_endpoint: str, sensor_path: str | No
         keys = ClientKeys.from_env(os.environ[LOCAL_KEYS_ENV])
     sensor = None
     if sensor_path is not None:
-        from .sensor import load_sensor
         sensor = load_sensor(sensor_path)
     stop = threading.Event()
     with stop_on_signals(stop):
