@@ -13,7 +13,6 @@ from __future__ import annotations
 import datetime as _dt
 import json
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -21,6 +20,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from .calibchecks import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS
+from .config import Document, Section, parse_toml, read_text
 from .errors import CubecastError
 from .sensor import Sensor
 
@@ -171,93 +171,92 @@ class CalibrationFile:
     warnings: tuple[str, ...]
 
 
-def _finite(where: str, key: str, value, positive: bool = False) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise CubecastError(f"{where} {key} = {value!r}: must be a finite number")
-    if positive and value <= 0:
-        raise CubecastError(f"{where} {key} = {value!r}: must be greater than zero")
-    return float(value)
+_NON_EMPTY = r"(?s).+"
+
+
+def _read_header(doc: Document) -> Section:
+    """[calibration]: format, version, the sensor's id and digests, the TX and RX counts."""
+    head = doc.section("calibration")
+    fmt = head.raw("format")
+    if fmt != CALIBRATION_FORMAT:
+        raise head.fail("format", fmt, f"must be {CALIBRATION_FORMAT!r}")
+    version = head.raw("version")
+    if version != CALIBRATION_VERSION:
+        raise head.fail("version", version, f"this cubecast reads version {CALIBRATION_VERSION}")
+    for key in ("sensor_id", "sensor_digest"):
+        head.string(key, pattern=_NON_EMPTY, rule="must be a non-empty string")
+    head.string("array_digest", None, pattern=_NON_EMPTY, rule="must be a non-empty string")
+    head.integer("n_tx", ge=1)
+    head.integer("n_rx", ge=1)
+    return head
+
+
+def _read_gains(doc: Document, n_tx: int, n_rx: int) -> np.ndarray:
+    """The [[channel]] entries: complex128 [n_tx x n_rx] gains, each channel given once at its index."""
+    chans = doc.tables("channel")
+    if not chans:
+        raise doc.error("no [[channel]] entries")
+    n_virt = n_tx * n_rx
+    if len(chans) != n_virt:
+        raise doc.error(f"has {len(chans)} [[channel]] entries; n_tx x n_rx = {n_tx} x {n_rx} needs {n_virt}")
+    gain = np.full(n_virt, np.nan, np.complex128)
+    for ch in chans:
+        idx = ch.integer("index", ge=0, le=n_virt - 1)
+        tx = ch.integer("tx", ge=0, le=n_tx - 1)
+        rx = ch.integer("rx", ge=0, le=n_rx - 1)
+        if idx != tx * n_rx + rx:
+            raise ch.fail("index", idx, f"channel of tx {tx}, rx {rx} must have index tx * n_rx + rx = "
+                                        f"{tx * n_rx + rx}")
+        if not np.isnan(gain[idx]):
+            raise ch.fail("index", idx, "given twice")
+        amp = ch.number("gain_amplitude", gt=0)
+        ph = ch.number("gain_phase_deg")
+        gain[idx] = amp * np.exp(1j * math.radians(ph))
+    return gain
+
+
+def _check_made_for(doc: Document, head: Section, sensor: Sensor) -> None:
+    """The file must have been made for `sensor`: the same TX and RX counts, and the same array digest
+    (a file without one: the same description digest)."""
+    n_tx, n_rx = head.table["n_tx"], head.table["n_rx"]
+    sensor_digest, array_digest = head.table["sensor_digest"], head.table.get("array_digest")
+    made_for = f"made for sensor '{head.table['sensor_id']}' (digest {sensor_digest}, {n_tx} TX x {n_rx} RX)"
+    this = f"sensor '{sensor.sensor_id}' (digest {sensor.digest}, {sensor.n_tx} TX x {sensor.n_rx} RX)"
+    if (n_tx, n_rx) != (sensor.n_tx, sensor.n_rx):
+        raise doc.error(f"{n_tx * n_rx} channels {made_for}; {this} has {sensor.n_virtual} virtual channels")
+    if array_digest is not None and array_digest != sensor.array_digest:
+        raise head.fail("array_digest", array_digest, f"{made_for}, whose chirp, antenna positions, MIMO code or "
+                                                      f"ADC format differ from {this} (array digest "
+                                                      f"{sensor.array_digest}); calibrate again with a capture "
+                                                      f"of this sensor")
+    if array_digest is None and sensor_digest != sensor.digest:
+        raise head.fail("sensor_digest", sensor_digest, f"{made_for}, not for {this}; calibrate again with a "
+                                                        f"capture of this sensor")
 
 
 def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> CalibrationFile:
     """Read and validate a calibration file; with `sensor`, also check it was made for that sensor
-    (digest, TX/RX counts, channel count). Raises CubecastError naming the problem."""
+    (digest, TX/RX counts, channel count). Raises CubecastError naming the problem (config.py's
+    format, the file named "calibration PATH"). Fields the reader does not use are not checked."""
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"cannot read calibration {path}: {exc.strerror or exc}") from None
-    except UnicodeDecodeError:
-        raise CubecastError(f"calibration {path}: not UTF-8 text") from None
-    try:
-        doc = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise CubecastError(f"calibration {path}: not valid TOML: {exc}") from None
-    pre = f"calibration {path}:"
-    head = doc.get("calibration")
-    if not isinstance(head, dict):
-        raise CubecastError(f"{pre} missing section [calibration]")
-    if head.get("format") != CALIBRATION_FORMAT:
-        raise CubecastError(f"{pre} [calibration] format = {head.get('format')!r}: must be {CALIBRATION_FORMAT!r}")
-    if head.get("version") != CALIBRATION_VERSION:
-        raise CubecastError(f"{pre} [calibration] version = {head.get('version')!r}: this cubecast reads "
-                            f"version {CALIBRATION_VERSION}")
-    for key in ("sensor_id", "sensor_digest") + (("array_digest",) if "array_digest" in head else ()):
-        if not isinstance(head.get(key), str) or not head.get(key):
-            raise CubecastError(f"{pre} [calibration] {key} = {head.get(key)!r}: must be a non-empty string")
-    array_digest = head.get("array_digest")
-    n_tx, n_rx = head.get("n_tx"), head.get("n_rx")
-    for key, value in (("n_tx", n_tx), ("n_rx", n_rx)):
-        if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-            raise CubecastError(f"{pre} [calibration] {key} = {value!r}: must be a whole number of at least 1")
-    bias = _finite(f"{pre} [calibration]", "range_bias_m", head.get("range_bias_m"))
-    chans = doc.get("channel")
-    if not isinstance(chans, list) or not chans:
-        raise CubecastError(f"{pre} no [[channel]] entries")
-    n_virt = n_tx * n_rx
-    if len(chans) != n_virt:
-        raise CubecastError(f"{pre} has {len(chans)} [[channel]] entries; n_tx x n_rx = {n_tx} x {n_rx} "
-                            f"needs {n_virt}")
-    gain = np.full(n_virt, np.nan, np.complex128)
-    for i, ch in enumerate(chans):
-        where = f"{pre} [[channel]] #{i}"
-        if not isinstance(ch, dict):
-            raise CubecastError(f"{where}: must be a table")
-        idx, tx, rx = ch.get("index"), ch.get("tx"), ch.get("rx")
-        for key, value, top in (("index", idx, n_virt), ("tx", tx, n_tx), ("rx", rx, n_rx)):
-            if isinstance(value, bool) or not isinstance(value, int) or not 0 <= value < top:
-                raise CubecastError(f"{where} {key} = {value!r}: must be a whole number in 0..{top - 1}")
-        if idx != tx * n_rx + rx:
-            raise CubecastError(f"{where} index = {idx}: channel of tx {tx}, rx {rx} must have index "
-                                f"tx * n_rx + rx = {tx * n_rx + rx}")
-        if not np.isnan(gain[idx]):
-            raise CubecastError(f"{where} index = {idx}: given twice")
-        amp = _finite(where, "gain_amplitude", ch.get("gain_amplitude"), positive=True)
-        ph = _finite(where, "gain_phase_deg", ch.get("gain_phase_deg"))
-        gain[idx] = amp * np.exp(1j * math.radians(ph))
+    doc = parse_toml(read_text(path, "calibration"), f"calibration {path}")
+    head = _read_header(doc)
+    n_tx, n_rx = head.table["n_tx"], head.table["n_rx"]
+    bias = head.number("range_bias_m")
+    gain = _read_gains(doc, n_tx, n_rx)
     if sensor is not None:
-        made_for = f"made for sensor '{head['sensor_id']}' (digest {head['sensor_digest']}, {n_tx} TX x {n_rx} RX)"
-        this = f"sensor '{sensor.sensor_id}' (digest {sensor.digest}, {sensor.n_tx} TX x {sensor.n_rx} RX)"
-        if (n_tx, n_rx) != (sensor.n_tx, sensor.n_rx):
-            raise CubecastError(f"{pre} {n_virt} channels {made_for}; {this} has {sensor.n_virtual} virtual "
-                                f"channels")
-        if array_digest is not None and array_digest != sensor.array_digest:
-            raise CubecastError(f"{pre} [calibration] array_digest = {array_digest!r}: {made_for}, whose chirp, "
-                                f"antenna positions, MIMO code or ADC format differ from {this} (array digest "
-                                f"{sensor.array_digest}); calibrate again with a capture of this sensor")
-        if array_digest is None and head["sensor_digest"] != sensor.digest:
-            raise CubecastError(f"{pre} [calibration] sensor_digest = {head['sensor_digest']!r}: {made_for}, "
-                                f"not for {this}; calibrate again with a capture of this sensor")
-    report = doc.get("report", {}) if isinstance(doc.get("report"), dict) else {}
+        _check_made_for(doc, head, sensor)
+    report = doc.data.get("report", {}) if isinstance(doc.data.get("report"), dict) else {}
     warns = report.get("warnings", [])
-    frames_used = head.get("frames_used", 0)
+    frames_used = head.table.get("frames_used", 0)
+    target = doc.data.get("target")
     return CalibrationFile(
         path=str(path), vector=(1.0 / gain).astype(np.complex64), gain=gain, range_bias_m=bias,
-        sensor_id=head["sensor_id"], sensor_digest=head["sensor_digest"], array_digest=array_digest, n_tx=n_tx,
-        n_rx=n_rx,
-        created_utc=str(head.get("created_utc", "")),
+        sensor_id=head.table["sensor_id"], sensor_digest=head.table["sensor_digest"],
+        array_digest=head.table.get("array_digest"), n_tx=n_tx, n_rx=n_rx,
+        created_utc=str(head.table.get("created_utc", "")),
         frames_used=int(frames_used) if isinstance(frames_used, int) else 0,
-        target=dict(doc.get("target", {})) if isinstance(doc.get("target"), dict) else {},
+        target=dict(target) if isinstance(target, dict) else {},
         warnings=tuple(str(w) for w in warns) if isinstance(warns, list) else ())
 
 

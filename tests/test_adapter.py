@@ -263,10 +263,8 @@ ADAPTER_LOGGER = "cubecast.daemon.adapter"
 
 
 @pytest.fixture
-def adapter_log(caplog, monkeypatch):
-    """The adapter's log records at INFO and above, whatever logging set-up an earlier test left
-    (logs.configure stops propagation at the `cubecast` logger, before caplog's handler)."""
-    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
+def adapter_log(caplog):
+    """The adapter's log records at INFO and above."""
     caplog.set_level(logging.INFO, logger=ADAPTER_LOGGER)
     return caplog
 
@@ -789,9 +787,8 @@ def test_health_lines_while_running_and_the_summary(tmp_path, adapter_log):
     assert logging.getLogger(ADAPTER_LOGGER).filters == []  # the rate limit is the run's own
 
 
-def test_cli_quiet_only_sets_the_log_level(tmp_path, caplog, monkeypatch):
+def test_cli_quiet_only_sets_the_log_level(tmp_path, caplog):
     """--quiet: the warning of a truncated datagram file passes, the start, health and summary lines do not."""
-    monkeypatch.setattr(logging.getLogger("cubecast"), "propagate", True)
     sensor = small_sensor()
     stream = encode_frame(raw_frames(sensor, 1)[0], ["chirp", "rx", "sample", "iq"], "iq")
     path = tmp_path / "q.dgram"

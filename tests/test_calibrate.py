@@ -399,7 +399,8 @@ def test_damaged_files_are_rejected(calibration, sensor, tmp_path):
     text = calibration["path"].read_text()
     cases = {
         "missing channel": (text[: text.rindex("[[channel]]")] + text[text.index("[report]"):], "entries"),
-        "bad amplitude": (text.replace("gain_amplitude = ", "gain_amplitude = -", 1), "gain_amplitude"),
+        "bad amplitude": (text.replace("gain_amplitude = ", "gain_amplitude = -", 1),
+                          r"\[\[channel\]\] #0 gain_amplitude = -[0-9.]+: must be > 0"),
         "bad index": (text.replace("index = 1\n", "index = 2\n", 1), "index"),
         "bad format": (text.replace('format = "cubecast-calibration"', 'format = "other"'), "format"),
         "not toml": ("[calibration\n", "TOML"),
@@ -411,6 +412,10 @@ def test_damaged_files_are_rejected(calibration, sensor, tmp_path):
             load_calibration(p, sensor)
     with pytest.raises(CubecastError, match="cannot read"):
         load_calibration(tmp_path / "absent.toml", sensor)
+    latin1 = tmp_path / "latin1.toml"
+    latin1.write_bytes(text.replace("yard-a", "yard-\xe9").encode("latin-1"))
+    with pytest.raises(CubecastError, match=r"cannot read calibration .*latin1\.toml: not UTF-8"):
+        load_calibration(latin1, sensor)
 
 
 # ---- command line -----------------------------------------------------------------------------
@@ -425,14 +430,14 @@ CALIBRATE_LOGGER = "cubecast.daemon.calibrate"
 
 @pytest.fixture
 def calibrate_log(caplog, monkeypatch):
-    """The calibrate command's log records, straight to caplog's handler (the command's own logging
-    set-up stops propagation at the `cubecast` logger); the `cubecast` level is restored after."""
-    logger, root = logging.getLogger(CALIBRATE_LOGGER), logging.getLogger("cubecast")
+    """The calibrate command's log records. The command's own logging set-up (cli.main) stops
+    propagation at the `cubecast` logger during the test; caplog attaches its handler to loggers that
+    do not propagate when the test starts, so the calibrate logger is made one of those. The
+    `cubecast` level (--quiet sets it) is restored after."""
+    root = logging.getLogger("cubecast")
     saved = root.level
-    monkeypatch.setattr(logger, "propagate", False)
-    logger.addHandler(caplog.handler)
+    monkeypatch.setattr(logging.getLogger(CALIBRATE_LOGGER), "propagate", False)
     yield caplog
-    logger.removeHandler(caplog.handler)
     root.setLevel(saved)
 
 
