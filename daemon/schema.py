@@ -80,6 +80,14 @@ def short(value: Any) -> str:
     return text_ if len(text_) <= 80 else text_[:77] + "..."
 
 
+class _ExtRefused(Exception):
+    pass
+
+
+def _refuse_ext(code: int, data: bytes) -> None:
+    raise _ExtRefused(code)
+
+
 def unpack(data: Any, what: str, limit: int, error: ErrorFactory) -> dict:
     """One msgpack map from `data` (bytes-like, at most `limit` bytes), every length bounded."""
     view = memoryview(data)
@@ -88,10 +96,12 @@ def unpack(data: Any, what: str, limit: int, error: ErrorFactory) -> dict:
     try:
         header = msgpack.unpackb(view, raw=False, use_list=True, strict_map_key=True, max_str_len=limit,
                                  max_bin_len=limit, max_array_len=MAX_ENTRIES, max_map_len=MAX_ENTRIES,
-                                 max_ext_len=0)
+                                 max_ext_len=0, ext_hook=_refuse_ext)
+    except _ExtRefused:  # an empty one: max_ext_len=0 refuses all others
+        raise error("malformed", f"{what} header holds a msgpack ext type, which is refused") from None
     except ValueError as exc:
         if "max_ext_len" in str(exc):
-            raise error("malformed", f"{what} header holds a msgpack ext type; the wire allows none") from None
+            raise error("malformed", f"{what} header holds a msgpack ext type, which is refused") from None
         if "exceeds max" in str(exc):
             raise error("oversized", f"{what} header: {exc}") from None
         raise error("malformed", f"{what} header is not one valid msgpack value ({type(exc).__name__}"

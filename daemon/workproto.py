@@ -3,7 +3,8 @@ msgpack. Pure: no sockets here (daemon/worker.py and daemon/pool.py own those).
 
 This is an internal protocol, version 1 (`proto` in every header), not the public wire of wire.md;
 its messages are multipart [kind, header (msgpack map), payload...] decoded with bounded msgpack
-(no pickle, no ext types) and validated field by field:
+(no pickle, no ext types) and validated against the header schemas below, by the same mechanism and
+with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
 
     worker -> serve (DEALER)  hello {worker, name, pid, host, capacity, expect_digest}
                               ready {worker, session, digest, warm_up_s}
@@ -32,22 +33,26 @@ import dataclasses
 import math
 import zlib
 from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Any, Literal, TypeVar
 
 import msgpack
 import numpy as np
+from msgspec import Meta
 
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
+from .schema import (Count, Digest, Finite, Flag, NonNegative, Positive, Schema, integer, optional, text,
+                     unpack, validate)
 from .sensor import Sensor, parse_sensor
 from .settings import ProcessingSettings
-from .wire import (ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, WireError, _digest, _float, _int,
-                   _shape, _str)
+from .wire import ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, AdcShape, MapShape
 
 PROTOCOL = 1
 MAX_CONTROL_BYTES = 64 * 1024  # headers of every message but `welcome`
 MAX_WELCOME_BYTES = 1024 * 1024  # carries the sensor description text (wire.md allows 1 MiB for it)
 MAX_ENTRIES = 1024
+MAX_CALIBRATION_VALUES = MAX_ENTRIES * 64
+MAX_STAGES = 32
 MAX_CAPACITY = 8  # tasks one worker may hold, whatever it announces
 MAX_NAME_CHARS = 64
 MAX_ERROR_CHARS = 2000
@@ -58,6 +63,86 @@ class ProtocolError(CubecastError):
     """A worker-protocol message that breaks the rules above (the message names the field)."""
 
 
+# ---- header schemas (annotations are module-level names: the string annotations resolve to these) ----
+
+Name = text(MAX_NAME_CHARS)
+Host = text(255, 0)
+Pid = integer(0, 1 << 32)
+Capacity = integer(1, 1 << 16)
+OptionalDigest = optional(Digest)
+RunId = text(64)
+Crc32 = integer(0, 0xFFFFFFFF)
+SensorToml = text(MAX_WELCOME_BYTES)
+CalibrationCount = integer(1, MAX_CALIBRATION_VALUES)
+ResultCount = integer(0, 1 << 24)
+ErrorText = optional(text(MAX_ERROR_CHARS, 0))
+StageTimes = Annotated[dict[Annotated[str, Meta(max_length=32)], Finite],
+                       Meta(max_length=MAX_STAGES, description="must map stage names to finite numbers")]
+AnyAdcDtype = Annotated[Literal[ADC_DTYPES], Meta(description=f"must be one of {', '.join(ADC_DTYPES)}")]
+
+
+class HelloHeader(Schema):
+    name: Name
+    pid: Pid
+    host: Host
+    capacity: Capacity  # as announced; serve caps it at MAX_CAPACITY
+    expect_digest: OptionalDigest = None
+
+
+class CalibrationInfo(Schema):
+    dtype: Annotated[Literal["<c8"], Meta(description="must be '<c8'")]
+    count: CalibrationCount
+
+
+OptionalCalibration = Annotated[CalibrationInfo | None, Meta(description="must be nil or {dtype: '<c8', count: n}")]
+
+
+class WelcomeHeader(Schema):
+    session: Name
+    digest: Digest
+    sensor_toml: SensorToml
+    range_bias_m: Finite
+    calibration: OptionalCalibration = None
+
+
+class TaskHeader(Schema):
+    task_id: Count
+    seq: Count
+    run: RunId
+    timestamp_s: Finite
+    received_unix_s: Finite
+    rdmap: Flag
+    digest: Digest
+    dtype: AnyAdcDtype
+    shape: AdcShape
+    crc32: Crc32
+
+
+class MapInfo(Schema):
+    """A pooled map's axes: they become the public `rdmap` header's, so they follow its rules."""
+
+    shape: MapShape
+    range_start_m: Finite
+    range_step_m: Positive
+    velocity_start_mps: Finite
+    velocity_step_mps: Positive
+
+
+OptionalMap = Annotated[MapInfo | None, Meta(description="must be nil or a map")]
+
+
+class ResultHeader(Schema):
+    worker: Name
+    session: Name
+    task_id: Count
+    seq: Count
+    count: ResultCount
+    process_s: NonNegative
+    stage_ms: StageTimes
+    error: ErrorText = None
+    rdmap: OptionalMap = None
+
+
 # ---- encoding and bounded decoding ----------------------------------------------------------------
 
 def _pack(fields: dict) -> bytes:
@@ -66,19 +151,14 @@ def _pack(fields: dict) -> bytes:
     return msgpack.packb(header, use_bin_type=True)
 
 
+def _error(reason: str, message: str) -> ProtocolError:
+    """The schema module's errors as ours (the worker protocol counts no reasons)."""
+    return ProtocolError(message)
+
+
 def _unpack(part: Any, what: str, limit: int = MAX_CONTROL_BYTES) -> dict:
-    view = memoryview(part)
-    if view.nbytes > limit:
-        raise ProtocolError(f"{what} header is {view.nbytes} bytes; at most {limit} allowed")
-    try:
-        header = msgpack.unpackb(view, raw=False, use_list=True, strict_map_key=True, max_str_len=limit,
-                                 max_bin_len=limit, max_array_len=MAX_ENTRIES, max_map_len=MAX_ENTRIES,
-                                 max_ext_len=0)
-    except Exception as exc:  # ValueError, FormatError, StackError, ExtraData...
-        raise ProtocolError(f"{what} header is not one valid msgpack map without ext types "
-                            f"({type(exc).__name__})") from None
-    if not isinstance(header, dict):
-        raise ProtocolError(f"{what} header is a msgpack {type(header).__name__}, not a map")
+    """A header map of protocol version PROTOCOL, every msgpack length bounded."""
+    header = unpack(part, what, limit, _error)
     proto = header.get("proto")
     if proto != PROTOCOL or isinstance(proto, bool):
         raise ProtocolError(f"{what} header field 'proto' = {proto!r}: this cubecast speaks worker protocol "
@@ -86,30 +166,11 @@ def _unpack(part: Any, what: str, limit: int = MAX_CONTROL_BYTES) -> dict:
     return header
 
 
-def _field(fn, h: dict, what: str, *args, **kw):
-    """The wire module's typed field readers, with the message named as ours."""
-    try:
-        return fn(h, what, *args, **kw)
-    except WireError as exc:
-        raise ProtocolError(str(exc)) from None
+H = TypeVar("H", bound=Schema)
 
 
-def _key_str(h: dict, what: str, name: str) -> str:
-    return _field(_str, h, what, name, MAX_NAME_CHARS)
-
-
-def _bool(h: dict, what: str, name: str) -> bool:
-    v = h.get(name)
-    if not isinstance(v, bool):
-        raise ProtocolError(f"{what} header field '{name}' = {v!r}: must be true or false")
-    return v
-
-
-def _optional_digest(h: dict, what: str, name: str) -> str | None:
-    v = h.get(name)
-    if v is None:
-        return None
-    return _field(_digest, {"digest": v}, what)
+def _fields(h: dict, schema: type[H], what: str) -> H:
+    return validate(h, schema, what, _error)
 
 
 def _parts(parts: list, n_min: int, n_max: int, what: str) -> None:
@@ -185,11 +246,10 @@ def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerC
     and must match `expect_digest` (the worker's own --sensor) when given."""
     _parts(parts, 3, 3, "welcome")
     h = _unpack(parts[1], "welcome", MAX_WELCOME_BYTES)
-    session = _key_str(h, "welcome", "session")
-    digest = _field(_digest, h, "welcome")
-    text = _field(_str, h, "welcome", "sensor_toml", MAX_WELCOME_BYTES)
+    f = _fields(h, WelcomeHeader, "welcome")
+    digest = f.digest
     try:
-        sensor = parse_sensor(text, "sensor description from serve")
+        sensor = parse_sensor(f.sensor_toml, "sensor description from serve")
     except CubecastError as exc:
         raise ProtocolError(f"welcome header field 'sensor_toml': {exc}") from None
     if sensor.digest != digest:
@@ -203,15 +263,10 @@ def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerC
                             f"a description with digest {expect_digest}: start the worker with serve's sensor "
                             "description, or without --sensor")
     settings = settings_from_map(h.get("settings"))
-    bias = _field(_float, h, "welcome", "range_bias_m")
-    cal_info = h.get("calibration")
     payload = memoryview(parts[2])
     calibration = None
-    if cal_info is not None:
-        if not isinstance(cal_info, dict) or cal_info.get("dtype") != "<c8":
-            raise ProtocolError(f"welcome header field 'calibration' = {cal_info!r}: must be nil or "
-                                "{dtype: '<c8', count: n}")
-        count = _field(_int, cal_info, "welcome calibration", "count", 1, MAX_ENTRIES * 64)
+    if f.calibration is not None:
+        count = f.calibration.count
         if count != sensor.n_virtual:
             raise ProtocolError(f"welcome calibration count = {count}: sensor '{sensor.sensor_id}' has "
                                 f"{sensor.n_virtual} virtual channels")
@@ -223,7 +278,7 @@ def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerC
             raise ProtocolError("welcome calibration holds values that are not finite")
     elif payload.nbytes:
         raise ProtocolError(f"welcome without calibration has a {payload.nbytes}-byte payload; it must be empty")
-    return session, WorkerConfig(sensor, settings, calibration, bias)
+    return f.session, WorkerConfig(sensor, settings, calibration, float(f.range_bias_m))
 
 
 @dataclass(frozen=True)
@@ -256,28 +311,22 @@ def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = Tru
     if h.get("session") != session:
         raise ProtocolError(f"task header field 'session' = {h.get('session')!r}: this worker was welcomed by "
                             f"session {session!r}")
-    task_id = _field(_int, h, "task", "task_id")
-    seq = _field(_int, h, "task", "seq")
-    run = _field(_str, h, "task", "run", 64)
-    ts = _field(_float, h, "task", "timestamp_s")
-    received = _field(_float, h, "task", "received_unix_s")
-    want_map = _bool(h, "task", "rdmap")
-    digest = _field(_digest, h, "task")
-    if digest != sensor.digest:
-        raise ProtocolError(f"task header field 'digest' = {digest!r}: this worker processes sensor "
+    f = _fields(h, TaskHeader, "task")
+    if f.digest != sensor.digest:
+        raise ProtocolError(f"task header field 'digest' = {f.digest!r}: this worker processes sensor "
                             f"'{sensor.sensor_id}' (digest {sensor.digest})")
-    dtype = h.get("dtype")
+    dtype = f.dtype
     raw_dtype = sensor.adc.raw_dtype().str
-    if not isinstance(dtype, str) or dtype not in ADC_DTYPES or dtype not in (raw_dtype, "<c8"):
+    if dtype not in (raw_dtype, "<c8"):
         raise ProtocolError(f"task header field 'dtype' = {dtype!r}: sensor '{sensor.sensor_id}' frames are "
                             f"{raw_dtype!r} or canonical '<c8'")
-    shape = _field(_shape, h, "task")
+    shape = tuple(f.shape)
     canon = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
     expected = sensor.adc.raw_shape(*canon) if dtype == raw_dtype else canon
     if shape != tuple(expected):
         raise ProtocolError(f"task header field 'shape' = {list(shape)}: {dtype} frames of sensor "
                             f"'{sensor.sensor_id}' have shape {list(expected)}")
-    crc = _field(_int, h, "task", "crc32", 0, 0xFFFFFFFF)
+    crc = f.crc32
     payload = memoryview(parts[2])
     if payload.ndim != 1 or payload.itemsize != 1:
         payload = payload.cast("B")
@@ -288,7 +337,8 @@ def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = Tru
     if actual != crc:
         raise ProtocolError(f"task header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
     data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
-    return Task(task_id, seq, run, ts, received, want_map, data, dtype == raw_dtype)
+    return Task(f.task_id, f.seq, f.run, float(f.timestamp_s), float(f.received_unix_s), f.rdmap, data,
+                dtype == raw_dtype)
 
 
 @dataclass
@@ -331,23 +381,8 @@ def decode_result(parts: list) -> tuple[str, str, Result]:
     if bytes(parts[0]) != b"result":
         raise ProtocolError(f"message kind {bytes(parts[0])[:16]!r} on the results socket; expected b'result'")
     h = _unpack(parts[1], "result")
-    worker = _key_str(h, "result", "worker")
-    session = _key_str(h, "result", "session")
-    task_id = _field(_int, h, "result", "task_id")
-    seq = _field(_int, h, "result", "seq")
-    count = _field(_int, h, "result", "count", 0, 1 << 24)
-    process_s = _field(_float, h, "result", "process_s", 0.0)
-    error = h.get("error")
-    if error is not None and (not isinstance(error, str) or len(error) > MAX_ERROR_CHARS):
-        raise ProtocolError(f"result header field 'error' = {error!r:.80}: must be nil or a string of at most "
-                            f"{MAX_ERROR_CHARS} characters")
-    stage = h.get("stage_ms")
-    if (not isinstance(stage, dict) or len(stage) > 32
-            or any(not isinstance(k, str) or len(k) > 32 for k in stage)
-            or any(isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)
-                   for v in stage.values())):
-        raise ProtocolError(f"result header field 'stage_ms' = {stage!r:.80}: must map stage names to finite "
-                            "numbers")
+    f = _fields(h, ResultHeader, "result")
+    count, seq = f.count, f.seq
     rec_view = memoryview(parts[2])
     if rec_view.nbytes != count * RECORD_DTYPE.itemsize:
         raise ProtocolError(f"result payload is {rec_view.nbytes} bytes; count {count} x "
@@ -355,25 +390,23 @@ def decode_result(parts: list) -> tuple[str, str, Result]:
     records = np.frombuffer(rec_view, RECORD_DTYPE) if count else np.empty(0, RECORD_DTYPE)
     if count and not (records["frame"] == seq).all():
         raise ProtocolError(f"result records carry frame numbers other than the task's seq {seq}")
-    rd = h.get("rdmap")
+    rd = f.rdmap
     rdmap = None
     map_view = memoryview(parts[3])
     if rd is not None:
-        if not isinstance(rd, dict):
-            raise ProtocolError(f"result header field 'rdmap' = {rd!r:.80}: must be nil or a map")
-        shape = _field(_shape, rd, "result rdmap", 2, 2)
+        shape = tuple(rd.shape)
         if not (0 < shape[0] <= RDMAP_MAX_RANGE_CELLS and 0 < shape[1] <= RDMAP_MAX_DOPPLER_CELLS):
             raise ProtocolError(f"result rdmap shape {list(shape)}: at most {RDMAP_MAX_RANGE_CELLS} x "
                                 f"{RDMAP_MAX_DOPPLER_CELLS} cells")
-        axes = [_field(_float, rd, "result rdmap", k) for k in RDMAP_AXES]
+        axes = [float(getattr(rd, k)) for k in RDMAP_AXES]
         if map_view.nbytes != shape[0] * shape[1] * 4:
             raise ProtocolError(f"result rdmap payload is {map_view.nbytes} bytes; shape {list(shape)} of <f4 "
                                 f"needs {shape[0] * shape[1] * 4}")
         rdmap = (np.frombuffer(map_view, "<f4").reshape(shape), *axes)
     elif map_view.nbytes:
         raise ProtocolError("result without rdmap has a map payload; it must be empty")
-    return worker, session, Result(worker, task_id, seq, records, error, {k: float(v) for k, v in stage.items()},
-                                   process_s, rdmap)
+    return f.worker, f.session, Result(f.worker, f.task_id, seq, records, f.error,
+                                       {k: float(v) for k, v in f.stage_ms.items()}, float(f.process_s), rdmap)
 
 
 # ---- control messages: hello, ready, beat, bye (worker -> serve); refuse, who (serve -> worker) ------
@@ -403,9 +436,8 @@ def decode_control(key: bytes, kind: bytes, part: Any) -> dict:
 
 
 def decode_hello(h: dict) -> Hello:
-    return Hello(_key_str(h, "hello", "name"), _field(_int, h, "hello", "pid", 0, 1 << 32),
-                 _field(_str, h, "hello", "host", 255, 0), _field(_int, h, "hello", "capacity", 1, 1 << 16),
-                 _optional_digest(h, "hello", "expect_digest"))
+    f = _fields(h, HelloHeader, "hello")
+    return Hello(f.name, f.pid, f.host, f.capacity, f.expect_digest)
 
 
 def encode_ready(worker: str, session: str, digest: str, warm_up_s: float) -> list:

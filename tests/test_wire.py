@@ -160,6 +160,8 @@ def test_malformed_structure(sensor, yard_frame):
     rejected([b"yard-a/adc", msgpack.packb({1: 2}), good[2]], "malformed", "msgpack")
     # ext types (and with them any object hook) are refused: nothing is ever unpickled or evaluated
     rejected([b"yard-a/adc", msgpack.packb({"wire": msgpack.ExtType(5, b"x")}), good[2]], "malformed", "msgpack")
+    # also an empty one, and also under a key the kind does not define
+    rejected([b"yard-a/adc", msgpack.packb({"note": msgpack.ExtType(5, b"")}), good[2]], "malformed", "ext type")
     # nesting deeper than the unpacker's stack
     rejected([b"yard-a/adc", b"\x91" * 5000 + b"\x00", good[2]], "malformed")
     rejected([object(), good[1], good[2]], "malformed", "part 0")
