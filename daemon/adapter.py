@@ -380,9 +380,6 @@ def adapter(layout_path: str, sensor_path: str, pub: str, *, listen: str | None 
 
 
 def _run_args(args) -> int:
-    if args.quiet:  # the subcommand's own --quiet: only the log level, as the command's -q
-        root = logging.getLogger(logs.ROOT)
-        root.setLevel(max(root.level, logging.WARNING))
     return adapter(args.layout, args.sensor, args.pub, listen=args.listen, file=args.file, frames=args.frames,
                    speed=args.speed, window_frames=args.window_frames, save_datagrams=args.save_datagrams)
 
@@ -407,7 +404,5 @@ def add_parser(subparsers):
                         f"(default {DEFAULT_WINDOW_FRAMES})")
     p.add_argument("--save-datagrams", metavar="PATH",
                    help="with --listen: also write every datagram to a datagram file")
-    p.add_argument("--quiet", action="store_true", help="log warnings only: no start, per-second and summary lines "
-                                                        "(dropped frames are still reported)")
     p.set_defaults(func=_run_args)
     return p

@@ -42,7 +42,6 @@ from typing import Iterable
 
 import numpy as np
 
-from . import logs
 from .calibchecks import (CHANNEL_GAIN_LIMIT_DB, MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS,
                           NEIGHBOUR_CELLS, NEIGHBOUR_LEVEL_DB, SECOND_ANGLE_PEAK_DB, azimuth_beams, cell_snr,
                           channel_gain_warnings, clipping_warnings, db, near_limit, neighbour_misfit,
@@ -117,13 +116,6 @@ def ideal_snapshot(sensor: Sensor, position_m: np.ndarray, range_bins, window: n
     bins = np.atleast_1d(np.asarray(range_bins, np.float64))
     kernel = np.exp(-2j * np.pi * bins[:, None] * n[None, :] / fft_size)  # [B, N]
     return kernel @ x.T  # [B, V]
-
-
-def _log_parabola(lo: float, mid: float, hi: float) -> float:
-    """Fractional peak offset from three power samples (Gaussian interpolation, common practice)."""
-    a, b, c = (math.log(max(v, 1e-300)) for v in (lo, mid, hi))
-    den = a - 2.0 * b + c
-    return float(np.clip(0.5 * (a - c) / den, -0.5, 0.5)) if den < 0 else 0.0
 
 
 # ---- result -----------------------------------------------------------------------------------
@@ -343,9 +335,11 @@ def _fine_range(loop_means: np.ndarray, window: np.ndarray, fft_size: int, rb: i
     ka, kb = kc - 2 * FINE_RANGE_PADDING, kc + 2 * FINE_RANGE_PADDING + 1
     pw = (np.abs(spec[..., ka:kb]) ** 2).sum(axis=(1, 2))  # [F, window]
 
+    from .chain.pipeline import log_parabola_offset   # the chain's own interpolation (numba: load on use)
+
     def peak_m(p: np.ndarray) -> float:
         i = int(np.argmax(p[1:-1])) + 1
-        return (ka + i + _log_parabola(p[i - 1], p[i], p[i + 1])) / FINE_RANGE_PADDING * bin_m
+        return (ka + i + float(log_parabola_offset(p[i - 1], p[i], p[i + 1]))) / FINE_RANGE_PADDING * bin_m
 
     measured_range_m = peak_m(pw.sum(axis=0))
     per_frame = np.array([peak_m(p) for p in pw])
@@ -361,6 +355,7 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     [chirp, rx, sample]) of a static point reflector at (target_range_m, azimuth_deg,
     elevation_deg). Pure: no I/O. Raises CubecastError when the reflector cannot be found.
     The steps and checks are those of the module docstring, in that order."""
+    from .chain.bounds import tone_phase_crb_rad
     from .chain.pipeline import Pipeline  # the chain imports numba kernels: load on use
 
     r0, az0, el0 = _check_target(target_range_m, azimuth_deg, elevation_deg, search_cells)
@@ -380,7 +375,7 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     rho = cell_snr(z, sigma2_v)
     cell_snr_db = db(rho)
     integrated_snr_db = cell_snr_db + 10.0 * math.log10(n_frames)
-    predicted_phase_deg = math.degrees(1.0 / math.sqrt(2.0 * rho * n_frames))
+    predicted_phase_deg = math.degrees(tone_phase_crb_rad(rho, n_frames))
     warnings = weak_reflector_warnings(cell_snr_db, integrated_snr_db, n_frames, predicted_phase_deg)
     far_field_m, near_limit_m, near = near_limit(sensor, r0)
     warnings += near
@@ -412,7 +407,7 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
         target_position_m=pos_t, measured_range_m=measured_range_m, range_bias_m=measured_range_m - r0,
         range_rms_m=range_rms_m, range_bin=rb, frames_used=n_frames, cell_snr_db=cell_snr_db,
         integrated_snr_db=integrated_snr_db, predicted_phase_deg=predicted_phase_deg,
-        frame_phase_deg=math.degrees(1.0 / math.sqrt(2.0 * rho)),
+        frame_phase_deg=math.degrees(tone_phase_crb_rad(rho)),
         residual_phase_deg=residual_phase_deg, residual_amplitude_db=residual_amplitude_db,
         neighbour_misfit_db=neighbour_misfit_db, expected_misfit_db=expected_misfit_db,
         azimuth_uncalibrated_deg=float(np.mean(az_u)), elevation_uncalibrated_deg=float(np.mean(el_u)),
@@ -493,9 +488,6 @@ def format_report(result: CalibrationResult) -> str:
 
 def run(args) -> int:
     """`cubecast calibrate`: the report and the file written at INFO, each warning at WARNING."""
-    if args.quiet:  # the subcommand's own --quiet: only the log level, as the command's -q
-        root = logging.getLogger(logs.ROOT)
-        root.setLevel(max(root.level, logging.WARNING))
     result = calibrate_capture(args.capture, args.target_range_m, args.azimuth_deg, args.elevation_deg,
                                search_cells=args.search_cells, skip_corrupt=args.skip_corrupt)
     write_calibration(args.out, result)
@@ -520,6 +512,5 @@ def add_parser(subparsers):
                    help=f"look for the reflector within this many range cells of the given range "
                         f"(default {DEFAULT_SEARCH_CELLS})")
     p.add_argument("--skip-corrupt", action="store_true", help="skip frames whose CRC fails")
-    p.add_argument("--quiet", action="store_true", help="log warnings only: no report (warnings are still logged)")
     p.set_defaults(func=run)
     return p

@@ -21,7 +21,7 @@ def load_calibration_for(path, sensor) -> tuple[np.ndarray | None, float]:
     """(per-channel calibration vector, range bias in metres) from a calibration file, or (None, 0)."""
     if path is None:
         return None, 0.0
-    from .calibrate import load_calibration_file
+    from .calibfile import load_calibration_file
     cal = load_calibration_file(path, sensor)
     return cal.vector, cal.range_bias_m
 

@@ -30,7 +30,7 @@ from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.reassembly import Reassembler
 from cubecast.daemon.scene import parse_scene
 from cubecast.daemon.sensor import load_sensor, parse_sensor
-from cubecast.daemon.service import AdcValidator
+from cubecast.daemon.intake import AdcValidator
 from cubecast.daemon.simulate import Simulator
 from cubecast.daemon.streamlayout import load_layout, parse_layout
 from tests.helpers import SAMPLES, YARD_SENSOR, sensor_text
@@ -787,8 +787,10 @@ def test_health_lines_while_running_and_the_summary(tmp_path, adapter_log):
     assert logging.getLogger(ADAPTER_LOGGER).filters == []  # the rate limit is the run's own
 
 
-def test_cli_quiet_only_sets_the_log_level(tmp_path, caplog):
-    """--quiet: the warning of a truncated datagram file passes, the start, health and summary lines do not."""
+def test_cli_quiet_only_sets_the_log_level(tmp_path, capsys):
+    """cubecast adapter -q: the warning of a truncated datagram file passes, the start, health and summary
+    lines do not (the shared -q of every subcommand, after the subcommand's name)."""
+    from cubecast.daemon import cli
     sensor = small_sensor()
     stream = encode_frame(raw_frames(sensor, 1)[0], ["chirp", "rx", "sample", "iq"], "iq")
     path = tmp_path / "q.dgram"
@@ -797,17 +799,16 @@ def test_cli_quiet_only_sets_the_log_level(tmp_path, caplog):
         f.write(b"\x01")
     (tmp_path / "layout.toml").write_text(LAYOUT_A)
     (tmp_path / "sensor.toml").write_text(sensor_text(**SMALL))
-    p = argparse.ArgumentParser(prog="cubecast")
-    add_parser(p.add_subparsers(dest="command", required=True))
-    args = p.parse_args(["adapter", "--file", str(path), "--layout", str(tmp_path / "layout.toml"), "--sensor",
-                         str(tmp_path / "sensor.toml"), "--pub", "tcp://127.0.0.1:*", "--speed", "max", "--quiet"])
     root = logging.getLogger("cubecast")
-    saved = root.level
+    saved = root.level, root.propagate, list(root.handlers)
     try:
-        assert args.func(args) == 0
+        code = cli.main(["adapter", "--file", str(path), "--layout", str(tmp_path / "layout.toml"), "--sensor",
+                         str(tmp_path / "sensor.toml"), "--pub", "tcp://127.0.0.1:*", "--speed", "max", "-q"])
+        assert code == 0
         assert root.level == logging.WARNING
     finally:
-        root.setLevel(saved)
-    records = adapter_records(caplog)
-    assert [r.levelno for r in records] == [logging.WARNING], [r.getMessage() for r in records]
-    assert "truncated" in records[0].getMessage()
+        root.setLevel(saved[0])
+        root.propagate = saved[1]
+        root.handlers[:] = saved[2]
+    lines = capsys.readouterr().err.splitlines()   # the command's handler writes plain lines to stderr
+    assert len(lines) == 1 and "truncated" in lines[0], lines

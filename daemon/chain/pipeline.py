@@ -37,7 +37,7 @@ STAGES = ("range_fft", "doppler_fft", "cfar", "mimo", "angle", "points")
 
 
 @numba.njit(cache=True, nogil=True)
-def _log_parabola(lo, mid, hi):
+def log_parabola_offset(lo, mid, hi):
     """Fractional peak offset in [-0.5, 0.5] from three power samples, fitting a parabola to their
     logarithms (Gaussian interpolation; common practice for windowed spectra). float32."""
     eps = np.float32(1e-30)
@@ -64,8 +64,8 @@ def _refine_cells(power, range_bin, doppler_col, range_frac, doppler_frac, doppl
         if r == 0 or r == n_range - 1:
             range_frac[i] = 0.0
         else:
-            range_frac[i] = _log_parabola(power[r - 1, d], p, power[r + 1, d])
-        doppler_frac[i] = _log_parabola(power[r, (d - 1) % n_dop], p, power[r, (d + 1) % n_dop])
+            range_frac[i] = log_parabola_offset(power[r - 1, d], p, power[r + 1, d])
+        doppler_frac[i] = log_parabola_offset(power[r, (d - 1) % n_dop], p, power[r, (d + 1) % n_dop])
         doppler_fft_col[i] = (d - half) % n_dop
 
 
