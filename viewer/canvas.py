@@ -98,8 +98,18 @@ class ViewerCanvas:
         self.right = right
         self.footer = grid.add_widget(row=2, col=0, col_span=2)
         self.footer.height_min = self.footer.height_max = FOOTER_H
+        self._build_header_footer()
+        self._build_top(left)
+        self._build_side(left)
+        self._build_rd(right)
+        self._set_draw_order()
+        self._build_help()
+        self.canvas.events.resize.connect(lambda ev: self._layout_overlays())
+        self._layout_overlays()
 
-        # header: title on the left, status on the right of it
+    # ---- construction, panel by panel ----
+    def _build_header_footer(self) -> None:
+        """Header: title on the left, status on the right of it; footer: notes left and right."""
         self.title = self._text("cubecast", parent=self.header, color=V.TEXT, font_size=13, face=FONT,
                                 bold=True, anchor_x="left", anchor_y="center", pos=(6, 17))
         self.status = self._text("", parent=self.header, color=V.STATUS_WAIT, font_size=10, face=FONT,
@@ -109,7 +119,8 @@ class ViewerCanvas:
         self.footer_right = self._text("", parent=self.footer, color=V.TEXT_DIM, font_size=8.5,
                                        face=FONT, anchor_x="right", anchor_y="center", pos=(1200, 12))
 
-        # ---- top view (bird's-eye) ----
+    def _build_top(self, left) -> None:
+        """Top view (bird's-eye)."""
         self.top_title = left.add_widget(row=0, col=0, col_span=2)
         self.top_title.height_min = self.top_title.height_max = TITLE_H
         self.top = self._panel(left, 1, "x across, right positive (m)", "y forward (m)", 1.0)
@@ -129,7 +140,8 @@ class ViewerCanvas:
         self.top_sensor = scene.visuals.Markers(parent=self.top.scene)
         self.top_points = scene.visuals.Markers(parent=self.top.scene, antialias=1)
 
-        # ---- side view (elevation) ----
+    def _build_side(self, left) -> None:
+        """Side view (elevation)."""
         self.side_title = left.add_widget(row=3, col=0, col_span=2)
         self.side_title.height_min = self.side_title.height_max = TITLE_H
         self.side = self._panel(left, 4, "y forward (m)", "z height (m)", 1.0)
@@ -148,7 +160,8 @@ class ViewerCanvas:
         self.side_sensor = scene.visuals.Markers(parent=self.side.scene)
         self.side_points = scene.visuals.Markers(parent=self.side.scene, antialias=1)
 
-        # ---- range-Doppler ----
+    def _build_rd(self, right) -> None:
+        """Range-Doppler map."""
         self.rd_title = right.add_widget(row=0, col=0, col_span=2)
         self.rd_title.height_min = self.rd_title.height_max = TITLE_H
         self.rd = self._panel(right, 1, "radial velocity before unfolding (m/s)", "range (m)", None)
@@ -163,7 +176,8 @@ class ViewerCanvas:
         self.rd_empty = self._text("no range-Doppler map yet", parent=self.rd, color=V.TEXT_DIM,
                                    font_size=10, face=FONT, anchor_x="left", anchor_y="center", pos=(14, 18))
 
-        # draw order inside the panels: fills, grids, labels, points on top
+    def _set_draw_order(self) -> None:
+        """Draw order inside the panels: fills, grids, labels, points on top."""
         for vis, order in ((self.fov_fill, 0), (self.ground_fill, 0), (self.rd_image, 0), (self.rings, 1),
                            (self.bearings, 1), (self.side_grid, 1), (self.side_fov, 2), (self.fov_line, 2),
                            (self.sensor_line, 2), (self.ground_line, 2), (self.rd_zero, 2),
@@ -179,8 +193,9 @@ class ViewerCanvas:
             m.set_gl_state("translucent", depth_test=False)
         self.top_points.visible = self.side_points.visible = self.rd_marks.visible = False
 
-        # help overlay: a panel over everything, hidden until asked for
-        self.overlay = c.central_widget.add_widget(scene.Widget())
+    def _build_help(self) -> None:
+        """Help overlay: a panel over everything, hidden until asked for."""
+        self.overlay = self.canvas.central_widget.add_widget(scene.Widget())
         self.help_box = scene.visuals.Rectangle(center=(640, 400), width=560, height=330,
                                                 color=(0.04, 0.05, 0.07, 0.93), border_color=V.FOV_EDGE,
                                                 parent=self.overlay)
@@ -191,8 +206,6 @@ class ViewerCanvas:
         self.help_desc = self._text("", parent=self.overlay, color=V.TEXT, font_size=10, face=FONT,
                                     anchor_x="left", anchor_y="bottom")
         self.set_help(False)
-        self.canvas.events.resize.connect(lambda ev: self._layout_overlays())
-        self._layout_overlays()
 
     # ---- construction helpers ----
     def _text(self, *args, **kwargs):
