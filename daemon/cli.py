@@ -145,12 +145,8 @@ def _bench(args) -> int:
     return 0
 
 
-def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="cubecast", description="FMCW MIMO radar processing chain: ADC frames in, "
-                                "point clouds out.")
-    _add_log_options(p)
-    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
-
+def _add_file_commands(sub) -> None:
+    """describe, simulate, process: files in, files or text out."""
     d = sub.add_parser("describe", help="print a sensor's derived figures")
     d.add_argument("sensor", help="sensor description (TOML)")
     d.add_argument("--json", action="store_true", help="print one JSON object")
@@ -177,6 +173,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="skip frames whose CRC fails (each is reported); default: stop with an error")
     pr.set_defaults(func=_process)
 
+
+def _add_serve(sub) -> None:
     sv = sub.add_parser("serve", help="the streaming daemon: ADC frames in over ZeroMQ, point clouds out")
     sv.add_argument("--sensor", required=True, help="sensor description (TOML) of the source")
     sv.add_argument("--settings", help="processing settings (TOML, [processing] section)")
@@ -204,6 +202,9 @@ def build_parser() -> argparse.ArgumentParser:
                     help="with --server-key: folder of the public keys (*.key) of the workers accepted")
     sv.set_defaults(func=_serve)
 
+
+def _add_worker_commands(sub) -> None:
+    """worker and keys: scale-out of serve."""
     wk = sub.add_parser("worker", help="process frames for a serve on this or another host")
     wk.add_argument("--connect", required=True, metavar="ENDPOINT", help="serve's --tasks endpoint")
     wk.add_argument("--results", required=True, metavar="ENDPOINT", help="serve's --results endpoint")
@@ -224,6 +225,9 @@ def build_parser() -> argparse.ArgumentParser:
     ky.add_argument("--dir", default=".", help="folder to write them to (default: the current one)")
     ky.set_defaults(func=_keys)
 
+
+def _add_stream_commands(sub) -> None:
+    """replay, record, demo: sources and sinks of the streams."""
     rp = sub.add_parser("replay", help="publish a capture's ADC frames over ZeroMQ with their recorded timing")
     rp.add_argument("capture")
     rp.add_argument("--pub", default="tcp://127.0.0.1:5601", metavar="ENDPOINT",
@@ -253,6 +257,9 @@ def build_parser() -> argparse.ArgumentParser:
     dm.add_argument("--no-viewer", action="store_true", help="do not start the viewer even with a display")
     dm.add_argument("--capture", help="capture to replay instead of replay_samples/yard.cap")
     dm.set_defaults(func=_demo)
+
+
+def _add_bench(sub) -> None:
     b = sub.add_parser("bench", help="benchmark the chain on simulated frames against the FFT floor")
     b.add_argument("--json", action="store_true", help="print one JSON object")
     b.add_argument("--frames", type=int, default=60, help="frames measured per sensor after warm-up (>= 50)")
@@ -262,6 +269,14 @@ def build_parser() -> argparse.ArgumentParser:
                    help="also run the large sensor through serve --workers N (0 = skip; default 2)")
     b.set_defaults(func=_bench)
 
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="cubecast", description="FMCW MIMO radar processing chain: ADC frames in, "
+                                "point clouds out.")
+    _add_log_options(p)
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for add in (_add_file_commands, _add_serve, _add_worker_commands, _add_stream_commands, _add_bench):
+        add(sub)
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)
     from .adapter import add_parser as add_adapter
