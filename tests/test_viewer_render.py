@@ -1,0 +1,241 @@
+"""The live viewer drawn offscreen and checked pixel by pixel: points where they belong, colours by
+velocity, the bundled capture's scene, the window's keys, and the PNG written by `view --snapshot`.
+
+Offscreen tests need an EGL (or OSMesa) GL context; they are skipped only when none can be created.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import tomllib
+import zlib
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from cubecast.viewer import views as V
+from cubecast.viewer.feed import POINT_DTYPE, FeedSnapshot, decode_parts
+from tests.viewer_messages import cloud, points_parts, sensor_parts, view_parser
+
+ROOT = Path(__file__).resolve().parent.parent
+YARD_CAP = ROOT / "replay_samples" / "yard.cap"
+YARD_SCENE = ROOT / "replay_samples" / "yard_scene.toml"
+
+
+@pytest.fixture(scope="module")
+def canvas():
+    from cubecast.viewer.snapshot import OffscreenUnavailable, offscreen_backend
+    try:
+        offscreen_backend()
+    except OffscreenUnavailable as exc:
+        pytest.skip(f"no offscreen GL context: {exc}")
+    from cubecast.viewer.canvas import ViewerCanvas
+    vc = ViewerCanvas(size=(1280, 800), show=False, dpi=96)
+    yield vc
+    vc.canvas.close()
+
+
+def _render(vc, state) -> np.ndarray:
+    vc.reset_cameras(state)
+    vc.show_state(state)
+    return vc.render()[..., :3].astype(int)
+
+
+def _state(*messages, **kw) -> V.ViewerState:
+    st = V.ViewerState(endpoint="tcp://127.0.0.1:5602", **kw)
+    for parts in messages:
+        st.ingest(decode_parts(parts, 0.0))
+    return st
+
+
+def _patch(img, px, r: int = 1) -> np.ndarray:
+    c, rr = int(round(px[0])), int(round(px[1]))
+    return np.median(img[rr - r: rr + r + 1, c - r: c + r + 1].reshape(-1, 3), axis=0)
+
+
+def _is_approaching(rgb) -> bool:
+    return rgb[2] - rgb[0] > 80
+
+
+def _is_receding(rgb) -> bool:
+    return rgb[0] - rgb[2] > 80
+
+
+def _centroid(img, rect, pred) -> tuple[np.ndarray, int]:
+    x0, y0, x1, y1 = rect
+    sub = img[y0:y1, x0:x1]
+    mask = pred(sub)
+    ys, xs = np.nonzero(mask)
+    if len(xs) == 0:
+        return np.array([np.nan, np.nan]), 0
+    return np.array([xs.mean() + x0, ys.mean() + y0]), len(xs)
+
+
+def _blue(sub):
+    return (sub[..., 2] - sub[..., 0] > 80) & (sub[..., 2] > 150)
+
+
+def _orange(sub):
+    return (sub[..., 0] - sub[..., 2] > 80) & (sub[..., 0] > 150)
+
+
+def test_offscreen_points_land_where_they_belong(canvas):
+    a = {"x_m": -6.0, "y_m": 8.0, "z_m": 2.0, "velocity_mps": -2.0}   # approaching, above the sensor
+    b = {"x_m": 6.0, "y_m": 16.0, "z_m": -0.5, "velocity_mps": 2.0}   # receding, below it
+    st = _state(sensor_parts("s"), points_parts("s", 1, cloud(a, b)))
+    img = _render(canvas, st)
+    for panel, pa, pb in (("top", (-6, 8), (6, 16)), ("side", (8, 2), (16, -0.5))):
+        rect = canvas.panel_rect(panel)
+        pix_a, pix_b = canvas.data_to_pixel(panel, [pa, pb])
+        assert _is_approaching(_patch(img, pix_a)), (panel, _patch(img, pix_a))
+        assert _is_receding(_patch(img, pix_b)), (panel, _patch(img, pix_b))
+        # the drawn blobs' centres, found in the pixels alone, sit on the mapped positions
+        ca, na = _centroid(img, rect, _blue)
+        cb, nb = _centroid(img, rect, _orange)
+        assert na > 20 and nb > 20
+        assert np.hypot(*(ca - pix_a)) < 2.0 and np.hypot(*(cb - pix_b)) < 2.0
+        # equal scales on both axes (aspect 1): the pixel offset has the metric offset's proportions,
+        # with image rows growing downward
+        d = cb - ca
+        dm = np.subtract(pb, pa)
+        assert d[0] > 0 and np.sign(d[1]) == -np.sign(dm[1])
+        assert abs(abs(d[0] / d[1]) - abs(dm[0] / dm[1])) < 0.04 * abs(dm[0] / dm[1])
+    # the top view's x = 0 line (boresight) lies between the two points, at the sensor mark
+    origin = canvas.data_to_pixel("top", [(0.0, 0.0)])[0]
+    white = _centroid(img, canvas.panel_rect("top"),
+                      lambda s: (s.min(axis=-1) > 200))[0]
+    assert abs(white[0] - origin[0]) < 2.0
+
+
+def test_offscreen_empty_cloud_draws_no_points(canvas):
+    base = _render(canvas, _state(sensor_parts("s")))
+    empty = _render(canvas, _state(sensor_parts("s"), points_parts("s", 1, np.zeros(0, POINT_DTYPE))))
+    one = _render(canvas, _state(sensor_parts("s"), points_parts("s", 1, cloud({"x_m": 0.0, "y_m": 10.0}))))
+    for panel in ("top", "side"):
+        x0, y0, x1, y1 = canvas.panel_rect(panel)
+        assert np.array_equal(empty[y0:y1, x0:x1], base[y0:y1, x0:x1]), panel
+        assert not np.array_equal(one[y0:y1, x0:x1], base[y0:y1, x0:x1]), panel
+        for pred in (_blue, _orange):
+            assert pred(empty[y0:y1, x0:x1]).sum() == 0
+
+
+def _yard_truth(name: str) -> tuple[float, float, float]:
+    scene = tomllib.loads(YARD_SCENE.read_text(encoding="utf-8"))
+    return tuple(next(t["position_m"] for t in scene["target"] if t["name"] == name))
+
+
+@pytest.fixture(scope="module")
+def yard_messages():
+    from cubecast.daemon.viewsource import capture_messages
+    return capture_messages(str(YARD_CAP), 5, history=6)
+
+
+def test_offscreen_yard_header_beam_is_plainly_overhead(canvas, yard_messages):
+    kinds = [m["kind"] for m in yard_messages]
+    assert kinds[0] == "sensor" and kinds.count("points") == 6 and "rdmap" in kinds and kinds[-1] == "health"
+    st = V.ViewerState(endpoint=str(YARD_CAP), sensor_height_m=1.0)   # yard_scene.toml: ground at z = -1
+    for m in yard_messages:
+        st.ingest(m)
+    img = _render(canvas, st)
+    x, y, z = _yard_truth("door header beam west")
+    assert z > 3.0
+    beam = canvas.data_to_pixel("side", [(y, z)])[0]
+    ground = canvas.data_to_pixel("side", [(y, -1.0)])[0]
+    lit = _patch(img, beam, 2)
+    # stationary: the neutral colour of the velocity scale, bright on the dark panel
+    assert np.ptp(lit) < 45 and lit.mean() > 140, lit
+    # the ground line is drawn at z = -1 in its earth colour, far below the beam
+    col = img[int(ground[1]) - 2: int(ground[1]) + 3, int(ground[0])]
+    assert any(c[0] - c[2] > 40 and c[0] > 100 for c in col), col
+    px_per_m = canvas.data_to_pixel("side", [(0, 0), (0, 1)])
+    px_per_m = abs(px_per_m[0, 1] - px_per_m[1, 1])
+    assert ground[1] - beam[1] > 0.9 * (z + 1.0) * px_per_m > 60
+    # the walker comes toward the sensor: d(range)/dt < 0, drawn on the approaching side of the scale
+    wx, wy, wz = _yard_truth("walker")
+    scene = tomllib.loads(YARD_SCENE.read_text(encoding="utf-8"))
+    wv = next(t["velocity_mps"] for t in scene["target"] if t["name"] == "walker")
+    assert (wx * wv[0] + wy * wv[1]) / math.hypot(wx, wy) < 0
+    newest = st.persist.newest
+    k = int(np.argmin(np.hypot(newest["x_m"] - (wx + 5 * 0.1 * wv[0]), newest["y_m"] - (wy + 5 * 0.1 * wv[1]))))
+    wpix = canvas.data_to_pixel("top", [(float(newest["x_m"][k]), float(newest["y_m"][k]))])[0]
+    assert _is_approaching(_patch(img, wpix)) or _patch(img, wpix)[2] > _patch(img, wpix)[0] + 40
+    # the range-Doppler panel shows the map with rings on this frame's detections
+    assert canvas.rd_image.visible and canvas.rd_marks.visible
+
+
+def test_app_keys_pause_step_and_stall(canvas):
+    from cubecast.viewer.app import ViewerApp
+
+    class FakeFeed:
+        endpoint = "tcp://127.0.0.1:5999"
+
+        def __init__(self):
+            self.snap = FeedSnapshot(endpoint=self.endpoint, started_s=time.monotonic())
+
+        def put(self, parts):
+            m = decode_parts(parts)
+            self.snap.latest.setdefault(m["sensor_id"], {})[m["kind"]] = m
+            c = self.snap.counts.setdefault(m["sensor_id"], {})
+            c[m["kind"]] = c.get(m["kind"], 0) + 1
+            self.snap.last_message_s = m["received_s"]
+
+        def snapshot(self):
+            return self.snap
+
+        def stop(self):
+            pass
+
+    feed = FakeFeed()
+    app = ViewerApp(feed, canvas=canvas, show=False, stall_after_s=3.0)
+    app.tick()
+    assert canvas.status.text.startswith("waiting for data on tcp://127.0.0.1:5999")
+    feed.put(sensor_parts("s"))
+    feed.put(points_parts("s", 1, cloud({"x_m": 1.0, "y_m": 6.0})))
+    app.tick()
+    assert app.state.points_msg["header"]["seq"] == 1 and canvas.top_points.visible
+    app.handle_key("Space", " ")
+    feed.put(points_parts("s", 2, cloud({"x_m": 1.0, "y_m": 6.5})))
+    app.tick()
+    assert app.state.points_msg["header"]["seq"] == 1 and canvas.status.text.startswith("PAUSED")
+    app.handle_key("Right")
+    app.tick()
+    assert app.state.points_msg["header"]["seq"] == 2
+    feed.put(points_parts("s", 3, cloud({"x_m": 1.0, "y_m": 7.0})))
+    app.tick()
+    assert app.state.points_msg["header"]["seq"] == 2
+    app.handle_key("Space", " ")
+    app.tick()
+    assert app.state.points_msg["header"]["seq"] == 3 and app.state.frames_skipped == 0
+    app.handle_key("c", "c")
+    assert app.state.color_by == "snr"
+    app.handle_key("+", "+")
+    app.handle_key("]", "]")
+    assert app.state.persist.n_frames == 9 and app.state.velocity_span_mps == 5.0
+    before = canvas.render()[..., :3].astype(int)
+    app.handle_key("h", "h")
+    assert canvas.help_visible
+    after = canvas.render()[..., :3].astype(int)
+    h, w = after.shape[:2]
+    centre = (slice(h // 2 - 100, h // 2 + 100), slice(w // 2 - 250, w // 2 + 250))
+    assert np.abs(after[centre] - before[centre]).sum(axis=-1).astype(bool).mean() > 0.3
+    app.handle_key("?", "?")
+    assert not canvas.help_visible
+    feed.snap.last_message_s = time.monotonic() - 10.0
+    app.tick(now_s=time.monotonic())
+    assert canvas.status.text.startswith("STALLED: nothing for")
+
+
+def test_cli_snapshot_of_the_bundled_capture(tmp_path, canvas):
+    out = tmp_path / "yard.png"
+    p = view_parser()
+    a = p.parse_args(["view", "--snapshot", str(out), "--capture", str(YARD_CAP), "--frame", "3",
+                      "--size", "960x600"])
+    assert a.func(a) == 0
+    data = out.read_bytes()
+    # PNG signature and IHDR (PNG specification, W3C 2003): width, height, 8-bit RGB
+    assert data[:8] == b"\x89PNG\r\n\x1a\n" and data[12:16] == b"IHDR"
+    assert int.from_bytes(data[16:20], "big") == 960 and int.from_bytes(data[20:24], "big") == 600
+    assert data[24] == 8 and data[25] == 2
+    assert zlib.crc32(data[12:29]) == int.from_bytes(data[29:33], "big")
