@@ -136,3 +136,14 @@ class RateLimitFilter(logging.Filter):
         for reason, n, text, level in due:
             logger.log(level, "%s%s: %d more in the last %g s; latest: %s", prefix, reason, n, self.interval_s, text,
                        extra={"reason": reason, "summary": True, "suppressed": n})
+
+
+def log_limited(logger: logging.Logger, limit: RateLimitFilter, level: int, reason: str, msg: str, *args) -> None:
+    """Log one record through `limit` (at most one per reason per interval, logs.RateLimitFilter)
+    without attaching the filter to the module's logger, so that every instance (a Service, a pool)
+    keeps its own intervals. `limit.flush(logger, ...)` reports the suppressed ones."""
+    if not logger.isEnabledFor(level):
+        return
+    record = logger.makeRecord(logger.name, level, "(unknown file)", 0, msg, args, None, extra={"reason": reason})
+    if limit.filter(record):
+        logger.handle(record)

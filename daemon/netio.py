@@ -1,6 +1,6 @@
 """ZeroMQ and process helpers shared by serve, its workers, the sources and the demo: default
 endpoints, binding and connecting with errors that name the endpoint's role, stopping on signals,
-local workers that die with their serve, and rate-limited log records per instance.
+local workers that die with their serve.
 
 Errors name the endpoint by its role ("publish endpoint tcp://...: cannot bind: ..."); the CLI owns
 the flag names.
@@ -9,7 +9,6 @@ the flag names.
 from __future__ import annotations
 
 import contextlib
-import logging
 import os
 import signal
 import sys
@@ -18,7 +17,6 @@ import threading
 import zmq
 
 from .errors import CubecastError
-from .logs import RateLimitFilter
 
 DEFAULT_SUB = "tcp://127.0.0.1:5601"  # where serve connects for ADC frames (sources bind it)
 DEFAULT_PUB = "tcp://127.0.0.1:5602"  # where serve binds for points, rdmap, sensor and health
@@ -82,14 +80,3 @@ def die_with_parent(parent_pid: str) -> bool:
         except Exception:
             pass
     return str(os.getppid()) == parent_pid
-
-
-def log_limited(logger: logging.Logger, limit: RateLimitFilter, level: int, reason: str, msg: str, *args) -> None:
-    """Log one record through `limit` (at most one per reason per interval, logs.RateLimitFilter)
-    without attaching the filter to the module's logger, so that every instance (a Service, a pool)
-    keeps its own intervals. `limit.flush(logger, ...)` reports the suppressed ones."""
-    if not logger.isEnabledFor(level):
-        return
-    record = logger.makeRecord(logger.name, level, "(unknown file)", 0, msg, args, None, extra={"reason": reason})
-    if limit.filter(record):
-        logger.handle(record)

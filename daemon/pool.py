@@ -64,8 +64,8 @@ from zmq.utils.monitor import recv_monitor_message
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
 from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ServerKeys
-from .logs import RateLimitFilter, uses_json_lines
-from .netio import PARENT_PID_ENV, bind_socket, local_endpoint, log_limited
+from .logs import RateLimitFilter, log_limited, uses_json_lines
+from .netio import PARENT_PID_ENV, bind_socket, local_endpoint
 from .workproto import (MAX_CAPACITY, MAX_CONTROL_BYTES, ProtocolError, Result, WorkerConfig, decode_control,
                         decode_hello, decode_result, encode_refuse, encode_task, encode_welcome, encode_who)
 

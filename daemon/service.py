@@ -45,8 +45,8 @@ import zmq
 from .errors import CubecastError
 from .intake import AdcValidator
 from .keys import ServerKeys
-from .logs import RateLimitFilter
-from .netio import DEFAULT_PUB, DEFAULT_SUB, bind_socket, connect_socket, log_limited, stop_on_signals
+from .logs import RateLimitFilter, log_limited
+from .netio import DEFAULT_PUB, DEFAULT_SUB, bind_socket, connect_socket, stop_on_signals
 from .process import load_calibration_for
 from .processors import LocalProcessor, Outcome, PoolProcessor
 from .sensor import Sensor, load_sensor

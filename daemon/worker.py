@@ -35,8 +35,8 @@ from .chain.points import to_records
 from .errors import CubecastError
 from .files import to_canonical
 from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ClientKeys
-from .logs import RateLimitFilter
-from .netio import PARENT_PID_ENV, connect_socket, die_with_parent, log_limited, stop_on_signals
+from .logs import RateLimitFilter, log_limited
+from .netio import PARENT_PID_ENV, connect_socket, die_with_parent, stop_on_signals
 from .sensor import Sensor, load_sensor
 from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_NAME_CHARS, ProtocolError, Task, WorkerConfig, decode_refuse,
                         decode_task, decode_welcome, encode_beat, encode_bye, encode_hello, encode_ready,

@@ -27,7 +27,7 @@ from cubecast.daemon.process import process_frames
 from cubecast.daemon.chain.rdmap import pool_rdmap
 from cubecast.daemon.intake import AdcValidator
 from cubecast.daemon.logs import RateLimitFilter
-from cubecast.daemon.netio import log_limited
+from cubecast.daemon.logs import log_limited
 from cubecast.daemon.service import Service
 from cubecast.daemon.sources import AdcPublisher, ReplaySource
 from cubecast.daemon.wire import WireError, decode, encode_adc
