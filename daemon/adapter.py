@@ -4,7 +4,7 @@ A board's capture path sends its ADC samples as a stream of UDP datagrams: each 
 (a packet counter, the byte offset of its payload in the continuous sample stream, ...) and a payload
 of consecutive stream bytes. The adapter reads that stream live (`--listen udp://HOST:PORT`) or from a
 datagram file (`--file PATH`), cuts it into frames by byte offset, converts each complete frame to the
-sensor's ADC format and publishes it on the wire (kind `adc`, digest and crc32, wire.md), so `serve`
+sensor's ADC format and publishes it on the wire (kind `adc`, digest and crc32, README "Wire format"), so `serve`
 takes it like any other source.
 
 How to read the stream is declared in a stream layout (streamlayout.py; README "Stream layout"); how

@@ -24,6 +24,7 @@ import numpy as np
 
 from .config import Document, Section, parse_toml, read_toml
 from .errors import CubecastError
+from .wire import SENSOR_ID_PATTERN, SENSOR_ID_RULE
 
 SPEED_OF_LIGHT_MPS = 299_792_458.0
 BOLTZMANN_J_PER_K = 1.380649e-23
@@ -330,8 +331,7 @@ SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc")
 
 
 def _read_id(s: Section) -> str:
-    sensor_id = s.string("id", pattern=r"[\w.-]+",
-                         rule="must be a non-empty name of letters, digits, '-', '_' or '.'")
+    sensor_id = s.string("id", pattern=SENSOR_ID_PATTERN, rule=f"must be {SENSOR_ID_RULE}")
     s.string("description", "")
     s.check_unknown()
     return sensor_id

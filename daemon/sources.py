@@ -1,7 +1,7 @@
 """Frame sources and the recorder: `cubecast replay`, `cubecast simulate --pub`, `cubecast record`.
 
 Sources bind an XPUB socket (a PUB that also reports subscriptions; SUB peers see an ordinary PUB) and
-publish `adc` messages (wire.md) in the sensor's ADC format with the sensor digest, a random `run` id
+publish `adc` messages (README "Wire format") in the sensor's ADC format with the sensor digest, a random `run` id
 chosen at start and a `seq` counting up from 0.
 
 Slow joiners: a PUB socket drops what it sends before a subscriber's connection is up. A source

@@ -2,7 +2,7 @@
 reads, and the `view` subcommand's registration.
 
 This is the one module that imports both `daemon` and `viewer`. It runs frames 0..N of a capture
-through the Pipeline, packs each result as wire.md describes (points, rdmap, sensor and a health-like
+through the Pipeline, packs each result as README "Wire format" describes (points, rdmap, sensor and a health-like
 status) and decodes them again with the viewer's own decoder, so a snapshot from a capture passes the
 same validation as live data.
 """

@@ -1,6 +1,6 @@
 """cubecast wire format, version 1: encode and decode every message kind (pure functions, no sockets).
 
-The contract is /work/notes/wire.md (README "Wire format"). Every message is three parts:
+The contract is README "Wire format". Every message is three parts:
 
     [ topic b"<sensor_id>/<kind>" , header (msgpack map, string keys) , payload (raw bytes, may be empty) ]
 
@@ -58,7 +58,8 @@ RDMAP_MAX_DOPPLER_CELLS = 64
 # The sensor file's rule for ids (sensor.py: letters, digits, '-', '_' or '.'); `\w` is exactly
 # str.isalnum() plus '_'. At most 64 characters on the wire; never '/', which ends the id in a topic.
 SENSOR_ID_RULE = f"1..{MAX_SENSOR_ID_CHARS} letters, digits, '-', '_' or '.'"
-_SENSOR_ID_RE = re.compile(r"[\w.-]{1,%d}" % MAX_SENSOR_ID_CHARS)
+SENSOR_ID_PATTERN = r"[\w.-]{1,%d}" % MAX_SENSOR_ID_CHARS   # the sensor file's [sensor] id follows it too
+_SENSOR_ID_RE = re.compile(SENSOR_ID_PATTERN)
 
 # [name, unit, dtype] of each record field, in order: 64 bytes, no padding (README "Wire format").
 # The chain's point records (chain/points.RECORD_DTYPE) have exactly this layout (tests check it).
@@ -73,7 +74,7 @@ POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
 RECORD_DTYPE = np.dtype([(name, dtype) for name, _, dtype in POINT_WIRE_FIELDS])
 assert RECORD_DTYPE.itemsize == 64
 _FIELDS_LIST = [list(f) for f in POINT_WIRE_FIELDS]
-FIELDS_RULE = ("must be exactly the record layout of wire.md (64-byte records, frame <u8, timestamp_s <f8, "
+FIELDS_RULE = ("must be exactly the record layout of README's wire format (64-byte records, frame <u8, timestamp_s <f8, "
                "then 12 <f4 fields)")
 
 SENSOR_SUMMARY_KEYS = ("max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
@@ -301,7 +302,7 @@ def encode_sensor(sensor: Sensor, velocity_unfolding: bool = True) -> list:
 
 
 def encode_health(sensor_id: str, fields: dict) -> list:
-    """`fields`: the health map of wire.md (validated here as a receiver would, so a bug cannot put
+    """`fields`: the health map of README "Wire format" (validated here as a receiver would, so a bug cannot put
     an invalid message on the bus)."""
     _check_sensor_id(sensor_id)
     header = _pack("health", sensor_id, fields)

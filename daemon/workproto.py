@@ -1,7 +1,7 @@
 """The worker protocol: serve <-> worker messages, encoded and decoded with bounded, validating
 msgpack. Pure: no sockets here (daemon/worker.py and daemon/pool.py own those).
 
-This is an internal protocol, version 1 (`proto` in every header), not the public wire of wire.md;
+This is an internal protocol, version 1 (`proto` in every header), not the public wire (README "Wire format");
 its messages are multipart [kind, header (msgpack map), payload...] decoded with bounded msgpack
 (no pickle, no ext types) and validated against the header schemas below, by the same mechanism and
 with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
@@ -49,7 +49,7 @@ from .wire import ADC_DTYPES, RDMAP_MAX_DOPPLER_CELLS, RDMAP_MAX_RANGE_CELLS, Ad
 
 PROTOCOL = 1
 MAX_CONTROL_BYTES = 64 * 1024  # headers of every message but `welcome`
-MAX_WELCOME_BYTES = 1024 * 1024  # carries the sensor description text (wire.md allows 1 MiB for it)
+MAX_WELCOME_BYTES = 1024 * 1024  # carries the sensor description text (the public wire allows 1 MiB for it)
 MAX_ENTRIES = 1024
 MAX_CALIBRATION_VALUES = MAX_ENTRIES * 64
 MAX_STAGES = 32

@@ -726,7 +726,7 @@ def test_cli_parser_wiring():
 
 def test_serve_turns_the_adapter_frames_into_the_offline_point_clouds(tmp_path):
     """The bundled capture's frames, streamed in the example layout, go adapter -> serve; serve's point
-    clouds are byte for byte those of the chain run offline on the same frames (wire.md: `points`)."""
+    clouds are byte for byte those of the chain run offline on the same frames (README "Wire format": `points`)."""
     from cubecast.daemon.capture import CaptureReader
     from cubecast.daemon.chain.pipeline import Pipeline
     from cubecast.daemon.files import capture_sensor

@@ -128,7 +128,7 @@ BAD_CASES = [
     (('frame_period_s = 0.1', 'frame_period_s = 0.001'), r"frame_period_s = 0.001: must be at least chirps_per_frame \* chirp_period_s"),
     (('scheme = "tdm"', 'scheme = "fdm"'), r"scheme = 'fdm': must be one of 'tdm', 'bpm'"),
     (('[link]', '[link]\nantenna_temp = 3'), r"\[link\] unknown field antenna_temp"),
-    (('id = "test-sensor"', 'id = "bad id!"'), r"id = 'bad id!': must be a non-empty name"),
+    (('id = "test-sensor"', 'id = "bad id!"'), r"id = 'bad id!': must be 1..64 letters, digits"),
     (('noise_figure_db = 12.0', 'noise_figure_db = "twelve"'), r"noise_figure_db = 'twelve': must be a finite number"),
     (('swap_iq = false', 'swap_iq = "no"'), r"swap_iq = 'no': must be true or false"),
     (('[adc]', '[adcc]\nx = 1\n[adc]'), r"unknown section \[adcc\] \(did you mean \[adc\]\?\)"),

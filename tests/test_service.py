@@ -168,7 +168,7 @@ def quiescent(svc: Service, settle_s: float = 0.3, timeout_s: float = 30.0) -> d
 
 
 def invariant_holds(s: dict) -> bool:
-    # wire.md: frames_received == processed + dropped + rejected + queue_depth (+1 while processing)
+    # README "Wire format": frames_received == processed + dropped + rejected + queue_depth (+1 while processing)
     return s["frames_received"] == (s["frames_processed"] + s["frames_dropped"] + s["frames_rejected"]
                                     + s["queue_depth"] + s["in_progress"])
 

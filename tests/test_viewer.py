@@ -1,7 +1,7 @@
 """The live viewer: wire decoding with limits, the subscriber thread, the pure view functions, the
 import boundary and the command line (offscreen renders: test_viewer_render.py).
 
-The viewer reads only the wire format (notes/wire.md); the messages here are packed by hand from that
+The viewer reads only the wire format (README "Wire format"); the messages here are packed by hand from that
 contract (tests/viewer_messages.py), so the tests hold the viewer to the document rather than to the
 daemon's encoder.
 """
@@ -33,7 +33,7 @@ YARD_CAP = ROOT / "replay_samples" / "yard.cap"
 # ---- wire decoding -------------------------------------------------------------------------------
 
 def test_point_layout_is_the_wires_and_the_chains():
-    # wire.md: 8 + 8 + 12 * 4 = 64 bytes per record, fields in this order
+    # README "Wire format": 8 + 8 + 12 * 4 = 64 bytes per record, fields in this order
     from cubecast.daemon.chain.points import RECORD_DTYPE
     assert POINT_DTYPE.itemsize == 64
     assert POINT_DTYPE == RECORD_DTYPE
@@ -98,10 +98,10 @@ def test_decode_rejects_what_breaks_the_contract():
 
 
 # The viewer decodes with the daemon's wire module: the rules below are the ones serve and the workers
-# apply, written out here from wire.md rather than read back from the module.
+# apply, written out here from README "Wire format" rather than read back from the module.
 
 def test_idle_health_with_nil_latencies_is_shown():
-    # wire.md: latency_p50_ms and latency_p99_ms are nil when serve processed nothing in the interval
+    # README "Wire format": latency_p50_ms and latency_p99_ms are nil when serve processed nothing in the interval
     idle = decode_parts(health_parts("yard-a", latency_p50_ms=None, latency_p99_ms=None, fps=0.0), 0.0)
     assert idle["header"]["latency_p99_ms"] is None
     assert _reason(health_parts("yard-a", latency_p99_ms=-1.0)) == "malformed"
@@ -349,7 +349,7 @@ def test_side_grid_ground_below_sensor_line():
 
 
 def test_rdmap_cells_and_folded_marks():
-    # wire.md: range of row i = start + i * step, velocity of column j likewise
+    # README "Wire format": range of row i = start + i * step, velocity of column j likewise
     h = {"range_start_m": 0.3, "range_step_m": 0.4, "velocity_start_mps": -3.2, "velocity_step_mps": 0.2}
     x0, y0, sx, sy = V.rdmap_geometry(h)
     j, i = 5, 7

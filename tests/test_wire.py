@@ -95,7 +95,7 @@ def test_points_round_trip_is_byte_exact():
     assert msg.header["count"] == 5 and msg.header["latency_s"] == 0.004
     assert msg.header["fields"] == [list(f) for f in POINT_WIRE_FIELDS]
     assert msg.data.dtype == RECORD_DTYPE and msg.data.tobytes() == rec.tobytes()
-    # the record layout of wire.md: 8 + 8 + 12 * 4 = 64 bytes, no padding
+    # the record layout of README "Wire format": 8 + 8 + 12 * 4 = 64 bytes, no padding
     assert RECORD_DTYPE.itemsize == 64 and len(POINT_WIRE_FIELDS) == 14
     empty = decode(encode_points("yard-a", 13, "r9", 1.35, 0.001, np.empty(0, RECORD_DTYPE)))
     assert empty.header["count"] == 0 and empty.data.shape == (0,) and empty.payload.nbytes == 0
@@ -281,7 +281,7 @@ def test_encoded_headers_are_the_documented_msgpack_maps(sensor, yard_frame):
 # ---- the rules the daemon, the workers and the viewer share --------------------------------------
 
 def test_idle_health_with_nil_latencies_is_valid():
-    # serve's health when no frame was processed in the interval: both latencies are nil (wire.md)
+    # serve's health when no frame was processed in the interval: both latencies are nil (README "Wire format")
     msg = decode(encode_health("yard-a", health_fields(latency_p50_ms=None, latency_p99_ms=None, fps=0.0)))
     assert msg.header["latency_p50_ms"] is None and msg.header["latency_p99_ms"] is None
     h = {"wire": 1, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p50_ms=-1.0)
@@ -300,8 +300,8 @@ def test_sensor_ids_follow_the_sensor_files_rule(sensor, yard_frame):
         rejected(raw(f"{bad}/adc", h, p), "malformed", "topic")
         with pytest.raises(WireError):
             encode_adc(bad, 0, "r", 0.0, yard_frame, sensor.digest)
-    # the same verdict as the sensor file's `id` rule, for every id short enough for the wire
-    for candidate in ("yard-a", "S_1.b", "ünï-2", "site/yard-a", "yard a", "a+b", "x²", "tab\t", "end\n"):
+    # the same verdict as the sensor file's `id` rule (one pattern, wire.SENSOR_ID_PATTERN)
+    for candidate in ("yard-a", "S_1.b", "ünï-2", "site/yard-a", "yard a", "a+b", "x²", "tab\t", "end\n", "x" * 65):
         text = sensor_text().replace('id = "test-sensor"', f"id = {json.dumps(candidate)}")  # a TOML basic string
         try:
             parse_sensor(text)

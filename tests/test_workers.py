@@ -150,7 +150,7 @@ def test_task_roundtrip_and_every_check(sensor, frames):
     # a local worker (serve's loopback) skips the re-check, by request only
     assert decode_task([parts[0], bytes(parts[1]), bytes(bad)], sensor, "S1", check_crc=False).seq == 3
     assert "bytes" in broken(payload=bytes(parts[2])[:-4])
-    # msgpack ext types are refused before any field is read (wire.md: never unpickle or eval)
+    # msgpack ext types are refused before any field is read (README "Wire format": never unpickle or eval)
     with pytest.raises(ProtocolError, match="ext"):
         decode_task([b"task", msgpack.packb({"proto": 1, "x": msgpack.ExtType(1, b"x")}), b""], sensor, "S1")
     with pytest.raises(ProtocolError, match="parts"):

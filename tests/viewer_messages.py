@@ -1,4 +1,4 @@
-"""Viewer test messages packed by hand from the wire contract (README "Wire format", notes/wire.md),
+"""Viewer test messages packed by hand from the wire contract (README "Wire format"),
 so the viewer's tests hold it to the document rather than to the daemon's encoder; and the `view`
 command's parser as the daemon registers it."""
 

@@ -1,4 +1,4 @@
-"""The viewer's side of the wire (wire.md, version 1): decoding with limits, and a subscriber thread.
+"""The viewer's side of the wire (README "Wire format", version 1): decoding with limits, and a subscriber thread.
 
 `decode_parts` turns one 3-part ZeroMQ message into a decoded message, a plain dict:
 
@@ -37,7 +37,7 @@ SENSOR_HEADER_MAX_BYTES = wire.MAX_SENSOR_HEADER_BYTES
 MAX_POINTS = 65536                       # 4 MiB of records: far beyond any one cloud the chain sends
 PAYLOAD_MAX_BYTES = MAX_POINTS * 64      # also the socket's per-part limit (ZMQ_MAXMSGSIZE)
 
-# the points record layout, exactly as wire.md lists it: [name, unit, dtype]
+# the points record layout, exactly as README "Wire format" lists it: [name, unit, dtype]
 POINT_FIELDS: tuple[tuple[str, str, str], ...] = wire.POINT_WIRE_FIELDS
 POINT_DTYPE = wire.RECORD_DTYPE
 
