@@ -10,11 +10,16 @@ For each sensor, in a fresh process (so that peak memory and start-up are its ow
   - the FFT floor: only the range and Doppler FFTs of the same cube with scipy.fft, one thread;
   - frames per second on one core, peak resident memory.
 Speed targets live here, never as timed assertions in tests.
+
+`bench --accuracy` (run_accuracy) measures instead what the points are worth: the Monte Carlo of
+accuracy.py on the reference sensor and the bundled yard sensor, RMSE against the Cramér-Rao
+bounds and against the reported sigmas per integrated SNR, in this process.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import os
 import resource
 import statistics
@@ -23,6 +28,10 @@ import sys
 import time
 
 import numpy as np
+
+from .errors import CubecastError
+
+log = logging.getLogger(__name__)
 
 SENSORS = {
     # 3 TX x 4 RX TDM, 128 loops, 256 samples, int16 I/Q: a common bench configuration
@@ -288,7 +297,6 @@ def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
         out = subprocess.run([sys.executable, "-m", "cubecast.daemon.bench", name, str(frames)], capture_output=True,
                              text=True, env=env, check=False)
         if out.returncode != 0:
-            from .errors import CubecastError
             raise CubecastError(f"bench for sensor '{name}' failed: {out.stderr.strip().splitlines()[-1:]}")
         row = json.loads(out.stdout)
         if served_workers and name == "large":
@@ -310,6 +318,83 @@ def print_table(result: dict) -> None:
             sv = row["served"]
             print(f"  through serve --workers {sv['workers']}: {sv['frames_per_s']:.1f} frames/s "
                   f"(offered {sv['offered_fps']:.0f}; latency p50 {sv['latency_p50_ms']} ms)")
+
+
+ACCURACY_TRIALS = 400  # per SNR and sensor: the whole `bench --accuracy` in about a minute here
+
+
+def accuracy_sensors() -> list[tuple[str, object]]:
+    """The sensors of `bench --accuracy`: the reference benchmark sensor and, when the bundled
+    samples are there, the yard sensor."""
+    from .demo import SAMPLES_DIR
+    from .sensor import load_sensor, parse_sensor
+    out = [("reference", parse_sensor(sensor_toml("reference"), "bench sensor reference"))]
+    yard = SAMPLES_DIR / "yard_sensor.toml"
+    if yard.is_file():
+        out.append(("yard", load_sensor(yard)))
+    else:
+        log.info("accuracy: no bundled yard sensor at %s; the reference sensor only", yard)
+    return out
+
+
+def run_accuracy(trials: int = ACCURACY_TRIALS, seed: int = 0, progress: bool = False) -> dict:
+    """Monte Carlo accuracy (accuracy.sweep) of the chain with default settings at the integrated
+    SNRs of accuracy.SNR_DB, per sensor of accuracy_sensors()."""
+    from . import accuracy
+    from .settings import ProcessingSettings
+
+    if trials < 2:
+        raise CubecastError(f"--trials {trials}: an RMSE needs at least 2 trials")
+    settings = ProcessingSettings().validate()
+    t0 = time.perf_counter()
+    rows = []
+    for name, sensor in accuracy_sensors():
+        t1 = time.perf_counter()
+        draws = accuracy.Draws.for_sensor(sensor, settings)
+        result = accuracy.sweep(sensor, settings, accuracy.SNR_DB, trials, seed, draws, progress, f"accuracy {name}")
+        rows.append({"name": name, "sensor": _describe_sensor(sensor),
+                     "draws": {k: list(v) for k, v in vars(draws).items()}, "rows": result,
+                     "seconds": round(time.perf_counter() - t1, 1)})
+        log.info("accuracy: %s, %d trials x %d SNRs in %.1f s", name, trials, len(accuracy.SNR_DB),
+                 time.perf_counter() - t1)
+    return {"snr_definition": accuracy.SNR_DEFINITION, "trials": trials, "seed": seed,
+            "gate": f"a point within {accuracy.GATE_CELLS:g} range and velocity cells and "
+                    f"{accuracy.GATE_BEAMWIDTHS:g} azimuth beamwidth of the truth is a detection",
+            "sensors": rows, "seconds": round(time.perf_counter() - t0, 1)}
+
+
+def _describe_sensor(sensor) -> str:
+    return (f"{sensor.n_tx} TX x {sensor.n_rx} RX {sensor.mimo_scheme.upper()}, {sensor.n_loops} loops, "
+            f"{sensor.samples_per_chirp} samples")
+
+
+def _fmt(x: float | None, width: int = 6) -> str:
+    return f"{x:{width}.2f}" if x is not None else f"{'-':>{width}}"
+
+
+def print_accuracy_table(result: dict) -> None:
+    """One row per integrated SNR: RMSE / CRB and RMSE / RMS(reported sigma) for range, velocity,
+    azimuth and elevation, and the detection rate."""
+    from .accuracy import COORDINATES
+    short = {"range": "range", "velocity": "vel", "azimuth": "az", "elevation": "el"}
+    names = "".join(f"{short[c]:>6}" for c in COORDINATES)
+    print(f"accuracy over {result['trials']} trials per SNR (seed {result['seed']}): RMSE of the matched point over "
+          "the Cramer-Rao bound (CRB) and over the RMS of its reported sigma")
+    print(f"  {result['snr_definition']}; {result['gate']}")
+    for s in result["sensors"]:
+        d = s["draws"]
+        print(f"{s['name']}: {s['sensor']}; targets uniform in range {d['range_m'][0]:.1f}..{d['range_m'][1]:.1f} m, "
+              f"velocity {d['velocity_mps'][0]:+.2f}..{d['velocity_mps'][1]:+.2f} m/s, azimuth "
+              f"{d['azimuth_deg'][0]:g}..{d['azimuth_deg'][1]:g} deg, elevation {d['elevation_deg'][0]:g}.."
+              f"{d['elevation_deg'][1]:g} deg ({s['seconds']:.0f} s)")
+        print(f"  {'integrated':>10} {'per sample':>10}   {'RMSE / CRB':^24}   {'RMSE / sigma':^24}")
+        print(f"  {'SNR dB':>10} {'SNR dB':>10}   {names}   {names}   {'detected':>8} {'points/frame':>12}")
+        for r in s["rows"]:
+            crb = "".join(_fmt(r[c] and r[c]["rmse_over_crb"]) for c in COORDINATES)
+            sig = "".join(_fmt(r[c] and r[c]["rmse_over_sigma"]) for c in COORDINATES)
+            print(f"  {r['snr_db']:10.0f} {r['snr_per_sample_db']:10.1f}   {crb}   {sig}   {r['detection_rate']:8.3f} "
+                  f"{r['points_per_frame']:12.2f}")
+    print(f"run time {result['seconds']:.0f} s")
 
 
 def warm(name: str) -> None:

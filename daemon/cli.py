@@ -134,14 +134,28 @@ def _demo(args) -> int:
 
 
 def _bench(args) -> int:
-    from .bench import print_table, run
-    if args.frames < 50:
-        raise CubecastError(f"--frames {args.frames}: the medians need at least 50 frames")
-    result = run(args.sensor or ["reference", "large"], args.frames, args.workers)
+    from . import bench
+    if args.accuracy:
+        for flag, value in (("--frames", args.frames), ("--sensor", args.sensor), ("--workers", args.workers)):
+            if value is not None:
+                raise CubecastError(f"{flag}: not with --accuracy, which runs the reference sensor and the bundled "
+                                    f"yard sensor")
+        trials = bench.ACCURACY_TRIALS if args.trials is None else args.trials
+        result = bench.run_accuracy(trials, 0 if args.seed is None else args.seed, progress=logs.show_progress())
+        printer = bench.print_accuracy_table
+    else:
+        for flag, value in (("--trials", args.trials), ("--seed", args.seed)):
+            if value is not None:
+                raise CubecastError(f"{flag}: only with --accuracy")
+        frames = 60 if args.frames is None else args.frames
+        if frames < 50:
+            raise CubecastError(f"--frames {frames}: the medians need at least 50 frames")
+        result = bench.run(args.sensor or ["reference", "large"], frames, 2 if args.workers is None else args.workers)
+        printer = bench.print_table
     if args.json:
         print(json.dumps(result))
     else:
-        print_table(result)
+        printer(result)
     return 0
 
 
@@ -260,13 +274,19 @@ def _add_stream_commands(sub) -> None:
 
 
 def _add_bench(sub) -> None:
-    b = sub.add_parser("bench", help="benchmark the chain on simulated frames against the FFT floor")
+    b = sub.add_parser("bench", help="benchmark the chain on simulated frames: speed against the FFT floor, or "
+                                     "accuracy against the Cramer-Rao bounds (--accuracy)")
     b.add_argument("--json", action="store_true", help="print one JSON object")
-    b.add_argument("--frames", type=int, default=60, help="frames measured per sensor after warm-up (>= 50)")
+    b.add_argument("--frames", type=int, help="frames measured per sensor after warm-up (>= 50; default 60)")
     b.add_argument("--sensor", action="append", choices=("reference", "large"),
                    help="only this sensor (repeatable; default both)")
-    b.add_argument("--workers", type=int, default=2,
+    b.add_argument("--workers", type=int,
                    help="also run the large sensor through serve --workers N (0 = skip; default 2)")
+    b.add_argument("--accuracy", action="store_true",
+                   help="instead of speed: Monte Carlo RMSE against the Cramer-Rao bounds and the reported sigmas "
+                        "at integrated SNR 10 to 50 dB (reference and bundled yard sensor)")
+    b.add_argument("--trials", type=int, help="with --accuracy: random targets per SNR and sensor (default 400)")
+    b.add_argument("--seed", type=int, help="with --accuracy: seed of the targets and the noise (default 0)")
     b.set_defaults(func=_bench)
 
 

@@ -4,6 +4,7 @@ live in the benchmark itself, never as timed assertions)."""
 from __future__ import annotations
 
 import json
+import math
 import subprocess
 import sys
 
@@ -43,3 +44,36 @@ def test_bench_rejects_too_few_frames():
     out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", "--frames", "10"], capture_output=True,
                          text=True, timeout=60)
     assert out.returncode == 2 and "at least 50 frames" in out.stderr
+
+
+def test_bench_accuracy_json_report():
+    out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", "--accuracy", "--json", "--trials", "3"],
+                         capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr
+    result = json.loads(out.stdout)
+    assert result["trials"] == 3 and result["seed"] == 0
+    assert "per-sample SNR x samples x loops x virtual channels" in result["snr_definition"]
+    names = [s["name"] for s in result["sensors"]]
+    assert names == ["reference", "yard"]
+    ref = result["sensors"][0]
+    assert [r["snr_db"] for r in ref["rows"]] == [10.0, 20.0, 30.0, 40.0, 50.0]
+    for r in ref["rows"]:
+        # reference sensor: 256 samples x 128 loops x 12 virtual channels
+        assert abs(r["snr_per_sample_db"] - (r["snr_db"] - 10.0 * math.log10(256 * 128 * 12))) < 1e-9
+        assert r["trials"] == 3 and 0.0 <= r["detection_rate"] <= 1.0
+        for c in ("range", "velocity", "azimuth", "elevation"):
+            stats = r[c]
+            assert set(stats) >= {"rmse", "crb", "sigma", "bias", "rmse_over_crb", "rmse_over_sigma"}
+            if r["detected"] >= 2:
+                assert stats["rmse_over_crb"] > 0 and stats["rmse_over_sigma"] > 0
+    az = ref["draws"]["azimuth_deg"]
+    assert az == [-60.0, 60.0] and ref["draws"]["elevation_deg"] == [-15.0, 15.0]
+
+
+def test_bench_accuracy_flags_belong_to_their_mode():
+    for argv, message in ((["--accuracy", "--frames", "60"], "--frames: not with --accuracy"),
+                          (["--trials", "3"], "--trials: only with --accuracy"),
+                          (["--accuracy", "--trials", "1"], "at least 2 trials")):
+        out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", *argv], capture_output=True,
+                             text=True, timeout=60)
+        assert out.returncode == 2 and message in out.stderr, (argv, out.stderr)
