@@ -210,9 +210,12 @@ class _Tally:
         self.error = {c: np.full(shape, np.nan) for c in COORDINATES}
         self.sigma = {c: np.full(shape, np.nan) for c in COORDINATES}
         self.crb = {c: np.full(shape, np.nan) for c in COORDINATES}
+        self.truth = {FIELDS[c][0]: np.full(n_trials, np.nan) for c in COORDINATES}
 
     def add(self, i: int, t: int, points: np.ndarray, k: int, truth: dict, crb: dict) -> None:
         self.points[i, t] = len(points)
+        for field, value in self.truth.items():
+            value[t] = truth[field]
         for c in COORDINATES:
             self.crb[c][i, t] = crb[c]
         if k < 0:
@@ -232,9 +235,11 @@ def _ratio(a: float | None, b: float | None) -> float | None:
     return a / b if a is not None and b not in (None, 0.0) and math.isfinite(b) else None
 
 
-def _summary(tally: _Tally, i: int, snr_db: float, sensor: Sensor, elevation: bool) -> dict:
+def _summary(tally: _Tally, i: int, snr_db: float, sensor: Sensor, elevation: bool, per_trial: bool) -> dict:
     """One SNR's row: detection rate and, per coordinate over the detected trials, RMSE, RMS of the
-    bound at the truth, RMS of the reported sigma, bias, and their ratios."""
+    bound at the truth, RMS of the reported sigma, bias, and their ratios. With per_trial, also
+    row["per_trial"]: the truth, the detected flags and per coordinate the error, reported sigma
+    and bound of every trial (numpy arrays, nan where missed)."""
     det = tally.detected[i]
     eta = per_sample_snr(sensor, snr_db)
     row = {"snr_db": snr_db, "snr_per_sample_db": 10.0 * math.log10(eta),
@@ -252,6 +257,10 @@ def _summary(tally: _Tally, i: int, snr_db: float, sensor: Sensor, elevation: bo
         row[c] = {"unit": unit, "rmse": rmse, "crb": rms_crb, "sigma": rms_sig, "bias": bias,
                   "rmse_over_crb": _ratio(rmse, rms_crb), "rmse_over_sigma": _ratio(rmse, rms_sig),
                   "bias_over_crb": _ratio(bias, rms_crb)}
+    if per_trial:
+        row["per_trial"] = {"truth": {f: v.copy() for f, v in tally.truth.items()}, "detected": det.copy(),
+                            **{c: {"error": tally.error[c][i].copy(), "sigma": tally.sigma[c][i].copy(),
+                                   "crb": tally.crb[c][i].copy()} for c in COORDINATES}}
     return row
 
 
@@ -264,10 +273,12 @@ def _check(sensor: Sensor, n_trials: int) -> None:
 
 
 def sweep(sensor: Sensor, settings: ProcessingSettings | None = None, snrs_db=SNR_DB, n_trials: int = 100,
-          seed: int = 0, draws: Draws | None = None, progress: bool = False, desc: str | None = None) -> list[dict]:
+          seed: int = 0, draws: Draws | None = None, progress: bool = False, desc: str | None = None,
+          per_trial: bool = False) -> list[dict]:
     """Monte Carlo over n_trials random targets at each integrated SNR in snrs_db (dB): one row per
     SNR (see _summary). Trial t draws its target from PCG64([seed, 0, t]) and its noise from
-    PCG64([seed, 1, t]), so a trial is the same whichever SNRs are asked for."""
+    PCG64([seed, 1, t]), so a trial is the same whichever SNRs are asked for. Draws with equal
+    ends (lo == hi) fix a coordinate: one target geometry under fresh noise per trial."""
     from .chain.pipeline import Pipeline
 
     _check(sensor, n_trials)
@@ -303,10 +314,10 @@ def sweep(sensor: Sensor, settings: ProcessingSettings | None = None, snrs_db=SN
                                            truth["azimuth_deg"], truth["elevation_deg"], elevation)
             crb = {"range": crb_r[i], "velocity": crb_v[i], "azimuth": s_az, "elevation": s_el}
             tally.add(i, t, points, match(points, truth), truth, crb)
-    return [_summary(tally, i, s, sensor, elevation) for i, s in enumerate(snrs_db)]
+    return [_summary(tally, i, s, sensor, elevation, per_trial) for i, s in enumerate(snrs_db)]
 
 
 def run_trials(sensor: Sensor, settings: ProcessingSettings | None, snr_db: float, n_trials: int,
-               seed: int = 0, draws: Draws | None = None) -> dict:
+               seed: int = 0, draws: Draws | None = None, per_trial: bool = False) -> dict:
     """One integrated SNR (dB): the row of `sweep` for it."""
-    return sweep(sensor, settings, (snr_db,), n_trials, seed, draws)[0]
+    return sweep(sensor, settings, (snr_db,), n_trials, seed, draws, per_trial=per_trial)[0]

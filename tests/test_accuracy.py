@@ -168,6 +168,26 @@ def test_smoke_run_structure_and_truth_within_a_few_bounds():
     assert again["range"]["rmse"] == high["range"]["rmse"]
 
 
+def test_targets_are_drawn_where_the_bench_says_and_can_be_fixed():
+    sensor = load_sensor(YARD_SENSOR)
+    row = accuracy.run_trials(sensor, None, 40.0, 6, seed=1, per_trial=True)
+    truth = row["per_trial"]["truth"]
+    # azimuth -60..60 deg, elevation +-15 deg (the array has elevation extent), radial velocity within
+    # 75 % of the unambiguous lambda / (4 T_loop); radial motion keeps the angles
+    v_max = C / sensor.center_frequency_hz / (4.0 * sensor.n_tx * sensor.chirp_period_s)
+    assert np.all(np.abs(truth["azimuth_deg"]) <= 60.0) and np.all(np.abs(truth["elevation_deg"]) <= 15.0)
+    assert np.all(np.abs(truth["velocity_mps"]) <= 0.75 * v_max)
+    assert len(set(np.round(truth["range_m"], 6))) == 6  # a fresh target per trial
+    detected = row["per_trial"]["detected"]
+    assert np.all(np.isfinite(row["per_trial"]["range"]["error"][detected]))
+    assert np.all(np.isnan(row["per_trial"]["range"]["error"][~detected]))
+    fixed = accuracy.Draws((10.0, 10.0), (0.0, 0.0), (20.0, 20.0), (-5.0, -5.0))
+    row = accuracy.run_trials(sensor, None, 40.0, 2, seed=1, draws=fixed, per_trial=True)
+    truth = row["per_trial"]["truth"]
+    for field, value in (("range_m", 10.0), ("velocity_mps", 0.0), ("azimuth_deg", 20.0), ("elevation_deg", -5.0)):
+        assert truth[field] == pytest.approx([value, value], abs=1e-9), field
+
+
 def test_run_trials_refuses_sensors_the_bounds_do_not_cover():
     with pytest.raises(CubecastError, match="TDM sensor with complex sampling"):
         accuracy.run_trials(make_sensor(sampling="real", sample_type="int16"), None, 30.0, 2)
