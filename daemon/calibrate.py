@@ -280,12 +280,11 @@ def _noise_power(pipe, noise: list[float], n_rx: int) -> tuple[float, np.ndarray
 
 
 def _virtual_snapshots(pipe, cells: np.ndarray, jj: int) -> np.ndarray:
-    """The frames' virtual snapshots of stored range cell `jj`: complex128 [F, V]. Each frame is one
-    "cell" of a spectrum [rx, slot, frame, 1], decoded at zero Doppler (the reflector is static)."""
+    """The frames' virtual snapshots of stored range cell `jj`: complex128 [F, V], each frame's slot
+    values [rx, slot] decoded at zero Doppler (the reflector is static)."""
     n_frames = cells.shape[0]
-    sv = np.ascontiguousarray(cells[:, :, :, jj].transpose(1, 2, 0), np.complex64)[..., None]
-    return pipe.mimo.snapshots(sv, np.arange(n_frames), np.zeros(n_frames, np.int64),
-                               np.zeros((n_frames, 1)))[:, 0, :].astype(np.complex128)
+    values = np.ascontiguousarray(cells[:, :, :, jj], np.complex64)   # [frame, rx, slot]
+    return pipe.mimo.snapshots(values, np.zeros((n_frames, 1)))[:, 0, :].astype(np.complex128)
 
 
 @dataclass

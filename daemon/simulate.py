@@ -82,10 +82,11 @@ class Simulator:
         return index * self.sensor.frame_period_s
 
     def measurement_epoch_s(self, index: int) -> float:
-        """The instant frame `index` measures: the middle of its chirp burst. A target moving during
+        """The instant frame `index` measures: the middle of its chirp burst, the mean of its chirps'
+        start times (the signal model takes each chirp's delay at its start). A target moving during
         the burst is seen at its mean position, so ground truth is given at this epoch."""
         s = self.sensor
-        return self.frame_time_s(index) + 0.5 * s.chirps_per_frame * s.chirp_period_s
+        return self.frame_time_s(index) + 0.5 * (s.chirps_per_frame - 1) * s.chirp_period_s
 
     def truth(self, index: int) -> np.ndarray:
         """Ground truth at the measurement epoch of frame `index`: [n_targets, len(TRUTH_COLUMNS)]."""

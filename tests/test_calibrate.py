@@ -165,7 +165,7 @@ def test_cell_snr_matches_the_range_equation(calibration, sensor):
     # (Harris 1978), less the Hann scalloping loss at the reflector's fractional range bin.
     res = calibration["result"]
     snr_sample_db = float(range_equation_snr_db(sensor, REFLECTOR_RANGE_M, REFLECTOR_RCS_DBSM))
-    w_r, w_d = np.hanning(sensor.samples_per_chirp), np.hanning(sensor.n_loops)
+    w_r, w_d = np.hanning(sensor.samples_per_chirp + 2)[1:-1], np.hanning(sensor.n_loops + 2)[1:-1]  # no zero ends
     gain_db = 10.0 * math.log10(w_r.sum() ** 2 / (w_r ** 2).sum() * w_d.sum() ** 2 / (w_d ** 2).sum())
     beat_bin = 2.0 * sensor.slope_hz_per_s * REFLECTOR_RANGE_M / SPEED_OF_LIGHT_MPS \
         / (sensor.sample_rate_hz / sensor.samples_per_chirp)

@@ -353,11 +353,13 @@ def test_deterministic(sensor):
 
 @pytest.mark.parametrize("layout", ["planar", "azimuth_only", "elevation_only"])
 def test_point_kernel_matches_the_bound_functions(layout):
-    # The chain fills the point records in one compiled kernel; its standard deviations must equal
-    # the tone bound and the direction-cosine CRB, both written out below from their papers, including
-    # the infinite ones of an array without extent, and the geometry of the sensor frame.
+    # The chain fills the point records in one compiled kernel: the geometry of the sensor frame, the
+    # range from the array's phase centre carried to the origin, the SNR share of secondary peaks, the
+    # range and velocity sigmas of the refinement passed through, and the direction-cosine CRB written
+    # out below from its paper, with the angle floor in quadrature, including the infinite ones of an
+    # array without extent.
     from cubecast.daemon.chain.bounds import crb_unit_covariance
-    from cubecast.daemon.chain.points import POINT_DTYPE, POINT_FIELDS, fill_points
+    from cubecast.daemon.chain.points import ANGLE_FLOOR_DEG, POINT_DTYPE, POINT_FIELDS, fill_points
 
     lam = 0.0039
     k = np.arange(8, dtype=np.float64)
@@ -370,42 +372,39 @@ def test_point_kernel_matches_the_bound_functions(layout):
     az = rng.uniform(-70, 70, n_pts).astype(np.float32)
     el = rng.uniform(-20, 20, n_pts).astype(np.float32)
     peak = rng.uniform(0.1, 10, n_pts).astype(np.float32)
-    snr = rng.uniform(0.5, 1e4, n_det).astype(np.float32)
-    range_bin = rng.integers(1, 200, n_det).astype(np.int32)
-    range_frac = rng.uniform(-0.5, 0.5, n_det).astype(np.float32)
+    cell_snr = rng.uniform(0.5, 1e4, n_det).astype(np.float32)
+    element_snr = rng.uniform(0.5, 1e5, n_det)
+    range_bin = rng.uniform(1, 200, n_det)
+    sigma_r, sigma_v = rng.uniform(1e-4, 1e-2, n_det), rng.uniform(1e-4, 1e-2, n_det)
+    centre = np.array([0.004, 0.001, -0.002])
     doppler_hz = rng.uniform(-3e3, 3e3, n_det)
     bin_m, bias, half_wl = 0.0469, 0.012, lam / 2
     out = np.empty(n_pts, POINT_DTYPE)
-    fill_points(range_bin, range_frac, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl, snr, 8, 256, 64,
-                0.0469, 0.077, *crb_unit_covariance(pos, lam), np.empty(n_det),
+    fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl, cell_snr, element_snr,
+                sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), np.empty(n_det),
                 out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
 
     first = np.zeros(n_det)
     np.maximum.at(first, det_index, peak)
-    snr_pt = snr[det_index] * (peak / first[det_index])
-    rng_m = ((range_bin[det_index] + range_frac[det_index].astype(np.float64)) * bin_m - bias).astype(np.float32)
-    np.testing.assert_allclose(out["range_m"], rng_m, rtol=1e-6)
+    share = peak / first[det_index]
+    snr_pt = element_snr[det_index] * share
     a, e = np.radians(az.astype(np.float64)), np.radians(el.astype(np.float64))
-    # sensor frame (project convention): x right, y boresight, z up
-    np.testing.assert_allclose(out["x_m"], rng_m * np.cos(e) * np.sin(a), rtol=1e-5, atol=1e-6)
-    np.testing.assert_allclose(out["y_m"], rng_m * np.cos(e) * np.cos(a), rtol=1e-5, atol=1e-6)
-    np.testing.assert_allclose(out["z_m"], rng_m * np.sin(e), rtol=1e-5, atol=1e-6)
+    # sensor frame (project convention): x right, y boresight, z up; u the point's direction
+    u_dir = np.c_[np.cos(e) * np.sin(a), np.cos(e) * np.cos(a), np.sin(e)]
+    rng_m = range_bin[det_index] * bin_m - bias + u_dir @ centre
+    np.testing.assert_allclose(out["range_m"], rng_m, rtol=1e-6)
+    np.testing.assert_allclose(out["x_m"], rng_m * u_dir[:, 0], rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["y_m"], rng_m * u_dir[:, 1], rtol=1e-5, atol=1e-6)
+    np.testing.assert_allclose(out["z_m"], rng_m * u_dir[:, 2], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl, rtol=1e-6)
-    np.testing.assert_allclose(out["snr_db"], 10 * np.log10(snr_pt), rtol=1e-5)
-    # Tone bound written out (Rife and Boorstyn, "Single-tone parameter estimation from discrete-time
-    # observations", IEEE Trans. IT, 1974; complex samples, from memory): var(omega) >= 6 / (eta N (N^2 - 1))
-    # rad^2/sample^2 with eta = |A|^2 / sigma^2 per sample (sigma^2 the complex noise power), 1/K for K
-    # channels of equal SNR. snr_pt is the SNR of the DFT peak, N eta; a bin is omega N / (2 pi).
-    def tone_bins(n, k):
-        eta = snr_pt.astype(np.float64) / n
-        return n / (2 * np.pi) * np.sqrt(6.0 / (eta * k * n * (n * n - 1.0)))
-    np.testing.assert_allclose(out["sigma_range_m"], tone_bins(256, 8) * 0.0469, rtol=1e-5)
-    np.testing.assert_allclose(out["sigma_velocity_mps"], tone_bins(64, 8) * 0.077, rtol=1e-5)
+    np.testing.assert_allclose(out["snr_db"], 10 * np.log10(cell_snr[det_index] * share), rtol=1e-5)
+    np.testing.assert_allclose(out["sigma_range_m"], sigma_r[det_index], rtol=1e-6)
+    np.testing.assert_allclose(out["sigma_velocity_mps"], sigma_v[det_index], rtol=1e-6)
     # Direction bound written out (Stoica and Nehorai, "MUSIC, maximum likelihood and Cramer-Rao bound",
     # IEEE Trans. ASSP, 1989; one snapshot, unknown amplitude): F = 2 eta k0^2 sum_i (q_i - q_mean)(q_i - q_mean)^T
     # over q_i = (x_i, z_i) for the direction cosines (u, w); az = atan2(u, sqrt(1 - u^2 - w^2)), el = asin(w).
     k0 = 2 * np.pi / lam
-    u, w = np.cos(e) * np.sin(a), np.sin(e)
+    u, w = u_dir[:, 0], u_dir[:, 2]
     v = np.sqrt(np.maximum(1 - u * u - w * w, 1e-12))
     q = pos[:, [0, 2]] - pos[:, [0, 2]].mean(axis=0)
     geometry = 2 * k0 ** 2 * (q.T @ q)
@@ -426,8 +425,11 @@ def test_point_kernel_matches_the_bound_functions(layout):
         var_az = d_az_du ** 2 * var_u + 2 * d_az_du * d_az_dw * cov_uw + d_az_dw ** 2 * var_w
     else:   # no elevation extent: the elevation is taken as known, only the u term remains
         var_az = d_az_du ** 2 * var_u
-    np.testing.assert_allclose(out["sigma_azimuth_deg"], np.degrees(np.sqrt(var_az)), rtol=1e-4)
-    np.testing.assert_allclose(out["sigma_elevation_deg"], np.degrees(np.sqrt(var_w) / np.cos(e)), rtol=1e-4)
+    floor2 = ANGLE_FLOOR_DEG ** 2
+    np.testing.assert_allclose(out["sigma_azimuth_deg"], np.sqrt(np.degrees(np.sqrt(var_az)) ** 2 + floor2),
+                               rtol=1e-4)
+    np.testing.assert_allclose(out["sigma_elevation_deg"],
+                               np.sqrt(np.degrees(np.sqrt(var_w) / np.cos(e)) ** 2 + floor2), rtol=1e-4)
     if layout == "azimuth_only":
         assert np.all(np.isinf(out["sigma_elevation_deg"])) and np.all(np.isfinite(out["sigma_azimuth_deg"]))
     if layout == "elevation_only":

@@ -24,16 +24,15 @@ from ..settings import ProcessingSettings
 
 
 @numba.njit(cache=True, nogil=True)
-def _snapshots(spec, range_bin, doppler_col, doppler_hz, decode, chirp_period_s, compensate, comp, out):
-    """out[i, h, k n_rx + l] = sum_s decode[k, s] exp(-j 2 pi f_ih s T_c) spec[l, s, r_i, d_i]: the
-    slot values of detection i (spectrum [rx, slot, range, doppler] at its cell), compensated for
-    Doppler hypothesis f_ih = doppler_hz[i, h] (or not, without `compensate`) and decoded into the
-    virtual array."""
-    n_rx, n_slots = spec.shape[0], spec.shape[1]
+def _snapshots(values, doppler_hz, decode, chirp_period_s, compensate, comp, out):
+    """out[i, h, k n_rx + l] = sum_s decode[k, s] exp(-j 2 pi f_ih s T_c) values[i, l, s]: the slot
+    values of detection i (per receive channel and slot, at its refined frequencies), compensated
+    for Doppler hypothesis f_ih = doppler_hz[i, h] (or not, without `compensate`) and decoded into
+    the virtual array."""
+    n_det, n_rx, n_slots = values.shape
     n_tx = decode.shape[0]
-    n_det, n_hyp = doppler_hz.shape
+    n_hyp = doppler_hz.shape[1]
     for i in range(n_det):
-        r, d = range_bin[i], doppler_col[i]
         for h in range(n_hyp):
             for s in range(n_slots):
                 if compensate:
@@ -42,7 +41,7 @@ def _snapshots(spec, range_bin, doppler_col, doppler_hz, decode, chirp_period_s,
                 else:
                     ph = np.complex64(1.0)
                 for l in range(n_rx):
-                    comp[s, l] = ph * spec[l, s, r, d]
+                    comp[s, l] = ph * np.complex64(values[i, l, s])
             for k in range(n_tx):
                 for l in range(n_rx):
                     acc = np.complex64(0.0)
@@ -110,32 +109,27 @@ class MimoDecoder:
         self._cand = np.empty((n_det, n_hyp), np.float64)
         self._snaps = np.empty((n_det, n_hyp, n_virt), np.complex64)
 
-    def snapshots(self, spectrum: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
-                  doppler_hz: np.ndarray) -> np.ndarray:
-        """Virtual snapshots complex64 [n_det, n_hyp, n_tx * n_rx] (channel k * n_rx + l) of the cells
-        (range_bin, doppler_col) of spectrum [rx, slot, range, doppler] (unshifted Doppler columns),
-        for the Doppler hypotheses doppler_hz [n_det, n_hyp]."""
+    def snapshots(self, values: np.ndarray, doppler_hz: np.ndarray) -> np.ndarray:
+        """Virtual snapshots complex64 [n_det, n_hyp, n_tx * n_rx] (channel k * n_rx + l) of the slot
+        values [n_det, rx, slot] for the Doppler hypotheses doppler_hz [n_det, n_hyp]."""
         n_det, n_hyp = doppler_hz.shape
         out = np.empty((n_det, n_hyp, self.n_tx * self.n_rx), np.complex64)
-        _snapshots(spectrum, np.asarray(range_bin, np.int64), np.asarray(doppler_col, np.int64),
-                   np.ascontiguousarray(doppler_hz, np.float64), self.decode, self.chirp_period_s,
-                   self.compensate, self._comp, out)
+        _snapshots(np.ascontiguousarray(values), np.ascontiguousarray(doppler_hz, np.float64), self.decode,
+                   self.chirp_period_s, self.compensate, self._comp, out)
         return out
 
-    def resolve(self, spectrum: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
-                doppler_bin: np.ndarray, coherence) -> tuple[np.ndarray, np.ndarray]:
-        """Pick the Doppler hypothesis per detection at cells (range_bin, doppler_col) of the spectrum,
-        doppler_bin the refined fft-shifted bin. Returns (virtual snapshots [n_det, n_virt], unfolded
-        Doppler frequency [n_det] in Hz), both the caller's. `coherence(snapshots [n, n_virt]) -> [n]`
-        float32."""
-        n_det = range_bin.shape[0]
+    def resolve(self, values: np.ndarray, doppler_bin: np.ndarray, coherence) -> tuple[np.ndarray, np.ndarray]:
+        """Pick the Doppler hypothesis per detection from its slot values [n_det, rx, slot] (at the
+        refined frequencies), doppler_bin the refined fft-shifted Doppler bin. Returns (virtual
+        snapshots [n_det, n_virt], unfolded Doppler frequency [n_det] in Hz), both the caller's.
+        `coherence(snapshots [n, n_virt]) -> [n]` float32."""
+        n_det = values.shape[0]
         n_hyp = self.hypotheses.shape[0]
         self._reserve(n_det)
         cand, snaps = self._cand[:n_det], self._snaps[:n_det]
         _hypotheses(np.asarray(doppler_bin, np.float64), self.n_doppler // 2, self.doppler_bin_hz,
                     self._offsets_hz, cand)
-        _snapshots(spectrum, range_bin, doppler_col, cand, self.decode, self.chirp_period_s, self.compensate,
-                   self._comp, snaps)
+        _snapshots(values, cand, self.decode, self.chirp_period_s, self.compensate, self._comp, snaps)
         if n_hyp == 1:
             return snaps[:, 0].copy(), cand[:, 0].copy()
         score = coherence(snaps.reshape(n_det * n_hyp, -1)).reshape(n_det, n_hyp)
@@ -143,3 +137,9 @@ class MimoDecoder:
         out_hz = np.empty(n_det, np.float64)
         _pick(score, self._zero, self._margin32, snaps, cand, out_snaps, out_hz)
         return out_snaps, out_hz
+
+    def virtual_snr_factor(self) -> float:
+        """SNR of a decoded virtual channel over that of one slot value: the decoding sums slots with
+        weights decode[k, s], so noise grows by sum_s |decode[k, s]|^2 while the target keeps its
+        amplitude (mean over TX; 1 for TDM, n_slots for a Hadamard BPM code)."""
+        return float(1.0 / np.mean(np.sum(np.abs(self.decode.astype(np.complex128)) ** 2, axis=1)))

@@ -6,10 +6,11 @@
       -> DopplerFft    complex64 [rx, slot, range, doppler]  (FFT over contiguous loops)
                        float32   [range, doppler]            (non-coherent detection map)
       -> Cfar          detections (range bin, Doppler column, SNR)
-      -> refinement    fractional range and Doppler bins (log-parabolic interpolation of the map)
+      -> Refiner       range and Doppler frequency refined on each detection's own samples, and the
+                       slot values there (refine.py), started at the map's log-parabolic interpolation
       -> MimoDecoder   virtual snapshots with Doppler-induced phase compensation and velocity unfolding
       -> AngleEstimator azimuth / elevation peaks per detection
-      -> points        POINT_DTYPE records with Cramér-Rao standard deviations
+      -> points        POINT_DTYPE records with their standard deviations
 
 The Pipeline owns every buffer it writes; `process` returns a fresh array the caller may keep.
 It is pure: the same sensor, settings, calibration and frame always give the same points.
@@ -23,7 +24,7 @@ import numba
 import numpy as np
 
 from ..errors import CubecastError
-from ..sensor import Sensor
+from ..sensor import SPEED_OF_LIGHT_MPS, Sensor
 from ..settings import ProcessingSettings
 from .angle import AngleEstimator, AngleSettings, VirtualGrid, crb_unit_covariance
 from .cfar import Cfar, CfarSettings
@@ -32,6 +33,7 @@ from .mimo import MimoDecoder
 from .points import POINT_DTYPE, POINT_FIELDS, fill_points
 from .rangefft import RangeFft
 from .rdmap import pool_rdmap
+from .refine import Refiner
 
 STAGES = ("range_fft", "doppler_fft", "cfar", "mimo", "angle", "points")
 
@@ -111,7 +113,10 @@ class Pipeline:
         except CubecastError as exc:
             raise CubecastError(f"[processing] CFAR settings: {exc}") from None
 
+        self.refiner = Refiner(self.range_fft.window, self.range_fft.fft_size, n_range, self.doppler_fft.window,
+                               n_dop, sensor.n_rx, sensor.n_slots)
         self.mimo = MimoDecoder(sensor, settings, self.doppler_fft.bin_hz, n_dop)
+        self._virtual_snr = self.mimo.virtual_snr_factor()
         self.virtual_positions_m = sensor.virtual_positions_m
         grid = VirtualGrid.from_positions(self.virtual_positions_m, sensor.wavelength_m)
         n_az = settings.angle_fft_size_azimuth or max(64, _next_pow2(2 * grid.n_x))
@@ -131,7 +136,13 @@ class Pipeline:
         self.range_resolution_m = sensor.range_resolution_m
         self.velocity_resolution_mps = sensor.velocity_resolution_mps
         self.half_wavelength_m = sensor.wavelength_m / 2.0
+        fs = sensor.sample_rate_hz
+        self._mean_sweep_hz = sensor.start_frequency_hz + sensor.slope_hz_per_s * (
+            sensor.adc_start_delay_s + (sensor.samples_per_chirp - 1) / (2.0 * fs))
+        self._slope_hz_per_m = 2.0 * sensor.slope_hz_per_s / SPEED_OF_LIGHT_MPS   # S tau per metre of range
         self._crb_unit = crb_unit_covariance(self.virtual_positions_m, sensor.wavelength_m)
+        # ranges are measured from the virtual array's phase centre, mean(tx_k + rx_l) / 2
+        self._phase_centre_m = np.ascontiguousarray(self.virtual_positions_m.mean(axis=0) / 2.0, np.float64)
         self.stage_ms = dict.fromkeys(STAGES, 0.0)
         self._canonical = None
         self.range_bias_m = float(range_bias_m)
@@ -212,25 +223,31 @@ class Pipeline:
             return np.empty(0, POINT_DTYPE)
         if n_det > self.settings.max_points:  # strongest first
             keep = np.sort(np.argsort(det.power)[::-1][: self.settings.max_points])
-            r, d, snr = det.range_bin[keep], det.doppler_bin[keep], det.snr_linear[keep]
+            r, d, snr, noise = det.range_bin[keep], det.doppler_bin[keep], det.snr_linear[keep], det.noise[keep]
         else:
-            r, d, snr = det.range_bin, det.doppler_bin, det.snr_linear
+            r, d, snr, noise = det.range_bin, det.doppler_bin, det.snr_linear, det.noise
 
         n = len(r)
         dr, dd = np.empty(n, np.float32), np.empty(n, np.float32)
         d_fft = np.empty(n, np.int64)
         _refine_cells(power, r, d, dr, dd, d_fft)
-        snaps, doppler_hz = self.mimo.resolve(spec, r, d_fft, d + dd, self.angle.coherence)
+        ref = self.refiner.refine(spec, power, r, d, dr, dd, noise, snr)
+        snaps, doppler_hz = self.mimo.resolve(ref.values, ref.doppler_bin + dop.fft_size // 2, self.angle.coherence)
         t4 = time.perf_counter()
 
         ang = self.angle.estimate(snaps)
         t5 = time.perf_counter()
 
         out = np.empty(ang.det_index.shape[0], POINT_DTYPE)
-        fill_points(r, dr, self.range_fft.bin_m, self.range_bias_m, ang.det_index, ang.azimuth_deg,
-                    ang.elevation_deg, ang.peak_power, doppler_hz, self.half_wavelength_m, snr, self.n_virtual,
-                    self.sensor.samples_per_chirp, self.sensor.n_loops, self.range_resolution_m,
-                    self.velocity_resolution_mps, *self._crb_unit, np.empty(n, np.float64),
+        # The echo's mean frequency over the samples: the beat phase f_c tau + S tau t_n - S tau^2 / 2
+        # (README's signal model) advances with tau at f_c + S t_n - S tau, averaged over t_n.
+        range_m = ref.range_bin * self.range_fft.bin_m
+        half_wl = SPEED_OF_LIGHT_MPS / (2.0 * (self._mean_sweep_hz - self._slope_hz_per_m * range_m))
+        bin_v = dop.bin_hz * half_wl
+        fill_points(ref.range_bin, self.range_fft.bin_m, self.range_bias_m, ang.det_index, ang.azimuth_deg,
+                    ang.elevation_deg, ang.peak_power, doppler_hz, half_wl, snr,
+                    ref.value_snr * self._virtual_snr, ref.sigma_range_bins * self.range_fft.bin_m,
+                    ref.sigma_doppler_bins * bin_v, self._phase_centre_m, *self._crb_unit, np.empty(n, np.float64),
                     out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
         t6 = time.perf_counter()
         self._times(t0, t1, t2, t3, t4, t5, t6)

@@ -1,13 +1,13 @@
 """The point record and the per-point accuracy figures.
 
-Every point carries standard deviations from its SNR by the Cramér-Rao bounds of bounds.py so that
-a tracker can weight it. Range and velocity: the single-tone bound (Rife and Boorstyn, IEEE Trans.
-IT, 1974), range over the N fast-time samples, velocity over the loops, both integrated over the K
-virtual channels; with snr the per-channel SNR in the range-Doppler cell (which already holds the
-coherent gain of the other dimension), var(bin) = 6 / ((2 pi)^2 K snr (1 - 1/N^2)) in resolution
-cells. Azimuth and elevation: the direction-cosine bound of one source (Stoica and Nehorai, IEEE
-Trans. ASSP, 1989). The windows widen the true spread; the bound is the floor a tracker can count
-on, and it is what we report.
+Every point carries the standard deviations a tracker can weight it by: the expected standard
+deviation of this chain's estimate of that coordinate, not only a bound. Range and velocity: the
+variance of the refined periodogram peak (refine.py; with the flat taper it is the single-tone
+Cramér-Rao bound of Rife and Boorstyn, IEEE Trans. IT, 1974, at the SNR of the detection's own
+samples), plus a floor for the residual systematic error. Azimuth and elevation: the
+direction-cosine bound of one source (Stoica and Nehorai, IEEE Trans. ASSP, 1989) at the SNR of
+the virtual snapshot taken at the refined frequencies, which the angle stage reaches, with a floor
+ANGLE_FLOOR_DEG in quadrature for the residual systematic error.
 """
 
 from __future__ import annotations
@@ -15,7 +15,9 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-from .bounds import direction_sigmas_deg, tone_sigma_bins
+from .bounds import direction_sigmas_deg
+
+ANGLE_FLOOR_DEG = 0.005   # residual systematic angle error, added in quadrature
 
 POINT_FIELDS: tuple[tuple[str, str], ...] = (
     ("x_m", "m"), ("y_m", "m"), ("z_m", "m"),
@@ -42,17 +44,23 @@ def to_records(points: np.ndarray, frame: int, timestamp_s: float) -> np.ndarray
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def fill_points(range_bin, range_frac, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, peak_power,
-                doppler_hz, half_wavelength_m, snr, n_virtual, n_samples, n_loops, range_resolution_m,
-                velocity_resolution_mps, var_u1, var_w1, cov_uw1, has_x, has_z, first, out):
+def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, peak_power, doppler_hz,
+                half_wavelength_m, cell_snr, element_snr, sigma_range_m, sigma_velocity_mps, phase_centre_m,
+                var_u1, var_w1, cov_uw1, has_x, has_z, first, out):
     """The point records of one frame as float32 [n_points, 12] in POINT_FIELDS order.
 
-    Point k is angle peak k of detection i = det_index[k]. A secondary angle peak gets the share of
-    the cell's SNR its beam power holds. Standard deviations (bounds.py): the tone bound
-    (tone_sigma_bins) for range and velocity; for azimuth and elevation the direction-cosine CRB
-    (var_u1, var_w1, cov_uw1 at 2 SNR = 1, from bounds.crb_unit_covariance) through the Jacobians
-    of az = atan2(u, v) and el = asin(w) (direction_sigmas_deg). `first` is scratch of at least the
-    number of detections. has_x is not used (the bound is inf along an axis without extent)."""
+    Point k is angle peak k of detection i = det_index[k]; range_bin[i] is its refined range in FFT
+    bins. That range is the mean over the virtual channels of the two-way path / 2, i.e. the range
+    from the array's phase centre c = mean(tx_k + rx_l) / 2 (phase_centre_m); the point's range from
+    the sensor origin adds u . c in the point's direction u (far field, common practice). A secondary angle peak gets the share of the SNR its beam power holds (snr_db is the
+    per-channel SNR in the range-Doppler cell, cell_snr; the angle bound uses the SNR per virtual
+    element of the snapshot, element_snr). Range and velocity sigmas are the detection's
+    (sigma_range_m, sigma_velocity_mps). Azimuth and elevation: the direction-cosine CRB (var_u1,
+    var_w1, cov_uw1 at 2 SNR = 1, from bounds.crb_unit_covariance) through the Jacobians of
+    az = atan2(u, v) and el = asin(w) (direction_sigmas_deg), with ANGLE_FLOOR_DEG in quadrature.
+    `first` is scratch of at least the number of detections. has_x is not used (the bound is inf
+    along an axis without extent). half_wavelength_m[i]: half the wavelength of detection i's echo
+    over the sampled sweep (velocity = Doppler frequency x that)."""
     n = det_index.shape[0]
     for i in range(first.shape[0]):
         first[i] = 0.0
@@ -60,12 +68,15 @@ def fill_points(range_bin, range_frac, bin_m, range_bias_m, det_index, azimuth_d
         i = det_index[k]
         if peak_power[k] > first[i]:
             first[i] = peak_power[k]
+    floor2 = ANGLE_FLOOR_DEG * ANGLE_FLOOR_DEG
     for k in range(n):
         i = det_index[k]
-        snr_pt = np.float64(snr[i]) * (np.float64(peak_power[k]) / max(first[i], 1e-30))
-        rng = np.float32((range_bin[i] + np.float64(range_frac[i])) * bin_m - range_bias_m)
+        share = np.float64(peak_power[k]) / max(first[i], 1e-30)
         az = np.radians(np.float64(azimuth_deg[k]))
         el = np.radians(np.float64(elevation_deg[k]))
+        toward = (np.cos(el) * np.sin(az) * phase_centre_m[0] + np.cos(el) * np.cos(az) * phase_centre_m[1]
+                  + np.sin(el) * phase_centre_m[2])
+        rng = np.float32(np.float64(range_bin[i]) * bin_m - range_bias_m + toward)
         r64 = np.float64(rng)
         out[k, 0] = r64 * np.cos(el) * np.sin(az)
         out[k, 1] = r64 * np.cos(el) * np.cos(az)
@@ -73,9 +84,10 @@ def fill_points(range_bin, range_frac, bin_m, range_bias_m, det_index, azimuth_d
         out[k, 3] = rng
         out[k, 4] = azimuth_deg[k]
         out[k, 5] = elevation_deg[k]
-        out[k, 6] = doppler_hz[i] * half_wavelength_m
-        s = max(snr_pt, 1e-12)
-        out[k, 7] = 10.0 * np.log10(s)
-        out[k, 8] = tone_sigma_bins(s, n_virtual, n_samples) * range_resolution_m
-        out[k, 11] = tone_sigma_bins(s, n_virtual, n_loops) * velocity_resolution_mps
-        out[k, 9], out[k, 10] = direction_sigmas_deg(var_u1, var_w1, cov_uw1, has_z, snr_pt, az, el)
+        out[k, 6] = doppler_hz[i] * half_wavelength_m[i]
+        out[k, 7] = 10.0 * np.log10(max(np.float64(cell_snr[i]) * share, 1e-12))
+        out[k, 8] = sigma_range_m[i]
+        out[k, 11] = sigma_velocity_mps[i]
+        s_az, s_el = direction_sigmas_deg(var_u1, var_w1, cov_uw1, has_z, np.float64(element_snr[i]) * share, az, el)
+        out[k, 9] = np.sqrt(s_az * s_az + floor2)
+        out[k, 10] = np.sqrt(s_el * s_el + floor2)

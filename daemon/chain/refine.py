@@ -1,0 +1,425 @@
+"""Per-detection refinement of the range and Doppler frequencies, and the channel values there.
+
+A detection is a cell (k0, l0) of the windowed spectrum S_c[k, l] (channel c = (rx, slot), range
+bin k, unshifted Doppler column l). Its frequencies are refined on the detection's own samples, one
+dimension at a time (Doppler first, then range), and the channel values are taken at the refined
+frequencies, so that neither the straddle loss nor, where the neighbourhood allows, the windows'
+processing loss is paid by what follows (the MIMO decoding and the angle estimate):
+
+1. Combine across the other dimension: the COMBINED_CELLS cells around the detection along the other axis
+   are summed with the weights that maximise the target's SNR, h = R^-1 g, with g the window's
+   response to a tone at the current fractional offset and R the covariance of white noise after
+   the window (the matched filter in coloured noise, common practice). What remains is one
+   windowed transform along the dimension being refined.
+2. Back to samples: the inverse FFT of that combined row gives w[n] z_c[n], the window times a
+   tone in white noise (exactly: the FFTs are linear and z is taken along one axis only).
+3. Taper: the samples are weighted by the estimation taper e / w, where e = w^2 / (w^2 + tau^2)
+   is flat but for the extreme edges (tau = TAU_FRACTION of the window's peak keeps the inverse of
+   the window bounded). The peak of the flat-tapered periodogram is the maximum-likelihood
+   frequency of one tone in white noise and reaches the Cramér-Rao bound (Rife and Boorstyn,
+   "Single-tone parameter estimation from discrete-time observations", IEEE Trans. IT, 1974).
+   Its sidelobes are those of a rectangular window, though: next to a strong neighbour along this
+   axis (judged from the detection map, below) the processing window is kept as the taper, e = w,
+   whose low sidelobes keep the neighbour out at the price of a larger variance, reported as such.
+4. Newton steps on sum_c |F_c(nu)|^2, F_c(nu) = sum_n e_n z_cn exp(-j 2 pi nu (n - m) / N_fft)
+   (m the middle sample), started at the log-parabolic interpolation of the map.
+
+Noiseless and alone, both tapers are symmetric, so the periodogram peaks exactly at the tone's
+frequency: no interpolation bias at any fractional offset.
+
+Variance (the reported standard deviation): for the peak of an e-tapered periodogram of a tone in
+white noise, linearised at the truth (Rife and Boorstyn 1974 for e = 1; the tapered form is the
+same calculation, common practice),
+    var(omega) = sum_n e_n^2 t_n^2 / (2 S (sum_n e_n t_n^2)^2),  t_n = n - m, omega in rad/sample,
+with S = sum_c |A_c|^2 / sigma_z^2 the SNR per sample summed over the channels, estimated from the
+refined peak: E sum_c |F_c|^2 = S sigma_z^2 (sum e)^2 + K sigma_z^2 sum e^2. The noise power per raw
+sample sigma^2 comes from the CFAR's noise estimate of the cell. A small floor for the residual
+systematic error (SYSTEMATIC_FLOOR_BINS) is added in quadrature.
+
+Strong neighbour: along the refined axis, a tone of relative amplitude rho at Delta unpadded bins
+shifts the flat-taper peak by about 0.304 rho / Delta bins (the slope of sin(pi x) / (pi x) at an
+integer, over its curvature pi^2 / 3 at 0). The map's excess over the noise and over the target's
+own window response, summed over the axis, predicts that bias B. The flat taper is used when
+sigma_flat^2 + B^2 < sigma_window^2 (the smaller expected squared error), and B is then added to
+its reported sigma in quadrature.
+
+Real sampling keeps only the lower half of the range bins; the upper half follows from the
+Hermitian symmetry of the spectrum of real data, S[-k, -l] = conj(S[k, l]) (the Nyquist row, not
+kept, is taken as zero).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from .fft import ifft_unnormalised_inplace
+
+TAU_FRACTION = 0.001          # the flat taper's edge: w^2 / (w^2 + tau^2), tau relative to max(w)
+COMBINED_CELLS = 11           # cells of the other axis summed by the matched weights (odd; fewer on a short axis)
+NEWTON_STEPS = 3
+SYSTEMATIC_FLOOR_BINS = 2e-4  # residual systematic error, unpadded bins, added in quadrature
+NOISE_EXCESS = 4.0            # map cells above this many noise means count as a neighbour's energy
+SIDELOBE_SLOPE = 0.304        # 3 / pi^2: peak shift per unit relative amplitude and bin of distance
+FLAT, WINDOWED = 0, 1         # taper modes
+SELF_SPAN = 16                # cells either side over which the neighbour test looks at the target's own response
+TABLE_STEPS = 256             # samples per bin of the window response table
+
+
+class Axis:
+    """One axis of the cube as the refinement sees it: the processing window (length n, the data
+    samples), the FFT size, and the two estimation tapers with their variance factors."""
+
+    def __init__(self, window: np.ndarray, fft_size: int):
+        w = np.asarray(window, np.float64)
+        self.n = w.shape[0]
+        self.fft_size = int(fft_size)
+        self.window = w
+        tau = TAU_FRACTION * float(np.max(w))
+        flat = w * w / (w * w + tau * tau)
+        self.effective = np.stack([flat, w])            # e_n per mode: what weights z
+        # what multiplies the inverse-FFT samples w z: e / w (0 where the window is 0)
+        # what multiplies the unnormalised inverse FFT's samples N_fft w z: e / (N_fft w), 0 where w is 0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            self.taper = np.stack([np.where(w > 0, flat / w, 0.0), np.ones_like(w)]) / self.fft_size
+        self.t = np.arange(self.n) - (self.n - 1) / 2.0
+        e = self.effective
+        self.sum_e = e.sum(axis=1)
+        self.sum_e2 = (e * e).sum(axis=1)
+        # var(omega) = var_factor / (2 S)
+        self.var_factor = (e * e * self.t ** 2).sum(axis=1) / ((e * self.t ** 2).sum(axis=1)) ** 2
+        self.padding = self.fft_size / self.n           # FFT bins per unpadded bin
+        self.guard = int(np.ceil(2.0 * self.padding))   # the main lobe of the windows offered
+        self.sum_w2 = float(np.sum(w * w))
+        # cells of this axis that a combination across it sums: odd, at most the samples (R invertible)
+        m = min(COMBINED_CELLS, self.n, self.fft_size)
+        self.combined = m if m % 2 else m - 1
+        # the window's amplitude response A(nu) = sum_n w_n cos(2 pi nu t_n / N_fft) on a fine grid
+        # (W(nu) = exp(-j pi nu (n - 1) / N_fft) A(nu) for a symmetric window), read by interpolation
+        self.table_reach = COMBINED_CELLS // 2 + SELF_SPAN + 2
+        grid = np.arange(-self.table_reach * TABLE_STEPS, self.table_reach * TABLE_STEPS + 1) / TABLE_STEPS
+        self.grid = grid
+        self.table = np.cos(2.0 * np.pi * np.multiply.outer(grid, self.t) / self.fft_size) @ w
+
+    def noise_covariance(self) -> np.ndarray:
+        """Covariance of white noise (unit power per sample) in COMBINED_CELLS neighbouring bins after
+        the window: R[j, j'] = sum_n w_n^2 exp(-j 2 pi (j - j') n / N_fft)."""
+        n = np.arange(self.n)
+        d = np.subtract.outer(np.arange(self.combined), np.arange(self.combined))
+        return np.exp(-2j * np.pi * d[..., None] * n / self.fft_size) @ (self.window ** 2)
+
+    def sigma_bins(self, var_omega: np.ndarray) -> np.ndarray:
+        """Standard deviation in FFT bins of an estimate of variance var_omega (rad/sample)^2."""
+        return np.sqrt(var_omega) * self.fft_size / (2.0 * np.pi)
+
+
+@numba.njit(cache=True, nogil=True)
+def _gather(spec, k0, l0, h, along_range, n_range_fft, out):
+    """out[i, c, :] = sum_j conj(h[i, j]) S_c along the refined axis at other-axis index (cell + j - J//2):
+    along_range: the range column over all N_fft range bins at Doppler columns l0 + j - J//2; else the
+    Doppler row over all columns at range bins k0 + j - J//2. Channel c = rx * n_slots + slot. With
+    real sampling (fewer kept bins than the FFT size) a range bin k beyond the kept ones is
+    conj(S[N_fft - k, -l]) (Hermitian symmetry); the Nyquist bin, not kept, is 0."""
+    n_rx, n_slots, n_bins, n_dop = spec.shape
+    n_j = h.shape[1]
+    half_j = n_j // 2
+    real = n_bins < n_range_fft
+    cols = np.empty(n_j, np.int64)
+    mirror = np.empty(n_j, np.int64)
+    wts = np.empty(n_j, np.complex64)
+    for i in range(k0.shape[0]):
+        for j in range(n_j):
+            cols[j] = (l0[i] + j - half_j) % n_dop
+            mirror[j] = (n_dop - cols[j]) % n_dop
+            wts[j] = np.complex64(np.conj(h[i, j]))
+        for rx in range(n_rx):
+            for s in range(n_slots):
+                row = out[i, rx * n_slots + s]
+                row[:] = 0.0
+                if along_range:   # row by row of the spectrum: the J columns sit side by side
+                    for k in range(n_bins):
+                        src = spec[rx, s, k]
+                        acc = np.complex64(0.0)
+                        for j in range(n_j):
+                            acc += wts[j] * src[cols[j]]
+                        row[k] = acc
+                        if real and k > 0:
+                            acc = np.complex64(0.0)
+                            for j in range(n_j):
+                                acc += wts[j] * np.conj(src[mirror[j]])
+                            row[n_range_fft - k] = acc
+                    continue
+                for j in range(n_j):   # Doppler rows: contiguous
+                    wt = np.conj(h[i, j])
+                    k = (k0[i] + j - half_j) % n_range_fft
+                    if k < n_bins:
+                        src = spec[rx, s, k]
+                        for q in range(n_dop):
+                            row[q] += wt * src[q]
+                    elif n_range_fft - k < n_bins:
+                        src = spec[rx, s, n_range_fft - k]
+                        for q in range(n_dop):
+                            row[q] += wt * np.conj(src[(n_dop - q) % n_dop])
+
+
+@numba.njit(cache=True, nogil=True)
+def _newton(samples, taper, mode, t, nu0, fft_size, max_step, n_steps, g, nu_out, values):
+    """Peak of sum_c |F_c(nu)|^2, F_c(nu) = sum_n taper[mode_i, n] samples[i, c, n] exp(-j 2 pi nu t_n /
+    N_fft), by Newton steps from nu0 (FFT bins), each step at most max_step bins and none where the
+    curvature is not negative. Writes nu_out[i] and values[i, c] = F_c(nu_out[i]). `samples` holds
+    the first n = len(t) samples of each row; `g` is scratch [n_ch, >= n + n] (the tapered samples
+    and the phasors)."""
+    n_det, n_ch = samples.shape[0], samples.shape[1]
+    n = t.shape[0]
+    ph = g[0, n: 2 * n]
+    for i in range(n_det):
+        m = mode[i]
+        for c in range(n_ch):
+            for k in range(n):
+                g[c, k] = samples[i, c, k] * taper[m, k]
+        nu = nu0[i]
+        for step in range(n_steps + 1):
+            w = 2.0 * np.pi * nu / fft_size
+            step_ph = complex(np.cos(w), -np.sin(w))
+            ph[0] = complex(np.cos(w * t[0]), -np.sin(w * t[0]))
+            for k in range(1, n):   # t is evenly spaced: a recurrence instead of n sines
+                ph[k] = ph[k - 1] * step_ph
+            d1 = 0.0
+            d2 = 0.0
+            for c in range(n_ch):
+                f0 = np.complex128(0.0)
+                f1 = np.complex128(0.0)
+                f2 = np.complex128(0.0)
+                for k in range(n):
+                    tk = t[k]
+                    v = g[c, k] * ph[k]
+                    f0 += v
+                    f1 += v * tk
+                    f2 += v * (tk * tk)
+                values[i, c] = f0
+                # d/dw F = -j sum t v, d2/dw2 F = -sum t^2 v
+                d1 += 2.0 * (np.conj(f0) * (-1j * f1)).real
+                d2 += 2.0 * (abs(f1) ** 2 - (np.conj(f0) * f2).real)
+            if step == n_steps or not d2 < 0.0:
+                break
+            delta = -d1 / d2 * fft_size / (2.0 * np.pi)
+            delta = min(max(delta, -max_step), max_step)
+            nu += delta
+        nu_out[i] = nu
+
+
+@numba.njit(cache=True, nogil=True)
+def _amplitude(table, reach, nu):
+    """A(nu) from the table (linear interpolation; nu within +-reach bins)."""
+    x = (nu + reach) * TABLE_STEPS
+    k = min(max(int(np.floor(x)), 0), table.shape[0] - 2)
+    f = x - k
+    return table[k] * (1.0 - f) + table[k + 1] * f
+
+
+@numba.njit(cache=True, nogil=True)
+def _response(table, reach, n, fft_size, nu):
+    """W(nu) = sum_n w_n exp(-j 2 pi nu n / N_fft) of a symmetric window of n samples."""
+    a = -np.pi * nu * (n - 1) / fft_size
+    return _amplitude(table, reach, nu) * complex(np.cos(a), np.sin(a))
+
+
+@numba.njit(cache=True, nogil=True)
+def _weights(table, reach, n_other, other_fft, rinv, offset, h, gain):
+    """Matched weights over the other axis: g_j = W(j - J//2 - offset_i), h_i = R^-1 g_i, and the
+    SNR gain g^H R^-1 g (per unit raw SNR)."""
+    n_j = rinv.shape[0]
+    g = np.empty(n_j, np.complex128)
+    for i in range(offset.shape[0]):
+        for j in range(n_j):
+            g[j] = _response(table, reach, n_other, other_fft, j - n_j // 2 - offset[i])
+        acc = 0.0
+        for j in range(n_j):
+            v = complex(0.0, 0.0)
+            for q in range(n_j):
+                v += rinv[j, q] * g[q]
+            h[i, j] = v
+            acc += (np.conj(g[j]) * v).real
+        gain[i] = max(acc, 1e-30)
+
+
+@numba.njit(cache=True, nogil=True)
+def _self_response(table, reach, offset, out):
+    """out[i, d + span] = |W(d - offset_i)|^2 / |W(-offset_i)|^2 for d = -span..span: the target's
+    own window response across its neighbours, relative to its cell."""
+    span = out.shape[1] // 2
+    for i in range(offset.shape[0]):
+        p0 = max(_amplitude(table, reach, -offset[i]) ** 2, 1e-300)
+        for d in range(-span, span + 1):
+            out[i, d + span] = _amplitude(table, reach, d - offset[i]) ** 2 / p0
+
+
+@numba.njit(cache=True, nogil=True)
+def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, out):
+    """Predicted flat-taper peak shift (unpadded bins) from the map's energy along the refined axis:
+    sum over cells beyond the main lobe of SIDELOBE_SLOPE sqrt(excess / P0) / |Delta| (Delta in
+    unpadded bins), excess = cell - NOISE_EXCESS noise - 2 x the target's own window response there
+    (p_self[i, Delta + guard_max], relative to P0). `col` is the detection's map column (shifted)."""
+    n_r, n_d = power.shape
+    half = p_self.shape[1] // 2
+    for i in range(k0.shape[0]):
+        p0 = max(np.float64(power[k0[i], col[i]]), 1e-30)
+        n_axis = n_r if along_range else n_d
+        centre = k0[i] if along_range else col[i]
+        b = 0.0
+        for q in range(n_axis):
+            d = q - centre
+            if not along_range:   # Doppler is circular
+                if d > n_d // 2:
+                    d -= n_d
+                elif d < -(n_d // 2):
+                    d += n_d
+            if abs(d) <= guard:
+                continue
+            p = np.float64(power[q, col[i]] if along_range else power[k0[i], q])
+            own = p_self[i, d + half] * p0 if abs(d) <= half else 0.0
+            excess = p - NOISE_EXCESS * noise[i] - 2.0 * own
+            if excess > 0.0:
+                b += SIDELOBE_SLOPE * np.sqrt(excess / p0) / (abs(d) / padding)
+        out[i] = b
+
+
+@dataclass
+class Refined:
+    """Per detection: range and Doppler frequencies in FFT bins (range nu_r >= 0; Doppler nu_d in
+    [-N/2, N/2) of the unshifted axis), their standard deviations (FFT bins), the channel values at
+    both (complex128 [n_det, n_rx, n_slots]) with their SNR per channel, and the taper used on
+    each axis (FLAT or WINDOWED)."""
+
+    range_bin: np.ndarray
+    doppler_bin: np.ndarray
+    sigma_range_bins: np.ndarray
+    sigma_doppler_bins: np.ndarray
+    values: np.ndarray
+    value_snr: np.ndarray
+    range_mode: np.ndarray
+    doppler_mode: np.ndarray
+
+
+class Refiner:
+    """Refinement of one sensor's detections (see the module docstring). Pure: buffers only."""
+
+    def __init__(self, range_window: np.ndarray, range_fft_size: int, n_range_bins: int,
+                 doppler_window: np.ndarray, doppler_fft_size: int, n_rx: int, n_slots: int):
+        self.range = Axis(range_window, range_fft_size)
+        self.doppler = Axis(doppler_window, doppler_fft_size)
+        self.n_range_bins = n_range_bins
+        self.n_rx, self.n_slots = n_rx, n_slots
+        self.n_channels = n_rx * n_slots
+        self._cov = {name: np.linalg.pinv(ax.noise_covariance(), hermitian=True)
+                     for name, ax in (("range", self.range), ("doppler", self.doppler))}
+        self._capacity = 0
+        self._reserve(16)
+        # the target's own window response beyond the main lobe, for the neighbour test
+        self._self_span = {"range": SELF_SPAN, "doppler": SELF_SPAN}
+
+    def _reserve(self, n_det: int) -> None:
+        """Buffers for n_det detections (grown, never shrunk): the combined rows of each axis, the
+        Newton scratch, the values."""
+        if n_det <= self._capacity:
+            return
+        self._capacity = n = max(n_det, 2 * self._capacity)
+        k = self.n_channels
+        self._rows = {True: np.zeros((n, k, self.range.fft_size), np.complex128),
+                      False: np.zeros((n, k, self.doppler.fft_size), np.complex128)}
+        self._scratch = np.empty((k, 2 * max(self.range.n, self.doppler.n)), np.complex128)
+        self._values = np.empty((n, k), np.complex128)
+        self._h = {name: np.empty((n, ax.combined), np.complex128) for name, ax in (("range", self.range),
+                                                                                     ("doppler", self.doppler))}
+        self._gain = {name: np.empty(n) for name in ("range", "doppler")}
+
+    # ---- one axis ----------------------------------------------------------------------------
+
+    def _combine_weights(self, other: Axis, name: str, offset: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Matched weights h = R^-1 g over the other axis's combined cells for a tone at `offset` FFT
+        bins from the middle one, and the resulting SNR gain g^H R^-1 g (per unit raw SNR)."""
+        n = offset.shape[0]
+        h, gain = self._h[name][:n], self._gain[name][:n]
+        _weights(other.table, float(other.table_reach), other.n, float(other.fft_size), self._cov[name],
+                 np.ascontiguousarray(offset, np.float64), h, gain)
+        return h, gain
+
+    def _modes(self, power, k0, col, axis: Axis, along_range: bool, offset, noise_cell, var_by_mode):
+        """FLAT or WINDOWED per detection, and the predicted neighbour bias (unpadded bins) of FLAT."""
+        name = "range" if along_range else "doppler"
+        span = self._self_span[name]
+        p_self = np.empty((k0.shape[0], 2 * span + 1))
+        _self_response(axis.table, float(axis.table_reach), np.ascontiguousarray(offset, np.float64), p_self)
+        bias = np.empty(k0.shape[0])
+        _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, axis.guard, axis.padding, bias)
+        sigma_flat_u = axis.sigma_bins(var_by_mode[FLAT]) / axis.padding
+        sigma_win_u = axis.sigma_bins(var_by_mode[WINDOWED]) / axis.padding
+        mode = np.where(sigma_flat_u ** 2 + bias ** 2 < sigma_win_u ** 2, FLAT, WINDOWED).astype(np.int64)
+        return mode, np.where(mode == FLAT, bias, 0.0)
+
+    def _axis(self, spec, power, k0, l0, col, nu0, other_offset, noise_cell, noise_per_sample, snr_raw,
+              along_range):
+        """Refine one axis for all detections: (nu, sigma in FFT bins, values [n_det, K], SNR per
+        channel of the values, mode)."""
+        axis, other = (self.range, self.doppler) if along_range else (self.doppler, self.range)
+        name_other = "doppler" if along_range else "range"
+        n_det = k0.shape[0]
+        self._reserve(n_det)
+        h, gain = self._combine_weights(other, name_other, other_offset)
+        rows = self._rows[along_range][:n_det]
+        _gather(spec, k0, l0, h, along_range, self.range.fft_size, rows)
+        samples = ifft_unnormalised_inplace(rows, axis=-1)   # N_fft w z in the first n samples
+        # noise power per sample of the combined samples z: sigma^2 h^H R h = sigma^2 g^H R^-1 g
+        sigma_z2 = noise_per_sample * gain
+        # a first SNR from the cell (for the choice of taper), the refined one from the peak below
+        s_first = self.n_channels * snr_raw * gain
+        var_by_mode = axis.var_factor[:, None] / (2.0 * np.maximum(s_first, 1e-12))[None, :]
+        offset_here = nu0 - (k0 if along_range else l0)
+        mode, bias = self._modes(power, k0, col, axis, along_range, offset_here, noise_cell, var_by_mode)
+        nu = np.empty(n_det)
+        values = self._values[:n_det]
+        _newton(samples, axis.taper, mode, axis.t, nu0.astype(np.float64), float(axis.fft_size),
+                0.5 * axis.padding, NEWTON_STEPS, self._scratch, nu, values)
+        # the SNR per sample summed over channels, from the peak (noise bias removed)
+        s1, s2 = axis.sum_e[mode], axis.sum_e2[mode]
+        peak = np.sum(np.abs(values) ** 2, axis=1) / sigma_z2
+        s_hat = np.maximum((peak - self.n_channels * s2) / s1 ** 2, 1e-3 * s_first + 1e-12)
+        var = axis.var_factor[mode] / (2.0 * s_hat)
+        sigma = np.sqrt(axis.sigma_bins(var) ** 2 + ((bias ** 2 + SYSTEMATIC_FLOOR_BINS ** 2) * axis.padding ** 2))
+        value_snr = s_hat / self.n_channels * s1 ** 2 / s2
+        return nu, sigma, values, value_snr, mode
+
+    # ---- both axes ---------------------------------------------------------------------------
+
+    def refine(self, spec: np.ndarray, power: np.ndarray, range_bin: np.ndarray, doppler_col: np.ndarray,
+               range_frac: np.ndarray, doppler_frac: np.ndarray, cell_noise: np.ndarray,
+               cell_snr: np.ndarray) -> Refined:
+        """spec: complex64 [rx, slot, range, doppler] (Doppler unshifted); power: the map (Doppler
+        shifted); range_bin, doppler_col: the detections' cells (map indices, doppler_col shifted);
+        range_frac, doppler_frac: the map's log-parabolic offsets (the starting points); cell_noise:
+        the CFAR's noise mean of a cell (K * windowed per-channel noise power); cell_snr: the CFAR's
+        per-channel SNR of the cell."""
+        n_dop = self.doppler.fft_size
+        half = n_dop // 2
+        k0 = np.asarray(range_bin, np.int64)
+        col = np.asarray(doppler_col, np.int64)
+        l0 = (col - half) % n_dop
+        dr = np.asarray(range_frac, np.float64)
+        dd = np.asarray(doppler_frac, np.float64)
+        noise_cell = np.asarray(cell_noise, np.float64)
+        # white noise power per raw sample: a cell's noise mean is K sigma^2 sum w_r^2 sum w_d^2
+        sigma2 = noise_cell / (self.n_channels * self.range.sum_w2 * self.doppler.sum_w2)
+        # raw per-sample SNR from the cell's: |A W_r(dr) W_d(dd)|^2 / (sigma^2 sum w_r^2 sum w_d^2)
+        wr2 = np.interp(-dr, self.range.grid, self.range.table) ** 2
+        wd2 = np.interp(-dd, self.doppler.grid, self.doppler.table) ** 2
+        snr_raw = np.asarray(cell_snr, np.float64) * self.range.sum_w2 * self.doppler.sum_w2 / (wr2 * wd2)
+
+        nu_d, sig_d, _, _, mode_d = self._axis(spec, power, k0, l0, col, l0 + dd, dr, noise_cell, sigma2, snr_raw,
+                                               False)
+        nu_r, sig_r, values, value_snr, mode_r = self._axis(spec, power, k0, l0, col, k0 + dr, nu_d - l0, noise_cell,
+                                                            sigma2, snr_raw, True)
+        nu_d = (nu_d + half) % n_dop - half
+        return Refined(nu_r, nu_d, sig_r, sig_d, values.reshape(-1, self.n_rx, self.n_slots), value_snr,
+                       mode_r, mode_d)   # values: the Refiner's buffer, valid until the next call
