@@ -47,7 +47,9 @@ estimate of the per-channel signal-to-noise ratio.
 Per-frame cost
 --------------
 CA/GO/SO: O(cells) from prefix sums, independent of the window size; OS: the exact k-th smallest per
-cell with a sliding sorted band (kernels and their costs: cfar_kernels.py). All buffers live in the
+cell with a sliding sorted band (``threshold``), or, for ``detect`` with local maxima, the same
+detections from an exact skip test in O(cells) and a count of the training cells at the few cells
+it leaves (kernels and their costs: cfar_kernels.py). All buffers live in the
 Cfar object. NaN cells give unspecified (but safe) results.
 
 Local-maximum grouping keeps a crossing only if its cell is the largest of its 3x3 neighbourhood
@@ -85,12 +87,12 @@ SNR_FLOOR_LINEAR = 1e-6
 _KIND_CODE = {"ca": 0, "os": 1, "go": 2, "so": 3}
 # OS sliding band half-width in ranks: h = _OS_BAND_SCALE * sqrt(N) (speed only, never the result)
 _OS_BAND_SCALE = 1.0
-# sparse OS-CFAR floor: 70 % of the threshold a cell in receiver noise would face; map subsample
-# stride for the median (a prime, so the subsample visits every Doppler column; a 256 x 128 map gives
-# about a thousand cells, whose median is within a few per cent of the map's)
-OS_FLOOR_FRACTION = 0.7
-_OS_FLOOR_STRIDE = 31
-
+# sparse OS-CFAR (speed only, never the result; see _os_sparse in cfar_kernels.py): rows per band
+# sharing one level, rows per group sharing one bound, and the stride (a prime) of the band's
+# subsample whose quantile is the level
+_OS_BAND_ROWS = 16
+_OS_GROUP_ROWS = 4
+_OS_SAMPLE_STRIDE = 13
 
 # ----------------------------------------------------------------------------------------------------
 # settings
@@ -236,17 +238,17 @@ class Cfar:
         self.n_train, self.n_train_near, self.n_train_far = _training_counts(s, n_range)
 
         # threshold factor and noise scale per range bin (one design per distinct training set)
-        factor, noise_scale, rank0, mean_w_all = range_bin_designs(
+        factor, noise_scale, rank0, _ = range_bin_designs(
             s.kind, float(s.pfa), float(s.os_rank_fraction), n_integrated, self.n_train, self.n_train_near)
         self.factor = factor
         self.noise_scale = noise_scale
         self._factor32 = factor.astype(np.float32)[:, None]
         self._rank0 = rank0
 
-        self._prepare_buffers(mean_w_all)
+        self._prepare_buffers()
 
-    def _prepare_buffers(self, mean_w_all: np.ndarray) -> None:
-        """Buffers reused every frame, and the sparse OS floor."""
+    def _prepare_buffers(self) -> None:
+        """Buffers reused every frame."""
         s, n_range, n_doppler, wd, wr = self.settings, self.n_range, self.n_doppler, self._wd, self._wr
         factor, n_integrated = self.factor, self.n_integrated
         shape = (n_range, n_doppler)
@@ -264,13 +266,8 @@ class Cfar:
             self._band = np.empty(n_max + 1, dtype=np.float32)
             self._rows_full = np.zeros(2 * wr + 1, dtype=np.int64)
             self._rows_guard = np.zeros(2 * wr + 1, dtype=np.int64)
-            self._sub = np.empty(n_cells // _OS_FLOOR_STRIDE + 1, dtype=np.float32)
-            self._factor_min = float(factor.min())
-            # the OS statistic of unit noise relative to the median of a Gamma(K) cell (~ its mean)
-            self._median_to_stat = float(np.min(mean_w_all)) / max(n_integrated - 1.0 / 3.0, 0.5)
-            self._floor_scale = OS_FLOOR_FRACTION * self._factor_min * self._median_to_stat
+            self._prepare_sparse_os()
             self._out_snr = np.empty(n_cells, dtype=np.float32)
-            self._cand = np.empty(n_cells, dtype=np.int64)
         else:
             self._pad = np.zeros(n_doppler + 2 * wd + 1, dtype=np.float64)
             self._dfull = np.zeros(shape, dtype=np.float64)
@@ -279,6 +276,39 @@ class Cfar:
             self._dright = np.zeros(shape, dtype=np.float64)
             self._cfull = np.zeros((n_range + 1, n_doppler), dtype=np.float64)
             self._cguard = np.zeros((n_range + 1, n_doppler), dtype=np.float64)
+
+    def _prepare_sparse_os(self) -> None:
+        """Buffers and level quantile of the sparse OS path (_os_sparse; speed only, never the result).
+
+        The level theta of a band is the quantile phi of a subsample of n_s of its cells. In noise of
+        the band's level the group bound counts the cells below theta among M cells (the window
+        rectangles of a group's rows, less their common guard cells), about Binomial(M, phi)
+        whatever the noise distribution, with the sample quantile itself off by about
+        sqrt(phi (1 - phi) / n_s). phi is the largest value on a 0.01 grid for which
+        M phi + 4 sqrt(M phi (1 - phi)) + 3 M sqrt(phi (1 - phi) / n_s) <= k - 1 (interior design):
+        then a group bound rarely exceeds k - 1 and the skip floor T theta is as high as it safely
+        can be."""
+        n_range, n_doppler, wd, wr = self.n_range, self.n_doppler, self._wd, self._wr
+        s = self.settings
+        band = min(_OS_BAND_ROWS, n_range)
+        self._geometry = np.array([band, _OS_GROUP_ROWS, _OS_SAMPLE_STRIDE], dtype=np.int64)
+        self._sample = np.empty(band * n_doppler // _OS_SAMPLE_STRIDE + 1, dtype=np.float32)
+        self._prefix = np.zeros((band + 2 * wr + 1, n_doppler), dtype=np.int32)
+        self._acc = np.zeros(n_doppler, dtype=np.int32)
+        self._col_full = np.zeros(n_doppler + 2 * wd, dtype=np.int32)
+        self._col_guard = np.zeros(n_doppler + 2 * wd, dtype=np.int32)
+        self._box_full = np.zeros(n_doppler + 2 * wd + 1, dtype=np.int32)
+        self._box_guard = np.zeros(n_doppler + 2 * wd + 1, dtype=np.int32)
+        self._bound = np.zeros((2, n_doppler), dtype=np.int32)
+        group = min(_OS_GROUP_ROWS, n_range)
+        common_guard = max(2 * s.guard_range + 2 - group, 0) * (2 * s.guard_doppler + 1)
+        m = min(2 * wr + group, n_range) * (2 * wd + 1) - common_guard
+        k = int(self._rank0[int(np.argmax(self.n_train))]) + 1
+        n_s = max(band * n_doppler // _OS_SAMPLE_STRIDE, 1)
+        phi = np.arange(0.01, 1.0, 0.01)
+        spread = np.sqrt(phi * (1.0 - phi))
+        ok = m * phi + 4.0 * np.sqrt(m) * spread + 3.0 * m * spread / math.sqrt(n_s) <= k - 1
+        self._level_fraction = float(phi[ok][-1]) if np.any(ok) else 0.01
 
     # ------------------------------------------------------------------------------------------------
     def _check_map(self, power) -> None:
@@ -317,13 +347,13 @@ class Cfar:
         self._check_map(power)
         s = self.settings
         if self._kind_code == 1 and s.local_max:
-            # Sparse OS: the ordered statistic only at local maxima above a floor. A cell below
-            # OS_FLOOR_FRACTION * min(T) * (median of a map subsample) could only be detected where
-            # the local statistic is under OS_FLOOR_FRACTION of the map's median, i.e. never in
-            # receiver noise; everywhere else the result equals the full OS-CFAR.
-            count = _os_sparse(power, _OS_FLOOR_STRIDE, self._floor_scale, self._sub, self._cand, self._wr,
-                               s.guard_range, self._wd, s.guard_doppler, s.train_doppler, self._rank0, self._scratch,
-                               self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
+            # Sparse OS: the full test (local maximum, count of the training cells below p / T) only at
+            # cells that an exact bound does not rule out (_os_sparse): the same detections as the full
+            # OS-CFAR on any map.
+            count = _os_sparse(power, self._wr, s.guard_range, self._wd, s.guard_doppler, s.train_doppler, self._rank0,
+                               self._scratch, self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
+                               self._geometry, self._level_fraction, self._sample, self._prefix, self._acc,
+                               self._col_full, self._col_guard, self._box_full, self._box_guard, self._bound,
                                self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
             det = CfarDetections(range_bin=self._out_r[:count], doppler_bin=self._out_d[:count],
                                  power=self._out_p[:count], noise=self._out_n[:count],

@@ -5,8 +5,11 @@ CA/GO/SO take circular Doppler box sums per row from float64 prefix sums, then f
 down the range axis (O(cells), independent of the window size). OS takes the exact k-th smallest
 training cell per cell: along a row a sorted band of the window's values around the wanted rank is
 updated as the window slides, and the full window is only gathered and selected (Hoare selection)
-when the rank leaves the band. The sparse OS path (``_os_sparse``) evaluates the ordered statistic
-only at local maxima above a floor. Every kernel writes into buffers the caller owns.
+when the rank leaves the band. The sparse OS path (``_os_sparse``, what ``Cfar.detect`` runs for OS
+with local maxima) gives the same detections without the statistic of every cell: exact counts of
+training cells below a per-band level, from prefix sums, rule out almost every cell; the rest get the
+full test, a count of their training cells below p / T (see there for why this is exact on any map).
+Every kernel writes into buffers the caller owns.
 """
 
 from __future__ import annotations
@@ -319,63 +322,171 @@ def _gather_training(power, r, j, wr, gr, wd, gd, td, scratch):
 
 
 @njit(cache=True)
-def _os_sparse(power, stride, floor_scale, sub, cand, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor,
-               noise_scale, snr_floor, out_r, out_d, out_p, out_n, out_snr):
-    """OS-CFAR with local-maximum grouping, evaluated only where it can matter: at 3x3 local maxima
-    of the map above a floor, floor_scale times the median of every stride-th cell. Same answer as
-    the full statistic followed by _extract(local_max=True) for every cell above the floor; returns
-    the count, with the per-channel SNR estimate power / noise - 1 (float32, at least snr_floor).
-
-    A cell is detected when p > T w_k, w_k the k-th smallest training cell. Since x -> T x is
-    monotonic, that holds exactly when at least k training cells have T x < p: a count, so the
-    selection of w_k (for the noise estimate) runs only for the detections."""
-    n_r, n_d = power.shape
+def _band_level(power, t0, t1, stride, fraction, sample):
+    """A level for the rows t0:t1: the `fraction` quantile of every stride-th of their cells (a prime
+    stride, so that the subsample visits every Doppler column). Speed only, never the result."""
+    n_d = power.shape[1]
     flat = power.reshape(-1)
-    n_sub = 0
-    for i in range(0, flat.shape[0], stride):
-        sub[n_sub] = flat[i]
-        n_sub += 1
-    median = _select_kth(sub, 0, n_sub - 1, n_sub // 2)
-    floor = np.float32(floor_scale * np.float64(median))
-    # first the cells above the floor, in one tight pass; then the local maxima among them
-    n_cand = 0
-    for r in range(r_lo, r_hi):
-        row = power[r]
-        above = 0
-        for j in range(n_d):  # vectorises; most rows have nothing above the floor
-            above += row[j] > floor
-        if above:
-            for j in range(n_d):
-                if row[j] > floor:
-                    cand[n_cand] = r * n_d + j
-                    n_cand += 1
-    count = 0
-    for c in range(n_cand):
-        r = cand[c] // n_d
-        j = cand[c] - r * n_d
-        p = flat[cand[c]]
-        if not _is_local_max(power, r, j, p):
-            continue
-        k0 = rank0[r]
-        if _count_below(power, r, j, wr, gr, wd, gd, td, factor[r], np.float64(p)) < k0 + 1:
-            continue
-        cnt = _gather_training(power, r, j, wr, gr, wd, gd, td, scratch)
-        w = _select_kth(scratch, 0, cnt - 1, k0)
-        noise = np.float32(w * noise_scale[r])
-        if noise > 0:
-            snr = np.float32(np.float32(np.float64(p) / np.float64(noise)) - np.float32(1.0))
-            if snr > np.float32(3.4028234663852886e38):
-                snr = np.float32(3.4028234663852886e38)
-        elif p > 0:
+    n = 0
+    for i in range(t0 * n_d, t1 * n_d, stride):
+        sample[n] = flat[i]
+        n += 1
+    return _select_kth(sample, 0, n - 1, min(int(fraction * n), n - 1))
+
+
+@njit(cache=True)
+def _column_prefix(power, theta, u0, u1, acc, prefix):
+    """prefix[i, j] = #{u0 <= rr < u0 + i: power[rr, j] < theta}, i = 0 .. u1 - u0 (int32)."""
+    n_d = power.shape[1]
+    for j in range(n_d):
+        acc[j] = 0
+        prefix[0, j] = 0
+    for i in range(u1 - u0):
+        row = power[u0 + i]
+        for j in range(n_d):  # a separate accumulator: no aliasing, so this vectorises
+            acc[j] += np.int32(row[j] < theta)
+        nxt = prefix[i + 1]
+        for j in range(n_d):
+            nxt[j] = acc[j]
+
+
+@njit(cache=True)
+def _group_bound(prefix, u0, n_r, q0, q1, wr, gr, wd, gd, col_full, col_guard, box_full, box_guard, bound):
+    """bound[j] >= #{x in S(r, j): x < theta} for every row q0 <= r < q1 (prefix from _column_prefix).
+
+    S(r, j) = R(r, j) minus G(r, j) (window and guard rectangles, Doppler circular, range truncated)
+    lies in R' minus G', R' the union of the R(r, j) (rows q0 - wr .. q1 - 1 + wr) and G' the
+    intersection of the G(r, j) (rows q1 - 1 - gr .. q0 + gr, possibly none), both spanning the same
+    Doppler columns as R(r, j) resp. G(r, j); G' lies in R', so the count over R' minus G' is
+    #R' - #G'. For q1 = q0 + 1 the bound is the exact count. Column counts from the prefix sums,
+    then box sums along Doppler from running sums over the circularly padded column counts."""
+    n_d = bound.shape[0]
+    a_hi = prefix[min(q1 - 1 + wr + 1, n_r) - u0]
+    a_lo = prefix[max(q0 - wr, 0) - u0]
+    g_top = max(q1 - 1 - gr, 0)
+    g_end = min(q0 + gr + 1, n_r)
+    g_hi = prefix[max(g_end, g_top) - u0]
+    g_lo = prefix[g_top - u0]
+    full_mid = col_full[wd:wd + n_d]
+    guard_mid = col_guard[wd:wd + n_d]
+    for j in range(n_d):
+        full_mid[j] = a_hi[j] - a_lo[j]
+        guard_mid[j] = g_hi[j] - g_lo[j]
+    for m in range(wd):  # circular padding: col[m] is column m - wd
+        col_full[m] = col_full[n_d + m]
+        col_full[n_d + wd + m] = col_full[wd + m]
+        col_guard[m] = col_guard[n_d + m]
+        col_guard[n_d + wd + m] = col_guard[wd + m]
+    sf = np.int32(0)
+    sg = np.int32(0)
+    box_full[0] = 0
+    box_guard[0] = 0
+    for m in range(n_d + 2 * wd):
+        sf += col_full[m]
+        box_full[m + 1] = sf
+        sg += col_guard[m]
+        box_guard[m + 1] = sg
+    full_hi = box_full[2 * wd + 1:]
+    guard_hi = box_guard[wd + gd + 1:]
+    guard_lo = box_guard[wd - gd:]
+    for j in range(n_d):  # cell j: padded columns j .. j + 2 wd, guard j + wd - gd .. j + wd + gd
+        bound[j] = full_hi[j] - box_full[j] - (guard_hi[j] - guard_lo[j])
+
+
+@njit(cache=True, inline="always")
+def _emit(i, r, j, p, noise, snr_floor, out_r, out_d, out_p, out_n, out_snr):
+    """Write detection i: cell, power, noise and the SNR estimate p / noise - 1 (float32, clipped)."""
+    if noise > 0:
+        snr = np.float32(np.float32(np.float64(p) / np.float64(noise)) - np.float32(1.0))
+        if snr > np.float32(3.4028234663852886e38):
             snr = np.float32(3.4028234663852886e38)
-        else:
-            snr = np.float32(snr_floor)
-        out_r[count] = r
-        out_d[count] = j
-        out_p[count] = p
-        out_n[count] = noise
-        out_snr[count] = max(snr, np.float32(snr_floor))
-        count += 1
+    elif p > 0:
+        snr = np.float32(3.4028234663852886e38)
+    else:
+        snr = np.float32(snr_floor)
+    out_r[i] = r
+    out_d[i] = j
+    out_p[i] = p
+    out_n[i] = noise
+    out_snr[i] = max(snr, np.float32(snr_floor))
+
+
+@njit(cache=True)
+def _os_cell(power, r, j, wr, gr, wd, gd, td, k0, fr, scratch):
+    """The OS-CFAR decision at one cell with local-maximum grouping: its statistic w (the
+    (k0 + 1)-th smallest training cell) when the cell is detected, else -1."""
+    p = power[r, j]
+    if not _is_local_max(power, r, j, p):
+        return -1.0
+    if _count_below(power, r, j, wr, gr, wd, gd, td, fr, np.float64(p)) < k0 + 1:
+        return -1.0
+    cnt = _gather_training(power, r, j, wr, gr, wd, gd, td, scratch)
+    return np.float64(_select_kth(scratch, 0, cnt - 1, k0))
+
+
+@njit(cache=True)
+def _os_sparse(power, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor, noise_scale, snr_floor, geometry,
+               level_fraction, sample, prefix, acc, col_full, col_guard, box_full, box_guard, bound, out_r, out_d,
+               out_p, out_n, out_snr):
+    """OS-CFAR with local-maximum grouping, evaluated in full only where a detection is possible. The
+    same answer as the full statistic followed by _extract(local_max=True), on any map; returns the
+    count, with the per-channel SNR estimate power / noise - 1 (float32, at least snr_floor).
+    geometry = (rows per band, rows per group, sample stride) (speed only).
+
+    A cell (r, j) of power p is detected when p > T_r w, w the k_r-th smallest of its training set S
+    (k_r = rank0[r] + 1). Since x -> T_r x is monotonic (also after rounding), that holds exactly when
+    at least k_r training cells have T_r x < p: a count, so the selection of w (for the noise
+    estimate) runs only for the detections.
+
+    Exact skip: take a level theta (any value; here per band of rows a quantile of the band's cells,
+    _band_level) and, per group of rows, b(j) >= #{x in S(r, j): x < theta} for every row r of the
+    group (_group_bound). If p <= T_r theta (in float64, as the test rounds) then T_r x < p implies
+    x < theta, so #{x in S: T_r x < p} <= b(j); with b(j) <= rank0[r] as well the cell cannot be
+    detected and is skipped, whatever the map holds. A cell that fails the bound of its group is
+    tried again against its own row's exact count; every other cell (p > T_r theta: few in noise or
+    clutter of the band's level; or an exact count >= k_r: a region quieter than the band's level)
+    gets the full test."""
+    n_r, n_d = power.shape
+    band_rows, group_rows, stride = geometry[0], geometry[1], geometry[2]
+    count = 0
+    for t0 in range(r_lo, r_hi, band_rows):
+        t1 = min(t0 + band_rows, r_hi)
+        theta = _band_level(power, t0, t1, stride, level_fraction, sample)
+        u0 = max(t0 - wr, 0)
+        _column_prefix(power, theta, u0, min(t1 + wr, n_r), acc, prefix)
+        for q0 in range(t0, t1, group_rows):
+            q1 = min(q0 + group_rows, t1)
+            group = bound[0]
+            own = bound[1]
+            _group_bound(prefix, u0, n_r, q0, q1, wr, gr, wd, gd, col_full, col_guard, box_full, box_guard, group)
+            for r in range(q0, q1):
+                k0 = rank0[r]
+                fr = factor[r]
+                floor = fr * np.float64(theta)
+                row = power[r]
+                hit = False
+                for j in range(n_d):  # vectorises; most rows have no cell to look at ("not <=": NaN is)
+                    hit |= (not (np.float64(row[j]) <= floor)) | (group[j] > k0)
+                if not hit:
+                    continue
+                own_ready = False  # (group and own are never reassigned: that costs a reference count per cell)
+                for j in range(n_d):
+                    p = row[j]
+                    if np.float64(p) <= floor:  # else: the full test
+                        if group[j] <= k0:
+                            continue
+                        if not own_ready:  # this row's exact counts, once
+                            _group_bound(prefix, u0, n_r, r, r + 1, wr, gr, wd, gd, col_full, col_guard, box_full,
+                                         box_guard, own)
+                            own_ready = True
+                        if own[j] <= k0:
+                            continue
+                    w = _os_cell(power, r, j, wr, gr, wd, gd, td, k0, fr, scratch)
+                    if w < 0.0:
+                        continue
+                    _emit(count, r, j, p, np.float32(w * noise_scale[r]), snr_floor, out_r, out_d, out_p, out_n,
+                          out_snr)
+                    count += 1
     return count
 
 
