@@ -53,8 +53,10 @@ it leaves (kernels and their costs: cfar_kernels.py). All buffers live in the
 Cfar object. NaN cells give unspecified (but safe) results.
 
 Local-maximum grouping keeps a crossing only if its cell is the largest of its 3x3 neighbourhood
-(circular in Doppler, truncated in range; among equal cells the first in row-major order wins), so one
-target gives one detection.
+(circular in Doppler, truncated in range), so one target gives one detection. Among equal cells the
+first in the neighbourhood's row-major order wins: the cell must exceed its neighbours at offsets
+(range -1, any Doppler) and (0, -1), and be at least as large as those at (0, +1) and (+1, any); at the
+Doppler seam the offset decides (column n_doppler - 1 is the left neighbour of column 0).
 """
 
 from __future__ import annotations
