@@ -302,6 +302,7 @@ class Cfar:
         self._box_full = np.zeros(n_doppler + 2 * wd + 1, dtype=np.int32)
         self._box_guard = np.zeros(n_doppler + 2 * wd + 1, dtype=np.int32)
         self._bound = np.zeros((2, n_doppler), dtype=np.int32)
+        self._flags = np.zeros(-(-n_doppler // 8) * 8, dtype=np.uint8)
         group = min(_OS_GROUP_ROWS, n_range)
         common_guard = max(2 * s.guard_range + 2 - group, 0) * (2 * s.guard_doppler + 1)
         m = min(2 * wr + group, n_range) * (2 * wd + 1) - common_guard
@@ -356,7 +357,7 @@ class Cfar:
                                self._scratch, self._r_lo, self._r_hi, self.factor, self.noise_scale, SNR_FLOOR_LINEAR,
                                self._geometry, self._level_fraction, self._sample, self._prefix, self._acc,
                                self._col_full, self._col_guard, self._box_full, self._box_guard, self._bound,
-                               self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
+                               self._flags, self._out_r, self._out_d, self._out_p, self._out_n, self._out_snr)
             det = CfarDetections(range_bin=self._out_r[:count], doppler_bin=self._out_d[:count],
                                  power=self._out_p[:count], noise=self._out_n[:count],
                                  snr_linear=self._out_snr[:count])

@@ -426,12 +426,13 @@ def _os_cell(power, r, j, wr, gr, wd, gd, td, k0, fr, scratch):
 
 @njit(cache=True)
 def _os_sparse(power, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor, noise_scale, snr_floor, geometry,
-               level_fraction, sample, prefix, acc, col_full, col_guard, box_full, box_guard, bound, out_r, out_d,
-               out_p, out_n, out_snr):
+               level_fraction, sample, prefix, acc, col_full, col_guard, box_full, box_guard, bound, flags, out_r,
+               out_d, out_p, out_n, out_snr):
     """OS-CFAR with local-maximum grouping, evaluated in full only where a detection is possible. The
     same answer as the full statistic followed by _extract(local_max=True), on any map; returns the
     count, with the per-channel SNR estimate power / noise - 1 (float32, at least snr_floor).
-    geometry = (rows per band, rows per group, sample stride) (speed only).
+    geometry = (rows per band, rows per group, sample stride) (speed only); flags: a uint8 buffer of
+    n_d rounded up to a multiple of 8, zero beyond n_d.
 
     A cell (r, j) of power p is detected when p > T_r w, w the k_r-th smallest of its training set S
     (k_r = rank0[r] + 1). Since x -> T_r x is monotonic (also after rounding), that holds exactly when
@@ -448,6 +449,7 @@ def _os_sparse(power, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor, no
     gets the full test."""
     n_r, n_d = power.shape
     band_rows, group_rows, stride = geometry[0], geometry[1], geometry[2]
+    words = flags.view(np.uint64)  # flags: n_d rounded up to a multiple of 8, the rest stays 0
     count = 0
     for t0 in range(r_lo, r_hi, band_rows):
         t1 = min(t0 + band_rows, r_hi)
@@ -464,29 +466,31 @@ def _os_sparse(power, wr, gr, wd, gd, td, rank0, scratch, r_lo, r_hi, factor, no
                 fr = factor[r]
                 floor = fr * np.float64(theta)
                 row = power[r]
-                hit = False
-                for j in range(n_d):  # vectorises; most rows have no cell to look at ("not <=": NaN is)
-                    hit |= (not (np.float64(row[j]) <= floor)) | (group[j] > k0)
-                if not hit:
-                    continue
-                own_ready = False  # (group and own are never reassigned: that costs a reference count per cell)
-                for j in range(n_d):
-                    p = row[j]
-                    if np.float64(p) <= floor:  # else: the full test
-                        if group[j] <= k0:
-                            continue
-                        if not own_ready:  # this row's exact counts, once
-                            _group_bound(prefix, u0, n_r, r, r + 1, wr, gr, wd, gd, col_full, col_guard, box_full,
-                                         box_guard, own)
-                            own_ready = True
-                        if own[j] <= k0:
-                            continue
-                    w = _os_cell(power, r, j, wr, gr, wd, gd, td, k0, fr, scratch)
-                    if w < 0.0:
+                for j in range(n_d):  # vectorises ("not <=": a NaN is looked at)
+                    flags[j] = (not (np.float64(row[j]) <= floor)) | (group[j] > k0)
+                own_ready = False  # (arrays are never reassigned here: that costs a reference count per cell)
+                for word in range(words.shape[0]):  # eight flags at a time: most are all zero
+                    if words[word] == 0:
                         continue
-                    _emit(count, r, j, p, np.float32(w * noise_scale[r]), snr_floor, out_r, out_d, out_p, out_n,
-                          out_snr)
-                    count += 1
+                    for j in range(8 * word, 8 * word + 8):
+                        if not flags[j]:
+                            continue
+                        p = row[j]
+                        if np.float64(p) <= floor:  # else: the full test
+                            if group[j] <= k0:
+                                continue
+                            if not own_ready:  # this row's exact counts, once
+                                _group_bound(prefix, u0, n_r, r, r + 1, wr, gr, wd, gd, col_full, col_guard, box_full,
+                                             box_guard, own)
+                                own_ready = True
+                            if own[j] <= k0:
+                                continue
+                        w = _os_cell(power, r, j, wr, gr, wd, gd, td, k0, fr, scratch)
+                        if w < 0.0:
+                            continue
+                        _emit(count, r, j, p, np.float32(w * noise_scale[r]), snr_floor, out_r, out_d, out_p, out_n,
+                              out_snr)
+                        count += 1
     return count
 
 
