@@ -26,15 +26,19 @@ Processing per call of AngleEstimator.estimate() (each module's docstring gives 
    zero-padded to fft_size_elevation x fft_size_azimuth.
 3. 2D zero-padded transform (angle_peaks.py): a batched FFT along x, a small DFT matrix along z.
 4. Peaks (angle_peaks.py): visible local maxima of the beam power at or above
-   `peak_threshold_db` of the snapshot's strongest, at most `max_peaks`, strongest first.
+   `peak_threshold_db` of the snapshot's strongest, at most `max_peaks`, strongest first: the
+   candidate targets (with refine = False, the result).
 5. Refinement (angle_refine.py): Newton iterations on the beam power over the ACTUAL element
    positions (single-target maximum likelihood with the "rect" window), seeded by the FFT peak;
    a snapshot left with a single peak ends here.
 6. Joint refinement (angle_joint.py) of a snapshot left with P >= 2 peaks: RELAX sweeps (Li and
    Stoica, IEEE Trans. SP, 1996), then joint Gauss-Newton steps on the P-target least-squares
-   misfit; peaks too weak or not resolvable from the others are dropped.
-7. Residual search (angle_residual.py): the residual of the joint fit may add one peak per
-   snapshot when it is strong and one tone by Fisher's g test; step 6 runs again on it.
+   misfit; peaks not resolvable from the others are dropped, and each further peak stays only
+   when the split test (angle_split.py: a likelihood ratio test of P against P - 1 sources in
+   white noise, needing no noise power) says it is there, at the design false-split probability
+   `split_false_alarm` for a single source.
+7. Residual search (angle_residual.py): the residual of the fit may add one candidate per
+   snapshot (a screen by Fisher's g statistic); step 6, with its split test, runs again on it.
 
 Limits (by design, documented rather than hidden):
 - An array with no elevation extent (one grid row) measures only u; the estimator then
@@ -45,8 +49,11 @@ Limits (by design, documented rather than hidden):
 - A target whose beam maximum lies at an invisible FFT grid point (only possible within about
   one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
 - Two targets closer than the array can separate (variance inflation above 10, step 6) stay
-  one peak. Step 7 adds at most one peak per snapshot and only where the residual is a clear
-  single tone, so of two weak targets hidden under a strong one neither may be found.
+  one peak. Step 7 adds at most one peak per snapshot, so of two weak targets hidden under a
+  strong one neither may be found.
+- The split test assumes white noise and a calibrated array: channel errors leave a structured
+  misfit that, on a strong target, the test can take for a second source (rms phase errors of
+  phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees).
 - refine = False skips steps 5 to 7 (peaks stay on the FFT grid with their grid power).
 
 The compiled kernels of steps 2-7 call each other across these modules. numba's cache checks only
@@ -68,7 +75,8 @@ from ..settings import ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
-from .angle_residual import fisher_g_critical, fit_residuals, residual_peaks
+from .angle_residual import fit_residuals, residual_peaks
+from .angle_split import SPLIT_FALSE_ALARM, split_critical_values
 from .bounds import crb_unit_covariance
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
@@ -82,6 +90,11 @@ __all__ = [
 ]
 
 _DEFAULTS = ProcessingSettings()
+# a peak is dropped during the joint sweeps when its removal costs less than this fraction of what
+# the split test needs (angle_joint._prune_hopeless); the residual search tries a candidate when
+# Fisher's q reaches this fraction of the test's critical value (the test decides after the refit)
+_JOINT_SCREEN = 0.7
+_RESIDUAL_SCREEN = 0.7
 
 
 @dataclass(frozen=True)
@@ -96,13 +109,20 @@ class AngleSettings:
     fft_size_elevation  FFT size along z (>= grid n_z); default 16, the automatic size up to 4
                         grid rows. Ignored (treated as 1) when the array has a single grid row,
                         i.e. no elevation extent.
-    peak_threshold_db   a peak is kept when its FFT power is at least this many dB relative to
-                        the strongest visible FFT point of the same snapshot; must be <= 0.
-                        Default -9 dB (angle_peak_threshold_db): above the -13.3 dB first
-                        sidelobe of a uniform rectangular aperture (common practice) with a few
-                        dB margin for noise.
+    peak_threshold_db   an FFT peak is a candidate target when its FFT power is at least this
+                        many dB relative to the strongest visible FFT point of the same snapshot
+                        (with refine = False: it is reported); must be <= 0. With refinement a
+                        further candidate is reported only when the split test passes, whatever
+                        its power, and one the FFT did not separate can still come from the
+                        residual search. Default -9 dB (angle_peak_threshold_db): above the
+                        -13.3 dB first sidelobe of a uniform rectangular aperture (common
+                        practice) with a few dB margin for noise.
     max_peaks           peaks reported per snapshot at most, strongest first; default 2
                         (angle_max_peaks).
+    split_false_alarm   design probability that a single source in white noise is reported as
+                        two (the split test's size, angle_split.py); default 0.01. On noise
+                        alone the test splits less often (its first fit takes the largest
+                        component).
     refine              Newton refinement on the actual element positions; default True.
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
@@ -115,6 +135,7 @@ class AngleSettings:
     max_peaks: int = _DEFAULTS.angle_max_peaks
     refine: bool = True
     window: str = "rect"
+    split_false_alarm: float = SPLIT_FALSE_ALARM
 
     def __post_init__(self) -> None:
         for name in ("fft_size_azimuth", "fft_size_elevation"):
@@ -128,6 +149,9 @@ class AngleSettings:
             raise CubecastError(f"max_peaks must be an integer in 1..64, got {self.max_peaks!r}")
         if not isinstance(self.refine, (bool, np.bool_)):
             raise CubecastError(f"refine must be true or false, got {self.refine!r}")
+        v = self.split_false_alarm
+        if not is_real(v) or not 0.0 < v < 1.0:
+            raise CubecastError(f"split_false_alarm must be a probability in (0, 1), got {v!r}")
         if self.window not in GRID_WINDOW_NAMES:
             raise CubecastError(
                 f"window must be one of {', '.join(GRID_WINDOW_NAMES)}, got {self.window!r}"
@@ -192,11 +216,13 @@ class AngleEstimator:
     (identity when None). capacity: initial number of snapshots the preallocated FFT buffers
     hold; they grow (once) when a call brings more.
 
-    Multi-peak snapshots are refined jointly (step 6, angle_joint.py).
+    Multi-peak snapshots are refined jointly and their further peaks tested (step 6,
+    angle_joint.py, angle_split.py).
 
     Attributes: grid, settings, calibration (complex64[n_virt]), n_fft_x, n_fft_z,
     u_grid (float64[n_fft_x]), w_grid (float64[n_fft_z]), visible (bool[n_fft_z, n_fft_x]),
-    bin_u, bin_w (FFT bin spacing in direction cosine).
+    bin_u, bin_w (FFT bin spacing in direction cosine), split_critical (float64[max_peaks + 1]:
+    the split test's critical value of the P-th source at index P).
     """
 
     def __init__(
@@ -268,12 +294,8 @@ class AngleEstimator:
         # channel weights into the grid cells: cell means (windowed, calibrated) for the estimation
         # image; cell sums (calibrated, no window) for coherence, where the on-grid beam is a^H x
         self._w_mean = (self._chan_weight / grid.cell_counts[grid.channel_cell]).astype(np.complex64)
-        # step 7: the residual is already calibrated; a unit tone's beam peak on that image is
-        # (sum of cell weights)^2; Fisher's g critical value for the n occupied cells
-        win_cells = chan_win / grid.cell_counts[grid.channel_cell]
-        self._w_window = win_cells.astype(np.complex64)
-        self._beam_gain2 = float(win_cells.sum()) ** 2
-        self._g_crit = fisher_g_critical(grid.n_cells)
+        # step 7: the residual is already calibrated (cell weights: the window over the cell counts)
+        self._w_window = (chan_win / grid.cell_counts[grid.channel_cell]).astype(np.complex64)
         self._w_sum = cal.copy()
         self._chan_iz = grid.channel_iz.astype(np.int64)
         self._chan_ix = grid.channel_ix.astype(np.int64)
@@ -283,6 +305,10 @@ class AngleEstimator:
         pos = grid.positions_m
         self._kx = k0 * (pos[:, 0] - pos[:, 0].mean())
         self._kz = k0 * (pos[:, 2] - pos[:, 2].mean())
+        # the split test (angle_split.py): critical value of the P-th source at index P
+        self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
+                                                    self._do_w, settings.max_peaks, settings.split_false_alarm)
+        self._q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, settings.max_peaks)])
 
         kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
         self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
@@ -307,7 +333,6 @@ class AngleEstimator:
         self._pk_p = np.empty(capacity * mp, dtype=np.float64)
         self._resid = np.empty((capacity, g.n_virt), dtype=np.complex64)
         self._open = np.empty(capacity, dtype=np.bool_)
-        self._top_amp2 = np.empty(capacity, dtype=np.float64)
         self._new_iz = np.empty(capacity, dtype=np.int64)
         self._new_ix = np.empty(capacity, dtype=np.int64)
 
@@ -371,7 +396,7 @@ class AngleEstimator:
     def _relax(self, x, n_found, det, keep, u, w, p):
         """Step 6 (angle_joint.py) on the peak arrays, in place."""
         relax_peaks(x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det, self._do_u, self._do_w,
-                    self.bin_u, self.bin_w, self._rel_thr, self._win_sum2, keep, u, w, p)
+                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, keep, u, w, p)
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
         """Step 7 (angle_residual.py): a target the FFT stage did not separate shows in the residual of
@@ -379,30 +404,31 @@ class AngleEstimator:
         their kept peaks and step 6 runs again on them. Returns the peak arrays (new ones when
         any snapshot gained a peak, with its old rows left unkept)."""
         n = x.shape[0]
-        resid, open_slot, top = self._resid[:n], self._open[:n], self._top_amp2[:n]
+        resid, open_slot = self._resid[:n], self._open[:n]
         fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, self.settings.max_peaks,
-                      resid, open_slot, top)
+                      resid, open_slot)
         fx = self._row_spectra(resid, self._w_window)
         new_iz, new_ix = self._new_iz[:n], self._new_ix[:n]
-        n_new = residual_peaks(fx, self._dft_z, n, self._visible_f, open_slot, top, self._beam_gain2,
-                               self._rel_thr, self.grid.n_cells, self._g_crit, self._power, self._acc_re,
-                               self._acc_im, new_iz, new_ix)
+        n_new = residual_peaks(fx, self._dft_z, n, self._visible_f, open_slot, self.grid.n_cells, self._q_min,
+                               self._power, self._acc_re, self._acc_im, new_iz, new_ix)
         if n_new == 0:
             return n_found, det, keep, u, w, p
         # the gaining snapshots' kept peaks plus the new one (rank 0: in a pair the array cannot
         # separate, the new peak is the one that goes), refined jointly as a sub-batch
         keep, det = keep[:n_found].copy(), det[:n_found]
         gain = np.flatnonzero(new_iz >= 0)
-        rows = [np.flatnonzero((det == d) & keep) for d in gain]
-        sub_det = np.concatenate([np.full(len(r) + 1, j) for j, r in enumerate(rows)])
-        sub_u = np.concatenate([np.r_[u[r], self.u_grid[new_ix[d]]] for r, d in zip(rows, gain)])
-        sub_w = np.concatenate([np.r_[w[r], self.w_grid[new_iz[d]]] for r, d in zip(rows, gain)])
-        sub_p = np.concatenate([np.r_[p[r], 0.0] for r in rows])
+        rows = np.flatnonzero(keep & (new_iz >= 0)[det])  # grouped by snapshot, ascending like gain
+        count = np.bincount(det[rows], minlength=n)[gain] + 1
+        sub_det = np.repeat(np.arange(gain.size), count)
+        new_at = np.cumsum(count) - 1  # each snapshot's new peak comes last
+        old_at = np.ones(sub_det.size, np.bool_)
+        old_at[new_at] = False
+        sub_u, sub_w, sub_p = (np.empty(sub_det.size) for _ in range(3))
+        sub_u[old_at], sub_w[old_at], sub_p[old_at] = u[rows], w[rows], p[rows]
+        sub_u[new_at], sub_w[new_at], sub_p[new_at] = self.u_grid[new_ix[gain]], self.w_grid[new_iz[gain]], 0.0
         sub_keep = np.ones(sub_det.size, np.bool_)
-        sub_x = np.ascontiguousarray(x[gain])
-        self._relax(sub_x, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
-        for r in rows:
-            keep[r] = False
+        self._relax(np.ascontiguousarray(x[gain]), sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        keep[rows] = False
         det_all = np.concatenate([det, gain[sub_det]])
         order = np.argsort(det_all, kind="stable")  # each snapshot's rows together, the new ones last
         return (det_all.size, det_all[order], np.concatenate([keep, sub_keep])[order],

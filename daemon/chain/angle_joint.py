@@ -17,21 +17,27 @@ misfit ||y - S a||^2 with the amplitudes a at their joint least-squares value (S
   after 30 sweeps); the joint steps converge quadratically from where the sweeps stop. They
   minimise the unweighted misfit: the window shapes only the FFT stage and the sweeps.
 
-After every amplitude fit a peak is dropped (and the rest refitted) when its joint power
-|a_i|^2 is below the peak_threshold_db fraction of the strongest one (e.g. a sidelobe or a
-ghost of another peak, which the others' fits explain), or when the array cannot tell it
-from the others: variance inflation n_virt * ((S^H S)^-1)_ii above 10 (for a pair, a
-normalised steering correlation above ~0.95), in which case the weaker of the inflated
-peaks goes, so peaks that converge onto each other merge into the stronger. After a drop
-the sweeps and joint steps run again (at most 3 rounds). Reported powers are |a_i|^2 *
-n_virt (the scale of a lone target's beam power). If a single peak survives, its step-5
-result is reported unchanged. Noiseless data of P plane waves fit with zero residual at the
-truth (the global minimum, reached in every case tested); in noise the result is a local
-minimum of the misfit, i.e. the P-target deterministic maximum-likelihood estimate when that
-minimum is the global one.
+After every amplitude fit a peak is dropped (and the rest refitted) when the array cannot tell it
+from the others: variance inflation n_virt * ((S^H S)^-1)_ii above 10 (for a pair, a normalised
+steering correlation above ~0.95), in which case the weaker of the inflated peaks goes, so peaks
+that converge onto each other merge into the stronger; and, from the second sweep on (once every
+peak has had its own refinement), when it explains too little of the misfit to be near passing
+the split test (a sidelobe or a ghost of another peak, which the others' fits explain; a noise
+peak): with the angles held its removal would raise the misfit by less than `screen` times what
+the test needs. After a drop the sweeps and joint steps run again (at most 3 rounds).
+
+Then the split test (angle_split.py) decides, from the most peaks down: the P-th peak stays when
+it explains at least the fraction g_crit(P) of the misfit the P - 1 others leave (refined again
+without it; for P = 2 the best single plane wave). A failed test leaves the smaller set, tested in
+turn. Reported powers are |a_i|^2 * n_virt (the scale of a lone target's beam power). If a single
+peak survives, its step-5 result is reported unchanged. Noiseless data of P plane waves fit with
+zero residual at the truth (the global minimum, reached in every case tested); in noise the result
+is a local minimum of the misfit, i.e. the P-target deterministic maximum-likelihood estimate when
+that minimum is the global one.
 
 Cost: about 10 us per two-peak snapshot on the bundled sensor (on average 4 sweeps and 2
-joint steps), growing steeply with P (every peak update refits all P amplitudes).
+joint steps), less for a noise peak the screen drops after the first sweep, growing steeply with
+P (every peak update refits all P amplitudes; the test of P >= 3 refines the P - 1 set again).
 
 Peak arrays are grouped by snapshot: det[k] is the snapshot of peak k, a snapshot's peaks are
 consecutive (group_end, largest_group).
@@ -58,6 +64,10 @@ _GRAM_RELATIVE_FLOOR = 1e-9  # Cholesky pivot floor relative to n_virt: singular
 _MAX_JOINT_ITERATIONS = 20  # joint Gauss-Newton iterations after the sweeps
 _JOINT_STEP_TOL = 1e-4  # FFT bins: a smaller step ends the joint iterations
 _MAX_RELAX_ROUNDS = 3  # sweeps + joint iterations again after a peak was dropped
+# a misfit below this fraction of the snapshot's energy is float32 rounding (about 1e-14 of it for a
+# noiseless float32 snapshot): the split test and the screen count it as this much. Reached by a
+# single source only above about 90 dB per channel.
+_MISFIT_FLOOR = 1e-9
 
 
 @njit(cache=True, inline="always")
@@ -152,20 +162,25 @@ def _drop_active(act, n_act, a):
 
 
 @njit(cache=True)
-def _prune_weak(act, n_act, amp, rel_thr):
-    """Drop active peaks whose joint power |amp|^2 is below rel_thr times the strongest one.
-    Returns the new count (the strongest always stays)."""
-    pmax = 0.0
+def _prune_hopeless(ph, act, n_act, y, amp, vif, crit, screen, floor):
+    """Drop the active peak least worth keeping when it cannot be near passing the split test: with
+    the angles held, removing peak p raises the misfit E by n_virt |amp_p|^2 / vif_p (ordinary least
+    squares: beta_p^2 / (X^H X)^-1_pp), and the test needs a rise of at least crit / (1 - crit) times
+    E (angle_split.py); below `screen` times that the peak goes. E counts at least `floor` (the
+    rounding level, see split_passes). Returns the new count (one peak always stays)."""
+    c = crit[n_act] if n_act < crit.size else crit[crit.size - 1]
+    need = screen * c / (1.0 - c) if c < 1.0 else np.inf
+    cost = max(_residual_cost(y, ph, act, n_act, amp), floor)
+    worst = -1
+    least = np.inf
     for a in range(n_act):
         q = amp[act[a]]
-        pmax = max(pmax, q.real * q.real + q.imag * q.imag)
-    a = 0
-    while a < n_act:
-        q = amp[act[a]]
-        if q.real * q.real + q.imag * q.imag < rel_thr * pmax:
-            n_act = _drop_active(act, n_act, a)
-        else:
-            a += 1
+        rise = y.size * (q.real * q.real + q.imag * q.imag) / vif[act[a]]
+        if rise < least:
+            least = rise
+            worst = a
+    if least < need * cost:
+        return _drop_active(act, n_act, worst)
     return n_act
 
 
@@ -184,14 +199,15 @@ def _weakest_active(act, n_act, rank, vif, max_vif):
 
 
 @njit(cache=True)
-def _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr, max_vif):
+def _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit, screen, floor, max_vif):
     """Joint least-squares amplitudes of the active peaks, dropping peaks until the set is
     resolvable and every peak is strong enough, refitting after every drop:
     - singular Gram matrix: the lowest-ranked peak goes;
     - variance inflation above max_vif (directions the array cannot tell apart, e.g. two peaks
       that converged onto each other): the lowest-ranked of the inflated peaks goes, i.e. they
       merge into the higher-ranked one;
-    - joint power |amp|^2 below rel_thr times the strongest: that peak goes.
+    - a peak whose removal costs too little of the misfit to be near passing the split test
+      (_prune_hopeless) goes.
     rank is the single-target beam power of step 5: joint amplitudes of nearly collinear
     steering vectors are unreliable (two of them with large opposite amplitudes can fit noise,
     the two-target likelihood then pulls a true peak onto a noise peak), so they do not decide
@@ -208,7 +224,7 @@ def _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr, 
             n_act = _drop_active(act, n_act, worst)
             dropped = True
             continue
-        n_new = _prune_weak(act, n_act, amp, rel_thr)
+        n_new = _prune_hopeless(ph, act, n_act, y, amp, vif, crit, screen, floor)
         if n_new == n_act:
             return n_act, dropped
         n_act = n_new
@@ -384,7 +400,7 @@ def _joint_gauss_newton(
 
 @njit(cache=True)
 def _relax_sweeps(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank,
-                  do_u, do_w, max_du, max_dw, rel_thr):
+                  do_u, do_w, max_du, max_dw, crit, screen, floor):
     """RELAX sweeps over the active peaks of one snapshot (at most _MAX_RELAX_SWEEPS): get every
     peak into the basin of the joint optimum. Each peak in turn is refined as a single target on
     the data minus the others' joint fits (windowed), then all amplitudes are refitted and pruned
@@ -415,8 +431,9 @@ def _relax_sweeps(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram,
             move = max(move, abs(u - gu[p]) / max_du, abs(w - gw[p]) / max_dw)
             gu[p] = u
             gw[p] = w
-            n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr,
-                                            _MAX_VARIANCE_INFLATION)
+            # the screen waits for every peak's first refinement: a grid seed understates its peak
+            n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit,
+                                            screen if n_sw > 1 else 0.0, floor, _MAX_VARIANCE_INFLATION)
             if dropped:
                 move = np.inf  # the others were refined against a different model
                 break
@@ -460,19 +477,104 @@ def _write_back(k0, k1, act, n_act, gu, gw, gp, amp, order, win_sum2, out_u, out
 
 
 @njit(cache=True)
-def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, max_dw, rel_thr, win_sum2,
+def _rounds(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank, gn, do_u,
+            do_w, max_du, max_dw, crit, screen, floor):
+    """RELAX sweeps then the joint Gauss-Newton finish, again after a drop (at most _MAX_RELAX_ROUNDS
+    rounds), on the active peaks whose phasors and joint amplitudes ph, amp hold (gn: the joint
+    Gauss-Newton scratch arrays, see relax_peaks). Returns the active count; on exit ph, amp hold
+    the phasors and joint amplitudes of the returned set."""
+    gu_try, gw_try, ph_try, amp_try, jac, hess, chol, grad, step = gn
+    for _round in range(_MAX_RELAX_ROUNDS):
+        n_act = _relax_sweeps(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif,
+                              rank, do_u, do_w, max_du, max_dw, crit, screen, floor)
+        if n_act < 2:
+            break
+        # joint Gauss-Newton finish: the cyclic sweeps converge slowly for close peaks
+        _joint_gauss_newton(y, kx, kz, act, n_act, gu, gw, ph, amp, gu_try, gw_try, ph_try, amp_try, res,
+                            gram, rhs, work, vif, jac, hess, chol, grad, step, do_u, do_w, max_du, max_dw)
+        n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit, screen, floor,
+                                        _MAX_VARIANCE_INFLATION)
+        if not dropped:
+            break
+    return n_act
+
+
+@njit(cache=True)
+def _test_larger_sets(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank, gn,
+                      saved, do_u, do_w, max_du, max_dw, crit, screen, floor):
+    """The split test of a set of P >= 3 peaks against the P - 1 left when the one whose removal
+    costs the least misfit goes and the rest are refined again (_rounds); while it fails, the
+    smaller set is tested in turn, down to two. Returns the active count of the set kept (its
+    state in act, gu, gw, ph, amp; saved: scratch for the larger set)."""
+    act_s, gu_s, gw_s, amp_s = saved
+    while n_act >= 3:
+        e_more = _residual_cost(y, ph, act, n_act, amp)
+        n_more = n_act
+        for a in range(n_act):
+            p = act[a]
+            act_s[a], gu_s[p], gw_s[p], amp_s[p] = p, gu[p], gw[p], amp[p]
+        least, worst = np.inf, 0
+        for a in range(n_act):
+            q = amp[act[a]]
+            rise = y.size * (q.real * q.real + q.imag * q.imag) / vif[act[a]]
+            if rise < least:
+                least, worst = rise, a
+        n_act = _drop_active(act, n_act, worst)
+        n_act, _ = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit, screen, floor,
+                                  _MAX_VARIANCE_INFLATION)
+        n_act = _rounds(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank, gn,
+                        do_u, do_w, max_du, max_dw, crit, screen, floor)
+        if split_passes(_residual_cost(y, ph, act, n_act, amp), e_more, crit[n_more], floor):
+            for a in range(n_more):  # the larger set stays
+                p = act_s[a]
+                act[a], gu[p], gw[p], amp[p] = p, gu_s[p], gw_s[p], amp_s[p]
+                phasors(kx, kz, gu[p], gw[p], ph[p])
+            return n_more
+    return n_act
+
+
+@njit(cache=True, inline="always")
+def split_passes(e_fewer, e_more, crit, floor):
+    """The split test (angle_split.py): the further source explains at least the fraction crit of
+    the misfit e_fewer left without it, a misfit counting at least `floor`: _MISFIT_FLOOR of the
+    snapshot's energy, the level of float32 rounding, where the fraction means nothing."""
+    return e_fewer - e_more >= crit * max(e_fewer, floor)
+
+
+@njit(cache=True)
+def _single_misfit(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw):
+    """The least-squares misfit of the best single plane wave, ||y||^2 - |a^H y|^2 / n_virt at the
+    unweighted beam maximum, refined from (u, w) (the step-5 result, which a window biases)."""
+    phasors(kx, kz, u, w, e)
+    _, _, p = newton_refine(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw, MAX_NEWTON_ITERATIONS, 0.0)
+    energy = 0.0
+    for i in range(y.size):
+        energy += y[i].real * y[i].real + y[i].imag * y[i].imag
+    return max(energy - p / y.size, 0.0)
+
+
+@njit(cache=True)
+def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, max_dw, crit, screen, win_sum2,
                 out_keep, out_u, out_w, out_p):
     """Joint refinement of every snapshot with two or more kept peaks (module doc: RELAX sweeps,
-    then joint Gauss-Newton, at most _MAX_RELAX_ROUNDS rounds), in place on the output of
+    then joint Gauss-Newton, at most _MAX_RELAX_ROUNDS rounds), then the split test of every further
+    peak (angle_split.py: crit[P] the critical value of the P-th source; screen the fraction of it
+    below which a peak is dropped during the sweeps), in place on the output of
     angle_refine.refine_peaks. cal: calibration per channel, win: window weight per channel,
     win_sum2: (sum of window weights)^2. Within a snapshot the kept peaks are written back first,
-    strongest first; the others get keep = False."""
+    strongest first; the others get keep = False.
+
+    The test, from the most peaks down: P >= 3 peaks are compared with the P - 1 left when the one
+    costing the least misfit goes and the rest are refined again; two with the best single plane
+    wave (_single_misfit). When a test fails the smaller set is kept and tested in turn; a snapshot
+    back to one peak reports its strongest step-5 peak."""
     n_virt = snapshots.shape[1]
     mp = largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
     res = np.empty(n_virt, np.complex128)
     ph = np.empty((mp, n_virt), np.complex128)  # phasors (conjugate steering) per peak
     e_try = np.empty(n_virt, np.complex128)
+    e_one = np.empty(n_virt, np.complex128)  # phasors of the best single plane wave
     amp = np.zeros(mp, np.complex128)
     gram = np.empty((mp, mp), np.complex128)
     rhs = np.empty(mp, np.complex128)
@@ -484,6 +586,8 @@ def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, m
     gp = np.empty(mp, np.float64)
     rank = np.empty(mp, np.float64)
     order = np.empty(mp, np.int64)
+    # the larger set while a smaller one is tried (P >= 3)
+    saved = (np.empty(mp, np.int64), np.empty(mp, np.float64), np.empty(mp, np.float64), np.empty(mp, np.complex128))
     # joint Gauss-Newton buffers
     n_ang = (1 if do_u else 0) + (1 if do_w else 0)
     dim_max = mp * (n_ang + 2)
@@ -496,14 +600,18 @@ def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, m
     chol = np.empty((dim_max, dim_max), np.float64)
     grad = np.empty(dim_max, np.float64)
     step = np.empty(dim_max, np.float64)
+    gn = (gu_try, gw_try, ph_try, amp_try, jac, hess, chol, grad, step)
     k0 = 0
     while k0 < n_found:
         k1 = group_end(det, n_found, k0)
         n_act = 0
+        best = -1
         for k in range(k0, k1):
             if out_keep[k]:
                 act[n_act] = k - k0
                 n_act += 1
+                if best < 0 or out_p[k] > out_p[k0 + best]:
+                    best = k - k0
         if n_act < 2:
             k0 = k1
             continue
@@ -517,19 +625,22 @@ def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, m
             amp[p] = 0.0
             rank[p] = out_p[k0 + p]
             phasors(kx, kz, gu[p], gw[p], ph[p])
-        n_act, _ = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr,
+        floor = 0.0
+        for i in range(n_virt):
+            floor += y[i].real * y[i].real + y[i].imag * y[i].imag
+        floor *= _MISFIT_FLOOR
+        n_act, _ = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit, 0.0, floor,
                                   _MAX_VARIANCE_INFLATION)
-        for _round in range(_MAX_RELAX_ROUNDS):
-            n_act = _relax_sweeps(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif,
-                                  rank, do_u, do_w, max_du, max_dw, rel_thr)
-            if n_act < 2:
-                break
-            # joint Gauss-Newton finish: the cyclic sweeps converge slowly for close peaks
-            _joint_gauss_newton(y, kx, kz, act, n_act, gu, gw, ph, amp, gu_try, gw_try, ph_try, amp_try, res,
-                                gram, rhs, work, vif, jac, hess, chol, grad, step, do_u, do_w, max_du, max_dw)
-            n_act, dropped = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, rel_thr,
-                                            _MAX_VARIANCE_INFLATION)
-            if not dropped:
-                break
+        n_act = _rounds(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank, gn,
+                        do_u, do_w, max_du, max_dw, crit, screen, floor)
+        if n_act >= 3:
+            n_act = _test_larger_sets(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work,
+                                      vif, rank, gn, saved, do_u, do_w, max_du, max_dw, crit, screen, floor)
+        if n_act == 2:
+            e_single = _single_misfit(y, kx, kz, out_u[k0 + best], out_w[k0 + best], e_one, e_try, do_u, do_w,
+                                      max_du, max_dw)
+            if not split_passes(e_single, _residual_cost(y, ph, act, n_act, amp), crit[2], floor):
+                n_act = 1
+                act[0] = best
         _write_back(k0, k1, act, n_act, gu, gw, gp, amp, order, win_sum2, out_u, out_w, out_p, out_keep)
         k0 = k1

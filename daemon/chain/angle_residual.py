@@ -2,15 +2,16 @@
 a non-regular distribution of interferometer baselines", Astron. Astrophys. Suppl., 1974).
 
 A snapshot left with fewer than max_peaks peaks may hold a target the FFT stage did not separate
-(a weak one under a strong one's beam or sidelobe). The calibrated snapshot minus the joint
-least-squares fit of its peaks (fit_residuals) is transformed as in steps 2-3 (same window); its
-strongest visible grid point joins the peaks (residual_peaks) when (a) its power is at least
-peak_threshold_db of the strongest peak's |a|^2 on the same scale and (b) the residual is one tone
-rather than noise by Fisher's g test (g = maximum beam power / (n_cells * residual cell energy),
-1 for a lone tone; critical value at RESIDUAL_FALSE_ALARM per snapshot from the first term of
-Fisher's 1929 series, fisher_g_critical). The estimator then runs step 6 again on that snapshot,
-the new peak ranked last (in a pair the array cannot separate, it is the one that goes). One pass:
-at most one peak is added per snapshot.
+(a weak one under a strong one's beam or sidelobe, or two in-phase targets closer than the beam
+width, which the FFT shows as one peak). The calibrated snapshot minus the joint least-squares fit
+of its peaks (fit_residuals) is transformed as in steps 2-3 (same window); its strongest visible
+grid point becomes a candidate (residual_peaks) when Fisher's statistic q = maximum beam power /
+(n_cells * residual cell energy) (1 for a lone tone) reaches a fraction of the split test's
+critical value: for the same candidate the test's g is at least q, so the screen passes what the
+test could keep (angle_split.py) and saves the joint refinement of the rest. The estimator then
+runs step 6 again on that snapshot, the candidate ranked last (in a pair the array cannot
+separate, it is the one that goes), and the split test decides. One pass: at most one peak is added
+per snapshot.
 """
 
 from __future__ import annotations
@@ -22,26 +23,13 @@ from .angle_joint import group_end, joint_amplitudes, largest_group
 from .angle_peaks import power_image
 from .angle_refine import phasors
 
-__all__ = ["RESIDUAL_FALSE_ALARM", "fisher_g_critical", "fit_residuals", "residual_peaks"]
-
-# chance that noise alone passes Fisher's g test in one snapshot's residual (nominal: the
-# zero-padded grid's maximum runs a little above the independent bins' the test assumes)
-RESIDUAL_FALSE_ALARM = 1e-3
-
-
-def fisher_g_critical(n_cells: int, false_alarm: float = RESIDUAL_FALSE_ALARM) -> float:
-    """Critical value of Fisher's g for n_cells grid cells at the given false-alarm chance:
-    g_crit = 1 - (alpha / n)^(1 / (n - 1)), the first term of Fisher's series (Fisher, "Tests of
-    significance in harmonic analysis", Proc. R. Soc. A, 1929). 2 (never passed) for one cell."""
-    return 1.0 - (false_alarm / n_cells) ** (1.0 / (n_cells - 1)) if n_cells > 1 else 2.0
-
+__all__ = ["fit_residuals", "residual_peaks"]
 
 @njit(cache=True)
-def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot, top_amp2):
+def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot):
     """Step 7 (module doc), first half. For each snapshot with at least one and fewer than max_peaks
     kept peaks (open_slot[d] = True): resid[d] = the calibrated snapshot minus the joint
-    least-squares fit of its kept peaks, and top_amp2[d] = the largest |amplitude|^2 of that fit.
-    Other snapshots: resid[d] = 0, open_slot[d] = False."""
+    least-squares fit of its kept peaks. Other snapshots: resid[d] = 0, open_slot[d] = False."""
     n_det, n_virt = snapshots.shape
     mp = largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
@@ -73,29 +61,22 @@ def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, r
             y[i] = complex(snapshots[d, i]) * cal[i]
         if not joint_amplitudes(ph, act, n_act, y, gram, rhs, work, amp, vif):
             continue
-        top = 0.0
         for a in range(n_act):
-            top = max(top, amp[a].real ** 2 + amp[a].imag ** 2)
             for i in range(n_virt):
                 y[i] -= amp[a] * ph[a, i].conjugate()
         for i in range(n_virt):
             resid[d, i] = y[i]
         open_slot[d] = True
-        top_amp2[d] = top
 
 
 @njit(cache=True)
-def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, top_amp2, beam_gain2, rel_thr, n_cells, g_crit,
-                   power, acc_re, acc_im, out_iz, out_ix):
+def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, n_cells, q_min, power, acc_re, acc_im, out_iz, out_ix):
     """Step 7, second half: for each open snapshot, the strongest visible point of its residual's
     beam image (fx: the residual's grid rows transformed along x), kept (out_iz, out_ix; -1 when
-    not) when it is both
-    - strong: beam power >= rel_thr * beam_gain2 * top_amp2[d], i.e. a target of at least the
-      peak_threshold_db fraction of the strongest one's power;
-    - one tone, not noise: Fisher's g statistic g = max beam power / (n_cells * residual energy)
-      >= g_crit (Fisher, "Tests of significance in harmonic analysis", Proc. R. Soc. A, 1929);
-      a lone tone gives g = 1.
-    Returns the number kept."""
+    not) when Fisher's statistic q = max beam power / (n_cells * residual energy) is at least q_min
+    (Fisher, "Tests of significance in harmonic analysis", Proc. R. Soc. A, 1929; a lone tone gives
+    1). The split test of the refit (angle_split.py) decides: g >= q for the same candidate, so q_min
+    below the test's critical value lets through what the test could keep. Returns the number kept."""
     nz, nx = power.shape
     n_rows = fx.shape[0]
     count = 0
@@ -119,7 +100,7 @@ def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, top_amp2, beam_gain2,
                 p = power[iz, ix] * visible_f[iz, ix]
                 if p > best:
                     best, biz, bix = p, iz, ix
-        if biz < 0 or best < rel_thr * beam_gain2 * top_amp2[d] or best < g_crit * n_cells * energy:
+        if biz < 0 or best < q_min * n_cells * energy:
             continue
         out_iz[d] = biz
         out_ix[d] = bix
