@@ -58,7 +58,7 @@ import numpy as np
 from .fft import ifft_unnormalised_inplace
 
 TAU_FRACTION = 0.001          # the flat taper's edge: w^2 / (w^2 + tau^2), tau relative to max(w)
-COMBINED_CELLS = 11           # cells of the other axis summed by the matched weights (odd; fewer on a short axis)
+COMBINED_CELLS = 7            # cells of the other axis summed by the matched weights (odd; fewer on a short axis)
 NEWTON_STEPS = 3
 SYSTEMATIC_FLOOR_BINS = 2e-4  # residual systematic error, unpadded bins, added in quadrature
 NOISE_EXCESS = 4.0            # map cells above this many noise means count as a neighbour's energy
@@ -121,38 +121,45 @@ def _gather(spec, k0, l0, h, along_range, n_range_fft, out):
     along_range: the range column over all N_fft range bins at Doppler columns l0 + j - J//2; else the
     Doppler row over all columns at range bins k0 + j - J//2. Channel c = rx * n_slots + slot. With
     real sampling (fewer kept bins than the FFT size) a range bin k beyond the kept ones is
-    conj(S[N_fft - k, -l]) (Hermitian symmetry); the Nyquist bin, not kept, is 0."""
+    conj(S[N_fft - k, -l]) (Hermitian symmetry); the Nyquist bin, not kept, is 0. Range columns are
+    read row by row of the spectrum, each row once for all detections (the spectrum is larger than
+    the caches; its rows are contiguous along Doppler)."""
     n_rx, n_slots, n_bins, n_dop = spec.shape
-    n_j = h.shape[1]
+    n_det, n_j = h.shape
     half_j = n_j // 2
     real = n_bins < n_range_fft
-    cols = np.empty(n_j, np.int64)
-    mirror = np.empty(n_j, np.int64)
-    wts = np.empty(n_j, np.complex64)
-    for i in range(k0.shape[0]):
+    cols = np.empty((n_det, n_j), np.int64)
+    mirror = np.empty((n_det, n_j), np.int64)
+    wts = np.empty((n_det, n_j), np.complex64)
+    for i in range(n_det):
         for j in range(n_j):
-            cols[j] = (l0[i] + j - half_j) % n_dop
-            mirror[j] = (n_dop - cols[j]) % n_dop
-            wts[j] = np.complex64(np.conj(h[i, j]))
-        for rx in range(n_rx):
-            for s in range(n_slots):
-                row = out[i, rx * n_slots + s]
-                row[:] = 0.0
-                if along_range:   # row by row of the spectrum: the J columns sit side by side
-                    for k in range(n_bins):
-                        src = spec[rx, s, k]
+            cols[i, j] = (l0[i] + j - half_j) % n_dop
+            mirror[i, j] = (n_dop - cols[i, j]) % n_dop
+            wts[i, j] = np.complex64(np.conj(h[i, j]))
+    for rx in range(n_rx):
+        for s in range(n_slots):
+            c = rx * n_slots + s
+            if along_range:
+                for i in range(n_det):
+                    out[i, c, n_bins:] = 0.0
+                for k in range(n_bins):
+                    src = spec[rx, s, k]
+                    for i in range(n_det):
                         acc = np.complex64(0.0)
                         for j in range(n_j):
-                            acc += wts[j] * src[cols[j]]
-                        row[k] = acc
+                            acc += wts[i, j] * src[cols[i, j]]
+                        out[i, c, k] = acc
                         if real and k > 0:
                             acc = np.complex64(0.0)
                             for j in range(n_j):
-                                acc += wts[j] * np.conj(src[mirror[j]])
-                            row[n_range_fft - k] = acc
-                    continue
-                for j in range(n_j):   # Doppler rows: contiguous
-                    wt = np.conj(h[i, j])
+                                acc += wts[i, j] * np.conj(src[mirror[i, j]])
+                            out[i, c, n_range_fft - k] = acc
+                continue
+            for i in range(n_det):   # Doppler rows: contiguous
+                row = out[i, c]
+                row[:] = 0.0
+                for j in range(n_j):
+                    wt = wts[i, j]
                     k = (k0[i] + j - half_j) % n_range_fft
                     if k < n_bins:
                         src = spec[rx, s, k]
@@ -167,10 +174,10 @@ def _gather(spec, k0, l0, h, along_range, n_range_fft, out):
 @numba.njit(cache=True, nogil=True)
 def _newton(samples, taper, mode, t, nu0, fft_size, max_step, n_steps, g, nu_out, values):
     """Peak of sum_c |F_c(nu)|^2, F_c(nu) = sum_n taper[mode_i, n] samples[i, c, n] exp(-j 2 pi nu t_n /
-    N_fft), by Newton steps from nu0 (FFT bins), each step at most max_step bins and none where the
-    curvature is not negative. Writes nu_out[i] and values[i, c] = F_c(nu_out[i]). `samples` holds
-    the first n = len(t) samples of each row; `g` is scratch [n_ch, >= n + n] (the tapered samples
-    and the phasors)."""
+    N_fft), by Newton steps from nu0 (FFT bins), each step at most max_step bins (a full step uphill
+    where the curvature is not yet negative). Writes nu_out[i] and values[i, c] = F_c(nu_out[i]).
+    `samples` holds the first n = len(t) samples of each row; `g` is scratch [n_ch, >= 2 n] (the
+    tapered samples and the phasors)."""
     n_det, n_ch = samples.shape[0], samples.shape[1]
     n = t.shape[0]
     ph = g[0, n: 2 * n]
@@ -188,10 +195,16 @@ def _newton(samples, taper, mode, t, nu0, fft_size, max_step, n_steps, g, nu_out
                 ph[k] = ph[k - 1] * step_ph
             d1 = 0.0
             d2 = 0.0
+            last = step == n_steps
             for c in range(n_ch):
                 f0 = np.complex128(0.0)
                 f1 = np.complex128(0.0)
                 f2 = np.complex128(0.0)
+                if last:   # the values only
+                    for k in range(n):
+                        f0 += g[c, k] * ph[k]
+                    values[i, c] = f0
+                    continue
                 for k in range(n):
                     tk = t[k]
                     v = g[c, k] * ph[k]
@@ -202,9 +215,12 @@ def _newton(samples, taper, mode, t, nu0, fft_size, max_step, n_steps, g, nu_out
                 # d/dw F = -j sum t v, d2/dw2 F = -sum t^2 v
                 d1 += 2.0 * (np.conj(f0) * (-1j * f1)).real
                 d2 += 2.0 * (abs(f1) ** 2 - (np.conj(f0) * f2).real)
-            if step == n_steps or not d2 < 0.0:
+            if step == n_steps:
                 break
-            delta = -d1 / d2 * fft_size / (2.0 * np.pi)
+            if d2 < 0.0:
+                delta = -d1 / d2 * fft_size / (2.0 * np.pi)
+            else:   # not yet in the peak's concave part (noise moved the start): climb by a full step
+                delta = max_step if d1 > 0.0 else -max_step
             delta = min(max(delta, -max_step), max_step)
             nu += delta
         nu_out[i] = nu
@@ -286,6 +302,47 @@ def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, 
         out[i] = b
 
 
+@numba.njit(cache=True, nogil=True)
+def _decide(power, k0, col, along_range, table, reach, offset, noise_cell, s_first, var_factor, guard, padding,
+            fft_size, p_self, bias, mode):
+    """Per detection: the target's own response across SELF_SPAN cells (p_self scratch), the
+    predicted flat-taper neighbour bias (unpadded bins), and the taper with the smaller expected
+    squared error: FLAT when sigma_flat^2 + B^2 < sigma_window^2 (bias[i] = B then, else 0)."""
+    _self_response(table, reach, offset, p_self)
+    _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, guard, padding, bias)
+    to_u = fft_size / (2.0 * np.pi) / padding      # rad/sample -> unpadded bins
+    for i in range(k0.shape[0]):
+        s = max(s_first[i], 1e-12)
+        var_flat = var_factor[FLAT] / (2.0 * s) * to_u * to_u
+        var_win = var_factor[WINDOWED] / (2.0 * s) * to_u * to_u
+        if var_flat + bias[i] * bias[i] < var_win:
+            mode[i] = FLAT
+        else:
+            mode[i] = WINDOWED
+            bias[i] = 0.0
+
+
+@numba.njit(cache=True, nogil=True)
+def _finish(values, mode, sum_e, sum_e2, var_factor, sigma_z2, s_first, bias, fft_size, padding, sigma_out,
+            snr_out):
+    """From the refined peaks: the SNR per sample summed over the channels (noise bias removed,
+    E sum_c |F_c|^2 = S sigma_z^2 (sum e)^2 + K sigma_z^2 sum e^2), the standard deviation in FFT bins
+    (the tapered-periodogram variance, the neighbour bias and the systematic floor in quadrature) and
+    the SNR per channel of the values."""
+    n_det, n_ch = values.shape
+    for i in range(n_det):
+        m = mode[i]
+        peak = 0.0
+        for c in range(n_ch):
+            peak += values[i, c].real ** 2 + values[i, c].imag ** 2
+        s1, s2 = sum_e[m], sum_e2[m]
+        s_hat = max((peak / sigma_z2[i] - n_ch * s2) / (s1 * s1), 1e-3 * s_first[i] + 1e-12)
+        sd = np.sqrt(var_factor[m] / (2.0 * s_hat)) * fft_size / (2.0 * np.pi)
+        extra = (bias[i] * bias[i] + SYSTEMATIC_FLOOR_BINS * SYSTEMATIC_FLOOR_BINS) * padding * padding
+        sigma_out[i] = np.sqrt(sd * sd + extra)
+        snr_out[i] = s_hat / n_ch * s1 * s1 / s2
+
+
 @dataclass
 class Refined:
     """Per detection: range and Doppler frequencies in FFT bins (range nu_r >= 0; Doppler nu_d in
@@ -317,8 +374,6 @@ class Refiner:
                      for name, ax in (("range", self.range), ("doppler", self.doppler))}
         self._capacity = 0
         self._reserve(16)
-        # the target's own window response beyond the main lobe, for the neighbour test
-        self._self_span = {"range": SELF_SPAN, "doppler": SELF_SPAN}
 
     def _reserve(self, n_det: int) -> None:
         """Buffers for n_det detections (grown, never shrunk): the combined rows of each axis, the
@@ -327,13 +382,16 @@ class Refiner:
             return
         self._capacity = n = max(n_det, 2 * self._capacity)
         k = self.n_channels
-        self._rows = {True: np.zeros((n, k, self.range.fft_size), np.complex128),
-                      False: np.zeros((n, k, self.doppler.fft_size), np.complex128)}
+        self._rows = {True: np.zeros((n, k, self.range.fft_size), np.complex64),
+                      False: np.zeros((n, k, self.doppler.fft_size), np.complex64)}
         self._scratch = np.empty((k, 2 * max(self.range.n, self.doppler.n)), np.complex128)
         self._values = np.empty((n, k), np.complex128)
         self._h = {name: np.empty((n, ax.combined), np.complex128) for name, ax in (("range", self.range),
                                                                                      ("doppler", self.doppler))}
         self._gain = {name: np.empty(n) for name in ("range", "doppler")}
+        self._mode = np.empty(n, np.int64)
+        self._bias = np.empty(n)
+        self._p_self = np.empty((n, 2 * SELF_SPAN + 1))
 
     # ---- one axis ----------------------------------------------------------------------------
 
@@ -346,19 +404,6 @@ class Refiner:
                  np.ascontiguousarray(offset, np.float64), h, gain)
         return h, gain
 
-    def _modes(self, power, k0, col, axis: Axis, along_range: bool, offset, noise_cell, var_by_mode):
-        """FLAT or WINDOWED per detection, and the predicted neighbour bias (unpadded bins) of FLAT."""
-        name = "range" if along_range else "doppler"
-        span = self._self_span[name]
-        p_self = np.empty((k0.shape[0], 2 * span + 1))
-        _self_response(axis.table, float(axis.table_reach), np.ascontiguousarray(offset, np.float64), p_self)
-        bias = np.empty(k0.shape[0])
-        _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, axis.guard, axis.padding, bias)
-        sigma_flat_u = axis.sigma_bins(var_by_mode[FLAT]) / axis.padding
-        sigma_win_u = axis.sigma_bins(var_by_mode[WINDOWED]) / axis.padding
-        mode = np.where(sigma_flat_u ** 2 + bias ** 2 < sigma_win_u ** 2, FLAT, WINDOWED).astype(np.int64)
-        return mode, np.where(mode == FLAT, bias, 0.0)
-
     def _axis(self, spec, power, k0, l0, col, nu0, other_offset, noise_cell, noise_per_sample, snr_raw,
               along_range):
         """Refine one axis for all detections: (nu, sigma in FFT bins, values [n_det, K], SNR per
@@ -366,30 +411,25 @@ class Refiner:
         axis, other = (self.range, self.doppler) if along_range else (self.doppler, self.range)
         name_other = "doppler" if along_range else "range"
         n_det = k0.shape[0]
-        self._reserve(n_det)
         h, gain = self._combine_weights(other, name_other, other_offset)
         rows = self._rows[along_range][:n_det]
         _gather(spec, k0, l0, h, along_range, self.range.fft_size, rows)
         samples = ifft_unnormalised_inplace(rows, axis=-1)   # N_fft w z in the first n samples
-        # noise power per sample of the combined samples z: sigma^2 h^H R h = sigma^2 g^H R^-1 g
+        # the combined samples' noise per sample, sigma^2 h^H R h = sigma^2 g^H R^-1 g, and a first
+        # SNR per sample over the channels from the cell's SNR (for the choice of taper)
         sigma_z2 = noise_per_sample * gain
-        # a first SNR from the cell (for the choice of taper), the refined one from the peak below
         s_first = self.n_channels * snr_raw * gain
-        var_by_mode = axis.var_factor[:, None] / (2.0 * np.maximum(s_first, 1e-12))[None, :]
-        offset_here = nu0 - (k0 if along_range else l0)
-        mode, bias = self._modes(power, k0, col, axis, along_range, offset_here, noise_cell, var_by_mode)
-        nu = np.empty(n_det)
-        values = self._values[:n_det]
-        _newton(samples, axis.taper, mode, axis.t, nu0.astype(np.float64), float(axis.fft_size),
-                0.5 * axis.padding, NEWTON_STEPS, self._scratch, nu, values)
-        # the SNR per sample summed over channels, from the peak (noise bias removed)
-        s1, s2 = axis.sum_e[mode], axis.sum_e2[mode]
-        peak = np.sum(np.abs(values) ** 2, axis=1) / sigma_z2
-        s_hat = np.maximum((peak - self.n_channels * s2) / s1 ** 2, 1e-3 * s_first + 1e-12)
-        var = axis.var_factor[mode] / (2.0 * s_hat)
-        sigma = np.sqrt(axis.sigma_bins(var) ** 2 + ((bias ** 2 + SYSTEMATIC_FLOOR_BINS ** 2) * axis.padding ** 2))
-        value_snr = s_hat / self.n_channels * s1 ** 2 / s2
-        return nu, sigma, values, value_snr, mode
+        mode, bias = self._mode[:n_det], self._bias[:n_det]
+        _decide(power, k0, col, along_range, axis.table, float(axis.table_reach), nu0 - (k0 if along_range else l0),
+                noise_cell, s_first, axis.var_factor, axis.guard, axis.padding, float(axis.fft_size),
+                self._p_self[:n_det], bias, mode)
+        nu, values = np.empty(n_det), self._values[:n_det]
+        _newton(samples, axis.taper, mode, axis.t, nu0, float(axis.fft_size), 0.5 * axis.padding, NEWTON_STEPS,
+                self._scratch, nu, values)
+        sigma, value_snr = np.empty(n_det), np.empty(n_det)
+        _finish(values, mode, axis.sum_e, axis.sum_e2, axis.var_factor, sigma_z2, s_first, bias,
+                float(axis.fft_size), axis.padding, sigma, value_snr)
+        return nu, sigma, values, value_snr, mode.copy()
 
     # ---- both axes ---------------------------------------------------------------------------
 
@@ -403,6 +443,7 @@ class Refiner:
         per-channel SNR of the cell."""
         n_dop = self.doppler.fft_size
         half = n_dop // 2
+        self._reserve(len(range_bin))
         k0 = np.asarray(range_bin, np.int64)
         col = np.asarray(doppler_col, np.int64)
         l0 = (col - half) % n_dop
