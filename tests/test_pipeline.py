@@ -206,7 +206,7 @@ def test_real_sampled_sensor_one_sided_spectrum():
 
 # ---- resolution ------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("n_rx,separation_deg,resolved", [(4, 8.0, False), (8, 8.0, True), (8, 3.0, False)])
+@pytest.mark.parametrize("n_rx,separation_deg,resolved", [(4, 8.0, False), (8, 8.0, True), (8, 1.0, False)])
 def test_two_targets_resolved_by_aperture(n_rx, separation_deg, resolved):
     # 2 TX x n_rx virtual arrays of 2 n_rx elements at lambda / 2: the Rayleigh limit is 2 / N in sine
     # space (common practice): 8 elements ~ 14.5 deg, 16 elements ~ 7.2 deg at boresight. The
@@ -230,8 +230,10 @@ def test_two_targets_resolved_by_aperture(n_rx, separation_deg, resolved):
 # ---- detection statistics --------------------------------------------------------------------
 
 def test_false_alarm_rate_on_noise_frames(sensor):
-    # Measured threshold crossings on noise-only frames within a factor of 2 of the design Pfa
-    # (the thresholds' closed forms: Richards 2005 for CA, Rohling 1983 for OS).
+    # Measured threshold crossings on noise-only frames against the design Pfa (the thresholds'
+    # closed forms: Richards 2005 for CA, Rohling 1983 for OS), within +-5 sigma of a binomial count
+    # (common practice). Neighbouring cells of a windowed map are correlated, which widens the count's
+    # spread somewhat beyond the binomial; 5 sigma leaves room for that.
     settings = ProcessingSettings(cfar_pfa=1e-3)
     pipe = Pipeline(sensor, settings)
     raw = Cfar(CfarSettings(**{**pipe.cfar.settings.__dict__, "local_max": False}),
@@ -246,8 +248,8 @@ def test_false_alarm_rate_on_noise_frames(sensor):
         det = raw.detect(pipe.detection_map)
         crossings += len(det)
         cells += (raw._r_hi - raw._r_lo) * pipe.detection_map.shape[1]
-    rate = crossings / cells
-    assert 0.5e-3 <= rate <= 2e-3, rate
+    expected = cells * 1e-3
+    assert abs(crossings - expected) <= 5 * math.sqrt(expected * (1 - 1e-3)), (crossings, expected)
 
 
 def albersheim_snr_db(pd: float, pfa: float, n: int) -> float:
@@ -380,7 +382,8 @@ def test_point_kernel_matches_the_bound_functions(layout):
     doppler_hz = rng.uniform(-3e3, 3e3, n_det)
     bin_m, bias, half_wl = 0.0469, 0.012, lam / 2
     out = np.empty(n_pts, POINT_DTYPE)
-    fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl, cell_snr, element_snr,
+    half_wl_det = half_wl * (1 + rng.uniform(-1e-3, 1e-3, n_det))   # each detection's echo frequency
+    fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl_det, cell_snr, element_snr,
                 sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), np.empty(n_det),
                 out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
 
@@ -396,7 +399,7 @@ def test_point_kernel_matches_the_bound_functions(layout):
     np.testing.assert_allclose(out["x_m"], rng_m * u_dir[:, 0], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["y_m"], rng_m * u_dir[:, 1], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["z_m"], rng_m * u_dir[:, 2], rtol=1e-5, atol=1e-6)
-    np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl, rtol=1e-6)
+    np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl_det[det_index], rtol=1e-6)
     np.testing.assert_allclose(out["snr_db"], 10 * np.log10(cell_snr[det_index] * share), rtol=1e-5)
     np.testing.assert_allclose(out["sigma_range_m"], sigma_r[det_index], rtol=1e-6)
     np.testing.assert_allclose(out["sigma_velocity_mps"], sigma_v[det_index], rtol=1e-6)
