@@ -89,7 +89,9 @@ def test_velocity_bound_from_the_slow_time_signal():
     # over the loops: s_m = A exp(j (2 pi (2 v / lambda) m T_loop + phi)), lambda at the centre of the
     # sampled sweep, T_loop = slots x chirp period (TDM)
     sensor = _yard_like()
-    f_centre = sensor.start_frequency_hz + sensor.slope_hz_per_s * (
+    sn = sensor
+    f_c = sn.start_frequency_hz
+    f_centre = f_c + sensor.slope_hz_per_s * (
         sensor.adc_start_delay_s + 0.5 * sensor.samples_per_chirp / sensor.sample_rate_hz)
     lam = C / f_centre
     t_loop = sensor.n_tx * sensor.chirp_period_s

@@ -136,8 +136,9 @@ class Pipeline:
         self.range_resolution_m = sensor.range_resolution_m
         self.velocity_resolution_mps = sensor.velocity_resolution_mps
         self.half_wavelength_m = sensor.wavelength_m / 2.0
-        fs = sensor.sample_rate_hz
-        self._mean_sweep_hz = sensor.start_frequency_hz + sensor.slope_hz_per_s * (
+        sn = sensor
+        f0, fs = sn.start_frequency_hz, sn.sample_rate_hz   # f0 = f_c, the first frequency of the ramp
+        self._mean_sweep_hz = f0 + sensor.slope_hz_per_s * (
             sensor.adc_start_delay_s + (sensor.samples_per_chirp - 1) / (2.0 * fs))
         self._slope_hz_per_m = 2.0 * sensor.slope_hz_per_s / SPEED_OF_LIGHT_MPS   # S tau per metre of range
         self._crb_unit = crb_unit_covariance(self.virtual_positions_m, sensor.wavelength_m)
