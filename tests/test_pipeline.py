@@ -159,6 +159,29 @@ def test_doppler_compensation_removes_angle_bias(sensor, velocity_mps):
     assert abs(off["azimuth_deg"] - 15.0) + abs(off["elevation_deg"] - 5.0) > 1.0
 
 
+@pytest.mark.parametrize("velocity_mps", [-3.1, 4.4])
+def test_uncompensated_slot_phase_is_the_predicted_doppler_step(sensor, velocity_mps):
+    # Without compensation, TX k's virtual channels carry the Doppler phase of its slot delay,
+    # 2 pi f_d s_k T_c with f_d = 2 v / lambda (common practice). At boresight the channels' own phases
+    # agree (far field), so the ratio of TX k's block to TX 0's block, receiver by receiver, is exactly
+    # that step.
+    text = scene_of(dict(range_m=10.3, azimuth_deg=0.0, elevation_deg=0.0, radial_velocity_mps=velocity_mps,
+                         snr_db=10.0))
+    sim = Simulator(sensor, parse_scene(text), noise=False)
+    pipe = Pipeline(sensor, ProcessingSettings(doppler_compensation=False))
+    seen = []
+    estimate = pipe.angle.estimate
+    pipe.angle.estimate = lambda snaps: (seen.append(np.array(snaps)), estimate(snaps))[1]
+    pipe.process(sim.frame(0))
+    snap = seen[0][np.argmax(np.abs(seen[0]).sum(axis=1))]
+    n_rx = sensor.n_rx
+    f_d = 2.0 * sim.truth(0)[0][9] / sensor.wavelength_m
+    for k in range(1, sensor.n_tx):
+        measured = np.angle(np.sum(snap[k * n_rx:(k + 1) * n_rx] * np.conj(snap[:n_rx])))
+        predicted = 2 * np.pi * f_d * k * sensor.chirp_period_s
+        assert abs(np.angle(np.exp(1j * (measured - predicted)))) < 0.02, (k, measured, predicted)
+
+
 @pytest.mark.parametrize("factor", [-2.8, -1.9, -1.3, 1.2, 1.7, 2.6, 2.95])
 def test_velocity_unfolded_up_to_ntx_times_tdm_limit(sensor, factor):
     # Unambiguous TDM velocity lambda / (4 N_tx T_c) (Richards 2005); unfolding tests the N_tx Doppler
