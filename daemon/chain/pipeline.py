@@ -54,12 +54,10 @@ def log_parabola_offset(lo, mid, hi):
 
 
 @numba.njit(cache=True, nogil=True)
-def _refine_cells(power, range_bin, doppler_col, range_frac, doppler_frac, doppler_fft_col):
+def _start_offsets(power, range_bin, doppler_col, range_frac, doppler_frac):
     """Per detection: fractional range and Doppler offsets by log-parabolic interpolation of the
-    map (none at the first and last range bin; circular in Doppler), and the unshifted Doppler
-    column of the spectrum."""
+    map (none at the first and last range bin; circular in Doppler), where the refinement starts."""
     n_range, n_dop = power.shape
-    half = n_dop // 2
     for i in range(range_bin.shape[0]):
         r, d = range_bin[i], doppler_col[i]
         p = power[r, d]
@@ -68,7 +66,6 @@ def _refine_cells(power, range_bin, doppler_col, range_frac, doppler_frac, doppl
         else:
             range_frac[i] = log_parabola_offset(power[r - 1, d], p, power[r + 1, d])
         doppler_frac[i] = log_parabola_offset(power[r, (d - 1) % n_dop], p, power[r, (d + 1) % n_dop])
-        doppler_fft_col[i] = (d - half) % n_dop
 
 
 def _next_pow2(n: int) -> int:
@@ -230,8 +227,7 @@ class Pipeline:
 
         n = len(r)
         dr, dd = np.empty(n, np.float32), np.empty(n, np.float32)
-        d_fft = np.empty(n, np.int64)
-        _refine_cells(power, r, d, dr, dd, d_fft)
+        _start_offsets(power, r, d, dr, dd)
         ref = self.refiner.refine(spec, power, r, d, dr, dd, noise, snr)
         snaps, doppler_hz = self.mimo.resolve(ref.values, ref.doppler_bin + dop.fft_size // 2, self.angle.coherence)
         t4 = time.perf_counter()

@@ -101,6 +101,14 @@ class Axis:
         self.table_reach = COMBINED_CELLS // 2 + SELF_SPAN + 2
         grid = np.arange(-self.table_reach * TABLE_STEPS, self.table_reach * TABLE_STEPS + 1) / TABLE_STEPS
         self.grid = grid
+        # |a'| / |a''(0)| of the window's normalised amplitude response a = A / A(0), its largest
+        # over d - 1/2 .. d + 1/2 for whole FFT bins d (exact sums): the peak shift per unit
+        # amplitude of a neighbour about d bins away
+        fine = np.arange(-4, 8 * (self.fft_size // 2) + 5) / 8.0
+        arg = 2.0 * np.pi / self.fft_size
+        slope = np.abs(np.sin(arg * np.multiply.outer(fine, self.t)) @ (w * arg * self.t))
+        slope = slope / np.sum(w * (arg * self.t) ** 2)
+        self.window_slope = np.array([slope[8 * d: 8 * d + 9].max() for d in range(self.fft_size // 2 + 1)])
         self.table = np.cos(2.0 * np.pi * np.multiply.outer(grid, self.t) / self.fft_size) @ w
 
     def noise_covariance(self) -> np.ndarray:
@@ -110,9 +118,6 @@ class Axis:
         d = np.subtract.outer(np.arange(self.combined), np.arange(self.combined))
         return np.exp(-2j * np.pi * d[..., None] * n / self.fft_size) @ (self.window ** 2)
 
-    def sigma_bins(self, var_omega: np.ndarray) -> np.ndarray:
-        """Standard deviation in FFT bins of an estimate of variance var_omega (rad/sample)^2."""
-        return np.sqrt(var_omega) * self.fft_size / (2.0 * np.pi)
 
 
 @numba.njit(cache=True, nogil=True)
@@ -286,18 +291,24 @@ def _self_response(table, reach, offset, out):
 
 
 @numba.njit(cache=True, nogil=True)
-def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, out):
-    """Predicted flat-taper peak shift (unpadded bins) from the map's energy along the refined axis:
-    sum over cells beyond the main lobe of SIDELOBE_SLOPE sqrt(excess / P0) / |Delta| (Delta in
-    unpadded bins), excess = cell - NOISE_EXCESS noise - 2 x the target's own window response there
-    (p_self[i, Delta + guard_max], relative to P0). `col` is the detection's map column (shifted)."""
+def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, window_slope, bias_flat,
+                    bias_window):
+    """Predicted peak shift (unpadded bins) from the map's energy along the refined axis, for each
+    taper: a neighbour of relative amplitude rho at Delta FFT bins moves the peak of |F|^2 by at most
+    rho |a'(Delta)| / |a''(0)| (a the taper's normalised amplitude response; the linearised peak,
+    common practice): for the flat taper, a rectangular window, that is SIDELOBE_SLOPE rho / Delta
+    unpadded bins; for the window, window_slope[|Delta|] (FFT bins). rho = sqrt(excess / P0) at each
+    peak of the map along the axis beyond the main lobe (one term per neighbour), excess = cell - NOISE_EXCESS noise - 2 x the target's own window response
+    there (p_self, relative to P0); the result is the RMS over the neighbour's phase. `col` is the
+    detection's map column (shifted)."""
     n_r, n_d = power.shape
     half = p_self.shape[1] // 2
     for i in range(k0.shape[0]):
         p0 = max(np.float64(power[k0[i], col[i]]), 1e-30)
         n_axis = n_r if along_range else n_d
         centre = k0[i] if along_range else col[i]
-        b = 0.0
+        bf = 0.0
+        bw = 0.0
         for q in range(n_axis):
             d = q - centre
             if not along_range:   # Doppler is circular
@@ -307,32 +318,46 @@ def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, 
                     d += n_d
             if abs(d) <= guard:
                 continue
-            p = np.float64(power[q, col[i]] if along_range else power[k0[i], q])
+            if along_range:
+                p = np.float64(power[q, col[i]])
+                lo = np.float64(power[q - 1, col[i]]) if q > 0 else 0.0
+                hi = np.float64(power[q + 1, col[i]]) if q < n_r - 1 else 0.0
+            else:
+                p = np.float64(power[k0[i], q])
+                lo = np.float64(power[k0[i], (q - 1) % n_d])
+                hi = np.float64(power[k0[i], (q + 1) % n_d])
+            if p < lo or p < hi:   # one term per neighbour: at its peak along the axis
+                continue
             own = p_self[i, d + half] * p0 if abs(d) <= half else 0.0
             excess = p - NOISE_EXCESS * noise[i] - 2.0 * own
             if excess > 0.0:
-                b += SIDELOBE_SLOPE * np.sqrt(excess / p0) / (abs(d) / padding)
-        out[i] = b
+                rho = np.sqrt(excess / p0)
+                bf += SIDELOBE_SLOPE * rho / (abs(d) / padding)
+                bw += rho * window_slope[min(abs(d), window_slope.shape[0] - 1)] / padding
+        # RMS over the neighbour's unknown phase: the shift goes as cos(phase), E cos^2 = 1/2
+        bias_flat[i] = bf * np.sqrt(0.5)
+        bias_window[i] = bw * np.sqrt(0.5)
 
 
 @numba.njit(cache=True, nogil=True)
 def _decide(power, k0, col, along_range, table, reach, offset, noise_cell, s_first, var_factor, guard, padding,
-            fft_size, p_self, bias, mode):
+            fft_size, window_slope, p_self, bias_window, bias, mode):
     """Per detection: the target's own response across SELF_SPAN cells (p_self scratch), the
-    predicted flat-taper neighbour bias (unpadded bins), and the taper with the smaller expected
-    squared error: FLAT when sigma_flat^2 + B^2 < sigma_window^2 (bias[i] = B then, else 0)."""
+    predicted neighbour shift of each taper (unpadded bins), and the taper with the smaller expected
+    squared error, variance plus shift^2; bias[i] is the chosen taper's predicted shift."""
     _self_response(table, reach, offset, p_self)
-    _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, guard, padding, bias)
+    _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, guard, padding, window_slope, bias,
+                    bias_window)
     to_u = fft_size / (2.0 * np.pi) / padding      # rad/sample -> unpadded bins
     for i in range(k0.shape[0]):
         s = max(s_first[i], 1e-12)
         var_flat = var_factor[FLAT] / (2.0 * s) * to_u * to_u
         var_win = var_factor[WINDOWED] / (2.0 * s) * to_u * to_u
-        if var_flat + bias[i] * bias[i] < var_win:
+        if var_flat + bias[i] * bias[i] < var_win + bias_window[i] * bias_window[i]:
             mode[i] = FLAT
         else:
             mode[i] = WINDOWED
-            bias[i] = 0.0
+            bias[i] = bias_window[i]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -404,6 +429,7 @@ class Refiner:
         self._gain = {name: np.empty(n) for name in ("range", "doppler")}
         self._mode = np.empty(n, np.int64)
         self._bias = np.empty(n)
+        self._bias_window = np.empty(n)
         self._p_self = np.empty((n, 2 * SELF_SPAN + 1))
 
     # ---- one axis ----------------------------------------------------------------------------
@@ -435,7 +461,7 @@ class Refiner:
         mode, bias = self._mode[:n_det], self._bias[:n_det]
         _decide(power, k0, col, along_range, axis.table, float(axis.table_reach), nu0 - (k0 if along_range else l0),
                 noise_cell, s_first, axis.var_factor, axis.guard, axis.padding, float(axis.fft_size),
-                self._p_self[:n_det], bias, mode)
+                axis.window_slope, self._p_self[:n_det], self._bias_window[:n_det], bias, mode)
         nu, values = np.empty(n_det), self._values[:n_det]
         _newton(samples, axis.taper, mode, axis.t, nu0, float(axis.fft_size), 0.5 * axis.padding, NEWTON_STEPS,
                 self._scratch, nu, values)
