@@ -23,7 +23,8 @@ The CRC is the common CRC-32 of zlib.crc32 (reflected polynomial 0xEDB88320, ini
 0xFFFFFFFF; check value of b"123456789" is 0xCBF43926).
 
 Both classes stream: the writer appends and flushes one frame at a time, the reader indexes record
-headers on open (seeking over payloads) and reads one payload per request with one seek and one
+headers on open (seeking over payloads; it reads a payload only to check the record before a
+discontinuity and the last record) and reads one payload per request with one seek and one
 readinto.  Neither is thread-safe; use one object per thread.
 """
 
@@ -35,6 +36,7 @@ import json
 import math
 import operator
 import os
+import re
 import struct
 import zlib
 from typing import Any, Iterator, NamedTuple
@@ -55,6 +57,8 @@ __all__ = [
     "CaptureReader",
     "FrameIndexError",
     "CorruptFrameError",
+    "COUNT_NAMES",
+    "MAX_JSON_DEPTH",
 ]
 
 MAGIC = b"CUBECAST"
@@ -89,6 +93,13 @@ RECORD_HEADER_SIZE = _RECORD.size  # 56
 """Size in bytes of one frame record header."""
 
 assert _RECORD_BODY.size == 52 and RECORD_HEADER_SIZE == 56 and _FILE_PREFIX.size == 14
+
+MAX_JSON_DEPTH = 64
+"""Deepest nesting of arrays and objects the JSON header may have (writer and reader refuse more)."""
+
+COUNT_NAMES = ("lost_sync", "damaged", "unusable", "truncated_tail", "repeated", "sequence_backwards",
+               "corrupt_skipped", "unindexed_bytes")
+"""Keys of CaptureReader.counts (see there)."""
 
 _U32_MAX = 0xFFFFFFFF
 _U64_MAX = 0xFFFFFFFFFFFFFFFF
@@ -127,6 +138,14 @@ class _Entry(NamedTuple):
     payload_crc32: int
 
 
+class _Scanned(NamedTuple):
+    """A record whose header validated, as the scan met it."""
+
+    offset: int  # byte offset of its header
+    entry: _Entry  # (dtype None for an unknown code)
+    index: int | None  # its frame index; None when it is not in the index
+
+
 def _dtype_code(dtype: np.dtype) -> int | None:
     """Format code of a numpy dtype (any byte order), or None if the format cannot store it."""
     for code, stored in DTYPE_CODES.items():
@@ -150,6 +169,16 @@ def _json_default(obj: Any) -> Any:
     raise TypeError(f"a value of type {type(obj).__name__}")
 
 
+_JSON_STRING = re.compile(rb'"[^"\\]*(?:\\.[^"\\]*)*"')
+
+
+def _json_depth(data: bytes) -> int:
+    """Deepest nesting of arrays and objects in JSON text (brackets inside strings do not count)."""
+    bare = np.frombuffer(_JSON_STRING.sub(b"", data), np.uint8)
+    step = np.isin(bare, (0x5B, 0x7B)).astype(np.int64) - np.isin(bare, (0x5D, 0x7D))
+    return int(np.cumsum(step).max(initial=0))
+
+
 def _encode_json_header(sensor_toml: Any, ground_truth: Any, metadata: Any, created_utc: str | None = None) -> bytes:
     if not isinstance(sensor_toml, str):
         raise CubecastError(f"capture: sensor_toml must be a str (the sensor description text), got {type(sensor_toml).__name__}")
@@ -163,6 +192,9 @@ def _encode_json_header(sensor_toml: Any, ground_truth: Any, metadata: Any, crea
     }
     try:
         text = json.dumps(obj, default=_json_default, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+    except RecursionError:
+        raise CubecastError(f"capture: ground_truth/metadata nest deeper than the JSON header allows "
+                            f"({MAX_JSON_DEPTH} levels)") from None
     except TypeError as exc:
         raise CubecastError(f"capture: ground_truth/metadata cannot be stored as JSON: {exc}") from None
     except ValueError as exc:
@@ -171,6 +203,10 @@ def _encode_json_header(sensor_toml: Any, ground_truth: Any, metadata: Any, crea
             "use null instead"
         ) from None
     data = text.encode("utf-8")
+    depth = _json_depth(data)
+    if depth > MAX_JSON_DEPTH:
+        raise CubecastError(f"capture: ground_truth/metadata nest {depth} levels deep (the header object counts "
+                            f"as one); the JSON header allows at most {MAX_JSON_DEPTH}")
     if len(data) > _U32_MAX:
         raise CubecastError(f"capture: JSON header is {len(data)} bytes, the format allows at most {_U32_MAX}")
     return data
@@ -305,33 +341,53 @@ class CaptureWriter:
 class CaptureReader:
     """Read a capture file with O(1) random access to its frames.
 
-    CaptureReader(path, skip_corrupt=False)
+    CaptureReader(path, skip_corrupt=False, skip_repeated=False)
 
     Opening reads the file header and scans the record headers (seeking over payloads) to index
-    the frames.  Problems found while scanning are listed in `problems` instead of raising:
+    the frames.  Problems found while scanning are listed in `problems` instead of raising, and
+    counted in `counts` (one reason per line):
 
-    - a truncated tail (file cut inside a record header or payload): the incomplete record is not
-      a frame; the complete frames before it read normally;
-    - a record header whose own CRC fails: the reader scans forward byte by byte for the next
-      record marker whose header CRC validates and continues from there.  The record(s) in the
-      skipped span are lost, and the frames after it are numbered consecutively (frame indexes
-      count readable frames; `sequence` keeps the writer's numbering);
-    - a record header with a valid CRC that this reader cannot use (unknown dtype code, bad ndim,
-      byte count not matching the shape): skipped exactly, using its byte count.
+    - `truncated_tail`: the file is cut inside a record header or payload; the incomplete record
+      is not a frame, the complete frames before it read normally;
+    - `lost_sync`: a record header whose own CRC fails (or lacks its marker): the reader scans
+      forward byte by byte for the next record marker whose header CRC validates and continues
+      from there.  The record(s) in the skipped span are lost, and the frames after it are
+      numbered consecutively (frame indexes count readable frames; `sequence` keeps the writer's
+      numbering);
+    - `damaged`: a record with a valid header whose declared length is proven wrong: its payload
+      fails its CRC and a valid record header starts inside the payload it declares (bytes were
+      deleted from it), or its payload would run past the end of the file while a valid header
+      follows.  It is dropped and the walk goes on from that header, so only the damaged record
+      is lost.  The payload is checked only where the walk meets a discontinuity (a header that
+      does not validate, a sequence other than the previous + 1, the end of the file);
+    - `unusable`: a record header with a valid CRC that this reader cannot use (unknown dtype
+      code, bad ndim, byte count not matching the shape): skipped exactly, using its byte count;
+    - `repeated`: a frame whose header fields and payload CRC equal an earlier frame's (a copy of
+      that record).  It stays in the index; `repeat_of(i)` names the original, and iteration with
+      skip_repeated=True passes over it;
+    - `sequence_backwards`: a frame (not a copy) whose sequence is not after the previous
+      frame's; it is read normally (a recorder writes a restarted source's frames from 0 again).
+
+    `counts["unindexed_bytes"]` is the number of bytes after the file header that belong to no
+    indexed frame (0 for an undamaged file).
 
     A bad magic, an unknown version or a corrupt/truncated JSON header raises CubecastError.
 
     A payload whose CRC fails raises CorruptFrameError (a CubecastError naming the frame index and
     the file) when that frame is read.  With skip_corrupt=True, iteration skips such frames and records each skip in
-    `problems`; random access (`reader[i]`, `read`, `read_into`) always raises.
+    `problems` (counted as `corrupt_skipped`); random access (`reader[i]`, `read`, `read_into`) always raises.
     """
 
-    def __init__(self, path: str | os.PathLike, skip_corrupt: bool = False) -> None:
+    def __init__(self, path: str | os.PathLike, skip_corrupt: bool = False, skip_repeated: bool = False) -> None:
         self._path = os.fspath(path)
         self._skip_corrupt = bool(skip_corrupt)
+        self._skip_repeated = bool(skip_repeated)
         self._problems: list[str] = []
+        self._counts: dict[str, int] = dict.fromkeys(COUNT_NAMES, 0)
         self._reported_corrupt: set[int] = set()
         self._entries: list[_Entry] = []
+        self._keys: list[bytes] = []  # per entry: the header fields that make a copy a copy
+        self._repeat_of: dict[int, int] = {}
         try:
             self._file: io.FileIO | None = open(self._path, "rb", buffering=0)
         except OSError as exc:
@@ -340,6 +396,7 @@ class CaptureReader:
             self._size = os.fstat(self._file.fileno()).st_size
             data_start = self._read_file_header()
             self._scan(data_start)
+            self._check_order(data_start)
         except BaseException:
             self._file.close()
             self._file = None
@@ -387,9 +444,16 @@ class CaptureReader:
         if crc != stored_crc:
             raise self._fail(f"JSON header corrupt: CRC-32 mismatch (stored 0x{stored_crc:08X}, computed 0x{crc:08X})")
         try:
-            header = json.loads(json_bytes.decode("utf-8"))
+            text = json_bytes.decode("utf-8")
+            depth = _json_depth(json_bytes)
+            if depth > MAX_JSON_DEPTH:
+                raise self._fail(f"JSON header nests arrays/objects {depth} levels deep; at most {MAX_JSON_DEPTH} "
+                                 "allowed")
+            header = json.loads(text)
         except (UnicodeDecodeError, ValueError) as exc:
             raise self._fail(f"JSON header is not valid UTF-8 JSON: {exc}") from None
+        except RecursionError:  # not reached within MAX_JSON_DEPTH, unless called from deep inside a stack
+            raise self._fail(f"JSON header nests too deep to parse (at most {MAX_JSON_DEPTH} levels allowed)") from None
         if not isinstance(header, dict):
             raise self._fail(f"JSON header must be a JSON object, got {type(header).__name__}")
         sensor_toml = header.get("sensor_toml")
@@ -412,6 +476,10 @@ class CaptureReader:
         return json_end + 4
 
     # ---- record scan -------------------------------------------------------------------------
+    def _note(self, reason: str, text: str) -> None:
+        self._counts[reason] += 1
+        self._problems.append(text)
+
     @staticmethod
     def _header_valid(hdr: bytes) -> bool:
         return (
@@ -420,87 +488,155 @@ class CaptureReader:
             and zlib.crc32(hdr[: _RECORD_BODY.size]) == _U32.unpack_from(hdr, _RECORD_BODY.size)[0]
         )
 
-    def _resync(self, start: int) -> int | None:
-        """Offset >= start of the next record marker whose header CRC validates, or None."""
+    def _resync(self, start: int, stop: int | None = None) -> int | None:
+        """Offset in start..stop-1 of the first record marker whose header CRC validates, or None."""
         assert self._file is not None
-        keep = len(RECORD_MARKER) - 1
+        stop = self._size if stop is None else min(stop, self._size)
+        keep = len(RECORD_MARKER) - 1  # chunks overlap so that a marker across a boundary is seen
         pos = start
-        carry = b""
-        while pos < self._size:
-            data = self._read_exact_at(pos, min(_RESYNC_CHUNK_BYTES, self._size - pos))
-            if not data:
-                break
-            buf = carry + data
-            base = pos - len(carry)
+        while pos < stop:
+            n = min(_RESYNC_CHUNK_BYTES, stop - pos)  # candidates start in pos..pos+n-1
+            buf = self._read_exact_at(pos, n + keep)
             i = buf.find(RECORD_MARKER)
-            while i != -1:
-                cand = base + i
+            while -1 < i < n:
+                cand = pos + i
                 if cand + RECORD_HEADER_SIZE > self._size:
                     return None
                 if self._header_valid(self._read_exact_at(cand, RECORD_HEADER_SIZE)):
                     return cand
                 i = buf.find(RECORD_MARKER, i + 1)
-            carry = buf[-keep:]
-            pos += len(data)
+            pos += n
         return None
 
+    def _payload_crc(self, e: _Entry) -> int:
+        crc = 0
+        for start in range(e.payload_offset, e.payload_offset + e.nbytes, _RESYNC_CHUNK_BYTES):
+            crc = zlib.crc32(self._read_exact_at(start, min(_RESYNC_CHUNK_BYTES, e.payload_offset + e.nbytes - start)), crc)
+        return crc
+
+    def _overlap(self, rec: _Scanned, limit: int) -> int | None:
+        """Offset of a valid record header inside `rec`'s declared payload (before `limit`) when that
+        payload fails its CRC: proof that bytes were lost from `rec`. None otherwise (an intact
+        payload is never searched: it may hold anything)."""
+        if self._payload_crc(rec.entry) == rec.entry.payload_crc32:
+            return None
+        return self._resync(rec.entry.payload_offset, limit)
+
+    def _drop_damaged(self, rec: _Scanned, nxt: int, why: str) -> None:
+        what = f"sequence {rec.entry.sequence}"
+        if rec.index is not None:
+            assert rec.index == len(self._entries) - 1
+            self._entries.pop()
+            self._keys.pop()
+            what = f"frame index {rec.index}, {what}"
+        self._note("damaged",
+            f"record at byte offset {rec.offset} ({what}) is damaged: {why} and a valid record header starts at "
+            f"byte offset {nxt}, inside the {rec.entry.nbytes} payload bytes it declares (bytes were lost from it); "
+            f"dropped, frames after it are numbered from {len(self._entries)}")
+
     def _scan(self, pos: int) -> None:
+        """Walk the records from `pos`.  Before a discontinuity (a header that does not validate, a
+        sequence other than the previous one's + 1, the end of the file) the previous record's
+        payload CRC is checked: when it fails and a valid header starts inside its declared payload,
+        bytes were deleted from it; it is dropped and the walk goes on from that header, so the
+        record after a damaged one is not lost."""
+        size = self._size
+        prev: _Scanned | None = None  # the record that ends at pos (the walk arrived by its length)
+        while pos < size or prev is not None:
+            hdr = self._read_exact_at(pos, min(RECORD_HEADER_SIZE, size - pos)) if pos < size else b""
+            valid = self._header_valid(hdr)
+            if prev is not None and (not valid or _RECORD.unpack(hdr)[1] != prev.entry.sequence + 1):
+                nxt = self._overlap(prev, pos)
+                if nxt is not None:
+                    self._drop_damaged(prev, nxt, "its payload fails its CRC-32")
+                    pos, prev = nxt, None
+                    continue
+            prev = None
+            if pos >= size:
+                return
+            if valid:
+                pos, prev = self._record(pos, hdr)
+            else:
+                pos = self._lost_sync(pos, hdr)
+
+    def _lost_sync(self, pos: int, hdr: bytes) -> int:
+        """Where to go on after the unreadable header at `pos` (the file size: nowhere)."""
+        remaining = self._size - pos
+        n = len(self._entries)
+        if len(hdr) < RECORD_HEADER_SIZE:
+            self._note("truncated_tail",
+                f"truncated tail at byte offset {pos}: {remaining} bytes, less than a {RECORD_HEADER_SIZE}-byte "
+                f"record header; frame index {n} is incomplete and was ignored")
+            return self._size
+        why = "record marker missing" if hdr[:4] != RECORD_MARKER else "header CRC-32 mismatch"
+        nxt = self._resync(pos + 1)
+        if nxt is None:
+            self._note("lost_sync",
+                f"corrupt record header at byte offset {pos} ({why}) where frame index {n} was expected; "
+                f"no valid record header in the remaining {remaining} bytes, ignored to end of file")
+            return self._size
+        self._note("lost_sync",
+            f"corrupt record header at byte offset {pos} ({why}) where frame index {n} was expected; "
+            f"resynchronised at byte offset {nxt} ({nxt - pos} bytes skipped); frames after it are numbered from {n}")
+        return nxt
+
+    def _record(self, pos: int, hdr: bytes) -> tuple[int, _Scanned | None]:
+        """Index the record whose header at `pos` validated; (where the next one starts, the record)."""
         size = self._size
         entries = self._entries
-        while pos < size:
-            remaining = size - pos
-            if remaining < RECORD_HEADER_SIZE:
-                self._problems.append(
-                    f"truncated tail at byte offset {pos}: {remaining} bytes, less than a {RECORD_HEADER_SIZE}-byte "
-                    f"record header; frame index {len(entries)} is incomplete and was ignored"
-                )
-                return
-            hdr = self._read_exact_at(pos, RECORD_HEADER_SIZE)
-            if not self._header_valid(hdr):
-                why = "record marker missing" if hdr[:4] != RECORD_MARKER else "header CRC-32 mismatch"
-                nxt = self._resync(pos + 1)
-                if nxt is None:
-                    self._problems.append(
-                        f"corrupt record header at byte offset {pos} ({why}) where frame index {len(entries)} "
-                        f"was expected; no valid record header in the remaining {remaining} bytes, ignored to end of file"
-                    )
-                    return
-                self._problems.append(
-                    f"corrupt record header at byte offset {pos} ({why}) where frame index {len(entries)} "
-                    f"was expected; resynchronised at byte offset {nxt} ({nxt - pos} bytes skipped); "
-                    f"frames after it are numbered from {len(entries)}"
-                )
-                pos = nxt
+        (_, seq, ts, code, ndim, _reserved, d0, d1, d2, d3, nbytes, pcrc, _hcrc) = _RECORD.unpack(hdr)
+        payload_offset = pos + RECORD_HEADER_SIZE
+        end = payload_offset + nbytes
+        dims = (d0, d1, d2, d3)
+        dtype = DTYPE_CODES.get(code)
+        entry = _Entry(payload_offset, seq, ts, dtype, tuple(dims[: min(ndim, MAX_NDIM)]), nbytes, pcrc)
+        if end > size:
+            nxt = self._resync(payload_offset)
+            if nxt is not None:
+                self._drop_damaged(_Scanned(pos, entry, None), nxt, f"its payload would end {end - size} bytes "
+                                                                     "past the end of the file")
+                return nxt, None
+            self._note("truncated_tail",
+                f"truncated tail at byte offset {pos}: payload of frame index {len(entries)} (sequence {seq}) "
+                f"has {size - payload_offset} of {nbytes} bytes; the frame was ignored")
+            return size, None
+        bad = None
+        if dtype is None:
+            bad = f"unknown dtype code {code}"
+        elif ndim > MAX_NDIM:
+            bad = f"ndim {ndim} above {MAX_NDIM}"
+        elif any(dims[ndim:]):
+            bad = f"shape entries beyond ndim {ndim} are not zero: {dims}"
+        elif math.prod(dims[:ndim]) * dtype.itemsize != nbytes:
+            bad = f"payload byte count {nbytes} does not match shape {dims[:ndim]} x {dtype.itemsize} bytes"
+        if bad is not None:
+            self._note("unusable",
+                f"record at byte offset {pos} (sequence {seq}) is unusable ({bad}); skipped, "
+                f"frames after it are numbered from {len(entries)}")
+            return end, _Scanned(pos, entry, None)
+        entries.append(entry)
+        self._keys.append(hdr[4:22] + hdr[24:52])  # every field but the marker, reserved and header CRC
+        return end, _Scanned(pos, entry, len(entries) - 1)
+
+    def _check_order(self, data_start: int) -> None:
+        """Repeated records and sequences that do not go forward; the byte count outside the index."""
+        first: dict[bytes, int] = {}
+        last_seq = None
+        for i, (e, key) in enumerate(zip(self._entries, self._keys)):
+            j = first.setdefault(key, i)
+            if j != i:
+                self._repeat_of[i] = j
+                self._note("repeated",
+                    f"frame index {i} (sequence {e.sequence}, byte offset {e.payload_offset - RECORD_HEADER_SIZE}) "
+                    f"repeats frame index {j}: the same header fields and payload CRC-32, a copy of that record")
                 continue
-            (_, seq, ts, code, ndim, _reserved, d0, d1, d2, d3, nbytes, pcrc, _hcrc) = _RECORD.unpack(hdr)
-            payload_offset = pos + RECORD_HEADER_SIZE
-            end = payload_offset + nbytes
-            if end > size:
-                self._problems.append(
-                    f"truncated tail at byte offset {pos}: payload of frame index {len(entries)} (sequence {seq}) "
-                    f"has {size - payload_offset} of {nbytes} bytes; the frame was ignored"
-                )
-                return
-            dims = (d0, d1, d2, d3)
-            dtype = DTYPE_CODES.get(code)
-            bad = None
-            if dtype is None:
-                bad = f"unknown dtype code {code}"
-            elif ndim > MAX_NDIM:
-                bad = f"ndim {ndim} above {MAX_NDIM}"
-            elif any(dims[ndim:]):
-                bad = f"shape entries beyond ndim {ndim} are not zero: {dims}"
-            elif math.prod(dims[:ndim]) * dtype.itemsize != nbytes:
-                bad = f"payload byte count {nbytes} does not match shape {dims[:ndim]} x {dtype.itemsize} bytes"
-            if bad is not None:
-                self._problems.append(
-                    f"record at byte offset {pos} (sequence {seq}) is unusable ({bad}); skipped, "
-                    f"frames after it are numbered from {len(entries)}"
-                )
-                pos = end
-                continue
-            entries.append(_Entry(payload_offset, seq, ts, dtype, tuple(dims[:ndim]), nbytes, pcrc))
-            pos = end
+            if last_seq is not None and e.sequence <= last_seq:
+                self._note("sequence_backwards",
+                    f"frame index {i} (byte offset {e.payload_offset - RECORD_HEADER_SIZE}): sequence {e.sequence} "
+                    f"is not after the previous frame's {last_seq} (a restarted source, or records out of order)")
+            last_seq = e.sequence
+        indexed = sum(RECORD_HEADER_SIZE + e.nbytes for e in self._entries)
+        self._counts["unindexed_bytes"] = self._size - data_start - indexed
 
     # ---- public API --------------------------------------------------------------------------
     @property
@@ -533,8 +669,21 @@ class CaptureReader:
         return list(self._problems)
 
     @property
+    def counts(self) -> dict[str, int]:
+        """Problems by reason (COUNT_NAMES; a copy; `corrupt_skipped` grows as iteration skips frames)."""
+        return dict(self._counts)
+
+    def repeat_of(self, index: int) -> int | None:
+        """Index of the earlier frame that frame `index` is a copy of, or None."""
+        return self._repeat_of.get(self._entry(index)[0])
+
+    @property
     def skip_corrupt(self) -> bool:
         return self._skip_corrupt
+
+    @property
+    def skip_repeated(self) -> bool:
+        return self._skip_repeated
 
     @property
     def closed(self) -> bool:
@@ -611,8 +760,11 @@ class CaptureReader:
 
     def __iter__(self) -> Iterator[CaptureFrame]:
         """Frames in file order, one read at a time.  With skip_corrupt=True frames whose payload CRC
-        fails are skipped and listed in `problems`; otherwise the first such frame raises."""
+        fails are skipped and listed in `problems`; otherwise the first such frame raises.  With
+        skip_repeated=True copies of earlier frames (`repeat_of`) are passed over."""
         for j in range(len(self._entries)):
+            if self._skip_repeated and j in self._repeat_of:
+                continue
             try:
                 frame = self.read(j)
             except CorruptFrameError as exc:
@@ -620,7 +772,7 @@ class CaptureReader:
                     raise
                 if j not in self._reported_corrupt:
                     self._reported_corrupt.add(j)
-                    self._problems.append(f"skipped frame index {j}: {exc}")
+                    self._note("corrupt_skipped", f"skipped frame index {j}: {exc}")
                 continue
             yield frame
 

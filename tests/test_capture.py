@@ -402,7 +402,11 @@ def test_record_with_valid_crc_but_unknown_dtype_is_skipped_exactly(tmp_path):
         f.write(tail)
     with CaptureReader(p) as r:
         assert [f.sequence for f in r] == [100, 8]
-        assert len(r.problems) == 1 and "unknown dtype code 200" in r.problems[0]
+        assert "unknown dtype code 200" in r.problems[0]
+        # the appended frame's sequence 8 follows 100: reported as not going forward, read normally
+        assert "sequence 8 is not after the previous frame's 100" in r.problems[1] and len(r.problems) == 2
+        assert r.counts["unusable"] == 1 and r.counts["sequence_backwards"] == 1
+        assert r.counts["unindexed_bytes"] == RECORD_HEADER_SIZE + 4  # the unusable record, header and payload
 
 
 def test_bad_magic(tmp_path):
@@ -541,8 +545,22 @@ def test_property_round_trip(frames, truth):
     with tempfile.TemporaryDirectory() as d:
         p = os.path.join(d, "prop.cap")
         write_frames(p, frames, ground_truth=truth, metadata={"n": len(frames)})
+        # expected reports, from the frames as written: a copy repeats every header field (the
+        # timestamp's bits included) and the payload; any other frame whose sequence does not exceed
+        # the last non-copy's is reported as not going forward
+        seen, last, repeats, backwards = set(), None, [], 0
+        for k, (arr, seq, ts) in enumerate(frames):
+            key = (seq, struct.pack("<d", ts), np.dtype(arr.dtype).newbyteorder("<").str, arr.shape, arr.tobytes())
+            if key in seen:
+                repeats.append(k)
+                continue
+            seen.add(key)
+            backwards += last is not None and seq <= last
+            last = seq
         with CaptureReader(p) as r:
-            assert r.problems == []
+            assert r.counts == dict.fromkeys(r.counts, 0) | {"repeated": len(repeats), "sequence_backwards": backwards}
+            assert len(r.problems) == len(repeats) + backwards
+            assert [k for k in range(len(r)) if r.repeat_of(k) is not None] == repeats
             assert r.ground_truth == truth and r.metadata == {"n": len(frames)}
             assert len(r) == len(frames)
             for frame, (arr, seq, ts) in zip(r, frames):
