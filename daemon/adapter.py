@@ -188,8 +188,10 @@ class StreamAdapter:
     def bind(self) -> str:
         """Bind the publishing socket (before run, to learn the endpoint of tcp://...:*); returns it."""
         if self.publisher is None:
+            from .netio import command_publisher_security
             from .sources import AdcPublisher
-            self.publisher = AdcPublisher(self.sensor, self.pub_endpoint, context=self.context)
+            self.publisher = AdcPublisher(self.sensor, self.pub_endpoint, context=self.context,
+                                          **command_publisher_security())  # the command's keys / --insecure
         return self.publisher.endpoint
 
     def stats(self) -> dict:

@@ -66,14 +66,17 @@ def _simulate(args) -> int:
     scene = load_scene(args.scene)
     if args.out is None and args.pub is None:
         raise CubecastError("simulate: give --out CAPTURE or --pub ENDPOINT")
+    if args.pub is None and (args.server_key or args.client_keys or args.insecure):
+        raise CubecastError("--server-key, --client-keys and --insecure: only with --pub")
     if args.out:
         from .files import simulate_capture
         simulate_capture(sensor, scene, args.out, args.frames, args.seed, quantize=not args.no_quantize,
                          progress=logs.show_progress())
         log.info("wrote %d frames of '%s' to %s", args.frames, scene.name, args.out)
         return 0
-    from .sources import publish_simulation
-    return publish_simulation(sensor, scene, args.pub, frames=args.frames_live, seed=args.seed)
+    from .sources import publish_simulation, publisher_keys
+    return publish_simulation(sensor, scene, args.pub, frames=args.frames_live, seed=args.seed,
+                              keys=publisher_keys(args.server_key, args.client_keys), insecure=args.insecure)
 
 
 def _process(args) -> int:
@@ -86,17 +89,15 @@ def _process(args) -> int:
 def _serve(args) -> int:
     from .netio import DEFAULT_SUB
     from .service import serve
-    if (args.server_key is None) != (args.worker_keys is None):
-        raise CubecastError("--server-key and --worker-keys: give both (serve's secret key and the folder of "
-                            "accepted worker keys) or neither")
     if (args.tasks is None) != (args.results is None):
         raise CubecastError("--tasks and --results: give both endpoints for workers, or neither")
-    if args.server_key is not None and not (args.workers or args.tasks is not None):
-        raise CubecastError("--server-key and --worker-keys: only with --workers or --tasks")
+    if args.worker_keys is not None and not (args.workers or args.tasks is not None):
+        raise CubecastError("--worker-keys: only with --workers or --tasks")
     return serve(args.sensor, args.sub or [DEFAULT_SUB], args.pub, settings_path=args.settings,
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
                  workers=args.workers, tasks=args.tasks, results=args.results,
-                 task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys)
+                 task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys,
+                 client_keys=args.client_keys, source_keys=args.source_key, insecure=args.insecure)
 
 
 def _worker(args) -> int:
@@ -119,13 +120,52 @@ def _keys(args) -> int:
 def _replay(args) -> int:
     from .sources import replay
     return replay(args.capture, args.pub, speed=args.speed, loop=args.loop, frames=args.frames,
-                  wait_s=args.wait_subscriber)
+                  wait_s=args.wait_subscriber, server_key=args.server_key, client_keys=args.client_keys,
+                  insecure=args.insecure)
 
 
 def _record(args) -> int:
     from .sources import record
     return record(args.sub, args.out, args.points_out, frames=args.frames, duration_s=args.duration,
-                  sensor_path=args.sensor)
+                  sensor_path=args.sensor, server_keys=args.server_key, key=args.key)
+
+
+def _with_publisher_security(func):
+    """A command whose source publisher is made inside it (the adapter): its --server-key, --client-keys
+    and --insecure reach the publisher through netio.publisher_security."""
+    def run(args) -> int:
+        from .netio import publisher_security
+        from .sources import publisher_keys
+        with publisher_security(publisher_keys(args.server_key, args.client_keys), args.insecure):
+            return func(args)
+    return run
+
+
+# the key options, the same names on every subcommand: the side that binds gives its own secret key
+# (--server-key) and a folder of the public keys it accepts; the side that connects gives the bound
+# side's public key (--server-key; serve: --source-key) and its own secret key (--key; serve: its
+# --server-key)
+INSECURE_HELP = ("allow binding an address other hosts can reach without keys (the log says what it exposes); "
+                 "without keys only loopback, ipc and inproc endpoints are bound")
+
+
+def _add_publisher_key_options(p: argparse.ArgumentParser, what: str = "this source") -> None:
+    g = p.add_argument_group("keys (CURVE; see `cubecast keys`)")
+    g.add_argument("--server-key", metavar="FILE",
+                   help=f"require keys of subscribers: {what}'s secret key (NAME.key_secret from `cubecast keys`)")
+    g.add_argument("--client-keys", metavar="DIR",
+                   help="with --server-key: folder of the public keys (*.key) of the subscribers accepted (a key "
+                        "added later is accepted without a restart)")
+    g.add_argument("--insecure", action="store_true", help=INSECURE_HELP)
+
+
+def _add_client_key_options(p: argparse.ArgumentParser, bound_side: str, repeatable: bool = False) -> None:
+    g = p.add_argument_group("keys (CURVE; see `cubecast keys`)")
+    more = "; repeatable: one for every --sub, or one per --sub in the same order" if repeatable else ""
+    g.add_argument("--server-key", metavar="FILE", action="append" if repeatable else "store",
+                   help=f"the public key (NAME.key) of {bound_side}, when it requires keys{more}")
+    g.add_argument("--key", metavar="FILE", help="with --server-key: this side's secret key (NAME.key_secret); its "
+                                                 "public key must be in the other side's --client-keys folder")
 
 
 def _demo(args) -> int:
@@ -175,6 +215,7 @@ def _add_file_commands(sub) -> None:
     s.add_argument("--frames-live", type=int, default=0, help="with --pub: stop after N frames (0 = run until stopped)")
     s.add_argument("--seed", type=int, default=0)
     s.add_argument("--no-quantize", action="store_true", help="store canonical complex64 instead of the ADC format")
+    _add_publisher_key_options(s, "the simulator")
     s.set_defaults(func=_simulate)
 
     pr = sub.add_parser("process", help="process a capture offline into a point-cloud file")
@@ -210,10 +251,19 @@ def _add_serve(sub) -> None:
     sv.add_argument("--results", metavar="ENDPOINT", help="bind this endpoint for worker results (with --tasks)")
     sv.add_argument("--task-timeout", type=float, default=None, metavar="S",
                     help="with workers: a frame not answered within S seconds is counted lost (default 2)")
-    sv.add_argument("--server-key", metavar="FILE",
-                    help="with workers: require keys; serve's secret key (NAME.key_secret from `cubecast keys`)")
-    sv.add_argument("--worker-keys", metavar="DIR",
-                    help="with --server-key: folder of the public keys (*.key) of the workers accepted")
+    g = sv.add_argument_group("keys (CURVE; see `cubecast keys`)")
+    g.add_argument("--server-key", metavar="FILE",
+                   help="serve's secret key (NAME.key_secret from `cubecast keys`), for each of --worker-keys, "
+                        "--client-keys and --source-key")
+    g.add_argument("--worker-keys", metavar="DIR",
+                   help="with workers: require keys; folder of the public keys (*.key) of the workers accepted")
+    g.add_argument("--client-keys", metavar="DIR",
+                   help="require keys on --pub: folder of the public keys (*.key) of the subscribers accepted "
+                        "(viewers, recorders, trackers; a key added later is accepted without a restart)")
+    g.add_argument("--source-key", metavar="FILE", action="append",
+                   help="the source's public key (its NAME.key), for a source that requires keys (its --client-keys "
+                        "folder must hold serve's public key); one for every --sub, or one per --sub in order")
+    g.add_argument("--insecure", action="store_true", help=INSECURE_HELP)
     sv.set_defaults(func=_serve)
 
 
@@ -234,7 +284,8 @@ def _add_worker_commands(sub) -> None:
     wk.add_argument("--key", metavar="FILE", help="with --server-key: this worker's secret key (NAME.key_secret)")
     wk.set_defaults(func=_worker)
 
-    ky = sub.add_parser("keys", help="make a key pair for the worker endpoints (serve --server-key, worker --key)")
+    ky = sub.add_parser("keys", help="make a key pair for an endpoint (--server-key, --key; public keys go into "
+                                     "the other side's --client-keys or --worker-keys folder)")
     ky.add_argument("name", help="file name stem: writes NAME.key (public) and NAME.key_secret (secret)")
     ky.add_argument("--dir", default=".", help="folder to write them to (default: the current one)")
     ky.set_defaults(func=_keys)
@@ -251,6 +302,7 @@ def _add_stream_commands(sub) -> None:
     rp.add_argument("--frames", type=int, default=0, metavar="N", help="stop after N frames (default: all)")
     rp.add_argument("--wait-subscriber", type=float, default=1.0, metavar="S",
                     help="after binding, wait up to S seconds for a subscriber before sending (default 1)")
+    _add_publisher_key_options(rp)
     rp.set_defaults(func=_replay)
 
     rc = sub.add_parser("record", help="record ADC frames to a capture and/or point clouds to CSV from ZeroMQ")
@@ -263,6 +315,7 @@ def _add_stream_commands(sub) -> None:
                     help="stop after N ADC frames (N point clouds without --out); default: no limit")
     rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
     rc.add_argument("--sensor", help="sensor description (TOML), if no daemon's description is received")
+    _add_client_key_options(rc, "the endpoint's bound side (a source's or serve's)", repeatable=True)
     rc.set_defaults(func=_record)
 
     dm = sub.add_parser("demo", help="replay the bundled sample through the daemon and report once a second")
@@ -300,7 +353,9 @@ def build_parser() -> argparse.ArgumentParser:
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)
     from .adapter import add_parser as add_adapter
-    add_adapter(sub)
+    ap = add_adapter(sub)
+    _add_publisher_key_options(ap, "the adapter")
+    ap.set_defaults(func=_with_publisher_security(ap.get_default("func")))
     try:  # the viewer is an optional extra; without vispy, `view` explains what to install
         from .viewsource import register_view
         register_view(sub)

@@ -3,11 +3,16 @@ health) out. `cubecast serve`.
 
 Two threads:
 
-- the receiver thread owns the SUB socket (connected to the source). It decodes and validates every
-  message (wire.decode, then intake.AdcValidator: sensor id, digest, dtype, shape, repeated sequence
-  numbers), counts rejections by reason, counts sequence gaps and source restarts (a new `run` id),
-  and appends good frames to a bounded queue that drops the OLDEST frame when full, so latency stays
-  bounded and memory flat when processing falls behind;
+- the receiver thread owns the SUB socket (netio.Subscriber, connected to the source). It decodes and
+  validates every message (wire.decode, then intake.AdcValidator: sensor id, digest, dtype, shape,
+  repeated sequence numbers), counts rejections by reason, counts sequence gaps and source restarts
+  (a new `run` id), and appends good frames to a bounded queue that drops the OLDEST frame when full,
+  so latency stays bounded and memory flat when processing falls behind. An oversized or malformed
+  message costs only itself: every message part up to netio.MAX_PART_BYTES is received whole and
+  measured here ('oversized' when larger than the sensor's frame), so the connection to the source
+  is never given up for it; a larger part, or a broken byte stream, makes ZeroMQ drop the
+  connection, which the Subscriber counts (`source_protocol_errors`) and dials again at once (see
+  netio.Subscriber for what bounds memory);
 - the processing thread (the caller of Service.run) owns the PUB socket (an XPUB, so that a new
   subscriber is noticed and sent the sensor description at once). It hands queued frames to the
   processor and publishes what comes back: the points, a rate-limited max-pooled range-Doppler map,
@@ -28,6 +33,11 @@ Counters obey: frames_received == frames_processed + frames_dropped + frames_rej
 + in_progress + frames_lost_worker + in_flight, read atomically under one lock (the last two are
 non-zero only with workers; in_progress only without).
 
+Keys (daemon/keys.py): with pub_keys, the publish endpoint takes only subscribers whose public key is
+in a folder (refused handshakes: `subscriber_handshakes_refused` in health); with source_keys, the
+SUB connects to keyed sources (refused or failed handshakes: `source_handshakes_failed`). An endpoint
+reachable from other hosts is bound only with keys or with `insecure` (netio.check_exposure).
+
 Errors name what is wrong by its role ("queue depth", "publish endpoint"); the CLI owns the flag names.
 """
 
@@ -44,9 +54,10 @@ import zmq
 
 from .errors import CubecastError
 from .intake import AdcValidator
-from .keys import ServerKeys
+from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
 from .logs import RateLimitFilter, log_limited
-from .netio import DEFAULT_PUB, DEFAULT_SUB, bind_socket, connect_socket, stop_on_signals
+from .netio import (DEFAULT_PUB, DEFAULT_SUB, MAX_PART_BYTES, HandshakeCounter, Subscriber, bind_socket,
+                    check_exposure, stop_on_signals)
 from .process import load_calibration_for
 from .processors import LocalProcessor, Outcome, PoolProcessor
 from .sensor import Sensor, load_sensor
@@ -57,6 +68,8 @@ log = logging.getLogger(__name__)
 
 REJECTED = "cubecast serve: rejected frame, "  # the prefix of rejection records
 SENSOR_ON_SUBSCRIBE_S = 0.2  # a new subscriber gets the sensor description at most this often
+PUB_EXPOSES = "the point clouds, range-Doppler maps, sensor description and health"
+WORKERS_EXPOSE = "the ADC frames (by joining as a worker) and the chance to hand serve forged results"
 
 
 class Service:
@@ -74,11 +87,16 @@ class Service:
                  health_interval_s: float = 1.0, log_interval_s: float = 5.0, sndhwm: int = 100,
                  sndbuf_bytes: int = 0, rcvhwm: int = 16, range_bias_m: float = 0.0, workers: int = 0,
                  tasks_endpoint: str | None = None, results_endpoint: str | None = None,
-                 task_timeout_s: float | None = None, worker_keys: ServerKeys | None = None):
+                 task_timeout_s: float | None = None, worker_keys: ServerKeys | None = None,
+                 pub_keys: ServerKeys | None = None, source_keys: list[ClientKeys] | None = None,
+                 insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES):
         """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
         for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
         are processed by workers (daemon/pool.py), else in this process. worker_keys: a
-        keys.ServerKeys to require keys of the workers (CURVE)."""
+        keys.ServerKeys to require keys of the workers (CURVE); pub_keys: the same for subscribers of
+        the publish endpoint; source_keys: keys.ClientKeys per source endpoint (same order).
+        insecure: allow binding an endpoint other hosts can reach without keys. max_part_bytes: the
+        subscriber's hard limit on one message part (netio.Subscriber)."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"queue depth {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -90,6 +108,21 @@ class Service:
             raise CubecastError(f"local workers {workers!r}: must be a whole number >= 0")
         if worker_keys is not None and not (workers > 0 or tasks_endpoint is not None):
             raise CubecastError("worker keys: only with workers (local ones or a tasks endpoint)")
+        self.sub_endpoints = [sub_endpoint] if isinstance(sub_endpoint, str) else list(sub_endpoint)
+        if source_keys is not None and len(source_keys) != len(self.sub_endpoints):
+            raise CubecastError(f"source keys: {len(source_keys)} given for {len(self.sub_endpoints)} source "
+                                "endpoints; one per endpoint")
+        # before anything is bound: endpoints other hosts can reach need keys (or insecure, logged)
+        check_exposure(pub_endpoint, "publish endpoint", keyed=pub_keys is not None, insecure=insecure,
+                       exposes=PUB_EXPOSES)
+        for role, ep in (("tasks endpoint", tasks_endpoint), ("results endpoint", results_endpoint)):
+            if ep is not None:
+                check_exposure(ep, role, keyed=worker_keys is not None, insecure=insecure, exposes=WORKERS_EXPOSE,
+                               keys_hint="--server-key FILE --worker-keys DIR")
+        self.pub_keys, self.source_keys, self.max_part_bytes = pub_keys, source_keys, max_part_bytes
+        self._subscriber: Subscriber | None = None
+        self._pub_counter: HandshakeCounter | None = None
+        self._pub_refused = 0
         self.sensor = sensor
         self.settings = (settings or ProcessingSettings()).validate()
         if workers > 0 or tasks_endpoint is not None:
@@ -99,7 +132,6 @@ class Service:
                 keys=worker_keys, log_interval_s=log_interval_s)
         else:
             self.processor = LocalProcessor(sensor, self.settings, calibration, range_bias_m)
-        self.sub_endpoints = [sub_endpoint] if isinstance(sub_endpoint, str) else list(sub_endpoint)
         self.pub_endpoint_requested = pub_endpoint
         self.pub_endpoint: str | None = None
         self.queue_depth = queue_depth
@@ -142,8 +174,14 @@ class Service:
                 "sequence_gaps": self.validator.sequence_gaps, "source_restarts": self.validator.source_restarts,
                 "processing_errors": self._processing_errors, "points_last": self._points_last,
                 "frames_lost_worker": self._lost, "in_flight": 0 if local else self._busy,
-                **self.processor.counters(),
+                **self._link_counters(), **self.processor.counters(),
             }
+
+    def _link_counters(self) -> dict:
+        sub = self._subscriber
+        return {"source_protocol_errors": sub.protocol_errors if sub else 0,
+                "source_handshakes_failed": sub.handshakes_failed if sub else 0,
+                "subscriber_handshakes_refused": self._pub_refused}
 
     def latencies_s(self) -> np.ndarray:
         """Receive-to-publish latency of every published cloud so far (most recent 100 000)."""
@@ -171,22 +209,21 @@ class Service:
             self._queue_high_water = max(self._queue_high_water, len(self._queue))
         self.processor.wake()
 
-    def _receive(self, sub: zmq.Socket) -> None:
-        poller = zmq.Poller()
-        poller.register(sub, zmq.POLLIN)
+    def _receive(self, sub: Subscriber) -> None:
         try:
             while not self._rx_stop.is_set():
-                if poller.poll(100):
+                if sub.poll(100):
                     for _ in range(1000):  # drain a burst, then look at the stop flag again
-                        try:
-                            parts = sub.recv_multipart(zmq.NOBLOCK, copy=False)
-                        except zmq.Again:
+                        parts = sub.recv()
+                        if parts is None:
                             break
                         self._on_message(parts, time.perf_counter())
+                        del parts  # an oversized part is freed now, not when the next one arrives
                 self._reject_log.flush(log, prefix=REJECTED)
+                sub.flush_log()
         finally:
             self._reject_log.flush(log, force=True, prefix=REJECTED)
-            sub.close(linger=0)
+            sub.close()
 
     # ---- processing thread ----------------------------------------------------------------
     def _send(self, pub: zmq.Socket, parts: list, kind: str) -> None:
@@ -268,6 +305,9 @@ class Service:
             "stage_ms": {k: float(v) for k, v in self.processor.stage_ms.items()},
             "source_run": self.validator.run,
             "frames_lost_worker": s["frames_lost_worker"], "in_flight": s["in_flight"],
+            "source_protocol_errors": s["source_protocol_errors"],
+            "source_handshakes_failed": s["source_handshakes_failed"],
+            "subscriber_handshakes_refused": s["subscriber_handshakes_refused"],
             **{k: s[k] for k in self.processor.health_fields},
         }
         self._last_health, self._last_cpu, self._last_processed = now, cpu, processed
@@ -281,26 +321,29 @@ class Service:
             pub.setsockopt(zmq.XPUB_VERBOSE, 1)  # report every subscriber, not only new topics
             if self.sndbuf_bytes:
                 pub.setsockopt(zmq.SNDBUF, self.sndbuf_bytes)
+            if self.pub_keys is not None:
+                self.pub_keys.start(ctx)  # the authenticator of this context, before anything can connect
+                self.pub_keys.apply(pub)
+                self._pub_counter = HandshakeCounter(pub, "publish endpoint", "cubecast serve")
             self.pub_endpoint = bind_socket(pub, self.pub_endpoint_requested, "publish endpoint")
         except BaseException:
-            pub.close(linger=0)
+            self._close_pub(pub)
             raise
         return pub
 
+    def _close_pub(self, pub: zmq.Socket) -> None:
+        if self._pub_counter is not None:
+            self._pub_refused = self._pub_counter.count()
+            self._pub_counter.close()
+            self._pub_counter = None
+        pub.close(linger=0)
+        if self.pub_keys is not None:
+            self.pub_keys.stop()
+
     def _start_receiver(self, ctx: zmq.Context) -> threading.Thread:
-        sub = ctx.socket(zmq.SUB)
-        try:
-            sub.setsockopt(zmq.LINGER, 0)
-            sub.setsockopt(zmq.RCVHWM, self.rcvhwm)
-            # ZeroMQ disconnects a peer whose message part exceeds this (a memory guard); below it, an
-            # oversized frame is received and rejected with reason 'oversized'.
-            sub.setsockopt(zmq.MAXMSGSIZE, 4 * self.validator.max_payload_bytes + (2 << 20))
-            sub.setsockopt(zmq.SUBSCRIBE, b"")
-            for ep in self.sub_endpoints:
-                connect_socket(sub, ep, "source endpoint")
-        except BaseException:
-            sub.close(linger=0)
-            raise
+        sub = self._subscriber = Subscriber(ctx, self.sub_endpoints, "source endpoint", rcvhwm=self.rcvhwm,
+                                            prefix="cubecast serve", max_part_bytes=self.max_part_bytes,
+                                            keys=self.source_keys)
         rx = threading.Thread(target=self._receive, args=(sub,), name="cubecast-serve-rx", daemon=True)
         rx.start()  # the receiver thread owns the socket now and closes it
         return rx
@@ -327,6 +370,8 @@ class Service:
                     break
                 if event[:1] == b"\x01":
                     next_sensor = min(next_sensor, max(last_sensor + SENSOR_ON_SUBSCRIBE_S, time.monotonic()))
+            if self._pub_counter is not None:
+                self._pub_refused = self._pub_counter.count()
             now = time.monotonic()
             if now >= next_sensor:
                 self._send(pub, encode_sensor(self.sensor, self.settings.velocity_unfolding), "sensor")
@@ -357,7 +402,7 @@ class Service:
                 rx.join(timeout=2.0)
             receiver_stopped = rx is None or not rx.is_alive()
             if pub is not None:
-                pub.close(linger=0)
+                self._close_pub(pub)
             self.processor.close(receiver_stopped)
             if receiver_stopped:
                 ctx.term()
@@ -367,19 +412,37 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
           calibration_path: str | None = None, queue_depth: int = 2, rdmap_max_hz: float = 5.0,
           workers: int = 0, tasks: str | None = None, results: str | None = None,
           task_timeout_s: float | None = None, server_key: str | None = None,
-          worker_keys: str | None = None) -> int:
-    """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0."""
+          worker_keys: str | None = None, client_keys: str | None = None, source_keys: list[str] | None = None,
+          insecure: bool = False) -> int:
+    """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0. server_key: serve's secret key, for
+    each of worker_keys (folder of accepted workers), client_keys (folder of accepted subscribers)
+    and source_keys (the sources' public keys: one for all, or one per endpoint of `sub`)."""
     sensor = load_sensor(sensor_path)
     settings = load_settings(settings_path)
     calibration, range_bias_m = load_calibration_for(calibration_path, sensor)
-    if (server_key is None) != (worker_keys is None):
-        raise CubecastError("serve's secret key and the folder of accepted worker keys: give both or neither")
-    keys = ServerKeys(server_key, worker_keys) if server_key is not None else None
+    subs = [sub] if isinstance(sub, str) else list(sub)
+    if server_key is None and (worker_keys or client_keys or source_keys):
+        raise CubecastError("--worker-keys, --client-keys and --source-key: each needs --server-key (serve's "
+                            "secret key, NAME.key_secret from `cubecast keys`)")
+    if server_key is not None and not (worker_keys or client_keys or source_keys):
+        raise CubecastError("--server-key: give it with --worker-keys DIR (workers), --client-keys DIR "
+                            "(subscribers) and/or --source-key FILE (sources)")
+    keys = pub_keys = sub_keys = None
+    if server_key is not None:
+        if worker_keys is not None:
+            keys = ServerKeys(server_key, worker_keys, clients="worker", key_role="--server-key",
+                              dir_role="--worker-keys")
+        if client_keys is not None:
+            pub_keys = ServerKeys(server_key, client_keys, clients="subscriber", key_role="--server-key",
+                                  dir_role="--client-keys")
+        sub_keys = client_keys_per_endpoint(subs, source_keys, server_key if source_keys else None,
+                                            server_role="--source-key", key_role="--server-key", endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        svc = Service(sensor, sub, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
+        svc = Service(sensor, subs, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
                       range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks, results_endpoint=results,
-                      task_timeout_s=task_timeout_s, worker_keys=keys)
+                      task_timeout_s=task_timeout_s, worker_keys=keys, pub_keys=pub_keys, source_keys=sub_keys,
+                      insecure=insecure)
         if not stop.is_set():
             svc.run(stop)
     s = svc.stats()

@@ -9,6 +9,14 @@ therefore waits, after binding, until `wait_subscribers` subscriptions have arri
 seconds have passed (default 1 subscriber, at most 1 s), whichever comes first, and then starts
 publishing regardless. Frames sent while nobody listens are simply not seen (no backlog builds up).
 On close a source lingers at most 1 s to deliver the frames still queued.
+
+Keys (daemon/keys.py): a source given keys (its secret key and a folder of accepted subscribers'
+public keys) takes only those subscribers, over CURVE; refused handshakes are counted
+(`handshakes_refused`) and logged. Without keys a source binds only addresses other hosts cannot
+reach, unless `insecure` (netio.check_exposure): the raw ADC frames are the stream.
+
+The recorder subscribes through netio.Subscriber: an oversized or malformed message is counted under
+its reason and costs nothing else; a dropped connection is dialled again.
 """
 
 from __future__ import annotations
@@ -30,7 +38,9 @@ from .errors import CubecastError
 from .files import _fmt, capture_sensor
 from .intake import AdcValidator
 from .logs import RateLimitFilter
-from .netio import DEFAULT_PUB, DEFAULT_SUB, bind_socket, connect_socket, stop_on_signals
+from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
+from .netio import (DEFAULT_PUB, DEFAULT_SUB, HandshakeCounter, Subscriber, bind_socket, check_exposure,
+                    stop_on_signals)
 from .scene import Scene
 from .sensor import Sensor
 from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
@@ -38,6 +48,11 @@ from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
 DEFAULT_SOURCE = DEFAULT_SUB  # sources bind where serve connects by default
 SOURCE_LINGER_MS = 1000
 REJECT_LOG_INTERVAL_S = 5.0
+SOURCE_EXPOSES = "the raw ADC frames"
+# the recorder: the largest points payload it takes (65536 records, as the viewer), and the ADC frames
+# it holds at most until the sensor description is known
+RECORD_MAX_POINTS_BYTES = 65536 * RECORD_DTYPE.itemsize
+RECORD_PENDING_MAX_BYTES = 256 * 1024 * 1024
 
 log = logging.getLogger(__name__)
 
@@ -46,12 +61,28 @@ def new_run_id() -> str:
     return secrets.token_hex(8)
 
 
+def publisher_keys(server_key: str | None, client_keys: str | None) -> ServerKeys | None:
+    """A source's keys from its command's --server-key FILE (its secret key) and --client-keys DIR."""
+    if (server_key is None) != (client_keys is None):
+        raise CubecastError("--server-key and --client-keys: give both (this source's secret key and the folder of "
+                            "accepted subscribers' public keys) or neither")
+    if server_key is None:
+        return None
+    return ServerKeys(server_key, client_keys, clients="subscriber", key_role="--server-key", dir_role="--client-keys")
+
+
 class AdcPublisher:
-    """The publishing end of a source: an XPUB bound to `endpoint`, one run id, seq counting from 0."""
+    """The publishing end of a source: an XPUB bound to `endpoint`, one run id, seq counting from 0.
+    keys: accept only these subscribers (CURVE); insecure: allow an endpoint other hosts can reach
+    without keys (logged)."""
 
     def __init__(self, sensor: Sensor, endpoint: str = DEFAULT_SOURCE, *, sndhwm: int = 1000,
-                 context: zmq.Context | None = None, run_id: str | None = None):
+                 context: zmq.Context | None = None, run_id: str | None = None, keys: ServerKeys | None = None,
+                 insecure: bool = False):
+        check_exposure(endpoint, "--pub", keyed=keys is not None, insecure=insecure, exposes=SOURCE_EXPOSES)
         self.sensor_id, self.digest = sensor.sensor_id, sensor.digest
+        self.keys = keys
+        self.counter: HandshakeCounter | None = None
         self._own_ctx = context is None
         self.ctx = context or zmq.Context()
         self.sock = self.ctx.socket(zmq.XPUB)
@@ -59,6 +90,10 @@ class AdcPublisher:
         self.sock.setsockopt(zmq.SNDHWM, sndhwm)
         self.sock.setsockopt(zmq.XPUB_VERBOSE, 1)
         try:
+            if keys is not None:
+                keys.start(self.ctx)
+                keys.apply(self.sock)
+                self.counter = HandshakeCounter(self.sock, f"--pub {endpoint}", "cubecast source")
             self.endpoint = bind_socket(self.sock, endpoint, "--pub")
         except BaseException:
             self.close()
@@ -67,7 +102,17 @@ class AdcPublisher:
         self.seq = 0
         self.subscriptions = 0
 
+    @property
+    def handshakes_refused(self) -> int:
+        """Subscribers refused in the security handshake so far (unknown key, no key, wrong public key)."""
+        return self.counter.count() if self.counter is not None else 0
+
+    def describe(self) -> str:
+        return f"{self.endpoint} ({'keys required' if self.keys is not None else 'no keys'})"
+
     def poll_subscriptions(self) -> int:
+        if self.counter is not None:
+            self.counter.count()
         while True:
             try:
                 event = self.sock.recv(zmq.NOBLOCK)
@@ -95,9 +140,13 @@ class AdcPublisher:
         return seq
 
     def close(self) -> None:
+        if self.counter is not None:
+            self.counter.close()
         if self.sock is not None:
             self.sock.close()
             self.sock = None
+        if self.keys is not None:
+            self.keys.stop()
         if self._own_ctx and self.ctx is not None:
             self.ctx.term()
             self.ctx = None
@@ -153,7 +202,8 @@ class ReplaySource:
 
     def __init__(self, capture: str | Path, endpoint: str = DEFAULT_SOURCE, *, speed: float | None = 1.0,
                  loop: bool = False, frames: int = 0, wait_subscribers: int = 1, wait_s: float = 1.0,
-                 sndhwm: int = 1000, context: zmq.Context | None = None):
+                 sndhwm: int = 1000, context: zmq.Context | None = None, keys: ServerKeys | None = None,
+                 insecure: bool = False):
         if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
             raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = all)")
         self.reader = CaptureReader(capture)
@@ -176,14 +226,16 @@ class ReplaySource:
         self.speed, self.loop, self.frames = speed, loop, frames
         self.wait_subscribers, self.wait_s = wait_subscribers, wait_s
         self.sndhwm, self.context = sndhwm, context
+        self.keys, self.insecure = keys, insecure
         self.publisher: AdcPublisher | None = None
         self.frames_sent = 0
+        self.handshakes_refused = 0  # subscribers refused in the security handshake (kept after close)
         self.corrupt_skipped: set[int] = set()
 
     def bind(self) -> str:
         if self.publisher is None:
             self.publisher = AdcPublisher(self.sensor, self.endpoint_requested, sndhwm=self.sndhwm,
-                                          context=self.context)
+                                          context=self.context, keys=self.keys, insecure=self.insecure)
         return self.publisher.endpoint
 
     @property
@@ -198,7 +250,7 @@ class ReplaySource:
             if self.wait_subscribers > 0 and self.wait_s > 0:
                 pub.wait_for_subscribers(self.wait_subscribers, self.wait_s, stop)
             log.info("cubecast replay: publishing %s (sensor '%s', %d frames, run %s) on %s", self.reader.path,
-                     self.sensor.sensor_id, len(self.reader), pub.run_id, pub.endpoint)
+                     self.sensor.sensor_id, len(self.reader), pub.run_id, pub.describe())
             pacer = _Pacer(self.speed, stop)
             n = len(self.reader)
             k = 0
@@ -229,25 +281,31 @@ class ReplaySource:
 
     def close(self) -> None:
         if self.publisher is not None:
+            self.handshakes_refused = self.publisher.handshakes_refused
             self.publisher.close()
             self.publisher = None
         self.reader.close()
 
 
 def replay(capture: str, endpoint: str = DEFAULT_SOURCE, speed: str = "1", loop: bool = False, frames: int = 0,
-           wait_s: float = 1.0) -> int:
+           wait_s: float = 1.0, server_key: str | None = None, client_keys: str | None = None,
+           insecure: bool = False) -> int:
     """`cubecast replay`: until the end (or --frames, or forever with --loop), SIGINT or SIGTERM."""
+    keys = publisher_keys(server_key, client_keys)
     stop = threading.Event()
     with stop_on_signals(stop):
-        src = ReplaySource(capture, endpoint, speed=parse_speed(speed), loop=loop, frames=frames, wait_s=wait_s)
+        src = ReplaySource(capture, endpoint, speed=parse_speed(speed), loop=loop, frames=frames, wait_s=wait_s,
+                           keys=keys, insecure=insecure)
         sent = src.run(stop)
-    log.info("cubecast replay: sent %d frames", sent)
+    log.info("cubecast replay: sent %d frames%s", sent,
+             f"; refused {src.handshakes_refused} subscriber handshakes" if keys else "")
     return 0
 
 
 def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int = 0, seed: int = 0, *,
                        wait_s: float = 1.0, stop: threading.Event | None = None,
-                       context: zmq.Context | None = None) -> int:
+                       context: zmq.Context | None = None, keys: ServerKeys | None = None,
+                       insecure: bool = False) -> int:
     """`cubecast simulate SCENE --sensor S --pub ENDPOINT`: simulated frames (ADC format, scene time
     as timestamp_s) published live at the frame period; frames = 0 runs until stopped."""
     from .simulate import Simulator
@@ -257,11 +315,11 @@ def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int 
     stop = stop or threading.Event()
     sim = Simulator(sensor, scene, seed=seed)
     with (stop_on_signals(stop) if own_stop else _nullcontext()):
-        pub = AdcPublisher(sensor, endpoint, context=context)
+        pub = AdcPublisher(sensor, endpoint, context=context, keys=keys, insecure=insecure)
         try:
             pub.wait_for_subscribers(1, wait_s, stop)
             log.info("cubecast simulate: publishing '%s' as sensor '%s' on %s (run %s, frame period %g ms)",
-                     scene.name, sensor.sensor_id, pub.endpoint, pub.run_id, sensor.frame_period_s * 1e3)
+                     scene.name, sensor.sensor_id, pub.describe(), pub.run_id, sensor.frame_period_s * 1e3)
             pacer = _Pacer(1.0, stop)
             late_warned = False
             i = 0
@@ -277,8 +335,9 @@ def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int 
                 pub.send(payload, sim.frame_time_s(i))
                 i += 1
         finally:
+            refused = pub.handshakes_refused
             pub.close()
-    log.info("cubecast simulate: sent %d frames", i)
+    log.info("cubecast simulate: sent %d frames%s", i, f"; refused {refused} subscriber handshakes" if keys else "")
     return 0
 
 
@@ -323,11 +382,15 @@ class Recorder:
 
     ADC frames come from a source's endpoint, points and the sensor description from the daemon's;
     give both to get both. The sensor description is `sensor` (from --sensor) or the first `sensor`
-    message; ADC frames arriving before it are held (at most 256) and written once it is known."""
+    message; ADC frames arriving before it are held (at most 256 frames and RECORD_PENDING_MAX_BYTES)
+    and written once it is known. keys: keys.ClientKeys per endpoint of `subs` (same order), or None.
+    Payloads larger than the sensor's frame (ADC) or RECORD_MAX_POINTS_BYTES (points, maps) are
+    ignored as 'oversized'; dropped connections are dialled again (netio.Subscriber)."""
 
     def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
                  frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
-                 context: zmq.Context | None = None):
+                 context: zmq.Context | None = None, keys: list[ClientKeys] | None = None,
+                 max_part_bytes: int | None = None):
         if not subs:
             raise CubecastError("record: give at least one --sub ENDPOINT")
         if out is None and points_out is None:
@@ -337,6 +400,10 @@ class Recorder:
         if not (duration_s >= 0 and math.isfinite(duration_s)):
             raise CubecastError(f"--duration {duration_s!r}: must be a number of seconds >= 0 (0 = no limit)")
         self.subs, self.out, self.points_out = list(subs), out, points_out
+        if keys is not None and len(keys) != len(self.subs):
+            raise CubecastError(f"record: {len(keys)} keys for {len(self.subs)} endpoints; one per endpoint")
+        self.keys, self.max_part_bytes = keys, max_part_bytes
+        self.subscriber: Subscriber | None = None
         self.frames, self.duration_s = frames, duration_s
         self.sensor = sensor
         self.context = context
@@ -350,6 +417,7 @@ class Recorder:
         self.csv: PointsCsvWriter | None = None
         self.validator: AdcValidator | None = None
         self.pending: collections.deque = collections.deque(maxlen=256)
+        self.pending_bytes = 0
         self.pending_lost = 0
         self.frames_written = 0
         self.clouds_written = 0
@@ -373,6 +441,7 @@ class Recorder:
             self.writer = CaptureWriter(self.out, sensor.source_text, None, meta)
         self.sensor_known.set()
         pending, self.pending = list(self.pending), collections.deque(maxlen=256)
+        self.pending_bytes = 0
         for msg in pending:
             self._on_adc(msg)
 
@@ -380,9 +449,15 @@ class Recorder:
         if self.out is None or self._limit_reached():
             return
         if self.sensor is None:
-            if len(self.pending) == self.pending.maxlen:
+            while self.pending and (len(self.pending) == self.pending.maxlen
+                                    or self.pending_bytes + msg.payload.nbytes > RECORD_PENDING_MAX_BYTES):
+                self.pending_bytes -= self.pending.popleft().payload.nbytes
                 self.pending_lost += 1
+            if msg.payload.nbytes > RECORD_PENDING_MAX_BYTES:
+                self.pending_lost += 1
+                return
             self.pending.append(msg)
+            self.pending_bytes += msg.payload.nbytes
             return
         try:
             self.validator.check(msg)
@@ -401,10 +476,20 @@ class Recorder:
             return False
         return (self.frames_written if self.out is not None else self.clouds_written) >= self.frames
 
+    def _payload_bound(self, parts) -> int:
+        """The largest payload taken for this message: the sensor's frame for ADC frames (once known), the
+        points bound for everything else."""
+        if len(parts) != 3:
+            return RECORD_MAX_POINTS_BYTES  # the decoder refuses it
+        topic = parts[0].bytes if isinstance(parts[0], zmq.Frame) else bytes(parts[0])
+        if topic.endswith(b"/adc"):
+            return self.validator.max_payload_bytes if self.validator is not None else RECORD_PENDING_MAX_BYTES
+        return RECORD_MAX_POINTS_BYTES
+
     def _on_message(self, parts) -> bool:
         """Handle one message; True once the points of the last recorded frame have arrived."""
         try:
-            msg = decode(parts)
+            msg = decode(parts, max_payload_bytes=self._payload_bound(parts))
         except WireError as exc:
             self.rejected[exc.reason] += 1
             self._reject_log(exc.reason, str(exc))
@@ -439,18 +524,16 @@ class Recorder:
     def run(self, stop: threading.Event | None = None) -> dict:
         stop = stop or threading.Event()
         ctx = self.context or zmq.Context()
-        sock = ctx.socket(zmq.SUB)
-        sock.setsockopt(zmq.LINGER, 0)
-        sock.setsockopt(zmq.RCVHWM, 64)
+        sock = None
         self._reject_logger.addFilter(self._reject_limit)
         try:
             if self.points_out is not None:
                 self.csv = PointsCsvWriter(self.points_out)
             if self.sensor is not None:
                 self._set_sensor(self.sensor)
-            sock.setsockopt(zmq.SUBSCRIBE, b"")
-            for ep in self.subs:
-                connect_socket(sock, ep, "--sub")
+            extra = {} if self.max_part_bytes is None else {"max_part_bytes": self.max_part_bytes}
+            sock = self.subscriber = Subscriber(ctx, self.subs, "--sub", rcvhwm=64, prefix="cubecast record",
+                                                keys=self.keys, **extra)
             self.connected.set()
             t_end = time.monotonic() + self.duration_s if self.duration_s else math.inf
             grace_end = math.inf
@@ -464,18 +547,20 @@ class Recorder:
                     if self.csv is None or self.out is None or self._last_frame is None:
                         break
                     grace_end = now + 1.0
-                if sock.poll(50, zmq.POLLIN):
+                if sock.poll(50):
                     for _ in range(1000):
-                        try:
-                            parts = sock.recv_multipart(zmq.NOBLOCK, copy=False)
-                        except zmq.Again:
+                        parts = sock.recv()
+                        if parts is None:
                             break
                         if self._on_message(parts) and self._limit_reached():
                             done = True
                             break
+                        del parts
                 self._flush_rejects()
+                sock.flush_log()
         finally:
-            sock.close(linger=0)
+            if sock is not None:
+                sock.close()
             if self.context is None:
                 ctx.term()
             if self.writer is not None:
@@ -491,22 +576,30 @@ class Recorder:
         return self.summary()
 
     def summary(self) -> dict:
+        sub = self.subscriber
         return {"frames_written": self.frames_written, "clouds_written": self.clouds_written,
                 "points_written": self.csv.points if self.csv else 0, "runs": list(self.runs),
                 "rejected": dict(self.rejected), "pending_lost": self.pending_lost,
-                "sequence_gaps": self.validator.sequence_gaps if self.validator else 0}
+                "sequence_gaps": self.validator.sequence_gaps if self.validator else 0,
+                "protocol_errors": sub.protocol_errors if sub else 0,
+                "handshakes_failed": sub.handshakes_failed if sub else 0}
 
 
 def record(subs: list[str], out: str | None, points_out: str | None = None, frames: int = 0,
-           duration_s: float = 0.0, sensor_path: str | None = None) -> int:
-    """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM."""
+           duration_s: float = 0.0, sensor_path: str | None = None, server_keys: list[str] | None = None,
+           key: str | None = None) -> int:
+    """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM. server_keys: the public keys
+    of the endpoints (one for all, or one per --sub); key: this recorder's secret key."""
     sensor = None
     if sensor_path is not None:
         from .sensor import load_sensor
         sensor = load_sensor(sensor_path)
+    subs = subs or [DEFAULT_PUB]
+    keys = client_keys_per_endpoint(subs, server_keys, key, server_role="--server-key", key_role="--key",
+                                    endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        rec = Recorder(subs or [DEFAULT_PUB], out, points_out, frames=frames, duration_s=duration_s, sensor=sensor)
+        rec = Recorder(subs, out, points_out, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys)
         s = rec.run(stop)
     parts = []
     if out is not None:
@@ -516,5 +609,8 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, fram
         parts.append(f"{s['clouds_written']} point clouds, {s['points_written']} points -> {points_out}")
     if s["rejected"]:
         parts.append("ignored: " + ", ".join(f"{k} {v}" for k, v in sorted(s["rejected"].items())))
+    for name in ("protocol_errors", "handshakes_failed"):
+        if s[name]:
+            parts.append(f"{name.replace('_', ' ')} {s[name]}")
     log.info("cubecast record: %s", "; ".join(parts))
     return 0

@@ -56,7 +56,7 @@ def test_key_files(tmp_path):
 def test_cli_options_come_in_pairs(keyring, capsys):
     assert cli_main(["serve", "--sensor", str(YARD_SENSOR), "--workers", "1", "--server-key",
                      str(keyring / "serve" / "serve.key_secret")]) == 2
-    assert "--server-key and --worker-keys" in capsys.readouterr().err
+    assert "--server-key: give it with --worker-keys" in capsys.readouterr().err
     assert cli_main(["worker", "--connect", "tcp://127.0.0.1:1", "--results", "tcp://127.0.0.1:1", "--key",
                      str(keyring / "accepted" / "worker-a.key_secret")]) == 2
     assert "--server-key and --key" in capsys.readouterr().err
