@@ -37,7 +37,8 @@ def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = F
     frames = iter_capture_frames(reader, pipeline.sensor)
     if progress:
         from tqdm import tqdm
-        frames = tqdm(frames, total=len(reader), desc="process", unit="frame")
+        total = len(reader) - (reader.counts["repeated"] if reader.skip_repeated else 0)
+        frames = tqdm(frames, total=total, desc="process", unit="frame")
     for seq, ts, frame in frames:
         records.append(to_records(pipeline.process(frame), seq, ts))
     return records
@@ -49,13 +50,16 @@ def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None
     if fmt is None:
         raise CubecastError(f"--out {out}: name a .csv or .npz file, or give --format")
     settings = load_settings(settings_path)
-    with CaptureReader(capture, skip_corrupt=skip_corrupt) as reader:
+    # a copy of an earlier record (the reader's `repeated`) holds no new frame: it is not processed
+    with CaptureReader(capture, skip_corrupt=skip_corrupt, skip_repeated=True) as reader:
         sensor = capture_sensor(reader)
         pipeline = make_pipeline(sensor, settings, calibration_path)
         records = process_frames(reader, pipeline, progress)
         problems = reader.problems
+        repeated = reader.counts["repeated"]
     n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
     for p in problems:
         log.warning("cubecast process: warning: %s: %s", capture, p)
-    log.info("%d frames, %d points -> %s", len(records), n, out)
+    skipped = f" ({repeated} repeated record{'s' if repeated != 1 else ''} skipped)" if repeated else ""
+    log.info("%d frames, %d points -> %s%s", len(records), n, out, skipped)
     return 0

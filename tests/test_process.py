@@ -9,7 +9,7 @@ import math
 import numpy as np
 import pytest
 
-from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.capture import CaptureReader, CaptureWriter
 from cubecast.daemon.chain.pipeline import Pipeline
 from cubecast.daemon.cli import main
 from cubecast.daemon.files import capture_sensor
@@ -117,6 +117,28 @@ def test_process_cli_reports_corrupt_frame(tmp_path, capsys):
     assert main(["-q", "process", str(bad), "--out", str(tmp_path / "p.csv"), "--skip-corrupt"]) == 0
     out, err = capsys.readouterr()
     assert out == "" and f"frame {n - 1}" in err and "warning" in err  # warnings pass -q
+
+
+def test_process_skips_a_repeated_record_and_reports_it(tmp_path, capsys):
+    """A copy of an earlier record holds no new frame: the points equal those of the capture without
+    the copy, and the summary says how many were skipped."""
+    clean, dup = tmp_path / "clean.cap", tmp_path / "dup.cap"
+    with CaptureReader(SAMPLES / "gate.cap") as r:
+        frames = [r[j] for j in range(3)]
+        for path, order in ((clean, [0, 1, 2]), (dup, [0, 1, 2, 1])):
+            with CaptureWriter(path, r.sensor_toml, r.ground_truth, r.metadata) as w:
+                for j in order:
+                    w.write(frames[j].payload, frames[j].sequence, frames[j].timestamp_s)
+    assert main(["-q", "process", str(clean), "--out", str(tmp_path / "clean.npz")]) == 0
+    capsys.readouterr()
+    assert main(["--log-json", "process", str(dup), "--out", str(tmp_path / "dup.npz")]) == 0
+    docs = [json.loads(line) for line in capsys.readouterr().err.splitlines()]
+    a, b = np.load(tmp_path / "clean.npz"), np.load(tmp_path / "dup.npz")
+    assert a.files == b.files and all(np.array_equal(a[c], b[c]) for c in a.files)
+    assert sorted(set(a["frame"])) == [f.sequence for f in frames]
+    assert [d["level"] for d in docs] == ["warning", "info"]
+    assert "frame index 3" in docs[0]["message"] and "repeats frame index 1" in docs[0]["message"]
+    assert docs[1]["message"].endswith("(1 repeated record skipped)")
 
 
 def test_process_cli_bad_inputs(tmp_path, capsys):
