@@ -267,18 +267,20 @@ def encode_points(sensor_id: str, seq: int, run: str, timestamp_s: float, latenc
 
 def encode_rdmap(sensor_id: str, seq: int, timestamp_s: float, values_db: np.ndarray, range_start_m: float,
                  range_step_m: float, velocity_start_mps: float, velocity_step_mps: float) -> list:
-    """A display map: float32 dB [n_range, n_doppler], at most 128 x 64 cells."""
+    """A display map: float32 dB [n_range, n_doppler], at most 128 x 64 cells; the axes as the header's
+    rules say (finite starts, steps > 0), else WireError naming the field and value."""
     _check_sensor_id(sensor_id)
     arr = np.ascontiguousarray(values_db, dtype="<f4")
     if arr.ndim != 2 or not (0 < arr.shape[0] <= RDMAP_MAX_RANGE_CELLS and 0 < arr.shape[1] <= RDMAP_MAX_DOPPLER_CELLS):
         raise WireError("shape", f"rdmap shape {list(arr.shape)}: must be [n_range, n_doppler] with "
                                  f"1..{RDMAP_MAX_RANGE_CELLS} x 1..{RDMAP_MAX_DOPPLER_CELLS} cells")
-    header = _pack("rdmap", sensor_id, {
+    fields = {
         "seq": int(seq), "timestamp_s": float(timestamp_s), "shape": [int(arr.shape[0]), int(arr.shape[1])],
         "dtype": "<f4", "range_start_m": float(range_start_m), "range_step_m": float(range_step_m),
         "velocity_start_mps": float(velocity_start_mps), "velocity_step_mps": float(velocity_step_mps),
-        "unit": "dB"})
-    return [topic_of(sensor_id, "rdmap"), header, _array_view(arr)]
+        "unit": "dB"}
+    validate(fields, RdmapHeader, "rdmap", WireError)  # a step <= 0 or a non-finite axis is never sent
+    return [topic_of(sensor_id, "rdmap"), _pack("rdmap", sensor_id, fields), _array_view(arr)]
 
 
 def sensor_summary(sensor: Sensor, velocity_unfolding: bool = True) -> dict:
@@ -314,10 +316,15 @@ def encode_health(sensor_id: str, fields: dict) -> list:
 # ---- decoding ---------------------------------------------------------------------------------
 
 def _as_view(part: Any, index: int) -> memoryview:
+    """The part's bytes, as `bytes(part)` would give them: zero-copy for a C-contiguous buffer (what
+    ZeroMQ delivers), one copy for a strided one (a slice with a step, a transposed array)."""
     try:
         view = memoryview(part)
-    except TypeError:
-        raise WireError("malformed", f"message part {index} is a {type(part).__name__}, not bytes") from None
+    except (TypeError, ValueError, BufferError) as exc:  # no buffer; or one Python cannot export
+        what = type(part).__name__
+        raise WireError("malformed", f"message part {index} is a {what}, not bytes ({exc})") from None
+    if not view.c_contiguous:
+        return memoryview(view.tobytes())
     if view.ndim != 1 or view.itemsize != 1:
         view = view.cast("B")
     return view
@@ -345,9 +352,9 @@ def _check_envelope(header: dict, kind: str, sensor_id: str) -> None:
     if "wire" not in header:
         raise WireError("malformed", f"{kind} header field 'wire' is missing")
     wire = header["wire"]
-    if wire != WIRE_VERSION or isinstance(wire, bool):
-        raise WireError("wire_version", f"{kind} header field 'wire' = {short(wire)}: this receiver speaks "
-                                        f"wire version {WIRE_VERSION} only")
+    if type(wire) is not int or wire != WIRE_VERSION:  # 1.0 and True equal 1 in Python, but are no version
+        raise WireError("wire_version", f"{kind} header field 'wire' = {short(wire)}: must be the integer "
+                                        f"{WIRE_VERSION} (this receiver speaks wire version {WIRE_VERSION} only)")
     for name, want in (("kind", kind), ("sensor_id", sensor_id)):
         if header.get(name) != want:
             raise WireError("malformed", f"{kind} header field '{name}' = {short(header.get(name))}: must equal "

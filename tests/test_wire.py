@@ -184,9 +184,57 @@ def test_malformed_fields(sensor, yard_frame):
 
 
 def test_wire_version(sensor, yard_frame):
-    for v in (2, 0, "1", None):
-        rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, wire=v), yard_frame.tobytes()),
-                 "wire_version", "'wire'")
+    # msgpack keeps integers and floats apart (msgpack specification, Furuhashi, 2013: int and float
+    # families); README "Wire format" makes the version the integer 1, so 1.0 and true are no version
+    for v in (2, 0, "1", None, 1.0, True, 1.5):
+        err = rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, wire=v), yard_frame.tobytes()),
+                       "wire_version", "'wire'")
+        assert f"'wire' = {v!r}: must be the integer 1" in str(err)
+
+
+def test_strided_buffers_are_read_as_their_bytes(sensor, yard_frame):
+    """A part is the bytes Python's bytes(part) gives (C order for any buffer, Python docs,
+    memoryview.tobytes): a strided view decodes exactly as its contiguous copy would."""
+    parts = encode_adc(sensor.sensor_id, 9, "r", 0.9, yard_frame, sensor.digest)
+    ref = decode([bytes(p) for p in parts])
+    spread = []
+    for p in parts:  # every byte at an even offset of a buffer twice as long: a step-2 view
+        wide = np.zeros(2 * len(bytes(p)), np.uint8)
+        wide[::2] = np.frombuffer(bytes(p), np.uint8)
+        spread.append(wide[::2])
+    assert not any(v.flags.c_contiguous for v in spread)
+    msg = decode(spread)
+    assert msg.header == ref.header and np.array_equal(msg.data, ref.data) and msg.data.dtype == ref.data.dtype
+    # a transposed (Fortran-order) frame: its bytes are those of its C-order copy, CRC included
+    cube = np.asfortranarray(yard_frame)
+    assert not cube.flags.c_contiguous
+    h = adc_header(sensor, yard_frame)  # crc32 of yard_frame.tobytes(): C order
+    assert np.array_equal(decode(raw("yard-a/adc", h, cube)).data, yard_frame)
+    # a strided view whose bytes differ from the header's CRC is still caught
+    flipped = yard_frame[..., ::-1]
+    assert not flipped.flags.c_contiguous and flipped.tobytes() != yard_frame.tobytes()
+    rejected(raw("yard-a/adc", h, flipped), "crc", "'crc32'")
+
+
+def test_parts_without_exportable_bytes_are_malformed():
+    values = np.zeros((2, 2), np.float32)
+    good = encode_rdmap("yard-a", 0, 0.0, values, 0.0, 1.0, 0.0, 1.0)
+    for bad in (np.zeros(4, "M8[s]"), object(), 3.5):  # numpy cannot export datetimes as a buffer
+        err = rejected([good[0], good[1], bad], "malformed", "message part 2", type(bad).__name__)
+        assert not isinstance(err.__cause__, TypeError)
+
+
+def test_rdmap_encoder_refuses_steps_that_are_not_positive():
+    values = np.zeros((2, 2), np.float32)
+    axes = {"range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0, "velocity_step_mps": 0.5}
+    for field in ("range_step_m", "velocity_step_mps"):
+        for v in (0.0, -0.5, float("nan"), float("inf")):
+            with pytest.raises(WireError) as info:
+                encode_rdmap("yard-a", 0, 0.0, values, **(axes | {field: v}))
+            assert f"rdmap header field '{field}' = {v!r}: must be a finite number > 0" in str(info.value)
+    for field in ("range_start_m", "velocity_start_mps"):
+        with pytest.raises(WireError, match=f"'{field}' = nan: must be a finite number"):
+            encode_rdmap("yard-a", 0, 0.0, values, **(axes | {field: float("nan")}))
 
 
 def test_dtype(sensor, yard_frame):
