@@ -25,7 +25,8 @@ The CRC is the common CRC-32 of zlib.crc32 (reflected polynomial 0xEDB88320, ini
 Both classes stream: the writer appends and flushes one frame at a time, the reader indexes record
 headers on open (seeking over payloads; it reads a payload only to check the record before a
 discontinuity and the last record) and reads one payload per request with one seek and one
-readinto.  Neither is thread-safe; use one object per thread.
+readinto.  Neither is thread-safe; use one object per thread.  The record layout's constants and
+the walk over the records on open (recovery from damage) are in capturescan.py.
 """
 
 from __future__ import annotations
@@ -43,6 +44,8 @@ from typing import Any, Iterator, NamedTuple
 
 import numpy as np
 
+from .capturescan import (COUNT_NAMES, DTYPE_CODES, MAX_NDIM, RECORD_BODY, RECORD_HEADER_SIZE, RECORD_MARKER, U32,
+                          Entry, RecordScan)
 from .errors import CubecastError
 
 __all__ = [
@@ -67,43 +70,14 @@ MAGIC = b"CUBECAST"
 FORMAT_VERSION = 1
 """The only format version this module writes and reads."""
 
-RECORD_MARKER = b"CCFR"
-"""First 4 bytes of every frame record header."""
-
-MAX_NDIM = 4
-"""Largest number of payload dimensions a record can describe."""
-
-# dtype code -> little-endian numpy dtype.  Codes are part of the file format: never renumber.
-DTYPE_CODES: dict[int, np.dtype] = {
-    1: np.dtype("<c8"),  # complex64: float32 real, float32 imaginary
-    2: np.dtype("<i2"),  # int16 (I/Q pairs: trailing dimension of 2, I first)
-    3: np.dtype("<f4"),  # float32
-    4: np.dtype("u1"),  # uint8
-    5: np.dtype("<f8"),  # float64
-    6: np.dtype("<c16"),  # complex128
-    7: np.dtype("<i4"),  # int32
-    8: np.dtype("<u2"),  # uint16
-}
-
 _FILE_PREFIX = struct.Struct("<8sHI")  # magic, version, json_len
-_U32 = struct.Struct("<I")
-_RECORD_BODY = struct.Struct("<4sQdBBH4IQI")  # everything but the trailing header CRC
-_RECORD = struct.Struct("<4sQdBBH4IQII")
-RECORD_HEADER_SIZE = _RECORD.size  # 56
-"""Size in bytes of one frame record header."""
-
-assert _RECORD_BODY.size == 52 and RECORD_HEADER_SIZE == 56 and _FILE_PREFIX.size == 14
+assert _FILE_PREFIX.size == 14
 
 MAX_JSON_DEPTH = 64
 """Deepest nesting of arrays and objects the JSON header may have (writer and reader refuse more)."""
 
-COUNT_NAMES = ("lost_sync", "damaged", "unusable", "truncated_tail", "repeated", "sequence_backwards",
-               "corrupt_skipped", "unindexed_bytes")
-"""Keys of CaptureReader.counts (see there)."""
-
 _U32_MAX = 0xFFFFFFFF
 _U64_MAX = 0xFFFFFFFFFFFFFFFF
-_RESYNC_CHUNK_BYTES = 1 << 20
 
 
 class CaptureFrame(NamedTuple):
@@ -126,24 +100,6 @@ class CorruptFrameError(CubecastError):
         super().__init__(message)
         self.index = index
         self.path = path
-
-
-class _Entry(NamedTuple):
-    payload_offset: int
-    sequence: int
-    timestamp_s: float
-    dtype: np.dtype
-    shape: tuple[int, ...]
-    nbytes: int
-    payload_crc32: int
-
-
-class _Scanned(NamedTuple):
-    """A record whose header validated, as the scan met it."""
-
-    offset: int  # byte offset of its header
-    entry: _Entry  # (dtype None for an unknown code)
-    index: int | None  # its frame index; None when it is not in the index
 
 
 def _dtype_code(dtype: np.dtype) -> int | None:
@@ -246,7 +202,7 @@ class CaptureWriter:
         self._write_parts([
             _FILE_PREFIX.pack(MAGIC, FORMAT_VERSION, len(json_bytes)),
             json_bytes,
-            _U32.pack(zlib.crc32(json_bytes)),
+            U32.pack(zlib.crc32(json_bytes)),
         ])
 
     @property
@@ -317,8 +273,8 @@ class CaptureWriter:
         data = np.ascontiguousarray(payload, dtype=stored)  # no copy when already C order little-endian
         raw = data.reshape(-1).view(np.uint8)
         dims = list(shape) + [0] * (MAX_NDIM - len(shape))
-        body = _RECORD_BODY.pack(RECORD_MARKER, seq, ts, code, len(shape), 0, *dims, raw.nbytes, zlib.crc32(raw))
-        self._write_parts([body, _U32.pack(zlib.crc32(body)), raw])
+        body = RECORD_BODY.pack(RECORD_MARKER, seq, ts, code, len(shape), 0, *dims, raw.nbytes, zlib.crc32(raw))
+        self._write_parts([body, U32.pack(zlib.crc32(body)), raw])
         self._frames_written += 1
         return self._frames_written - 1
 
@@ -385,9 +341,6 @@ class CaptureReader:
         self._problems: list[str] = []
         self._counts: dict[str, int] = dict.fromkeys(COUNT_NAMES, 0)
         self._reported_corrupt: set[int] = set()
-        self._entries: list[_Entry] = []
-        self._keys: list[bytes] = []  # per entry: the header fields that make a copy a copy
-        self._repeat_of: dict[int, int] = {}
         try:
             self._file: io.FileIO | None = open(self._path, "rb", buffering=0)
         except OSError as exc:
@@ -395,8 +348,11 @@ class CaptureReader:
         try:
             self._size = os.fstat(self._file.fileno()).st_size
             data_start = self._read_file_header()
-            self._scan(data_start)
-            self._check_order(data_start)
+            self._records = RecordScan(self._read_exact_at, self._size, self._problems, self._counts)
+            self._records.walk(data_start)
+            self._records.check_order(data_start)
+            self._entries = self._records.entries
+            self._repeat_of = self._records.repeat_of
         except BaseException:
             self._file.close()
             self._file = None
@@ -438,7 +394,7 @@ class CaptureReader:
                 f"only {self._size - _FILE_PREFIX.size} bytes follow the fixed header"
             )
         json_bytes = self._read_exact_at(_FILE_PREFIX.size, json_len + 4)
-        (stored_crc,) = _U32.unpack_from(json_bytes, json_len)
+        (stored_crc,) = U32.unpack_from(json_bytes, json_len)
         json_bytes = json_bytes[:json_len]
         crc = zlib.crc32(json_bytes)
         if crc != stored_crc:
@@ -474,169 +430,6 @@ class CaptureReader:
         self._metadata = metadata
         self._created_utc = created
         return json_end + 4
-
-    # ---- record scan -------------------------------------------------------------------------
-    def _note(self, reason: str, text: str) -> None:
-        self._counts[reason] += 1
-        self._problems.append(text)
-
-    @staticmethod
-    def _header_valid(hdr: bytes) -> bool:
-        return (
-            len(hdr) == RECORD_HEADER_SIZE
-            and hdr[:4] == RECORD_MARKER
-            and zlib.crc32(hdr[: _RECORD_BODY.size]) == _U32.unpack_from(hdr, _RECORD_BODY.size)[0]
-        )
-
-    def _resync(self, start: int, stop: int | None = None) -> int | None:
-        """Offset in start..stop-1 of the first record marker whose header CRC validates, or None."""
-        assert self._file is not None
-        stop = self._size if stop is None else min(stop, self._size)
-        keep = len(RECORD_MARKER) - 1  # chunks overlap so that a marker across a boundary is seen
-        pos = start
-        while pos < stop:
-            n = min(_RESYNC_CHUNK_BYTES, stop - pos)  # candidates start in pos..pos+n-1
-            buf = self._read_exact_at(pos, n + keep)
-            i = buf.find(RECORD_MARKER)
-            while -1 < i < n:
-                cand = pos + i
-                if cand + RECORD_HEADER_SIZE > self._size:
-                    return None
-                if self._header_valid(self._read_exact_at(cand, RECORD_HEADER_SIZE)):
-                    return cand
-                i = buf.find(RECORD_MARKER, i + 1)
-            pos += n
-        return None
-
-    def _payload_crc(self, e: _Entry) -> int:
-        crc = 0
-        for start in range(e.payload_offset, e.payload_offset + e.nbytes, _RESYNC_CHUNK_BYTES):
-            crc = zlib.crc32(self._read_exact_at(start, min(_RESYNC_CHUNK_BYTES, e.payload_offset + e.nbytes - start)), crc)
-        return crc
-
-    def _overlap(self, rec: _Scanned, limit: int) -> int | None:
-        """Offset of a valid record header inside `rec`'s declared payload (before `limit`) when that
-        payload fails its CRC: proof that bytes were lost from `rec`. None otherwise (an intact
-        payload is never searched: it may hold anything)."""
-        if self._payload_crc(rec.entry) == rec.entry.payload_crc32:
-            return None
-        return self._resync(rec.entry.payload_offset, limit)
-
-    def _drop_damaged(self, rec: _Scanned, nxt: int, why: str) -> None:
-        what = f"sequence {rec.entry.sequence}"
-        if rec.index is not None:
-            assert rec.index == len(self._entries) - 1
-            self._entries.pop()
-            self._keys.pop()
-            what = f"frame index {rec.index}, {what}"
-        self._note("damaged",
-            f"record at byte offset {rec.offset} ({what}) is damaged: {why} and a valid record header starts at "
-            f"byte offset {nxt}, inside the {rec.entry.nbytes} payload bytes it declares (bytes were lost from it); "
-            f"dropped, frames after it are numbered from {len(self._entries)}")
-
-    def _scan(self, pos: int) -> None:
-        """Walk the records from `pos`.  Before a discontinuity (a header that does not validate, a
-        sequence other than the previous one's + 1, the end of the file) the previous record's
-        payload CRC is checked: when it fails and a valid header starts inside its declared payload,
-        bytes were deleted from it; it is dropped and the walk goes on from that header, so the
-        record after a damaged one is not lost."""
-        size = self._size
-        prev: _Scanned | None = None  # the record that ends at pos (the walk arrived by its length)
-        while pos < size or prev is not None:
-            hdr = self._read_exact_at(pos, min(RECORD_HEADER_SIZE, size - pos)) if pos < size else b""
-            valid = self._header_valid(hdr)
-            if prev is not None and (not valid or _RECORD.unpack(hdr)[1] != prev.entry.sequence + 1):
-                nxt = self._overlap(prev, pos)
-                if nxt is not None:
-                    self._drop_damaged(prev, nxt, "its payload fails its CRC-32")
-                    pos, prev = nxt, None
-                    continue
-            prev = None
-            if pos >= size:
-                return
-            if valid:
-                pos, prev = self._record(pos, hdr)
-            else:
-                pos = self._lost_sync(pos, hdr)
-
-    def _lost_sync(self, pos: int, hdr: bytes) -> int:
-        """Where to go on after the unreadable header at `pos` (the file size: nowhere)."""
-        remaining = self._size - pos
-        n = len(self._entries)
-        if len(hdr) < RECORD_HEADER_SIZE:
-            self._note("truncated_tail",
-                f"truncated tail at byte offset {pos}: {remaining} bytes, less than a {RECORD_HEADER_SIZE}-byte "
-                f"record header; frame index {n} is incomplete and was ignored")
-            return self._size
-        why = "record marker missing" if hdr[:4] != RECORD_MARKER else "header CRC-32 mismatch"
-        nxt = self._resync(pos + 1)
-        if nxt is None:
-            self._note("lost_sync",
-                f"corrupt record header at byte offset {pos} ({why}) where frame index {n} was expected; "
-                f"no valid record header in the remaining {remaining} bytes, ignored to end of file")
-            return self._size
-        self._note("lost_sync",
-            f"corrupt record header at byte offset {pos} ({why}) where frame index {n} was expected; "
-            f"resynchronised at byte offset {nxt} ({nxt - pos} bytes skipped); frames after it are numbered from {n}")
-        return nxt
-
-    def _record(self, pos: int, hdr: bytes) -> tuple[int, _Scanned | None]:
-        """Index the record whose header at `pos` validated; (where the next one starts, the record)."""
-        size = self._size
-        entries = self._entries
-        (_, seq, ts, code, ndim, _reserved, d0, d1, d2, d3, nbytes, pcrc, _hcrc) = _RECORD.unpack(hdr)
-        payload_offset = pos + RECORD_HEADER_SIZE
-        end = payload_offset + nbytes
-        dims = (d0, d1, d2, d3)
-        dtype = DTYPE_CODES.get(code)
-        entry = _Entry(payload_offset, seq, ts, dtype, tuple(dims[: min(ndim, MAX_NDIM)]), nbytes, pcrc)
-        if end > size:
-            nxt = self._resync(payload_offset)
-            if nxt is not None:
-                self._drop_damaged(_Scanned(pos, entry, None), nxt, f"its payload would end {end - size} bytes "
-                                                                     "past the end of the file")
-                return nxt, None
-            self._note("truncated_tail",
-                f"truncated tail at byte offset {pos}: payload of frame index {len(entries)} (sequence {seq}) "
-                f"has {size - payload_offset} of {nbytes} bytes; the frame was ignored")
-            return size, None
-        bad = None
-        if dtype is None:
-            bad = f"unknown dtype code {code}"
-        elif ndim > MAX_NDIM:
-            bad = f"ndim {ndim} above {MAX_NDIM}"
-        elif any(dims[ndim:]):
-            bad = f"shape entries beyond ndim {ndim} are not zero: {dims}"
-        elif math.prod(dims[:ndim]) * dtype.itemsize != nbytes:
-            bad = f"payload byte count {nbytes} does not match shape {dims[:ndim]} x {dtype.itemsize} bytes"
-        if bad is not None:
-            self._note("unusable",
-                f"record at byte offset {pos} (sequence {seq}) is unusable ({bad}); skipped, "
-                f"frames after it are numbered from {len(entries)}")
-            return end, _Scanned(pos, entry, None)
-        entries.append(entry)
-        self._keys.append(hdr[4:22] + hdr[24:52])  # every field but the marker, reserved and header CRC
-        return end, _Scanned(pos, entry, len(entries) - 1)
-
-    def _check_order(self, data_start: int) -> None:
-        """Repeated records and sequences that do not go forward; the byte count outside the index."""
-        first: dict[bytes, int] = {}
-        last_seq = None
-        for i, (e, key) in enumerate(zip(self._entries, self._keys)):
-            j = first.setdefault(key, i)
-            if j != i:
-                self._repeat_of[i] = j
-                self._note("repeated",
-                    f"frame index {i} (sequence {e.sequence}, byte offset {e.payload_offset - RECORD_HEADER_SIZE}) "
-                    f"repeats frame index {j}: the same header fields and payload CRC-32, a copy of that record")
-                continue
-            if last_seq is not None and e.sequence <= last_seq:
-                self._note("sequence_backwards",
-                    f"frame index {i} (byte offset {e.payload_offset - RECORD_HEADER_SIZE}): sequence {e.sequence} "
-                    f"is not after the previous frame's {last_seq} (a restarted source, or records out of order)")
-            last_seq = e.sequence
-        indexed = sum(RECORD_HEADER_SIZE + e.nbytes for e in self._entries)
-        self._counts["unindexed_bytes"] = self._size - data_start - indexed
 
     # ---- public API --------------------------------------------------------------------------
     @property
@@ -692,7 +485,7 @@ class CaptureReader:
     def __len__(self) -> int:
         return len(self._entries)
 
-    def _entry(self, index: int) -> tuple[int, _Entry]:
+    def _entry(self, index: int) -> tuple[int, Entry]:
         try:
             i = operator.index(index)
         except TypeError:
@@ -707,11 +500,15 @@ class CaptureReader:
         """Payload shape of frame `index`, from the index (no I/O)."""
         return self._entry(index)[1].shape
 
+    def frame_sequence(self, index: int) -> int:
+        """Sequence number of frame `index`, from the index (no I/O, so also for a corrupt payload)."""
+        return self._entry(index)[1].sequence
+
     def frame_dtype(self, index: int) -> np.dtype:
         """Payload dtype (little-endian) of frame `index`, from the index (no I/O)."""
         return self._entry(index)[1].dtype
 
-    def _fill(self, j: int, e: _Entry, arr: np.ndarray) -> None:
+    def _fill(self, j: int, e: Entry, arr: np.ndarray) -> None:
         if self._file is None:
             raise self._fail("reader is closed")
         raw = arr.reshape(-1).view(np.uint8)
@@ -772,7 +569,7 @@ class CaptureReader:
                     raise
                 if j not in self._reported_corrupt:
                     self._reported_corrupt.add(j)
-                    self._note("corrupt_skipped", f"skipped frame index {j}: {exc}")
+                    self._records.note("corrupt_skipped", f"skipped frame index {j}: {exc}")
                 continue
             yield frame
 
