@@ -176,10 +176,10 @@ class ViewerApp:
 
 
 def run_window(endpoint: str, sensor: str | None = None, size=(1280, 800), stall_after_s: float = 3.0,
-               **options) -> int:
-    """Open the window on `endpoint` and run until it is closed."""
+               keys=None, **options) -> int:
+    """Open the window on `endpoint` and run until it is closed (keys: keyfiles.FeedKeys, or None)."""
     from vispy import app
-    feed = Feed(endpoint, sensor)
+    feed = Feed(endpoint, sensor, keys=keys)
     try:
         feed.start()
     except Exception as exc:

@@ -1,6 +1,6 @@
 """`cubecast view`: the live window, or a PNG snapshot without a display.
 
-    cubecast view --sub tcp://127.0.0.1:5602 [--sensor ID]
+    cubecast view --sub tcp://127.0.0.1:5602 [--sensor ID] [--server-key SERVE.key --key VIEWER.key_secret]
     cubecast view --snapshot out.png --capture FILE [--frame N] [--size WxH]
     cubecast view --snapshot out.png --sub ENDPOINT [--wait-s S] [--size WxH]
 
@@ -86,6 +86,11 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
     v.add_argument("--stall-s", type=_positive_float, default=3.0,
                    help="seconds without messages before the status shows a stall (default 3)")
     v.add_argument("--settings", help="with --capture: processing settings (TOML)")
+    g = v.add_argument_group("keys (CURVE; see `cubecast keys`)")
+    g.add_argument("--server-key", metavar="FILE", help="the daemon's public key (its NAME.key), for a daemon that "
+                                                        "requires keys (serve --client-keys)")
+    g.add_argument("--key", metavar="FILE", help="with --server-key: this viewer's secret key (NAME.key_secret); its "
+                                                 "public key must be in the daemon's --client-keys folder")
     v.set_defaults(func=lambda args: run(args, capture_snapshot))
     return v
 
@@ -105,6 +110,14 @@ def run(args, capture_snapshot=None) -> int:
         return _err("--frame applies to --capture only")
     options = dict(persist_frames=persist, color_by=args.color, velocity_span_mps=args.velocity_span_mps,
                    sensor_height_m=args.sensor_height_m)
+    server_key, key = getattr(args, "server_key", None), getattr(args, "key", None)
+    if args.capture and (server_key or key):
+        return _err("--server-key and --key apply to --sub only")
+    from .keyfiles import KeyFileError, load_feed_keys
+    try:
+        keys = load_feed_keys(server_key, key)
+    except KeyFileError as exc:
+        return _err(str(exc))
 
     if args.snapshot:
         from .snapshot import OffscreenUnavailable
@@ -118,7 +131,7 @@ def run(args, capture_snapshot=None) -> int:
                 print(f"wrote {args.snapshot}: sensor {info['sensor_id']}, {info['frames']} frames shown, "
                       f"{info['points']} points in the last")
                 return 0
-            return _snapshot_sub(args, options)
+            return _snapshot_sub(args, options, keys)
         except OffscreenUnavailable as exc:
             return _err(str(exc))
 
@@ -126,14 +139,14 @@ def run(args, capture_snapshot=None) -> int:
         return _err("--settings applies to --capture only")
     from .app import run_window
     return run_window(args.sub or DEFAULT_ENDPOINT, sensor=args.sensor, size=args.size,
-                      stall_after_s=args.stall_s, **options)
+                      stall_after_s=args.stall_s, keys=keys, **options)
 
 
-def _snapshot_sub(args, options) -> int:
+def _snapshot_sub(args, options, keys=None) -> int:
     from .snapshot import collect_from_sub, make_state, render_state, write_png
     endpoint = args.sub or DEFAULT_ENDPOINT
     try:
-        msgs, info = collect_from_sub(endpoint, args.sensor, args.wait_s, options["persist_frames"])
+        msgs, info = collect_from_sub(endpoint, args.sensor, args.wait_s, options["persist_frames"], keys=keys)
     except Exception as exc:  # a malformed endpoint string, for one
         return _err(f"--sub {endpoint}: {exc}")
     sensor_id = (args.sensor or "").rstrip("/") or None

@@ -14,7 +14,17 @@ of the wire's rejection reasons.
 `Feed` runs a SUB socket on a thread of its own and keeps, per sensor, only the latest message of each
 kind in a lock-protected slot: the GUI takes a `FeedSnapshot` whenever it likes and never waits.
 ZeroMQ reconnects by itself when the daemon restarts; the snapshot says how long ago the last message
-came and whether the TCP connection is up, so the GUI can show a stall.
+came and whether the TCP connection is up, so the GUI can show a stall. It is also the client library
+for a tracker written in Python: `Feed(endpoint, keys=load_feed_keys(...))` for a daemon that requires
+keys (viewer/keyfiles.py).
+
+An oversized or malformed message costs only itself: every part up to MAX_PART_BYTES (the wire's
+generic payload bound) is received without a copy and measured by the decoder (reason 'oversized'
+above PAYLOAD_MAX_BYTES); only a larger part, or a broken byte stream, makes ZeroMQ drop the
+connection for good, and then the feed dials again after REDIAL_CHECK_S (counted in
+`protocol_errors`; a refused security handshake in `handshakes_failed`, redialled the same way). The
+same rule as the daemon's subscriber (daemon/netio.py), written again here because the viewer
+imports nothing of the daemon but the wire.
 
 Of the daemon this module imports the wire module only (which imports neither the chain nor the
 service); besides that it depends on pyzmq and numpy.
@@ -28,6 +38,7 @@ from dataclasses import dataclass, field
 
 from ..daemon import wire
 from ..daemon.wire import WireError
+from .keyfiles import FeedKeys
 
 KINDS = wire.KINDS
 VIEW_KINDS = ("points", "rdmap", "sensor", "health")
@@ -35,7 +46,10 @@ VIEW_KINDS = ("points", "rdmap", "sensor", "health")
 HEADER_MAX_BYTES = wire.MAX_HEADER_BYTES
 SENSOR_HEADER_MAX_BYTES = wire.MAX_SENSOR_HEADER_BYTES
 MAX_POINTS = 65536                       # 4 MiB of records: far beyond any one cloud the chain sends
-PAYLOAD_MAX_BYTES = MAX_POINTS * 64      # also the socket's per-part limit (ZMQ_MAXMSGSIZE)
+PAYLOAD_MAX_BYTES = MAX_POINTS * 64      # larger payloads are rejected as 'oversized'
+MAX_PART_BYTES = wire.DEFAULT_MAX_PAYLOAD_BYTES  # the socket's per-part limit (ZMQ_MAXMSGSIZE)
+REDIAL_CHECK_S = 0.5   # a connection lost and not redialled by ZeroMQ within this is dialled again
+REDIAL_MAX_S = 4.0
 
 # the points record layout, exactly as README "Wire format" lists it: [name, unit, dtype]
 POINT_FIELDS: tuple[tuple[str, str, str], ...] = wire.POINT_WIRE_FIELDS
@@ -70,6 +84,8 @@ class FeedSnapshot:
     started_s: float = 0.0
     connected: bool = False
     reconnects: int = 0
+    protocol_errors: int = 0      # connections ZeroMQ dropped (a part over MAX_PART_BYTES), dialled again
+    handshakes_failed: int = 0    # security handshakes refused or failed (keys)
 
     def idle_s(self, now_s: float | None = None) -> float:
         """Seconds since the last good message (or since the start when none came yet)."""
@@ -91,8 +107,15 @@ class Feed:
     feed = Feed("tcp://127.0.0.1:5602"); feed.start(); ...; snap = feed.snapshot(); ...; feed.stop()
     """
 
-    def __init__(self, endpoint: str, sensor: str | None = None, poll_ms: int = 50, context=None):
+    def __init__(self, endpoint: str, sensor: str | None = None, poll_ms: int = 50, context=None,
+                 keys: FeedKeys | None = None):
+        """keys: the daemon's public key and this side's key pair (keyfiles.load_feed_keys), for a
+        daemon that requires keys."""
         self.endpoint = endpoint
+        self.keys = keys
+        self._lost_at: float | None = None   # our connection lost and not redialled by ZeroMQ (since)
+        self._redials = 0
+        self._handshake_failed = False
         self.prefix = subscription_prefix(sensor)
         self.poll_ms = poll_ms
         self._ctx = context
@@ -111,7 +134,8 @@ class Feed:
                 counts={k: dict(v) for k, v in s.counts.items()}, received=s.received, ignored=s.ignored,
                 bad=s.bad, bad_by_reason=dict(s.bad_by_reason), last_error=s.last_error,
                 last_message_s=s.last_message_s, started_s=s.started_s, connected=s.connected,
-                reconnects=s.reconnects)
+                reconnects=s.reconnects, protocol_errors=s.protocol_errors,
+                handshakes_failed=s.handshakes_failed)
 
     @property
     def error(self) -> BaseException | None:
@@ -127,11 +151,16 @@ class Feed:
         try:
             sock.setsockopt(zmq.LINGER, 0)
             sock.setsockopt(zmq.RCVHWM, 256)
-            sock.setsockopt(zmq.MAXMSGSIZE, max(PAYLOAD_MAX_BYTES, SENSOR_HEADER_MAX_BYTES))
+            sock.setsockopt(zmq.MAXMSGSIZE, MAX_PART_BYTES)
             sock.setsockopt(zmq.RECONNECT_IVL, 200)
             sock.setsockopt(zmq.RECONNECT_IVL_MAX, 2000)
             sock.setsockopt(zmq.SUBSCRIBE, self.prefix.encode("utf-8"))
-            monitor = sock.get_monitor_socket(zmq.EVENT_CONNECTED | zmq.EVENT_DISCONNECTED)
+            monitor = sock.get_monitor_socket(
+                zmq.EVENT_CONNECTED | zmq.EVENT_DISCONNECTED | zmq.EVENT_CONNECT_DELAYED | zmq.EVENT_CONNECT_RETRIED
+                | zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
+            if self.keys is not None:
+                self.keys.apply(sock)
             sock.connect(self.endpoint)
         except zmq.ZMQError:
             sock.close(0)
@@ -170,13 +199,15 @@ class Feed:
                         except zmq.Again:
                             break
                         self._on_event(ev["event"])
+                self._redial(sock)
                 if sock in ready:
                     for _ in range(1000):  # drain what is queued; only the latest of each kind stays
                         try:
-                            parts = sock.recv_multipart(zmq.NOBLOCK, copy=True)
+                            parts = sock.recv_multipart(zmq.NOBLOCK, copy=False)
                         except zmq.Again:
                             break
                         self.ingest(parts)
+                        del parts  # an oversized part is freed now
         except BaseException as exc:  # keep the reason for the GUI; the thread must not die silently
             self._error = exc
         finally:
@@ -189,6 +220,8 @@ class Feed:
 
     def _on_event(self, event: int) -> None:
         import zmq
+        failed = (zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL
+                  | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
         with self._lock:
             if event == zmq.EVENT_CONNECTED:
                 if not self._snap.connected and self._snap.received:
@@ -196,6 +229,37 @@ class Feed:
                 self._snap.connected = True
             elif event == zmq.EVENT_DISCONNECTED:
                 self._snap.connected = False
+            elif event & failed:
+                self._snap.handshakes_failed += 1
+                self._snap.last_error = "the daemon refused this viewer's key, or the keys do not match"
+                self._handshake_failed = True
+        if event == zmq.EVENT_DISCONNECTED:
+            self._lost_at = time.monotonic()
+        elif event in (zmq.EVENT_CONNECT_DELAYED, zmq.EVENT_CONNECT_RETRIED, zmq.EVENT_CONNECTED):
+            self._lost_at = None  # ZeroMQ redials by itself
+        elif event == zmq.EVENT_HANDSHAKE_SUCCEEDED:
+            self._redials = 0
+            self._handshake_failed = False
+
+    def _redial(self, sock) -> None:
+        """A connection ZeroMQ gave up (protocol error, refused handshake): dial again, backing off."""
+        if self._lost_at is None or time.monotonic() - self._lost_at < min(REDIAL_MAX_S,
+                                                                            REDIAL_CHECK_S * 2 ** self._redials):
+            return
+        import zmq
+        self._lost_at = None
+        self._redials += 1
+        if not self._handshake_failed:
+            with self._lock:
+                self._snap.protocol_errors += 1
+        self._handshake_failed = False
+        try:
+            sock.disconnect(self.endpoint)
+        except zmq.ZMQError:
+            pass
+        if self.keys is not None:
+            self.keys.apply(sock)
+        sock.connect(self.endpoint)
 
     def ingest(self, parts) -> dict | None:
         """Decode one message into the latest-value slots (also usable without the thread)."""

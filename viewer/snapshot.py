@@ -132,7 +132,7 @@ def render_snapshot(messages, out_png: str | Path, size=(1280, 800), *, endpoint
 
 
 def collect_from_sub(endpoint: str, sensor: str | None = None, wait_s: float = 10.0,
-                     want_frames: int = V.DEFAULT_PERSIST_FRAMES) -> tuple[list[dict], dict]:
+                     want_frames: int = V.DEFAULT_PERSIST_FRAMES, keys=None) -> tuple[list[dict], dict]:
     """Listen on `endpoint` for at most `wait_s`: until a sensor description, a range-Doppler map and
     `want_frames` point clouds of one sensor have come. Returns (messages in arrival order, info)."""
     from .feed import Feed
@@ -140,7 +140,7 @@ def collect_from_sub(endpoint: str, sensor: str | None = None, wait_s: float = 1
     seen: dict[tuple[str, str], int] = {}
     clouds: dict[str, int] = {}
     t_end = time.monotonic() + wait_s
-    with Feed(endpoint, sensor) as feed:
+    with Feed(endpoint, sensor, keys=keys) as feed:
         snap = feed.snapshot()
         while time.monotonic() < t_end:
             snap = feed.snapshot()
