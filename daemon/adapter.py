@@ -134,10 +134,12 @@ def parse_udp_endpoint(text: str) -> tuple[int, str, int]:
 
 
 def _format_stats(s: dict) -> str:
-    drops = ", ".join(f"{k} {v}" for k, v in sorted(s["drop_reasons"].items()))
-    return (f"packets {s['packets']} (malformed {s['malformed']}), duplicates {s['duplicates']}, "
-            f"reordered {s['reordered']}, lost {s['lost']}, late {s['late']}; frames complete "
-            f"{s['frames_complete']}, dropped {s['frames_dropped']}" + (f" ({drops})" if drops else "")
+    def reasons(d):
+        return f" ({', '.join(f'{k} {v}' for k, v in sorted(d.items()))})" if d else ""
+    return (f"packets {s['packets']} (malformed {s['malformed']}{reasons(s['malformed_reasons'])}, implausible "
+            f"{s['implausible']}{reasons(s['implausible_reasons'])}, held {s['held']}), used {s['used']}, "
+            f"duplicates {s['duplicates']}, reordered {s['reordered']}, lost {s['lost']}, late {s['late']}; "
+            f"frames complete {s['frames_complete']}, dropped {s['frames_dropped']}{reasons(s['drop_reasons'])}"
             + (f"; restarts {s['restarts']}" if s["restarts"] else ""))
 
 
@@ -182,6 +184,7 @@ class StreamAdapter:
         self._lock = threading.Lock()
         self._epoch = 0
         self._pace: tuple[float, int] | None = None
+        self._next_health = math.inf
         self._warned: set[str] = set()
         self._event_limit = logs.RateLimitFilter(EVENT_LOG_INTERVAL_S)  # attached to `log` while running
 
@@ -222,6 +225,7 @@ class StreamAdapter:
             pub.seq = fr.index  # the wire seq is the frame's number in the stream
             pub.send(fr.data, ts)
             self.frames_published += 1
+            self._tick()  # a paced burst (frames replayed at once) still reports on time
 
     def _wait_pace(self, index: int, stop: threading.Event) -> None:
         now = time.monotonic()
@@ -255,6 +259,13 @@ class StreamAdapter:
         if first is not None and "first" not in self._warned:
             self._warned.add("first")
             log.info("cubecast adapter: first datagram: %s", ", ".join(f"{k} {v}" for k, v in first.items()))
+
+    def _tick(self) -> None:
+        """The events and a health line, once every health_interval_s."""
+        if (now := time.monotonic()) >= self._next_health:
+            self._next_health = now + self.health_interval_s
+            self._log_events()
+            self._health()
 
     def _health(self) -> None:
         s = self.stats()
@@ -290,7 +301,7 @@ class StreamAdapter:
                  "bytes)", self.udp_address[0], self.udp_address[1], self.sensor.sensor_id, self.publisher.endpoint,
                  self.publisher.run_id, r.frame_bytes)
         self.ready.set()
-        next_health = time.monotonic() + self.health_interval_s
+        self._next_health = time.monotonic() + self.health_interval_s
         try:
             while not stop.is_set() and not self._done():
                 try:
@@ -308,10 +319,7 @@ class StreamAdapter:
                         self._show_first()
                     if frames:
                         self._publish(frames, stop, live=True)
-                if (now := time.monotonic()) >= next_health:
-                    next_health = now + self.health_interval_s
-                    self._log_events()
-                    self._health()
+                self._tick()
         finally:
             sock.close()
             if saver is not None:
@@ -322,7 +330,7 @@ class StreamAdapter:
         log.info("cubecast adapter: reading %s, publishing '%s' on %s (run %s, frames of %d stream bytes)",
                  self.file, self.sensor.sensor_id, self.publisher.endpoint, self.publisher.run_id, r.frame_bytes)
         self.ready.set()
-        next_health = time.monotonic() + self.health_interval_s
+        self._next_health = time.monotonic() + self.health_interval_s
         for dg in iter_datagram_file(self.file):
             if stop.is_set() or self._done():
                 break
@@ -332,10 +340,7 @@ class StreamAdapter:
                 self._show_first()
             if frames:
                 self._publish(frames, stop, live=False)
-            if (now := time.monotonic()) >= next_health:
-                next_health = now + self.health_interval_s
-                self._log_events()
-                self._health()
+            self._tick()
 
     def run(self, stop: threading.Event | None = None) -> dict:
         """Until the stream ends (file), --frames, or `stop`; then flush. Returns the final stats."""

@@ -8,9 +8,15 @@ components x bytes per sample; 3/2 bytes per sample when packed), frame k is str
 [k F, (k+1) F). A payload may span frames. At most `window_frames` frames are in flight (being filled);
 a datagram for a frame beyond the window gives up the oldest: a frame with missing bytes is dropped
 with its reason and counted, never published half-filled. Complete frames are published in order with
-`seq` = k. Datagram losses, duplicates and reordering are counted from `packet_sequence`; a stream that
-restarts (its counter and byte offset jump back and keep counting from there) is followed with a new
-`run` id.
+`seq` = k. Datagram losses, duplicates and reordering are counted from `packet_sequence`.
+
+Trust: no header field is taken on its word (streamcheck.py). A stream is followed once RESTART_PACKETS
+datagrams agree (distinct counters, byte offsets on one payload grid); from then on a datagram is used
+only if it fits the stream: payload at most the stream's size, counter at most MAX_COUNTER_STEP ahead
+and inside the reordering window behind, byte offset exactly where the grid puts its counter. The
+others are held as possible evidence of a new stream and, unless RESTART_PACKETS of them agree with
+each other (the board restarted: followed with a new `run` id, the held datagrams replayed), counted
+by their reason. Bytes once placed in a frame are never overwritten.
 """
 
 from __future__ import annotations
@@ -23,11 +29,13 @@ import numpy as np
 
 from .errors import CubecastError
 from .sensor import Sensor
+from .streamcheck import (COUNTER, LATE, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW,
+                          MIN_COUNTER_WINDOW, OFFSET, RESTART_PACKETS, SIZE, UNCONFIRMED, UNDECIDED, Evidence,
+                          Held, on_grid, signed_step)
 from .streamlayout import FrameConverter, StreamLayout
 
 DEFAULT_WINDOW_FRAMES = 3
 MAX_WINDOW_FRAMES = 16
-RESTART_PACKETS = 16  # consecutive datagrams far behind the stream, counting up: the board restarted
 
 
 # ---- datagrams -> frames (pure, no I/O) ---------------------------------------------------------
@@ -58,15 +66,13 @@ NEW, REORDERED, DUPLICATE, BEHIND = "new", "reordered", "duplicate", "behind"
 
 
 class SequenceTracker:
-    """Classifies datagram counters: new (ahead of all seen), reordered (behind the highest but never
-    seen), duplicate (seen already), behind (older than the window: cannot tell). A number skipped
-    over counts as lost once it falls out of the window without arriving (or at `finish`).
-
-    The counter wraps at 2**bits; values are unwrapped to the nearest of the highest seen."""
+    """Classifies (unwrapped) datagram counters: new (ahead of all seen), reordered (behind the highest
+    but never seen), duplicate (seen already), behind (older than the window: cannot tell). A number
+    skipped over counts as lost once it falls out of the window without arriving (or at `finish`).
+    Memory: at most `window` numbers (window <= 2**(bits-1) - 1, so wrapped counters unwrap uniquely)."""
 
     def __init__(self, bits: int, window: int):
-        self.mod = 1 << bits
-        self.window = max(1, min(window, self.mod // 2 - 1))
+        self.window = max(1, min(window, (1 << bits) // 2 - 1))
         self.first: int | None = None
         self.hi: int | None = None
         self._order: collections.deque = collections.deque()
@@ -74,16 +80,7 @@ class SequenceTracker:
         self._early: set[int] = set()
         self.reordered = self.duplicates = self.lost = 0
 
-    def unwrap(self, raw: int) -> int:
-        if self.hi is None:
-            return raw
-        d = (raw - self.hi) % self.mod
-        if d >= self.mod // 2:
-            d -= self.mod
-        return self.hi + d
-
-    def classify(self, raw: int) -> str:
-        s = self.unwrap(raw)
+    def classify(self, s: int) -> str:
         if self.hi is None:
             self.first = self.hi = s
             return NEW
@@ -118,6 +115,10 @@ class SequenceTracker:
         self.duplicates += 1
         return DUPLICATE
 
+    def sizes(self) -> tuple[int, int, int]:
+        """(numbers awaited, numbers missing, early numbers seen): each at most `window`."""
+        return len(self._order), len(self._missing), len(self._early)
+
     def finish(self) -> None:
         """The stream ended (or restarted): every number still missing is lost."""
         self.lost += len(self._missing)
@@ -125,21 +126,18 @@ class SequenceTracker:
         self._order.clear()
 
 
-def _unwrap(raw: int, ref: int | None, mod: int) -> int:
-    if ref is None:
-        return raw
-    d = (raw - ref) % mod
-    if d >= mod // 2:
-        d -= mod
-    return ref + d
-
-
 class Reassembler:
     """Datagrams in (feed), complete frames in the sensor's ADC format out, in order, with counters.
-    Pure and I/O free; not thread-safe. Memory: `window_frames` frame buffers, reused."""
+    Pure and I/O free; not thread-safe. Memory: `window_frames` frame buffers, reused; at most
+    MAX_HELD_DATAGRAMS datagrams held (streamcheck.py); a counter window of at most MAX_COUNTER_WINDOW.
 
-    COUNTERS = ("packets", "payload_bytes", "malformed", "duplicates", "reordered", "lost", "late",
-                "frames_complete", "frames_dropped", "missing_bytes", "frame_number_mismatches", "restarts")
+    Counters: every datagram is counted once, as malformed (by `malformed_reasons`), implausible (by
+    `implausible_reasons`), a duplicate, late, or used (its payload went into a frame in flight); until
+    then it is `held` (a gauge): packets == malformed + implausible + duplicates + late + used + held."""
+
+    COUNTERS = ("packets", "payload_bytes", "malformed", "implausible", "duplicates", "reordered", "lost",
+                "late", "used", "frames_complete", "frames_dropped", "missing_bytes", "frame_number_mismatches",
+                "restarts")
 
     def __init__(self, layout: StreamLayout, sensor: Sensor, window_frames: int = DEFAULT_WINDOW_FRAMES):
         if isinstance(window_frames, bool) or not isinstance(window_frames, int) \
@@ -152,40 +150,58 @@ class Reassembler:
         self.header_size = layout.header_size_bytes
         seq_f, off_f = layout.field("packet_sequence"), layout.field("byte_offset")
         size_f, fn_f = layout.field("payload_size"), layout.field("frame_number")
-        self._read_seq, self._seq_bits = seq_f.reader(), seq_f.bits
+        self._read_seq, self._seq_bits, self._seq_mod = seq_f.reader(), seq_f.bits, 1 << seq_f.bits
         self._read_off, self._off_mod = off_f.reader(), 1 << off_f.bits
         self._read_size = size_f.reader() if size_f else None
         self._read_fn = fn_f.reader() if fn_f else None
         self._fn_mod = (1 << fn_f.bits) if fn_f else 0
+        self.max_step = min(MAX_COUNTER_STEP, self._seq_mod // 2 - 1)
         self._pool = [_Slot(self.frame_bytes) for _ in range(window_frames)]
         self.counters: dict[str, int] = {k: 0 for k in self.COUNTERS}
         self.drop_reasons: collections.Counter = collections.Counter()
         self.malformed_reasons: collections.Counter = collections.Counter()
+        self.implausible_reasons: collections.Counter = collections.Counter()
         self.events: collections.deque = collections.deque(maxlen=256)  # (kind, text) for the caller's log
         self.epoch = 0
         self.first_header: dict[str, int] | None = None
+        self.evidence = Evidence(self.frame_bytes, seq_f.bits, off_f.bits)
+        self._replay: collections.deque = collections.deque()
+        self._arrivals = 0
         self._reset()
 
     def _reset(self) -> None:
+        self.payload: int | None = None  # the stream's payload size; None: no stream established
         self.base: int | None = None  # the oldest frame not yet published or dropped
         self.slots: dict[int, _Slot] = {}
         self.seqs: SequenceTracker | None = None
-        self._off_ref: int | None = None
+        self._anchor_seq = self._anchor_off = 0  # the highest counter used (unwrapped) and its byte offset
+        self._step = self._off = 0  # _judge's result: step from the anchor, unwrapped byte offset
+        self.grid = UNDECIDED  # streamcheck: continuous, or cut at frame ends (told apart at a frame end)
         self._fn_diff: int | None = None
-        self._behind: list[tuple[int, bytes, float]] = []
 
     # -- public ---------------------------------------------------------------------------------
     def feed(self, datagram, arrival_s: float = 0.0) -> list[AssembledFrame]:
-        """Take one datagram (bytes-like; not kept after the call). Returns the frames completed by it
-        (usually none or one), oldest first."""
+        """Take one datagram (bytes-like; not kept after the call unless held, then as a copy). Returns
+        the frames completed by it (usually none or one), oldest first."""
         out: list[AssembledFrame] = []
         self.counters["packets"] += 1
-        self._feed(memoryview(datagram), arrival_s, out)
+        self._arrivals += 1
+        self._feed(memoryview(datagram), arrival_s, out, None)
+        if self._replay:
+            self._run_replay(out)
         return out
 
     def flush(self, reason: str = "the stream ended") -> list[AssembledFrame]:
-        """End of the stream: publish what is complete, drop what is not, settle the loss count."""
+        """End of the stream: with no stream established, follow the grid with most datagrams; publish
+        what is complete, drop what is not, count what is still held by its reason, settle the losses."""
         out: list[AssembledFrame] = []
+        if self.payload is None:
+            best = self.evidence.longest()
+            if best is not None:
+                self._establish(best, out)
+                self._run_replay(out)
+        for item in self.evidence.take_all():
+            self._give_up(item)
         self._finish(out, reason)
         return out
 
@@ -193,21 +209,26 @@ class Reassembler:
         s: dict[str, Any] = dict(self.counters)
         s["drop_reasons"] = dict(self.drop_reasons)
         s["malformed_reasons"] = dict(self.malformed_reasons)
+        s["implausible_reasons"] = dict(self.implausible_reasons)
         if self.seqs is not None:
             s["duplicates"] += self.seqs.duplicates
             s["reordered"] += self.seqs.reordered
             s["lost"] += self.seqs.lost
+        s["held"] = self.evidence.held
+        s["held_bytes"] = self.evidence.held_bytes
         s["frames_in_flight"] = len(self.slots)
         s["frame_bytes"] = self.frame_bytes
+        s["stream_payload_bytes"] = self.payload
         return s
 
-    # -- internals ------------------------------------------------------------------------------
+    # -- one datagram ---------------------------------------------------------------------------
     def _malformed(self, reason: str, text: str) -> None:
         self.counters["malformed"] += 1
         self.malformed_reasons[reason] += 1
         self.events.append(("malformed", text))
 
-    def _feed(self, dg: memoryview, t: float, out: list) -> None:
+    def _feed(self, dg: memoryview, t: float, out: list, item: Held | None) -> None:
+        """`item`: the datagram is being replayed (held before)."""
         n = dg.nbytes
         h = self.header_size
         if n < h:
@@ -225,27 +246,63 @@ class Reassembler:
         else:
             payload = dg[h:]
         length = payload.nbytes
-        F = self.frame_bytes
         if self.first_header is None:
             self.first_header = {f.name: f.shown(f.reader()(dg)) for f in self.layout.fields}
             self.first_header["datagram_bytes"] = n
-        off = _unwrap(off_raw, self._off_ref, self._off_mod)
-        far_behind = off < 0 or (self.base is not None and off + length <= (self.base - self.window) * F)
-        if self.seqs is None and not far_behind:
-            per_frame = -(-F // max(1, length))
-            self.seqs = SequenceTracker(self._seq_bits, max(16, (self.window + 1) * per_frame))
-        cls = BEHIND if far_behind else self.seqs.classify(seq_raw)
-        if cls == BEHIND:
-            self._far_behind(seq_raw, dg, t, out)
+        reason = self._judge(seq_raw, off_raw, length, item is None)
+        if reason is not None:
+            self._hold(dg, t, reason, seq_raw, off_raw, length, item, out)
             return
-        if self._behind:
-            self.counters["late"] += len(self._behind)
-            self._behind.clear()
+        self._use(self._anchor_seq + self._step, self._off, dg, payload, t, out)
+
+    def _judge(self, seq_raw: int, off_raw: int, length: int, tell: bool) -> str | None:
+        """None if the datagram fits the stream (its step from the anchor in self._step, its unwrapped
+        byte offset in self._off), else the reason it does not (an event text too, if `tell`)."""
+        P = self.payload
+        if P is None:
+            return UNCONFIRMED
+        if length > P:
+            if tell:
+                self.events.append(("implausible", f"datagram counter {seq_raw}: a payload of {length} bytes, "
+                                                   f"longer than the stream's {P}-byte payloads"))
+            return SIZE
+        d = signed_step(self._anchor_seq, seq_raw, self._seq_mod)
+        off, grid = on_grid(self._anchor_off, d, P, self.frame_bytes, off_raw, self._off_mod, self.grid)
+        hi_known = self.seqs is not None and self.seqs.hi is not None
+        behind = d <= -self.seqs.window if hi_known else d < -self.max_step
+        if d > self.max_step or behind:
+            if off >= 0 and behind:
+                return LATE
+            if tell:
+                where = (f"{d} ahead of the stream's ({self._anchor_seq % self._seq_mod}; at most {self.max_step})"
+                         if d > 0 else f"{-d} behind the stream's ({self._anchor_seq % self._seq_mod}), older than "
+                                       f"its window of {self.seqs.window if hi_known else self.max_step}")
+                self.events.append(("implausible", f"datagram counter {seq_raw} is {where}"))
+            return COUNTER
+        if off < 0:
+            if tell:
+                expect = (self._anchor_off + d * P) % self._off_mod
+                self.events.append(("implausible", f"datagram counter {seq_raw} carries byte_offset {off_raw}; "
+                                                   f"the stream puts that counter at byte {expect} (payloads of {P} "
+                                                   f"bytes; check byte_offset and the sensor's frame size)"))
+            return OFFSET
+        self._step, self._off, self.grid = d, off, grid
+        return None
+
+    def _use(self, s: int, off: int, dg: memoryview, payload: memoryview, t: float, out: list) -> None:
+        cls = self.seqs.classify(s)
+        if cls == NEW:
+            self._anchor_seq, self._anchor_off = s, off
+        length = payload.nbytes
         if cls == DUPLICATE:
+            if length:
+                self._place(off, payload, t, out)  # fills only bytes no datagram has filled yet
+            return
+        if cls == BEHIND:  # not after _judge (the anchor is the highest counter); counted late if it were
+            self.counters["late"] += 1
             return
         self.counters["payload_bytes"] += length
-        if self._off_ref is None or off > self._off_ref:
-            self._off_ref = off
+        F = self.frame_bytes
         if self._read_fn is not None:
             d = (self._read_fn(dg) - off // F) % self._fn_mod
             if self._fn_diff is None:
@@ -255,25 +312,60 @@ class Reassembler:
                 self.events.append(("frame_number", f"datagram at byte offset {off} carries frame_number "
                                                     f"{self._read_fn(dg)}, off by {(d - self._fn_diff) % self._fn_mod} "
                                                     f"from the frame its offset gives with frames of {F} bytes"))
-        if length:
-            self._place(off, payload, t, out)
+        used = self._place(off, payload, t, out) if length else True
+        self.counters["used" if used else "late"] += 1
 
-    def _far_behind(self, seq_raw: int, dg: memoryview, t: float, out: list) -> None:
-        buf = self._behind
-        if buf and (seq_raw - buf[-1][0]) % (1 << self._seq_bits) != 1:
-            self.counters["late"] += len(buf)
-            buf.clear()
-        buf.append((seq_raw, bytes(dg), t))
-        if len(buf) >= RESTART_PACKETS:
-            held = list(buf)
-            buf.clear()
+    # -- held datagrams, new streams --------------------------------------------------------------
+    def _hold(self, dg: memoryview, t: float, reason: str, seq_raw: int, off_raw: int, length: int,
+              item: Held | None, out: list) -> None:
+        if item is None:
+            item = Held(self._arrivals, bytes(dg), t, reason, seq_raw, off_raw, length)
+        else:
+            item.reason = reason
+        winner = self.evidence.offer(item, self._give_up)
+        if winner is not None:
+            self._establish(winner, out)
+
+    def _give_up(self, item: Held) -> None:
+        """Count a held datagram that will not be used, by the reason the stream gave it."""
+        if item.reason == LATE:
+            self.counters["late"] += 1
+            return
+        self.counters["implausible"] += 1
+        self.implausible_reasons[item.reason] += 1
+        if item.reason == UNCONFIRMED:
+            self.events.append(("unconfirmed", f"no stream yet: {self.counters['packets']} datagrams, no "
+                                               f"{RESTART_PACKETS} of them with distinct counters on one payload "
+                                               "grid (counter +1 and byte offset + payload size per datagram); "
+                                               "check the layout's packet_sequence and byte_offset fields"))
+
+    def _establish(self, c, out: list) -> None:
+        """Follow the grid `c` (a restart if a stream was followed), then replay every held datagram."""
+        if self.payload is not None:
+            old = (self._anchor_seq % self._seq_mod, self._anchor_off % self._off_mod)
             self._finish(out, "the stream restarted")
             self.counters["restarts"] += 1
             self.epoch += 1
-            self.events.append(("restart", f"the stream restarted (datagram counter {held[0][0]}); new run"))
-            for _, data, t0 in held:
-                self._feed(memoryview(data), t0, out)
+            self.events.append(("restart", f"the stream restarted: {len(c.items)} datagrams agree from counter "
+                                           f"{c.seq}, byte offset {c.off} (the stream was at counter {old[0]}, "
+                                           f"byte offset {old[1]}); new run"))
+        self.payload = c.payload
+        self._anchor_seq, self._anchor_off = c.seq, c.off
+        per_frame = -(-self.frame_bytes // c.payload)
+        window = min(MAX_COUNTER_WINDOW, max(MIN_COUNTER_WINDOW, (self.window + 1) * per_frame))
+        self.seqs = SequenceTracker(self._seq_bits, window)
+        pending = self.evidence.take_all() + list(self._replay)
+        pending.sort(key=lambda it: it.arrival)
+        self._replay = collections.deque(pending)
 
+    def _run_replay(self, out: list) -> None:
+        """Feed the held datagrams again, oldest first (a new stream found during this starts over with
+        what is left: each round uses at least the new stream's first datagram, so this ends)."""
+        while self._replay:
+            item = self._replay.popleft()
+            self._feed(memoryview(item.data), item.t, out, item)
+
+    # -- frames ---------------------------------------------------------------------------------
     def _finish(self, out: list, reason: str) -> None:
         if self.slots:
             self._advance(max(self.slots) + 1, out, reason)
@@ -281,10 +373,11 @@ class Reassembler:
             self.seqs.finish()
             for k in ("duplicates", "reordered", "lost"):
                 self.counters[k] += getattr(self.seqs, k)
-        self.counters["late"] += len(self._behind)
         self._reset()
 
-    def _place(self, off: int, payload: memoryview, t: float, out: list) -> None:
+    def _place(self, off: int, payload: memoryview, t: float, out: list) -> bool:
+        """Copy the payload's bytes into the frames in flight (bytes already filled stay as they are).
+        Returns whether any part fell inside the window."""
         F, length = self.frame_bytes, payload.nbytes
         if self.base is None:
             self.base = off // F
@@ -303,16 +396,19 @@ class Reassembler:
                     slot.covered[:] = False
                     self.slots[k] = slot
                 seg = slot.covered[within:within + n]
-                new = n - int(np.count_nonzero(seg))
-                if new:
+                filled = int(np.count_nonzero(seg))
+                if filled == 0:
                     slot.view[within:within + n] = payload[pos:pos + n]
+                elif filled < n:  # a partial overlap: copy only the new bytes (rare, allocates)
+                    np.copyto(slot.data[within:within + n], np.frombuffer(payload[pos:pos + n], np.uint8),
+                              where=~seg)
+                if filled < n:
                     seg[:] = True
-                    slot.received += new
+                    slot.received += n - filled
                 used = True
             pos += n
-        if not used:
-            self.counters["late"] += 1
         self._drain(out)
+        return used
 
     def _drain(self, out: list) -> None:
         while self.base in self.slots and self.slots[self.base].received == self.frame_bytes:
@@ -351,3 +447,4 @@ class Reassembler:
             self.drop_reasons["incomplete"] += 1
             self.events.append(("dropped", f"frame {slot.index}: {missing} of {F} bytes missing ({reason})"))
         self._pool.append(slot)
+

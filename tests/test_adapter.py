@@ -425,9 +425,10 @@ def test_window_gives_up_a_frame_whose_datagram_comes_too_late():
     stream = b"".join(encode_frame(f, ["chirp", "rx", "sample", "iq"], "iq") for f in frames)
     packets = packetize(stream, 256, header_a, 1536)  # 6 datagrams per frame, aligned
     late = packets[8]  # frame 1; frame 4 begins with datagram 24, which gives frame 1 up
-    for delay, lost, reordered in ((20, 0, 1), (30, 1, 0)):
-        # 20 datagrams late: out of the frame window, still inside the counter window (4 frames = 24
-        # datagrams): reordered and late. 30: out of both: counted lost, then late when it shows up.
+    for delay, lost, reordered in ((20, 0, 1), (40, 1, 0)):
+        # 20 datagrams late: out of the frame window, still inside the counter window (the larger of
+        # 4 frames = 24 datagrams and 2 x RESTART_PACKETS = 32): reordered and late. 40: out of both:
+        # counted lost, then late when it shows up (held as a possible restart, then given up).
         order = packets[:8] + packets[9:9 + delay] + [late] + packets[9 + delay:]
         r = Reassembler(parse_layout(LAYOUT_A), sensor, window_frames=3)
         got = [f for p in order for f in r.feed(p[3])] + r.flush()
