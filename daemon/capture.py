@@ -300,8 +300,8 @@ class CaptureReader:
     CaptureReader(path, skip_corrupt=False, skip_repeated=False)
 
     Opening reads the file header and scans the record headers (seeking over payloads) to index
-    the frames.  Problems found while scanning are listed in `problems` instead of raising, and
-    counted in `counts` (one reason per line):
+    the frames.  Problems found while scanning are listed in `problems` instead of raising; each
+    line about a record is counted in `counts` under one reason:
 
     - `truncated_tail`: the file is cut inside a record header or payload; the incomplete record
       is not a frame, the complete frames before it read normally;
