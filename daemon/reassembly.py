@@ -192,12 +192,13 @@ class Reassembler:
         return out
 
     def flush(self, reason: str = "the stream ended") -> list[AssembledFrame]:
-        """End of the stream: with no stream established, follow the grid with most datagrams; publish
-        what is complete, drop what is not, count what is still held by its reason, settle the losses."""
+        """End of the stream: with no stream established, follow the grid with most datagrams (at least
+        two); publish what is complete, drop what is not, count what is still held by its reason, settle
+        the losses."""
         out: list[AssembledFrame] = []
         if self.payload is None:
             best = self.evidence.longest()
-            if best is not None:
+            if best is not None and len(best.items) >= 2:  # a lone datagram agrees with nothing
                 self._establish(best, out)
                 self._run_replay(out)
         for item in self.evidence.take_all():

@@ -17,6 +17,7 @@ datagrams) until a grid collects that many (a new stream: replay them all) or th
 
 from __future__ import annotations
 
+import collections
 from typing import Callable
 
 RESTART_PACKETS = 16
@@ -49,13 +50,14 @@ MAX_COUNTER_WINDOW = 8192
 """Largest reordering window of the counter: bounds the SequenceTracker's memory."""
 
 MAX_CANDIDATES = 8
-"""Grids under test at once. Random garbage starts a grid per datagram; the smallest (then oldest) is
-given up first, so a grid that has collected two or more datagrams outlives any run of fewer than
-MAX_CANDIDATES garbage datagrams in a row."""
+"""Grids under test at once (each datagram held is tried on each). Random garbage starts a grid per
+datagram; the smallest (then oldest) grid stops being tested first (its datagrams stay held, loose), so
+a grid that has collected two or more datagrams outlives any run of garbage."""
 
 MAX_HELD_DATAGRAMS = 4 * RESTART_PACKETS
 """Datagrams held at once (each at most 65535 bytes: at most 4 MiB): one stream's evidence plus three
-garbage datagrams for each of its datagrams."""
+garbage datagrams for each of its datagrams. Beyond it the oldest loose datagrams are given up and
+counted; so a datagram is counted at most this many datagrams after it arrived."""
 
 SIZE, COUNTER, OFFSET, UNCONFIRMED, LATE = "size", "counter", "offset", "unconfirmed", "late"
 IMPLAUSIBLE_REASONS = (SIZE, COUNTER, OFFSET, UNCONFIRMED)
@@ -150,41 +152,47 @@ class Candidate:
 
 
 class Evidence:
-    """The held datagrams, grouped by the grid they lie on (bounded; see the module docstring)."""
+    """The held datagrams: on the grids they lie on (at most MAX_CANDIDATES grids), or loose (on no grid
+    under test: waiting to be judged by the next stream), at most MAX_HELD_DATAGRAMS in all."""
 
     def __init__(self, frame_bytes: int, seq_bits: int, off_bits: int):
         self.frame_bytes = frame_bytes
         self.seq_mod, self.off_mod = 1 << seq_bits, 1 << off_bits
         self.candidates: list[Candidate] = []
+        self.loose: collections.deque[Held] = collections.deque()
         self.held = 0
         self.held_bytes = 0
         self._created = 0
 
     def offer(self, item: Held, give_up: Callable[[Held], None]) -> Candidate | None:
-        """Hold `item` on the first grid it fits, or on a new one (a zero-length payload makes no grid:
-        given up at once). Gives up the smallest, then oldest, grids beyond the bounds (`give_up` is
-        called for each of their datagrams). Returns the grid if it now holds RESTART_PACKETS datagrams."""
+        """Hold `item` on the largest grid it fits, or on a new one (a zero-length payload makes no grid:
+        it waits loose). Beyond MAX_CANDIDATES grids the smallest (then oldest) one's datagrams go loose;
+        beyond MAX_HELD_DATAGRAMS the oldest loose ones are given up (`give_up` called for each).
+        Returns the grid if it now holds RESTART_PACKETS datagrams."""
+        best, best_d = None, -1
         for c in self.candidates:
             d = c.admits(item, self.frame_bytes, self.seq_mod, self.off_mod)
-            if d >= 0:
-                c.steps.add(d)
-                c.items.append(item)
-                self._count(item, 1)
-                return c if len(c.items) >= RESTART_PACKETS else None
-        if item.length == 0:
-            give_up(item)
-            return None
-        c = Candidate(item, self._created)
-        self._created += 1
-        self.candidates.append(c)
+            if d >= 0 and (best is None or len(c.items) > len(best.items)):
+                best, best_d = c, d
         self._count(item, 1)
-        while len(self.candidates) > MAX_CANDIDATES or self.held > MAX_HELD_DATAGRAMS:
-            victim = min(self.candidates, key=lambda x: (len(x.items), x.created))
-            self.candidates.remove(victim)
-            for it in victim.items:
-                self._count(it, -1)
-                give_up(it)
-        return c if len(c.items) >= RESTART_PACKETS else None
+        if best is not None:
+            best.steps.add(best_d)
+            best.items.append(item)
+        elif item.length == 0:
+            self.loose.append(item)
+        else:
+            best = Candidate(item, self._created)
+            self._created += 1
+            self.candidates.append(best)
+            if len(self.candidates) > MAX_CANDIDATES:
+                self._loosen(best)
+        while self.held > MAX_HELD_DATAGRAMS:
+            if not self.loose:
+                self._loosen(best)
+            lost = self.loose.popleft()
+            self._count(lost, -1)
+            give_up(lost)
+        return best if best is not None and len(best.items) >= RESTART_PACKETS else None
 
     def longest(self) -> Candidate | None:
         """The grid with most datagrams (the oldest of equals), or None."""
@@ -192,10 +200,20 @@ class Evidence:
 
     def take_all(self) -> list[Held]:
         """Every held datagram, in arrival order; nothing is held afterwards."""
-        items = sorted((it for c in self.candidates for it in c.items), key=lambda it: it.arrival)
+        items = [it for c in self.candidates for it in c.items] + list(self.loose)
+        items.sort(key=lambda it: it.arrival)
         self.candidates.clear()
+        self.loose.clear()
         self.held = self.held_bytes = 0
         return items
+
+    def _loosen(self, keep: Candidate | None) -> None:
+        """The smallest (then oldest) grid other than `keep` (if there is another) stops being tested;
+        its datagrams wait loose, oldest first."""
+        others = [c for c in self.candidates if c is not keep] or self.candidates
+        victim = min(others, key=lambda x: (len(x.items), x.created))
+        self.candidates.remove(victim)
+        self.loose.extend(sorted(victim.items, key=lambda it: it.arrival))
 
     def _count(self, item: Held, sign: int) -> None:
         self.held += sign
