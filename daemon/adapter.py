@@ -40,7 +40,7 @@ from pathlib import Path
 from typing import Iterator
 
 from . import logs
-from .errors import CubecastError
+from .errors import CubecastError, is_integer, is_real
 from .reassembly import DEFAULT_WINDOW_FRAMES, AssembledFrame, Reassembler
 from .sensor import Sensor
 from .streamlayout import MAX_DATAGRAM_BYTES, StreamLayout, load_layout
@@ -68,15 +68,24 @@ class DatagramFileWriter:
     def write(self, datagram) -> None:
         view = memoryview(datagram)
         if view.nbytes > MAX_DATAGRAM_BYTES:
-            raise CubecastError(f"datagram of {view.nbytes} bytes: at most {MAX_DATAGRAM_BYTES}")
-        self._f.write(DATAGRAM_LENGTH.pack(view.nbytes))
-        self._f.write(view)
+            raise CubecastError(f"--save-datagrams {self.path}: datagram {self.datagrams} has {view.nbytes} bytes; "
+                                f"a datagram file holds at most {MAX_DATAGRAM_BYTES} per datagram")
+        try:
+            self._f.write(DATAGRAM_LENGTH.pack(view.nbytes))
+            self._f.write(view)
+        except OSError as exc:
+            raise CubecastError(f"--save-datagrams {self.path}: cannot write datagram {self.datagrams}: "
+                                f"{exc.strerror or exc}") from None
         self.datagrams += 1
 
     def close(self) -> None:
         if self._f is not None:
-            self._f.close()
-            self._f = None
+            f, self._f = self._f, None
+            try:
+                f.close()
+            except OSError as exc:
+                raise CubecastError(f"--save-datagrams {self.path}: cannot finish the file: "
+                                    f"{exc.strerror or exc}") from None
 
     def __enter__(self):
         return self
@@ -99,7 +108,10 @@ def iter_datagram_file(path: str | Path) -> Iterator[memoryview]:
     pos = 0
     with f:
         while True:
-            head = f.read(4)
+            try:
+                head = f.read(4)
+            except OSError as exc:
+                raise CubecastError(f"--file {path}: cannot read at byte {pos}: {exc.strerror or exc}") from None
             if not head:
                 return
             if len(head) < 4:
@@ -110,7 +122,10 @@ def iter_datagram_file(path: str | Path) -> Iterator[memoryview]:
             if n > MAX_DATAGRAM_BYTES:
                 raise CubecastError(f"{path}: record at byte {pos} has length {n}: a datagram is at most "
                                     f"{MAX_DATAGRAM_BYTES} bytes (is this a datagram file?)")
-            got = f.readinto(view[:n])
+            try:
+                got = f.readinto(view[:n])
+            except OSError as exc:
+                raise CubecastError(f"--file {path}: cannot read at byte {pos + 4}: {exc.strerror or exc}") from None
             if got < n:
                 log.warning("cubecast adapter: warning: %s: the last record is truncated at byte %d (%d of %d bytes); "
                             "ignored", path, pos, got, n)
@@ -165,6 +180,12 @@ class StreamAdapter:
             raise CubecastError(f"--speed {speed!r}: must be a number > 0 or 'max'")
         if save_datagrams is not None and listen is None:
             raise CubecastError("--save-datagrams applies to --listen only (a --file is already saved)")
+        for name, value, zero_ok in (("health_interval_s", health_interval_s, False), ("wait_s", wait_s, True)):
+            if not is_real(value) or not math.isfinite(value) or value < 0 or (value == 0 and not zero_ok):
+                raise CubecastError(f"adapter {name} = {value!r}: must be a number of seconds "
+                                    + (">= 0" if zero_ok else "> 0"))
+        if not is_integer(rcvbuf_bytes) or rcvbuf_bytes <= 0:
+            raise CubecastError(f"adapter rcvbuf_bytes = {rcvbuf_bytes!r}: must be a whole number of bytes > 0")
         self.udp = parse_udp_endpoint(listen) if listen is not None else None
         self.file = file
         if file is not None and not Path(file).is_file():

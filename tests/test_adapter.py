@@ -699,6 +699,27 @@ def test_layout_and_sensor_must_agree_and_options_are_checked(tmp_path):
         StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", frames=-1)
 
 
+def test_adapter_parameters_and_file_errors_name_what_is_wrong(tmp_path):
+    layout, sensor = parse_layout(LAYOUT_A), small_sensor()
+    for kw, text in ((dict(health_interval_s=0), "health_interval_s = 0: must be a number of seconds > 0"),
+                     (dict(health_interval_s=float("inf")), "health_interval_s = inf"),
+                     (dict(wait_s=-1), "wait_s = -1: must be a number of seconds >= 0"),
+                     (dict(rcvbuf_bytes=0), "rcvbuf_bytes = 0: must be a whole number of bytes > 0"),
+                     (dict(rcvbuf_bytes=2.5), "rcvbuf_bytes = 2.5")):
+        with pytest.raises(CubecastError) as info:
+            StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", **kw)
+        assert text in str(info.value)
+    # a full disk while saving (Linux's /dev/full fails every write with ENOSPC)
+    from cubecast.daemon.adapter import DatagramFileWriter
+    with pytest.raises(CubecastError, match=r"--save-datagrams /dev/full: cannot (write|finish).*No space"):
+        w = DatagramFileWriter("/dev/full")
+        for _ in range(10_000):
+            w.write(b"x" * 100)
+        w.close()
+    with pytest.raises(CubecastError, match=r"--file .*: cannot open: Is a directory"):
+        list(iter_datagram_file(tmp_path))
+
+
 def test_malformed_datagrams_are_counted_not_used():
     sensor = small_sensor()
     frames = raw_frames(sensor, 2)
