@@ -104,8 +104,9 @@ class AdcPublisher:
 
     @property
     def handshakes_refused(self) -> int:
-        """Subscribers refused in the security handshake so far (unknown key, no key, wrong public key)."""
-        return self.counter.count() if self.counter is not None else 0
+        """Subscribers refused in the security handshake (unknown key, no key, wrong public key), as
+        counted at the last send, wait or close (safe to read from any thread)."""
+        return self.counter.refused if self.counter is not None else 0
 
     def describe(self) -> str:
         return f"{self.endpoint} ({'keys required' if self.keys is not None else 'no keys'})"
@@ -141,6 +142,7 @@ class AdcPublisher:
 
     def close(self) -> None:
         if self.counter is not None:
+            self.counter.count()
             self.counter.close()
         if self.sock is not None:
             self.sock.close()
@@ -281,8 +283,8 @@ class ReplaySource:
 
     def close(self) -> None:
         if self.publisher is not None:
-            self.handshakes_refused = self.publisher.handshakes_refused
             self.publisher.close()
+            self.handshakes_refused = self.publisher.handshakes_refused
             self.publisher = None
         self.reader.close()
 
@@ -335,8 +337,8 @@ def publish_simulation(sensor: Sensor, scene: Scene, endpoint: str, frames: int 
                 pub.send(payload, sim.frame_time_s(i))
                 i += 1
         finally:
-            refused = pub.handshakes_refused
             pub.close()
+            refused = pub.handshakes_refused
     log.info("cubecast simulate: sent %d frames%s", i, f"; refused {refused} subscriber handshakes" if keys else "")
     return 0
 

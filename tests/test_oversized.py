@@ -21,7 +21,7 @@ import pytest
 from cubecast.daemon.capture import CaptureReader
 from cubecast.daemon.sources import AdcPublisher, Recorder
 from cubecast.viewer.feed import PAYLOAD_MAX_BYTES, Feed
-from tests.test_service import Collector, quiescent, running_service, wait_until
+from tests.test_service import Collector, connected, quiescent, running_service, wait_until
 from tests.test_workers import YARD, frames, ref_points, reference_bytes, sensor  # noqa: F401
 from tests.viewer_messages import cloud, points_parts
 
@@ -60,7 +60,8 @@ def test_serve_counts_big_parts_and_keeps_the_stream(sensor, frames, ref_points)
     pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
     try:
         with running_service(sensor, pub.endpoint, queue_depth=128, rdmap_max_hz=0.0) as svc:
-            col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
+            col = Collector(svc.pub_endpoint, prefix=b"yard-a/")
+            connected(col)  # serve's sensor description came: the collector misses no cloud
             assert pub.wait_for_subscribers(1, 10, threading.Event())
             sent = _send_around_big_ones(pub, frames, [_big_adc(sensor, 0, n) for n in BIG_PARTS])
             assert wait_until(lambda: svc.stats()["frames_received"] == sent + len(BIG_PARTS), 30), svc.stats()
@@ -84,7 +85,8 @@ def test_serve_redials_after_a_part_above_its_hard_limit(sensor, frames):
     stop = threading.Event()
     try:
         with running_service(sensor, pub.endpoint, queue_depth=64, max_part_bytes=MIB) as svc:
-            col = Collector(svc.pub_endpoint, prefix=b"yard-a/points")
+            col = Collector(svc.pub_endpoint, prefix=b"yard-a/")
+            connected(col)
             assert pub.wait_for_subscribers(1, 10, stop)
             for _ in range(5):
                 pub.send(frames[pub.seq % len(frames)], pub.seq * 0.1)
