@@ -214,6 +214,7 @@ class Evidence:
         victim = min(others, key=lambda x: (len(x.items), x.created))
         self.candidates.remove(victim)
         self.loose.extend(sorted(victim.items, key=lambda it: it.arrival))
+        victim.items, victim.steps = [], set()
 
     def _count(self, item: Held, sign: int) -> None:
         self.held += sign

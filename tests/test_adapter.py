@@ -534,6 +534,31 @@ def send_paced(address, datagrams, burst=8, pause_s=0.002):
                 time.sleep(pause_s)
 
 
+def run_udp_live(layout, sensor, datagrams, saved):
+    """Run the adapter on udp://127.0.0.1 (a free port), saving what it receives to `saved`; send the
+    datagrams paced; stop once it counted them all or after 5 s (loopback may lose some). Returns
+    (final stats, the adc messages a SUB received)."""
+    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", wait_s=10,
+                      save_datagrams=saved, rcvbuf_bytes=4 * 1024 * 1024)
+    col = Collector(a.bind())
+    stop = threading.Event()
+    result = {}
+    t = threading.Thread(target=lambda: result.update(a.run(stop)), daemon=True)
+    t.start()
+    try:
+        assert a.ready.wait(10)
+        send_paced(a.udp_address, datagrams)
+        wait_until(lambda: a.stats()["packets"] >= len(datagrams), 5)  # datagrams lost on loopback end it at 5 s
+        stop.set()
+        t.join(10)
+        assert not t.is_alive()
+        assert col.wait_for(lambda c: len(c.of("adc")) >= result["frames_published"], 10)
+        return result, col.of("adc")
+    finally:
+        stop.set()
+        col.close()
+
+
 def test_udp_live_matches_the_simulated_frames_and_the_saved_datagrams(tmp_path):
     """Live over UDP on 127.0.0.1. Loopback can itself drop datagrams when the machine is busy, so
     the exact checks are: every published frame equals its simulated frame; the adapter's losses are
@@ -550,27 +575,7 @@ def test_udp_live_matches_the_simulated_frames_and_the_saved_datagrams(tmp_path)
     sent, withheld = impair(packets, np.random.default_rng(5), n_lost=5, n_dup=6, n_swap=8)
     counts, dropped = expected_counts(sent, withheld, fb)
     saved = tmp_path / "live.dgram"
-
-    a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", wait_s=10,
-                      save_datagrams=saved, rcvbuf_bytes=4 * 1024 * 1024)
-    col = Collector(a.bind())
-    stop = threading.Event()
-    result = {}
-    t = threading.Thread(target=lambda: result.update(a.run(stop)), daemon=True)
-    t.start()
-    try:
-        assert a.ready.wait(10)
-        send_paced(a.udp_address, [p[3] for p in sent])
-        wait_until(lambda: a.stats()["packets"] >= len(sent), 5)  # datagrams lost on loopback end it at 5 s
-        stop.set()
-        t.join(10)
-        assert not t.is_alive()
-        assert col.wait_for(lambda c: len(c.of("adc")) >= result["frames_published"], 10)
-        msgs = col.of("adc")
-    finally:
-        stop.set()
-        col.close()
-    s = result
+    s, msgs = run_udp_live(layout, sensor, [p[3] for p in sent], saved)
     on_wire_loss = len(sent) - s["packets"]
     assert s["malformed"] == 0 and s["lost"] >= counts["lost"]
     for m in msgs:

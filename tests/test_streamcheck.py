@@ -214,6 +214,22 @@ def test_a_genuine_restart_amid_garbage_is_followed_as_a_new_run():
     check_partition(s)
 
 
+def test_a_board_that_restarts_as_it_began_is_followed():
+    """Counter 0, byte offset 0 again, the same payloads: the new run lies on the old run's grid, only
+    older than its counter window (52 datagrams back, window 32): held as late, then followed."""
+    sensor = small_sensor()
+    frames = raw_frames(sensor, 14)
+    enc = [encode_frame(f, AXES, "iq") for f in frames]
+    first = packetize(b"".join(enc[:10]), 300, header_a, FB)
+    second = packetize(b"".join(enc[10:]), 300, header_a, FB)
+    r = Reassembler(parse_layout(LAYOUT_A), sensor)
+    got = feed_all(r, [p[3] for p in first + second])
+    s = r.stats()
+    assert [(f.epoch, f.index) for f in got] == [(0, k) for k in range(10)] + [(1, k) for k in range(4)]
+    assert all(np.array_equal(f.data, ref) for f, ref in zip(got, frames))
+    assert s["restarts"] == 1 and (s["late"], s["lost"], s["implausible"], s["frames_dropped"]) == (0, 0, 0, 0)
+
+
 @pytest.mark.parametrize("n_foreign", [RESTART_PACKETS - 1, RESTART_PACKETS])
 def test_a_foreign_stream_takes_over_only_with_restart_packets_datagrams(n_foreign):
     """A second sender's consistent stream (its own counters and offsets) interleaved with the board's:
@@ -472,35 +488,13 @@ def test_udp_live_with_half_garbage(tmp_path):
     itself drop datagrams on a busy machine: the exact checks then are that every published frame is
     its simulated frame and that the datagrams the adapter saved, replayed from the file, give the same
     counters; with nothing dropped, also every frame and the expected tallies."""
-    import threading
-    from cubecast.daemon.adapter import StreamAdapter
-    from tests.test_adapter import send_paced
-    from tests.test_service import Collector, wait_until
+    from tests.test_adapter import run_udp_live
     sensor, frames, packets = genuine_stream(20, 400)
     datagrams, kinds = interleave(packets, np.random.default_rng(77), len(packets), 400)
     # an IPv4 UDP payload is at most 65507 bytes (65535 - 20 IP - 8 UDP header bytes: Postel, RFC 768, 1980)
     datagrams = [d[:65507] for d in datagrams]
     saved = tmp_path / "live.dgram"
-    a = StreamAdapter(parse_layout(LAYOUT_A), sensor, "tcp://127.0.0.1:*", listen="udp://127.0.0.1:0", wait_s=10,
-                      save_datagrams=saved, rcvbuf_bytes=4 * 1024 * 1024)
-    col = Collector(a.bind())
-    stop = threading.Event()
-    result = {}
-    t = threading.Thread(target=lambda: result.update(a.run(stop)), daemon=True)
-    t.start()
-    try:
-        assert a.ready.wait(10)
-        send_paced(a.udp_address, datagrams)
-        wait_until(lambda: a.stats()["packets"] >= len(datagrams), 5)
-        stop.set()
-        t.join(10)
-        assert not t.is_alive()
-        assert col.wait_for(lambda c: len(c.of("adc")) >= result["frames_published"], 10)
-        msgs = col.of("adc")
-    finally:
-        stop.set()
-        col.close()
-    s = result
+    s, msgs = run_udp_live(parse_layout(LAYOUT_A), sensor, datagrams, saved)
     assert all(np.array_equal(m.data, frames[m.seq]) for m in msgs) and s["restarts"] == 0
     check_partition(s)
     if s["packets"] == len(datagrams):
