@@ -29,7 +29,7 @@ import numpy as np
 
 from .errors import CubecastError
 from .sensor import Sensor
-from .streamcheck import (COUNTER, LATE, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW,
+from .streamcheck import (COUNTER, EXPIRE_EVERY, LATE, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW, MAX_HELD_AGE,
                           MIN_COUNTER_WINDOW, OFFSET, RESTART_PACKETS, SIZE, UNCONFIRMED, UNDECIDED, Evidence,
                           Held, on_grid, signed_step)
 from .streamlayout import FrameConverter, StreamLayout
@@ -189,6 +189,8 @@ class Reassembler:
         self._feed(memoryview(datagram), arrival_s, out, None)
         if self._replay:
             self._run_replay(out)
+        if self.evidence.held and self._arrivals % EXPIRE_EVERY == 0:
+            self.evidence.expire(self._arrivals - MAX_HELD_AGE, self._give_up)
         return out
 
     def flush(self, reason: str = "the stream ended") -> list[AssembledFrame]:

@@ -11,13 +11,13 @@ by its reason (SIZE, COUNTER, OFFSET) instead of being used.
 
 A stream is only followed on evidence: RESTART_PACKETS datagrams with distinct counters on one grid.
 Datagrams the stream cannot use wait in `Evidence` (bounded: MAX_CANDIDATES grids, MAX_HELD_DATAGRAMS
-datagrams) until a grid collects that many (a new stream: replay them all) or they are given up
-(counted by the reason the stream gave them).
+datagrams, MAX_HELD_AGE arrivals) until a grid collects that many (a new stream: replay them all) or
+they are given up (counted by the reason the stream gave them).
 """
 
 from __future__ import annotations
 
-import collections
+import bisect
 from typing import Callable
 
 RESTART_PACKETS = 16
@@ -57,7 +57,17 @@ a grid that has collected two or more datagrams outlives any run of garbage."""
 MAX_HELD_DATAGRAMS = 4 * RESTART_PACKETS
 """Datagrams held at once (each at most 65535 bytes: at most 4 MiB): one stream's evidence plus three
 garbage datagrams for each of its datagrams. Beyond it the oldest loose datagrams are given up and
-counted; so a datagram is counted at most this many datagrams after it arrived."""
+counted."""
+
+MAX_HELD_AGE = 64 * RESTART_PACKETS
+"""Arrivals (datagrams of any kind) after which a held datagram is given up and counted, and a grid
+whose first datagram is that old stops being tested (checked every EXPIRE_EVERY arrivals). So a new
+stream's RESTART_PACKETS datagrams must come within about 1024 arrivals (up to 98 % garbage between
+them), a sender with fewer than RESTART_PACKETS datagrams in that many never takes over, and every
+datagram is counted at most MAX_HELD_AGE + EXPIRE_EVERY arrivals after it came."""
+
+EXPIRE_EVERY = 64
+"""How often (in arrivals) held datagrams are checked for age: rarely enough to cost nothing per datagram."""
 
 SIZE, COUNTER, OFFSET, UNCONFIRMED, LATE = "size", "counter", "offset", "unconfirmed", "late"
 IMPLAUSIBLE_REASONS = (SIZE, COUNTER, OFFSET, UNCONFIRMED)
@@ -151,6 +161,10 @@ class Candidate:
         return d if on_grid(self.off, d, self.payload, frame_bytes, item.off, off_mod)[0] >= 0 else -1
 
 
+def _arrival(item: Held) -> int:
+    return item.arrival
+
+
 class Evidence:
     """The held datagrams: on the grids they lie on (at most MAX_CANDIDATES grids), or loose (on no grid
     under test: waiting to be judged by the next stream), at most MAX_HELD_DATAGRAMS in all."""
@@ -159,7 +173,7 @@ class Evidence:
         self.frame_bytes = frame_bytes
         self.seq_mod, self.off_mod = 1 << seq_bits, 1 << off_bits
         self.candidates: list[Candidate] = []
-        self.loose: collections.deque[Held] = collections.deque()
+        self.loose: list[Held] = []  # in arrival order
         self.held = 0
         self.held_bytes = 0
         self._created = 0
@@ -179,20 +193,30 @@ class Evidence:
             best.steps.add(best_d)
             best.items.append(item)
         elif item.length == 0:
-            self.loose.append(item)
+            bisect.insort(self.loose, item, key=_arrival)
         else:
             best = Candidate(item, self._created)
             self._created += 1
             self.candidates.append(best)
             if len(self.candidates) > MAX_CANDIDATES:
-                self._loosen(best)
+                self._loosen(self._smallest(best))
         while self.held > MAX_HELD_DATAGRAMS:
             if not self.loose:
-                self._loosen(best)
-            lost = self.loose.popleft()
+                self._loosen(self._smallest(best))
+            lost = self.loose.pop(0)
             self._count(lost, -1)
             give_up(lost)
         return best if best is not None and len(best.items) >= RESTART_PACKETS else None
+
+    def expire(self, before: int, give_up: Callable[[Held], None]) -> None:
+        """Grids whose first datagram arrived before `before` (an arrival number) stop being tested;
+        loose datagrams that arrived before it are given up (`give_up` called for each)."""
+        for c in [c for c in self.candidates if c.items[0].arrival < before]:
+            self._loosen(c)
+        while self.loose and self.loose[0].arrival < before:
+            lost = self.loose.pop(0)
+            self._count(lost, -1)
+            give_up(lost)
 
     def longest(self) -> Candidate | None:
         """The grid with most datagrams (the oldest of equals), or None."""
@@ -207,13 +231,16 @@ class Evidence:
         self.held = self.held_bytes = 0
         return items
 
-    def _loosen(self, keep: Candidate | None) -> None:
-        """The smallest (then oldest) grid other than `keep` (if there is another) stops being tested;
-        its datagrams wait loose, oldest first."""
+    def _smallest(self, keep: Candidate | None) -> Candidate:
+        """The smallest (then oldest) grid other than `keep`, if there is another."""
         others = [c for c in self.candidates if c is not keep] or self.candidates
-        victim = min(others, key=lambda x: (len(x.items), x.created))
+        return min(others, key=lambda x: (len(x.items), x.created))
+
+    def _loosen(self, victim: Candidate) -> None:
+        """The grid stops being tested; its datagrams wait loose."""
         self.candidates.remove(victim)
-        self.loose.extend(sorted(victim.items, key=lambda it: it.arrival))
+        for it in victim.items:
+            bisect.insort(self.loose, it, key=_arrival)
         victim.items, victim.steps = [], set()
 
     def _count(self, item: Held, sign: int) -> None:

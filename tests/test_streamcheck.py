@@ -27,7 +27,8 @@ from hypothesis import strategies as st
 
 from cubecast.daemon.reassembly import Reassembler
 from cubecast.daemon.streamcheck import (CANDIDATE_SPAN, MAX_CANDIDATES, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW,
-                                         MAX_HELD_DATAGRAMS, RESTART_PACKETS, FRAMECUT)
+                                         MAX_HELD_AGE, MAX_HELD_DATAGRAMS, RESTART_PACKETS, EXPIRE_EVERY,
+                                         FRAMECUT)
 from cubecast.daemon.streamlayout import MAX_DATAGRAM_BYTES, parse_layout
 from tests.test_adapter import (ADAPTER_LOGGER, LAYOUT_A, LAYOUT_B, LAYOUT_C, adapter_records, encode_frame,
                                 header_a, header_b, header_c, packetize, raw_frames, run_file, sensor_12bit,
@@ -228,6 +229,34 @@ def test_a_board_that_restarts_as_it_began_is_followed():
     assert [(f.epoch, f.index) for f in got] == [(0, k) for k in range(10)] + [(1, k) for k in range(4)]
     assert all(np.array_equal(f.data, ref) for f, ref in zip(got, frames))
     assert s["restarts"] == 1 and (s["late"], s["lost"], s["implausible"], s["frames_dropped"]) == (0, 0, 0, 0)
+
+
+def test_rare_garbage_is_counted_within_the_age_bound_and_a_thin_foreign_stream_never_takes_over():
+    """One bad datagram in a long clean stream is counted at most MAX_HELD_AGE + EXPIRE_EVERY arrivals
+    later, not at the end; a foreign sender's consistent datagrams, one in every 100 arrivals (fewer than
+    RESTART_PACKETS in MAX_HELD_AGE), never make a restart."""
+    sensor, frames, packets = genuine_stream(300, 256)  # 1800 datagrams
+    r = Reassembler(parse_layout(LAYOUT_A), sensor)
+    spoof_at = 100
+    limit = spoof_at + 1 + MAX_HELD_AGE + EXPIRE_EVERY
+    for i, p in enumerate(packets[:limit]):
+        if i == spoof_at:
+            r.feed(header_a(p[0], p[1] + 3, FB, 256) + bytes(256))  # misaligned by 3 bytes
+        r.feed(p[3])
+    s = r.stats()
+    assert s["held"] == 0 and s["implausible_reasons"] == {"offset": 1}
+
+    foreign = [header_a(700_000 + j, 10 * FB + 256 * j, FB, 256) + bytes(256) for j in range(18)]
+    r = Reassembler(parse_layout(LAYOUT_A), sensor)
+    out = []
+    for i, p in enumerate(packets):
+        if i % 100 == 50:
+            out += r.feed(foreign[i // 100])
+        out += r.feed(p[3])
+    out += r.flush()
+    s = r.stats()
+    assert s["restarts"] == 0 and s["implausible_reasons"] == {"counter": 18}
+    assert [f.index for f in out] == list(range(300))
 
 
 @pytest.mark.parametrize("n_foreign", [RESTART_PACKETS - 1, RESTART_PACKETS])
@@ -443,6 +472,9 @@ def check_invariants(r, s, before, window):
     assert s["frames_in_flight"] == len(r.slots) <= window and len(r.slots) + len(r._pool) == window
     assert s["held"] <= MAX_HELD_DATAGRAMS and s["held_bytes"] <= MAX_HELD_DATAGRAMS * MAX_DATAGRAM_BYTES
     assert len(r.evidence.candidates) <= MAX_CANDIDATES
+    assert len(r.evidence.loose) + sum(len(c.items) for c in r.evidence.candidates) == s["held"]
+    held = r.evidence.loose + [it for c in r.evidence.candidates for it in c.items]
+    assert all(it.arrival > r._arrivals - MAX_HELD_AGE - EXPIRE_EVERY for it in held)  # the age bound
     assert all(len(c.items) < RESTART_PACKETS and len(c.steps) == len(c.items) <= CANDIDATE_SPAN + 1
                for c in r.evidence.candidates)
     assert not r._replay and len(r.events) <= 256
