@@ -1,10 +1,19 @@
 """Per-detection refinement of the range and Doppler frequencies, and the channel values there.
 
 A detection is a cell (k0, l0) of the windowed spectrum S_c[k, l] (channel c = (rx, slot), range
-bin k, unshifted Doppler column l). Its frequencies are refined on the detection's own samples, one
+bin k, unshifted Doppler column l). Its frequencies are refined on the detection's own data, one
 dimension at a time (Doppler first, then range), and the channel values are taken at the refined
 frequencies, so that neither the straddle loss nor, where the neighbourhood allows, the windows'
-processing loss is paid by what follows (the MIMO decoding and the angle estimate):
+processing loss is paid by what follows (the MIMO decoding and the angle estimate).
+
+The Doppler pass runs on whole Doppler rows (contiguous in the spectrum), steps 1 to 4 below. The
+range pass runs on a band of range cells around the detection instead (refine_band.py: the
+maximum-likelihood tone on the band's cells, or on a narrow band next to a strong neighbour),
+because a whole range column is strided in the spectrum and reading it for every channel costs
+more than all the rest; its Doppler combination (step 1) sums DOPPLER_COMBINED_CELLS cells. The
+mode names below, FLAT and WINDOWED, stand on the range axis for the wide and the narrow band; the
+choice between them (step 3, "Strong neighbour") is the same, with each band's own variance and
+neighbour shift.
 
 1. Combine across the other dimension: the COMBINED_CELLS cells around the detection along the other axis
    are summed with the weights that maximise the target's SNR, h = R^-1 g, with g the window's
@@ -56,9 +65,11 @@ import numba
 import numpy as np
 
 from .fft import ifft_unnormalised_inplace
+from .refine_band import BAND_HALF_BINS, NARROW_HALF_BINS, Band, band_gather, band_refine
 
 TAU_FRACTION = 0.001          # the flat taper's edge: w^2 / (w^2 + tau^2), tau relative to max(w)
-COMBINED_CELLS = 7            # cells of the other axis summed by the matched weights (odd; fewer on a short axis)
+COMBINED_CELLS = 7            # range cells summed by the matched weights for the Doppler pass (odd; fewer on a short axis)
+DOPPLER_COMBINED_CELLS = 11   # Doppler cells summed for the range pass (its band read makes more cells cheap)
 NEWTON_STEPS = 3
 SYSTEMATIC_FLOOR_BINS = 2e-4  # residual systematic error, unpadded bins, added in quadrature
 NOISE_EXCESS = 4.0            # map cells above this many noise means count as a neighbour's energy
@@ -72,7 +83,7 @@ class Axis:
     """One axis of the cube as the refinement sees it: the processing window (length n, the data
     samples), the FFT size, and the two estimation tapers with their variance factors."""
 
-    def __init__(self, window: np.ndarray, fft_size: int):
+    def __init__(self, window: np.ndarray, fft_size: int, combined: int = COMBINED_CELLS):
         w = np.asarray(window, np.float64)
         self.n = w.shape[0]
         self.fft_size = int(fft_size)
@@ -94,11 +105,11 @@ class Axis:
         self.guard = int(np.ceil(2.0 * self.padding))   # the main lobe of the windows offered
         self.sum_w2 = float(np.sum(w * w))
         # cells of this axis that a combination across it sums: odd, at most the samples (R invertible)
-        m = min(COMBINED_CELLS, self.n, self.fft_size)
+        m = min(combined, self.n, self.fft_size)
         self.combined = m if m % 2 else m - 1
         # the window's amplitude response A(nu) = sum_n w_n cos(2 pi nu t_n / N_fft) on a fine grid
         # (W(nu) = exp(-j pi nu (n - 1) / N_fft) A(nu) for a symmetric window), read by interpolation
-        self.table_reach = COMBINED_CELLS // 2 + SELF_SPAN + 2
+        self.table_reach = combined // 2 + SELF_SPAN + 2
         grid = np.arange(-self.table_reach * TABLE_STEPS, self.table_reach * TABLE_STEPS + 1) / TABLE_STEPS
         self.grid = grid
         # |a'| / |a''(0)| of the window's normalised amplitude response a = A / A(0), its largest
@@ -109,6 +120,9 @@ class Axis:
         slope = np.abs(np.sin(arg * np.multiply.outer(fine, self.t)) @ (w * arg * self.t))
         slope = slope / np.sum(w * (arg * self.t) ** 2)
         self.window_slope = np.array([slope[8 * d: 8 * d + 9].max() for d in range(self.fft_size // 2 + 1)])
+        # the flat taper's (a rectangular window's) in the same units
+        d = np.maximum(np.arange(self.fft_size // 2 + 1), 1)
+        self.flat_slope = SIDELOBE_SLOPE * self.padding ** 2 / d
         self.table = np.cos(2.0 * np.pi * np.multiply.outer(grid, self.t) / self.fft_size) @ w
 
     def noise_covariance(self) -> np.ndarray:
@@ -121,50 +135,22 @@ class Axis:
 
 
 @numba.njit(cache=True, nogil=True)
-def _gather(spec, k0, l0, h, along_range, n_range_fft, out):
-    """out[i, c, :] = sum_j conj(h[i, j]) S_c along the refined axis at other-axis index (cell + j - J//2):
-    along_range: the range column over all N_fft range bins at Doppler columns l0 + j - J//2; else the
-    Doppler row over all columns at range bins k0 + j - J//2. Channel c = rx * n_slots + slot. With
-    real sampling (fewer kept bins than the FFT size) a range bin k beyond the kept ones is
-    conj(S[N_fft - k, -l]) (Hermitian symmetry); the Nyquist bin, not kept, is 0. Range columns are
-    read row by row of the spectrum, each row once for all detections (the spectrum is larger than
-    the caches; its rows are contiguous along Doppler)."""
+def _gather(spec, k0, l0, h, n_range_fft, out):
+    """out[i, c, :] = sum_j conj(h[i, j]) S_c[k0_i + j - J//2, :], the Doppler rows (contiguous) at the
+    J range bins around the detection, channel c = rx * n_slots + slot. With real sampling a range
+    bin k beyond the kept ones is conj(S[N_fft - k, -l]) (Hermitian symmetry); the Nyquist bin, not
+    kept, is 0."""
     n_rx, n_slots, n_bins, n_dop = spec.shape
     n_det, n_j = h.shape
     half_j = n_j // 2
-    real = n_bins < n_range_fft
-    cols = np.empty((n_det, n_j), np.int64)
-    mirror = np.empty((n_det, n_j), np.int64)
-    wts = np.empty((n_det, n_j), np.complex64)
-    for i in range(n_det):
-        for j in range(n_j):
-            cols[i, j] = (l0[i] + j - half_j) % n_dop
-            mirror[i, j] = (n_dop - cols[i, j]) % n_dop
-            wts[i, j] = np.complex64(np.conj(h[i, j]))
     for rx in range(n_rx):
         for s in range(n_slots):
             c = rx * n_slots + s
-            if along_range:
-                for i in range(n_det):
-                    out[i, c, n_bins:] = 0.0
-                for k in range(n_bins):
-                    src = spec[rx, s, k]
-                    for i in range(n_det):
-                        acc = np.complex64(0.0)
-                        for j in range(n_j):
-                            acc += wts[i, j] * src[cols[i, j]]
-                        out[i, c, k] = acc
-                        if real and k > 0:
-                            acc = np.complex64(0.0)
-                            for j in range(n_j):
-                                acc += wts[i, j] * np.conj(src[mirror[i, j]])
-                            out[i, c, n_range_fft - k] = acc
-                continue
-            for i in range(n_det):   # Doppler rows: contiguous
+            for i in range(n_det):
                 row = out[i, c]
                 row[:] = 0.0
                 for j in range(n_j):
-                    wt = wts[i, j]
+                    wt = np.complex64(np.conj(h[i, j]))
                     k = (k0[i] + j - half_j) % n_range_fft
                     if k < n_bins:
                         src = spec[rx, s, k]
@@ -291,16 +277,17 @@ def _self_response(table, reach, offset, out):
 
 
 @numba.njit(cache=True, nogil=True)
-def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, window_slope, bias_flat,
+def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, flat_slope, window_slope, bias_flat,
                     bias_window):
     """Predicted peak shift (unpadded bins) from the map's energy along the refined axis, for each
     taper: a neighbour of relative amplitude rho at Delta FFT bins moves the peak of |F|^2 by at most
     rho |a'(Delta)| / |a''(0)| (a the taper's normalised amplitude response; the linearised peak,
     common practice): for the flat taper, a rectangular window, that is SIDELOBE_SLOPE rho / Delta
-    unpadded bins; for the window, window_slope[|Delta|] (FFT bins). rho = sqrt(excess / P0) at each
+    unpadded bins (flat_slope); for the window, window_slope[|Delta|] (FFT bins). rho = sqrt(excess / P0) at each
     peak of the map along the axis beyond the main lobe (one term per neighbour), excess = cell - NOISE_EXCESS noise - 2 x the target's own window response
     there (p_self, relative to P0); the result is the RMS over the neighbour's phase. `col` is the
-    detection's map column (shifted)."""
+    detection's map column (shifted). flat_slope and window_slope: the shift per unit rho of each
+    estimate at |Delta| FFT bins (FFT bins; on the range axis the two bands' own, refine_band.py)."""
     n_r, n_d = power.shape
     half = p_self.shape[1] // 2
     for i in range(k0.shape[0]):
@@ -332,7 +319,7 @@ def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, 
             excess = p - NOISE_EXCESS * noise[i] - 2.0 * own
             if excess > 0.0:
                 rho = np.sqrt(excess / p0)
-                bf += SIDELOBE_SLOPE * rho / (abs(d) / padding)
+                bf += rho * flat_slope[min(abs(d), flat_slope.shape[0] - 1)] / padding
                 bw += rho * window_slope[min(abs(d), window_slope.shape[0] - 1)] / padding
         # RMS over the neighbour's unknown phase: the shift goes as cos(phase), E cos^2 = 1/2
         bias_flat[i] = bf * np.sqrt(0.5)
@@ -340,19 +327,19 @@ def _neighbour_bias(power, k0, col, along_range, p_self, noise, guard, padding, 
 
 
 @numba.njit(cache=True, nogil=True)
-def _decide(power, k0, col, along_range, table, reach, offset, noise_cell, s_first, var_factor, guard, padding,
-            fft_size, window_slope, p_self, bias_window, bias, mode):
+def _decide(power, k0, col, along_range, table, reach, offset, noise_cell, s_first, flat_factor, win_factor, guard,
+            padding, flat_slope, window_slope, p_self, bias_window, bias, mode):
     """Per detection: the target's own response across SELF_SPAN cells (p_self scratch), the
     predicted neighbour shift of each taper (unpadded bins), and the taper with the smaller expected
-    squared error, variance plus shift^2; bias[i] is the chosen taper's predicted shift."""
+    squared error, variance plus shift^2; bias[i] is the chosen taper's predicted shift.
+    flat_factor[i], win_factor[i]: each estimate's variance times the SNR S, unpadded bins^2."""
     _self_response(table, reach, offset, p_self)
-    _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, guard, padding, window_slope, bias,
-                    bias_window)
-    to_u = fft_size / (2.0 * np.pi) / padding      # rad/sample -> unpadded bins
+    _neighbour_bias(power, k0, col, along_range, p_self, noise_cell, guard, padding, flat_slope, window_slope,
+                    bias, bias_window)
     for i in range(k0.shape[0]):
         s = max(s_first[i], 1e-12)
-        var_flat = var_factor[FLAT] / (2.0 * s) * to_u * to_u
-        var_win = var_factor[WINDOWED] / (2.0 * s) * to_u * to_u
+        var_flat = flat_factor[i] / s
+        var_win = win_factor[i] / s
         if var_flat + bias[i] * bias[i] < var_win + bias_window[i] * bias_window[i]:
             mode[i] = FLAT
         else:
@@ -404,7 +391,9 @@ class Refiner:
     def __init__(self, range_window: np.ndarray, range_fft_size: int, n_range_bins: int,
                  doppler_window: np.ndarray, doppler_fft_size: int, n_rx: int, n_slots: int):
         self.range = Axis(range_window, range_fft_size)
-        self.doppler = Axis(doppler_window, doppler_fft_size)
+        self.doppler = Axis(doppler_window, doppler_fft_size, DOPPLER_COMBINED_CELLS)
+        self.bands = (Band(range_window, range_fft_size, BAND_HALF_BINS),
+                      Band(range_window, range_fft_size, NARROW_HALF_BINS, whiten=False))   # FLAT, WINDOWED
         self.n_range_bins = n_range_bins
         self.n_rx, self.n_slots = n_rx, n_slots
         self.n_channels = n_rx * n_slots
@@ -420,10 +409,11 @@ class Refiner:
             return
         self._capacity = n = max(n_det, 2 * self._capacity)
         k = self.n_channels
-        self._rows = {True: np.zeros((n, k, self.range.fft_size), np.complex64),
-                      False: np.zeros((n, k, self.doppler.fft_size), np.complex64)}
+        self._rows = np.zeros((n, k, self.doppler.fft_size), np.complex64)
         self._scratch = np.empty((k + 2, max(self.range.n, self.doppler.n)), np.complex128)
         self._values = np.empty((n, k), np.complex128)
+        self._beam = np.empty((n, k), np.complex128)
+        self._band_rows = np.zeros((n, k, self.bands[0].cells), np.complex64)
         self._h = {name: np.empty((n, ax.combined), np.complex128) for name, ax in (("range", self.range),
                                                                                      ("doppler", self.doppler))}
         self._gain = {name: np.empty(n) for name in ("range", "doppler")}
@@ -444,31 +434,63 @@ class Refiner:
         return h, gain
 
     def _axis(self, spec, power, k0, l0, col, nu0, other_offset, noise_cell, noise_per_sample, snr_raw,
-              along_range):
+              along_range, beam_weights=None):
         """Refine one axis for all detections: (nu, sigma in FFT bins, values [n_det, K], SNR per
-        channel of the values, mode)."""
+        channel of the values, mode). The Doppler axis runs on whole rows (the module doc); the range
+        axis (beam_weights: the Doppler pass's channel values) on a band of cells around the detection,
+        wide (FLAT) or narrow (WINDOWED), refine_band.py."""
         axis, other = (self.range, self.doppler) if along_range else (self.doppler, self.range)
         name_other = "doppler" if along_range else "range"
         n_det = k0.shape[0]
         h, gain = self._combine_weights(other, name_other, other_offset)
-        rows = self._rows[along_range][:n_det]
-        _gather(spec, k0, l0, h, along_range, self.range.fft_size, rows)
-        samples = ifft_unnormalised_inplace(rows, axis=-1)   # N_fft w z in the first n samples
         # the combined samples' noise per sample, sigma^2 h^H R h = sigma^2 g^H R^-1 g, and a first
         # SNR per sample over the channels from the cell's SNR (for the choice of taper)
         sigma_z2 = noise_per_sample * gain
         s_first = self.n_channels * snr_raw * gain
         mode, bias = self._mode[:n_det], self._bias[:n_det]
-        _decide(power, k0, col, along_range, axis.table, float(axis.table_reach), nu0 - (k0 if along_range else l0),
-                noise_cell, s_first, axis.var_factor, axis.guard, axis.padding, float(axis.fft_size),
-                axis.window_slope, self._p_self[:n_det], self._bias_window[:n_det], bias, mode)
+        offset = nu0 - (k0 if along_range else l0)
+        if along_range:
+            wide, narrow = self.bands
+            flat_factor = np.interp(offset, wide.offsets, wide.var_unit) / axis.padding ** 2
+            win_factor = np.interp(offset, narrow.offsets, narrow.var_unit) / axis.padding ** 2
+            flat_slope, window_slope = wide.slope, narrow.slope
+        else:
+            to_u2 = (axis.fft_size / (2.0 * np.pi) / axis.padding) ** 2
+            flat_factor = np.full(n_det, axis.var_factor[FLAT] / 2.0 * to_u2)
+            win_factor = np.full(n_det, axis.var_factor[WINDOWED] / 2.0 * to_u2)
+            flat_slope, window_slope = axis.flat_slope, axis.window_slope
+        _decide(power, k0, col, along_range, axis.table, float(axis.table_reach), offset, noise_cell, s_first,
+                flat_factor, win_factor, axis.guard, axis.padding, flat_slope, window_slope, self._p_self[:n_det],
+                self._bias_window[:n_det], bias, mode)
         nu, values = np.empty(n_det), self._values[:n_det]
+        sigma, value_snr = np.empty(n_det), np.empty(n_det)
+        if not along_range:
+            self._full_axis(spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr)
+            return nu, sigma, values, value_snr, mode.copy()
+        y = self._band_rows[:n_det]
+        halves = np.where(mode == FLAT, self.bands[0].half, self.bands[1].half)
+        band_gather(spec, k0, l0, h, halves, self.range.fft_size, y)
+        var_unit, eta, s_hat = np.empty(n_det), np.empty(n_det), np.empty(n_det)
+        start = k0.astype(np.float64)
+        for m, band in zip((FLAT, WINDOWED), self.bands):
+            band_refine(y, beam_weights, mode, m, band.u, band.c, band.var_unit, band.eta, band.first, band.steps,
+                        start, float(axis.sum_e[FLAT]), sigma_z2, nu, values, var_unit, eta, s_hat)
+        s_hat = np.maximum(s_hat, 1e-3 * s_first + 1e-12)
+        extra = (bias ** 2 + SYSTEMATIC_FLOOR_BINS ** 2) * axis.padding ** 2
+        sigma[:] = np.sqrt(var_unit / s_hat + extra)
+        value_snr[:] = s_hat / self.n_channels / eta
+        return nu, sigma, values, value_snr, mode.copy()
+
+    def _full_axis(self, spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr):
+        """The Doppler axis: each channel's whole row, back to samples, Newton steps (the module doc)."""
+        n = k0.shape[0]
+        rows = self._rows[:n]
+        _gather(spec, k0, l0, h, self.range.fft_size, rows)
+        samples = ifft_unnormalised_inplace(rows, axis=-1)   # N_fft w z in the first n samples
         _newton(samples, axis.taper, mode, axis.t, nu0, float(axis.fft_size), 0.5 * axis.padding, NEWTON_STEPS,
                 self._scratch, nu, values)
-        sigma, value_snr = np.empty(n_det), np.empty(n_det)
-        _finish(values, mode, axis.sum_e, axis.sum_e2, axis.var_factor, sigma_z2, s_first, bias,
-                float(axis.fft_size), axis.padding, sigma, value_snr)
-        return nu, sigma, values, value_snr, mode.copy()
+        _finish(values, mode, axis.sum_e, axis.sum_e2, axis.var_factor, sigma_z2, s_first, bias, float(axis.fft_size),
+                axis.padding, sigma, value_snr)
 
     # ---- both axes ---------------------------------------------------------------------------
 
@@ -496,10 +518,12 @@ class Refiner:
         wd2 = np.interp(-dd, self.doppler.grid, self.doppler.table) ** 2
         snr_raw = np.asarray(cell_snr, np.float64) * self.range.sum_w2 * self.doppler.sum_w2 / (wr2 * wd2)
 
-        nu_d, sig_d, _, _, mode_d = self._axis(spec, power, k0, l0, col, l0 + dd, dr, noise_cell, sigma2, snr_raw,
-                                               False)
+        nu_d, sig_d, values_d, _, mode_d = self._axis(spec, power, k0, l0, col, l0 + dd, dr, noise_cell, sigma2,
+                                                      snr_raw, False)
+        beam = self._beam[: len(k0)]
+        beam[...] = values_d
         nu_r, sig_r, values, value_snr, mode_r = self._axis(spec, power, k0, l0, col, k0 + dr, nu_d - l0, noise_cell,
-                                                            sigma2, snr_raw, True)
+                                                            sigma2, snr_raw, True, beam)
         nu_d = (nu_d + half) % n_dop - half
         return Refined(nu_r, nu_d, sig_r, sig_d, values.reshape(-1, self.n_rx, self.n_slots), value_snr,
                        mode_r, mode_d)   # values: the Refiner's buffer, valid until the next call
