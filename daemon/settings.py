@@ -46,6 +46,7 @@ class ProcessingSettings:
     angle_fft_size_elevation: int = 0  # 0 = automatic: max(16, next power of two >= 4 x the rows)
     angle_peak_threshold_db: float = -9.0
     angle_max_peaks: int = 2
+    angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
     # output
     max_points: int = 1024
 
@@ -84,6 +85,8 @@ class ProcessingSettings:
             raise fail("max_range_m", "must be 0 (sensor maximum) or above min_range_m")
         if self.angle_max_peaks < 1:
             raise fail("angle_max_peaks", "must be at least 1")
+        if not 0 < self.angle_split_false_alarm < 1:
+            raise fail("angle_split_false_alarm", "must be a probability between 0 and 1 (exclusive)")
         if self.angle_peak_threshold_db > 0:
             raise fail("angle_peak_threshold_db", "is relative to the strongest peak and must be <= 0")
         if self.max_points < 1:

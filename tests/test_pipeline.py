@@ -331,6 +331,13 @@ def test_settings_errors_named():
         parse_settings('[processing]\ncfar_train_range = "eight"\n')
 
 
+def test_split_false_alarm_is_a_processing_setting(sensor):
+    settings = parse_settings('[processing]\nangle_split_false_alarm = 0.001\n')
+    assert Pipeline(sensor, settings).angle.settings.split_false_alarm == 0.001
+    with pytest.raises(CubecastError, match=r"angle_split_false_alarm = 1.5: must be a probability"):
+        parse_settings('[processing]\nangle_split_false_alarm = 1.5\n')
+
+
 def test_max_range_beyond_sensor_rejected(sensor):
     with pytest.raises(CubecastError, match=r"max_range_m = 40.0: beyond the sensor's maximum range"):
         Pipeline(sensor, ProcessingSettings(max_range_m=40.0))

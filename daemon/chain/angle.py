@@ -76,7 +76,7 @@ from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
 from .angle_residual import fit_residuals, residual_peaks
-from .angle_split import SPLIT_FALSE_ALARM, split_critical_values
+from .angle_split import split_critical_values
 from .bounds import crb_unit_covariance
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
@@ -135,7 +135,7 @@ class AngleSettings:
     max_peaks: int = _DEFAULTS.angle_max_peaks
     refine: bool = True
     window: str = "rect"
-    split_false_alarm: float = SPLIT_FALSE_ALARM
+    split_false_alarm: float = _DEFAULTS.angle_split_false_alarm
 
     def __post_init__(self) -> None:
         for name in ("fft_size_azimuth", "fft_size_elevation"):

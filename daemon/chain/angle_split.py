@@ -49,10 +49,7 @@ import math
 import numpy as np
 from scipy import optimize, special
 
-__all__ = ["SPLIT_FALSE_ALARM", "visible_area", "split_tail", "split_critical_values"]
-
-# design probability that a single source in white noise is split into two (per snapshot)
-SPLIT_FALSE_ALARM = 0.01
+__all__ = ["visible_area", "split_tail", "split_critical_values"]
 
 _NEVER = 2.0  # a critical value g never reaches (g <= 1)
 
@@ -98,7 +95,7 @@ def split_tail(x, area: float, n_virt: int, n_angles: int, n_fitted: int):
 
 
 def split_critical_values(kx: np.ndarray, kz: np.ndarray, period_u: float, period_w: float, do_u: bool,
-                          do_w: bool, max_peaks: int, false_alarm: float = SPLIT_FALSE_ALARM) -> np.ndarray:
+                          do_w: bool, max_peaks: int, false_alarm: float) -> np.ndarray:
     """float64[max_peaks + 1]: g_crit(P) at index P for P = 2..max_peaks (module doc); entries 0 and 1
     unused (2). kx, kz: phase per unit direction cosine of every channel (2 pi / wavelength times its
     x and z position); do_u / do_w: which angles the array measures; periods: wavelength / pitch."""

@@ -127,7 +127,8 @@ class Pipeline:
             grid,
             AngleSettings(fft_size_azimuth=n_az, fft_size_elevation=n_el,
                           peak_threshold_db=settings.angle_peak_threshold_db,
-                          max_peaks=settings.angle_max_peaks),
+                          max_peaks=settings.angle_max_peaks,
+                          split_false_alarm=settings.angle_split_false_alarm),
             calibration)
         self.n_virtual = sensor.n_virtual
         self.range_resolution_m = sensor.range_resolution_m
