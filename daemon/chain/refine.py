@@ -68,7 +68,7 @@ from .fft import ifft_unnormalised_inplace
 from .refine_band import BAND_HALF_BINS, NARROW_HALF_BINS, Band, band_gather, band_refine
 
 TAU_FRACTION = 0.001          # the flat taper's edge: w^2 / (w^2 + tau^2), tau relative to max(w)
-COMBINED_CELLS = 7            # range cells summed by the matched weights for the Doppler pass (odd; fewer on a short axis)
+COMBINED_CELLS = 11           # range cells summed by the matched weights for the Doppler pass (odd; fewer on a short axis)
 DOPPLER_COMBINED_CELLS = 11   # Doppler cells summed for the range pass (its band read makes more cells cheap)
 NEWTON_STEPS = 3
 SYSTEMATIC_FLOOR_BINS = 2e-4  # residual systematic error, unpadded bins, added in quadrature

@@ -50,11 +50,14 @@ import math
 import numba
 import numpy as np
 
+from .prefetch import prefetch
+
 BAND_HALF_BINS = 24     # unpadded bins either side of the detection that the range estimate reads
 NARROW_HALF_BINS = 3    # the narrow band, next to a strong neighbour: the window's main lobe and one bin more
 SEARCH_BINS = 1.0       # FFT bins either side of the detection cell that the search covers
 TABLE_STEPS = 64        # table points per FFT bin
 TAU_FRACTION = 0.001    # as refine.py's flat taper
+PREFETCH_AHEAD = 3       # band rows read ahead of the one in use
 COARSE = 4              # the first scan reads every COARSE-th table point
 FINE_STEPS = 3          # parabolic steps on the interpolated likelihood after the scan
 
@@ -150,34 +153,43 @@ def band_gather(spec, k0, l0, h, halves, n_range_fft, out):
     """out[i, c, b] = sum_j conj(h[i, j]) S_c[k0_i + b - M_i, l0_i + j - J//2], b = 0 .. 2 M_i
     (M_i = halves[i]); range bins beyond the kept ones follow from the Hermitian symmetry of real
     data, S[N - k, -l] = conj(S[k, l]) (the Nyquist bin, not kept, is 0); with complex sampling the
-    range axis is circular."""
+    range axis is circular. The row PREFETCH_AHEAD cells ahead is prefetched (prefetch.py)."""
     n_rx, n_slots, n_bins, n_dop = spec.shape
     n_det, n_j = h.shape
+    n_ch = n_rx * n_slots
     half_j = n_j // 2
+    rows = spec.reshape(n_ch, n_bins, n_dop)
     cols = np.empty(n_j, np.int64)
     mirror = np.empty(n_j, np.int64)
     wts = np.empty(n_j, np.complex64)
     for i in range(n_det):
         half = halves[i]
+        n_b = 2 * half + 1
         for j in range(n_j):
             cols[j] = (l0[i] + j - half_j) % n_dop
             mirror[j] = (n_dop - cols[j]) % n_dop
             wts[j] = np.complex64(np.conj(h[i, j]))
-        for rx in range(n_rx):
-            for s in range(n_slots):
-                c = rx * n_slots + s
-                for b in range(2 * half + 1):
-                    k = (k0[i] + b - half) % n_range_fft
-                    acc = np.complex64(0.0)
+        for c in range(n_ch):
+            for b in range(n_b):
+                ahead, c_ahead = b + PREFETCH_AHEAD, c
+                if ahead >= n_b:
+                    ahead, c_ahead = ahead - n_b, c + 1
+                if c_ahead < n_ch:
+                    k = (k0[i] + ahead - half) % n_range_fft
                     if k < n_bins:
-                        src = spec[rx, s, k]
-                        for j in range(n_j):
-                            acc += wts[j] * src[cols[j]]
-                    elif n_range_fft - k < n_bins:
-                        src = spec[rx, s, n_range_fft - k]
-                        for j in range(n_j):
-                            acc += wts[j] * np.conj(src[mirror[j]])
-                    out[i, c, b] = acc
+                        prefetch(rows[c_ahead, k], cols[0])
+                        prefetch(rows[c_ahead, k], cols[n_j - 1])
+                k = (k0[i] + b - half) % n_range_fft
+                acc = np.complex64(0.0)
+                if k < n_bins:
+                    src = rows[c, k]
+                    for j in range(n_j):
+                        acc += wts[j] * src[cols[j]]
+                elif n_range_fft - k < n_bins:
+                    src = rows[c, n_range_fft - k]
+                    for j in range(n_j):
+                        acc += wts[j] * np.conj(src[mirror[j]])
+                out[i, c, b] = acc
 
 
 @numba.njit(cache=True, nogil=True)
