@@ -361,6 +361,33 @@ def test_rdmap_cells_and_folded_marks():
     assert lo < 0 and hi == 45.0
 
 
+def test_rings_come_from_the_points_of_the_maps_frame():
+    # README "Wire format": a map's seq is the sequence number of the ADC frame it was computed from,
+    # the same number that frame's points carry; serve sends maps less often than points
+    st = V.ViewerState()
+    st.ingest(decode_parts(sensor_parts("s"), 0.0))
+    for seq in (4, 5, 6):
+        st.ingest(decode_parts(points_parts("s", seq, cloud({"y_m": 10.0 - seq})), 0.0))
+        if seq == 4:
+            st.ingest(decode_parts(rdmap_parts("s", np.zeros((8, 8), np.float32), seq=4), 0.0))
+    assert st.points_msg["header"]["seq"] == 6
+    assert np.allclose(st.map_points()["y_m"], 6.0)           # frame 4's point, not frame 6's
+    st.ingest(decode_parts(rdmap_parts("s", np.zeros((8, 8), np.float32), seq=2), 0.0))
+    assert st.map_points() is None                             # frame 2's points never came
+    # the points of a frame are kept RECENT_FRAMES frames, then forgotten
+    st.ingest(decode_parts(rdmap_parts("s", np.zeros((8, 8), np.float32), seq=6), 0.0))
+    for seq in range(7, 7 + V.RECENT_FRAMES - 1):
+        st.ingest(decode_parts(points_parts("s", seq, cloud({"y_m": 1.0})), 0.0))
+    assert st.map_points() is not None and len(st.recent_points) == V.RECENT_FRAMES
+    st.ingest(decode_parts(points_parts("s", 7 + V.RECENT_FRAMES, cloud({"y_m": 1.0})), 0.0))
+    assert st.map_points() is None and len(st.recent_points) == V.RECENT_FRAMES
+    # a new run (the source restarted, its seq from 0 again) forgets the old run's frames
+    st.ingest(decode_parts(rdmap_parts("s", np.zeros((8, 8), np.float32), seq=7 + V.RECENT_FRAMES), 0.0))
+    assert st.map_points() is not None
+    st.ingest(decode_parts(points_parts("s", 0, cloud({"y_m": 1.0}), run="run-b"), 0.0))
+    assert st.map_points() is None and list(st.recent_points) == [0]
+
+
 def test_status_line_waiting_then_live_then_stalled():
     st = V.ViewerState(endpoint="tcp://127.0.0.1:5602")
     text, level = V.status_line(st)

@@ -17,7 +17,7 @@ import pytest
 
 from cubecast.viewer import views as V
 from cubecast.viewer.feed import POINT_DTYPE, FeedSnapshot, decode_parts
-from tests.viewer_messages import cloud, points_parts, sensor_parts, view_parser
+from tests.viewer_messages import SUMMARY, cloud, points_parts, rdmap_parts, sensor_parts, view_parser
 
 ROOT = Path(__file__).resolve().parent.parent
 YARD_CAP = ROOT / "replay_samples" / "yard.cap"
@@ -239,3 +239,70 @@ def test_cli_snapshot_of_the_bundled_capture(tmp_path, canvas):
     assert int.from_bytes(data[16:20], "big") == 960 and int.from_bytes(data[20:24], "big") == 600
     assert data[24] == 8 and data[25] == 2
     assert zlib.crc32(data[12:29]) == int.from_bytes(data[29:33], "big")
+
+
+# ---- the range-Doppler rings belong to the map's own frame ------------------------------------------
+
+def _rose(sub):
+    """The detection ring's colour (views.DETECTION_RING, rose), which no map or point colour comes near."""
+    return (sub[..., 0] > 200) & (sub[..., 1] < 140) & (sub[..., 2] > 100) & (sub[..., 2] < 215)
+
+
+VAN_SUMMARY = dict(SUMMARY, max_range_m=19.2, max_velocity_mps=24.0)
+
+
+def _van_messages(map_seq: int | None) -> list[list[bytes]]:
+    """A van approaching at 11 m/s (1.1 m a frame at 10 frames per second), with points in frames 10,
+    11 and 12 and, when map_seq is 10, the map of frame 10 with its blob where that frame's point is.
+    The map is published after its frame's points (as serve does) and frames 11 and 12 come before the
+    next map, which serve sends at most 5 times a second."""
+    ranges = {10: 13.4, 11: 12.3, 12: 11.2}
+    out = [sensor_parts("s", VAN_SUMMARY)]
+    for seq, r in ranges.items():
+        out.append(points_parts("s", seq, cloud({"x_m": 0.0, "y_m": r, "velocity_mps": -11.0})))
+        if seq == map_seq:
+            out.append(_van_map(seq, r))
+    return out
+
+
+def _van_map(seq: int, blob_range_m: float | None) -> list[bytes]:
+    """0.2 m x 0.5 m/s cells, velocity -8 .. +7.5 m/s: -11 m/s folds to +5 m/s (span 16 m/s)."""
+    db = np.zeros((96, 32), np.float32)
+    if blob_range_m is not None:
+        db[int(round(blob_range_m / 0.2)), int(round((5.0 + 8.0) / 0.5))] = 30.0
+    return rdmap_parts("s", db, seq=seq, range_step_m=0.2, velocity_start_mps=-8.0, velocity_step_mps=0.5)
+
+
+def test_rings_mark_the_points_of_the_maps_own_frame(canvas, tmp_path):
+    from cubecast.viewer.snapshot import write_png
+    st = _state(*_van_messages(10))
+    assert st.points_msg["header"]["seq"] == 12 and st.rdmap_msg["header"]["seq"] == 10
+    img = _render(canvas, st)
+    write_png(tmp_path / "rings.png", img.astype(np.uint8))
+    rect = canvas.panel_rect("rd")
+    blob = canvas.data_to_pixel("rd", [(5.0, 13.4)])[0]
+    newest = canvas.data_to_pixel("rd", [(5.0, 11.2)])[0]
+    ring, n = _centroid(img, rect, _rose)
+    # one ring (a circle of 13 px), centred on the map's blob of frame 10, not on frame 12's point
+    assert n > 20 and np.hypot(*(ring - blob)) < 2.0, (ring, blob)
+    x0, y0, _, _ = rect
+    near_newest = _rose(img[int(newest[1]) - 9: int(newest[1]) + 10, int(newest[0]) - 9: int(newest[0]) + 10])
+    assert near_newest.sum() == 0
+    # the blob itself is drawn where its cell is: the panel's brightest pixel lies within the cell
+    cell_px = np.abs(canvas.data_to_pixel("rd", [(0.0, 0.0), (0.5, 0.2)])[1] - canvas.data_to_pixel(
+        "rd", [(0.0, 0.0)])[0])
+    sub = img[y0:rect[3], x0:rect[2]].sum(axis=-1)
+    by, bx = np.unravel_index(np.argmax(sub), sub.shape)
+    assert abs(bx + x0 - blob[0]) <= cell_px[0] / 2 + 1 and abs(by + y0 - blob[1]) <= cell_px[1] / 2 + 1
+    assert canvas.rd_sub.text == "frame 10 · rings: its 1 point"
+
+
+def test_no_rings_when_the_maps_frame_points_are_gone(canvas):
+    # frames 10..12 with points, and a map of frame 7, whose points never came: no rings at all
+    st = _state(*_van_messages(None), _van_map(7, 13.4))
+    assert st.map_points() is None
+    img = _render(canvas, st)
+    assert canvas.rd_image.visible and not canvas.rd_marks.visible
+    x0, y0, x1, y1 = canvas.panel_rect("rd")
+    assert _rose(img[y0:y1, x0:x1]).sum() == 0
+    assert canvas.rd_sub.text == "frame 7 · its points not received: no rings"

@@ -175,6 +175,9 @@ class ViewerCanvas:
         self.rd_marks = scene.visuals.Markers(parent=self.rd.scene, antialias=1)
         self.rd_empty = self._text("no range-Doppler map yet", parent=self.rd, color=V.TEXT_DIM,
                                    font_size=10, face=FONT, anchor_x="left", anchor_y="center", pos=(14, 18))
+        # whose frame the map is, and what its rings are (top left, over the map's far, quiet ranges)
+        self.rd_sub = self._text("", parent=self.rd, color=V.TEXT, font_size=8.5, face=FONT, anchor_x="left",
+                                 anchor_y="center", pos=(10, 14))
 
     def _set_draw_order(self) -> None:
         """Draw order inside the panels: fills, grids, labels, points on top."""
@@ -400,17 +403,20 @@ class ViewerCanvas:
             self.rd_image.visible = True
             self.rd_empty.visible = False
             self._rd_legend(lo, hi)
-            newest = state.persist.newest
-            if newest is not None and len(newest):
-                pos = V.rd_marks(newest, rd["header"], rd["data"].shape[1])
+            # the rings mark the points of the map's own frame, never a newer frame's
+            own = state.map_points()
+            if own is not None and len(own):
+                pos = V.rd_marks(own, rd["header"], rd["data"].shape[1])
                 self.rd_marks.set_data(pos, face_color=(0, 0, 0, 0), edge_color=V.DETECTION_RING, size=13,
                                        edge_width=1.6, symbol="o")
                 self.rd_marks.visible = True
             else:
                 self.rd_marks.visible = False
+            self.rd_sub.text = V.rdmap_caption(rd["header"]["seq"], own)
         else:
             self.rd_image.visible = False
             self.rd_marks.visible = False
+            self.rd_sub.text = ""
             self.rd_empty.visible = True
             self._rd_legend(*V.rdmap_limits(np.zeros(1)))
 

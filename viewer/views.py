@@ -70,6 +70,9 @@ DEFAULT_VELOCITY_SPAN_MPS = 2.5
 DEFAULT_SNR_RANGE_DB = (10.0, 45.0)
 DEFAULT_PERSIST_FRAMES = 8
 DEFAULT_SENSOR_HEIGHT_M = 1.0
+# point clouds kept by frame sequence for the range-Doppler rings: the map comes at most 5 times a
+# second and the points of its own frame must still be here when it does (64 frames: 6 s at 10 fps)
+RECENT_FRAMES = 64
 
 
 def _ramp(stops, t: np.ndarray) -> np.ndarray:
@@ -304,6 +307,14 @@ def rd_marks(points: np.ndarray, rd_header: dict, n_cols: int) -> np.ndarray:
     return out
 
 
+def rdmap_caption(seq: int, own_points: np.ndarray | None) -> str:
+    """The range-Doppler panel's subtitle: whose frame the map is and what its rings are."""
+    if own_points is None:
+        return f"frame {seq} · its points not received: no rings"
+    n = len(own_points)
+    return f"frame {seq} · rings: its {n} point{'' if n == 1 else 's'}"
+
+
 # ---- legends --------------------------------------------------------------------------------------
 
 def colorbar_rgba(kind: str, n: int = 256) -> np.ndarray:
@@ -386,22 +397,29 @@ class Persistence:
     def clear(self) -> None:
         self._clouds.clear()
 
-    def push(self, points: np.ndarray) -> None:
+    def push(self, points: np.ndarray, seq: int | None = None) -> np.ndarray:
+        """Keep one cloud (its points with finite coordinates), of frame `seq`; returns what is kept."""
         ok = np.isfinite(points["x_m"]) & np.isfinite(points["y_m"]) & np.isfinite(points["z_m"])
-        self._clouds.append(points if ok.all() else points[ok])
+        kept = points if ok.all() else points[ok]
+        self._clouds.append((seq, kept))
+        return kept
 
     def __len__(self) -> int:
         return len(self._clouds)
 
     @property
     def newest(self) -> np.ndarray | None:
-        return self._clouds[-1] if self._clouds else None
+        return self._clouds[-1][1] if self._clouds else None
+
+    def clouds(self) -> list[tuple[int | None, np.ndarray]]:
+        """(frame seq, points) of every kept cloud, oldest first: the order `merged` draws them in."""
+        return list(self._clouds)
 
     def merged(self, color_by: str = "velocity", velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
                snr_range_db=DEFAULT_SNR_RANGE_DB) -> StyledPoints:
         parts = []
         n = len(self._clouds)
-        for k, pts in enumerate(self._clouds):
+        for k, (_, pts) in enumerate(self._clouds):
             if len(pts) == 0:
                 continue
             alpha, scale = fade(n - 1 - k, self.n_frames)
@@ -455,6 +473,7 @@ class ViewerState:
     last_seq: int | None = None
     frames_shown: int = 0
     frames_skipped: int = 0          # points frames the viewer never drew (seq gaps seen here)
+    recent_points: dict = field(default_factory=dict)  # seq -> points of the last RECENT_FRAMES frames
     arrivals: deque = field(default_factory=lambda: deque(maxlen=32))   # receive times of clouds
     bad: int = 0
     bad_by_reason: dict = field(default_factory=dict)
@@ -476,12 +495,15 @@ class ViewerState:
             h = msg["header"]
             if self.run is not None and h["run"] != self.run:
                 self.persist.clear()         # the source restarted: old clouds belong to another run
+                self.recent_points.clear()
                 self.last_seq = None
             if self.last_seq is not None and h["seq"] > self.last_seq + 1:
                 self.frames_skipped += h["seq"] - self.last_seq - 1
             self.run, self.last_seq = h["run"], h["seq"]
             self.points_msg = msg
-            self.persist.push(msg["data"])
+            self.recent_points[h["seq"]] = self.persist.push(msg["data"], h["seq"])
+            while len(self.recent_points) > RECENT_FRAMES:
+                del self.recent_points[next(iter(self.recent_points))]   # the oldest arrival
             self.frames_shown += 1
             self.arrivals.append(msg["received_s"])
         elif kind == "rdmap":
@@ -493,6 +515,14 @@ class ViewerState:
         else:
             return False
         return True
+
+    def map_points(self) -> np.ndarray | None:
+        """The points of the range-Doppler map's own frame (the map's `seq`), which the map's rings
+        mark; None without a map, or when that frame's points are not (or no longer) here: then no
+        rings are drawn rather than another frame's."""
+        if self.rdmap_msg is None:
+            return None
+        return self.recent_points.get(self.rdmap_msg["header"]["seq"])
 
     @property
     def ground_height_m(self) -> float:
