@@ -229,6 +229,52 @@ def _add_file_commands(sub) -> None:
     pr.set_defaults(func=_process)
 
 
+def _inspect(args) -> int:
+    from .capture import CaptureReader
+    from .files import capture_sensor, to_canonical
+    from .inspect import format_inspection, inspect_cell
+    from .process import make_pipeline
+    from .settings import load_settings
+    with CaptureReader(args.capture) as reader:
+        if not 0 <= args.frame < len(reader):
+            raise CubecastError(f"--frame {args.frame}: {args.capture} holds frames 0..{len(reader) - 1}"
+                                if len(reader) else f"--frame {args.frame}: {args.capture} holds no frames")
+        sensor = capture_sensor(reader)
+        f = reader.read(args.frame)
+        frame = to_canonical(sensor, f.payload).copy()
+    pipe = make_pipeline(sensor, load_settings(args.settings) if args.settings else None, args.calibration)
+    result = {"capture": str(args.capture), "frame": args.frame, "sequence": f.sequence,
+              "timestamp_s": f.timestamp_s} | inspect_cell(pipe, frame, args.range_m, args.velocity_mps)
+    if args.png:
+        try:
+            from ..viewer.inspectfig import render_inspection
+            from ..viewer.snapshot import OffscreenUnavailable
+        except ImportError as exc:
+            raise CubecastError(f"--png needs the viewer ({exc}); install with: pip install -e '.[viewer]'") from None
+        try:
+            render_inspection(result, args.png)
+        except OffscreenUnavailable as exc:
+            raise CubecastError(f"--png {args.png}: {exc}") from None
+        log.info("wrote %s", args.png)
+    print(json.dumps(result, allow_nan=False) if args.json else format_inspection(result))
+    return 0
+
+
+def _add_inspect(sub) -> None:
+    i = sub.add_parser("inspect", help="one range-Doppler cell of one frame of a capture: its numbers, spectra and "
+                                       "channels (text, --json, --png)")
+    i.add_argument("capture")
+    i.add_argument("--frame", type=int, required=True, metavar="N", help="frame index in the capture (0-based)")
+    i.add_argument("--range-m", type=float, required=True, metavar="R", help="range of the cell (m)")
+    i.add_argument("--velocity-mps", type=float, required=True, metavar="V",
+                   help="radial velocity of the cell (m/s, positive receding; beyond the map's span it is unfolded)")
+    i.add_argument("--json", action="store_true", help="print everything as one JSON object")
+    i.add_argument("--png", metavar="FILE", help="render the cell's figure to this PNG (offscreen, needs the viewer)")
+    i.add_argument("--settings", help="processing settings (TOML, [processing] section)")
+    i.add_argument("--calibration", help="calibration file (TOML)")
+    i.set_defaults(func=_inspect)
+
+
 def _add_serve(sub) -> None:
     sv = sub.add_parser("serve", help="the streaming daemon: ADC frames in over ZeroMQ, point clouds out")
     sv.add_argument("--sensor", required=True, help="sensor description (TOML) of the source")
@@ -348,7 +394,7 @@ def build_parser() -> argparse.ArgumentParser:
                                 "point clouds out.")
     _add_log_options(p)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for add in (_add_file_commands, _add_serve, _add_worker_commands, _add_stream_commands, _add_bench):
+    for add in (_add_file_commands, _add_inspect, _add_serve, _add_worker_commands, _add_stream_commands, _add_bench):
         add(sub)
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)

@@ -37,6 +37,51 @@ def _quad(poly: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return v, np.array([[0, 1, 2], [0, 2, 3]], np.uint32)
 
 
+def share_fonts(axis_widget, fonts) -> None:
+    """Point an axis' tick and label texts at a canvas' glyph atlas (vispy builds its own)."""
+    for name in ("_text", "_axis_label_vis"):
+        t = getattr(axis_widget.axis, name, None)
+        if t is not None and hasattr(t, "_font_manager"):
+            t._font_manager = fonts
+            t._update_font()
+
+
+def make_panel(grid, row: int, x_label: str, y_label: str, aspect, fonts):
+    """A plot in `grid`: a view at (row, 1) with a pan-zoom camera, its y axis at (row, 0) and its x
+    axis at (row + 1, 1), both labelled and linked. Returns (view, x axis, y axis)."""
+    view = grid.add_view(row=row, col=1, bgcolor=V.PANEL_BG, border_color=V.GRID)
+    view.camera = scene.PanZoomCamera(aspect=aspect)   # before linking: the axes follow its transform
+    common = dict(text_color=V.TEXT_DIM, axis_color=V.GRID, tick_color=V.GRID, tick_font_size=8,
+                  axis_font_size=9.5, tick_label_margin=6, major_tick_length=5, minor_tick_length=2,
+                  axis_width=1, tick_width=1)
+    ya = scene.AxisWidget(orientation="left", axis_label=y_label, axis_label_margin=38, **common)
+    ya.width_min = ya.width_max = YAXIS_W
+    grid.add_widget(ya, row=row, col=0)
+    xa = scene.AxisWidget(orientation="bottom", axis_label=x_label, axis_label_margin=30, **common)
+    xa.height_min = xa.height_max = XAXIS_H
+    grid.add_widget(xa, row=row + 1, col=1)
+    share_fonts(ya, fonts)
+    share_fonts(xa, fonts)
+    ya.link_view(view)
+    xa.link_view(view)
+    view.stretch = (1, 1)
+    return view, xa, ya
+
+
+def refresh_linked_axes(axes) -> bool:
+    """Bring linked axes' number ranges up to date with their views (vispy's linked axes miss a
+    change of their own place in the layout); True when any changed."""
+    changed = False
+    for ax in axes:
+        tr = ax.node_transform(ax._linked_view.scene)
+        p1, p2 = tr.map(ax._axis_ends())
+        dom = (p1[1], p2[1]) if ax.orientation in ("left", "right") else (p1[0], p2[0])
+        if not np.allclose(dom, ax.axis.domain, rtol=0, atol=1e-9):
+            ax.axis.domain = dom
+            changed = True
+    return changed
+
+
 class Legend:
     """A horizontal colour bar with words at its ends and tick labels under it, in a widget's pixels."""
 
@@ -214,32 +259,9 @@ class ViewerCanvas:
     def _text(self, *args, **kwargs):
         return scene.visuals.Text(*args, font_manager=self.fonts, **kwargs)
 
-    def _share_fonts(self, axis_widget) -> None:
-        """Point an axis' tick and label texts at the canvas' glyph atlas (vispy builds its own)."""
-        for name in ("_text", "_axis_label_vis"):
-            t = getattr(axis_widget.axis, name, None)
-            if t is not None and hasattr(t, "_font_manager"):
-                t._font_manager = self.fonts
-                t._update_font()
-
     def _panel(self, grid, row: int, x_label: str, y_label: str, aspect):
-        view = grid.add_view(row=row, col=1, bgcolor=V.PANEL_BG, border_color=V.GRID)
-        view.camera = scene.PanZoomCamera(aspect=aspect)   # before linking: the axes follow its transform
-        common = dict(text_color=V.TEXT_DIM, axis_color=V.GRID, tick_color=V.GRID, tick_font_size=8,
-                      axis_font_size=9.5, tick_label_margin=6, major_tick_length=5, minor_tick_length=2,
-                      axis_width=1, tick_width=1)
-        ya = scene.AxisWidget(orientation="left", axis_label=y_label, axis_label_margin=38, **common)
-        ya.width_min = ya.width_max = YAXIS_W
-        grid.add_widget(ya, row=row, col=0)
-        xa = scene.AxisWidget(orientation="bottom", axis_label=x_label, axis_label_margin=30, **common)
-        xa.height_min = xa.height_max = XAXIS_H
-        grid.add_widget(xa, row=row + 1, col=1)
-        self._share_fonts(ya)
-        self._share_fonts(xa)
-        ya.link_view(view)
-        xa.link_view(view)
+        view, xa, ya = make_panel(grid, row, x_label, y_label, aspect, self.fonts)
         self._axes.extend((xa, ya))
-        view.stretch = (1, 1)
         return view
 
     def _panel_title(self, widget, name: str, sub: str):
@@ -453,14 +475,6 @@ class ViewerCanvas:
         return self.canvas.render(alpha=False)
 
     def refresh_axes(self) -> bool:
-        """Bring the axes' number ranges up to date with their panels (vispy's linked axes miss a
-        change of their own place in the layout); True when any changed."""
-        changed = False
-        for ax in self._axes:
-            tr = ax.node_transform(ax._linked_view.scene)
-            p1, p2 = tr.map(ax._axis_ends())
-            dom = (p1[1], p2[1]) if ax.orientation in ("left", "right") else (p1[0], p2[0])
-            if not np.allclose(dom, ax.axis.domain, rtol=0, atol=1e-9):
-                ax.axis.domain = dom
-                changed = True
-        return changed
+        """Bring the axes' number ranges up to date with their panels (refresh_linked_axes); True when
+        any changed."""
+        return refresh_linked_axes(self._axes)
