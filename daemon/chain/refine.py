@@ -65,7 +65,7 @@ import numba
 import numpy as np
 
 from .fft import ifft_unnormalised_inplace
-from .refine_band import BAND_HALF_BINS, NARROW_HALF_BINS, Band, band_gather, band_refine
+from .refine_band import BAND_HALF_BINS, NARROW_HALF_BINS, Band, band_pass
 
 TAU_FRACTION = 0.001          # the flat taper's edge: w^2 / (w^2 + tau^2), tau relative to max(w)
 COMBINED_CELLS = 11           # range cells summed by the matched weights for the Doppler pass (odd; fewer on a short axis)
@@ -394,6 +394,7 @@ class Refiner:
         self.doppler = Axis(doppler_window, doppler_fft_size, DOPPLER_COMBINED_CELLS)
         self.bands = (Band(range_window, range_fft_size, BAND_HALF_BINS),
                       Band(range_window, range_fft_size, NARROW_HALF_BINS, whiten=False))   # FLAT, WINDOWED
+        self._band_tables = tuple((b.u, b.c, b.var_unit, b.eta, b.first, b.steps, b.half) for b in self.bands)
         self.n_range_bins = n_range_bins
         self.n_rx, self.n_slots = n_rx, n_slots
         self.n_channels = n_rx * n_slots
@@ -467,18 +468,9 @@ class Refiner:
         if not along_range:
             self._full_axis(spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr)
             return nu, sigma, values, value_snr, mode.copy()
-        y = self._band_rows[:n_det]
-        halves = np.where(mode == FLAT, self.bands[0].half, self.bands[1].half)
-        band_gather(spec, k0, l0, h, halves, self.range.fft_size, y)
-        var_unit, eta, s_hat = np.empty(n_det), np.empty(n_det), np.empty(n_det)
-        start = k0.astype(np.float64)
-        for m, band in zip((FLAT, WINDOWED), self.bands):
-            band_refine(y, beam_weights, mode, m, band.u, band.c, band.var_unit, band.eta, band.first, band.steps,
-                        start, float(axis.sum_e[FLAT]), sigma_z2, nu, values, var_unit, eta, s_hat)
-        s_hat = np.maximum(s_hat, 1e-3 * s_first + 1e-12)
-        extra = (bias ** 2 + SYSTEMATIC_FLOOR_BINS ** 2) * axis.padding ** 2
-        sigma[:] = np.sqrt(var_unit / s_hat + extra)
-        value_snr[:] = s_hat / self.n_channels / eta
+        band_pass(spec, k0, l0, h, mode, self.range.fft_size, beam_weights, self._band_tables[0], self._band_tables[1],
+                  float(axis.sum_e[FLAT]), sigma_z2, s_first, bias, SYSTEMATIC_FLOOR_BINS, axis.padding,
+                  self._band_rows[:n_det], nu, values, sigma, value_snr)
         return nu, sigma, values, value_snr, mode.copy()
 
     def _full_axis(self, spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr):

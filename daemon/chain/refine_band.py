@@ -289,3 +289,32 @@ def band_refine(y, weights, mode, flat, u, c, var_unit, eta, first, steps, start
         eta_out[i] = e
         # E sum_c |A_c_hat|^2 = sum_c |A_c|^2 + K sigma_z^2 eta
         s_out[i] = (power - n_ch * sigma_z2[i] * e) / sigma_z2[i]
+
+
+@numba.njit(cache=True, nogil=True)
+def band_pass(spec, k0, l0, h, mode, n_range_fft, weights, wide, narrow, scale, sigma_z2, s_first, bias, extra_floor,
+              padding, y, nu, values, sigma, value_snr):
+    """The whole range pass after the choice of band, in one call: the gather (band_gather) on each
+    detection's band (mode 0: the wide band, 1: the narrow one), band_refine with that band's
+    tables, then the standard deviation (FFT bins: the band's variance at the estimated SNR, the
+    predicted neighbour shift `bias` and the systematic floor `extra_floor`, unpadded bins, in
+    quadrature) and the SNR per channel of the values. `wide`, `narrow`: (u, c, var_unit, eta,
+    first, steps, half) of each band."""
+    n_det = k0.shape[0]
+    halves = np.empty(n_det, np.int64)
+    for i in range(n_det):
+        halves[i] = wide[6] if mode[i] == 0 else narrow[6]
+    band_gather(spec, k0, l0, h, halves, n_range_fft, y)
+    start = np.empty(n_det)
+    for i in range(n_det):
+        start[i] = k0[i]
+    var_unit, eta, s_hat = np.empty(n_det), np.empty(n_det), np.empty(n_det)
+    band_refine(y, weights, mode, 0, wide[0], wide[1], wide[2], wide[3], wide[4], wide[5], start, scale, sigma_z2,
+                nu, values, var_unit, eta, s_hat)
+    band_refine(y, weights, mode, 1, narrow[0], narrow[1], narrow[2], narrow[3], narrow[4], narrow[5], start, scale,
+                sigma_z2, nu, values, var_unit, eta, s_hat)
+    n_ch = values.shape[1]
+    for i in range(n_det):
+        s = max(s_hat[i], 1e-3 * s_first[i] + 1e-12)
+        sigma[i] = np.sqrt(var_unit[i] / s + (bias[i] * bias[i] + extra_floor * extra_floor) * padding * padding)
+        value_snr[i] = s / n_ch / eta[i]
