@@ -410,10 +410,45 @@ def test_status_line_waiting_then_live_then_stalled():
     assert st.frames_skipped == 2
 
 
-def test_help_lists_the_keys():
+def test_help_lists_the_keys_and_the_status_counters():
     text = V.help_text()
-    for key in ("space", "c", "n", "h or ?", "q or Esc", "-  +", "[  ]"):
+    for key in ("space", "c", "n", "h or ?", "q or Esc", "-  +", "[  ]", "click"):
         assert key in text
+    assert "cubecast-view-DATE-TIME.png" in text          # where s saves
+    assert re.search(r"skipped N +point frames this viewer never drew", text)
+    assert re.search(r"dropped N +frames serve dropped", text)
+
+
+def test_click_picks_the_nearest_point_and_the_cell_under_it():
+    # the nearest candidate within the radius, the newest (last) of equally near ones
+    assert V.nearest_pixel([(10, 10), (30, 10), (30, 10)], (28, 11)) == 2
+    assert V.nearest_pixel([(10, 10)], (25, 10)) is None and V.nearest_pixel(np.zeros((0, 2)), (0, 0)) is None
+    # README "Wire format": cell centres at start + index * step, so cell (i, j) spans half a step either side
+    h = {"seq": 4, "range_start_m": 0.1, "range_step_m": 0.2, "velocity_start_mps": -1.0, "velocity_step_mps": 0.5}
+    assert V.rd_cell_at(h, (10, 4), -1.24, 0.0) == (0, 0) and V.rd_cell_at(h, (10, 4), -0.74, 0.21) == (1, 1)
+    assert V.rd_cell_at(h, (10, 4), -1.26, 0.0) is None and V.rd_cell_at(h, (10, 4), 0.0, 2.01) is None
+    pts = cloud({"y_m": 1.0, "velocity_mps": 0.6, "sigma_range_m": 0.01}, {"y_m": 1.0, "velocity_mps": -0.4},
+                {"y_m": 1.5, "velocity_mps": 0.6})
+    # 4 columns span 2 m/s: +0.6 m/s is in column 3 (0.25 .. 0.75), -0.4 m/s folds there too (1.6 - 2.0)
+    inside = V.points_in_rd_cell(pts, h, (10, 4), (5, 3))
+    assert len(inside) == 1 and inside["velocity_mps"][0] == np.float32(0.6)
+    msg = {"header": h, "data": np.full((10, 4), 12.5, np.float32)}
+    lines = V.cell_lines(msg, (5, 3), pts)
+    assert lines[0] == "RANGE-DOPPLER CELL · frame 4" and "range 1.00 … 1.20 m" in lines
+    assert "level 12.5 dB over the noise floor" in lines and "points of frame 4 in this cell: 1" in lines
+    assert "range 1.000 ± 0.01 m" in lines
+    assert lines[-1] == "   CAPTURE --frame N --range-m 1.00 --velocity-mps 0.60"   # the point's numbers
+    assert V.cell_lines(msg, (5, 3), None)[-1] == "points of frame 4: not received"
+
+
+def test_a_points_lines_carry_its_numbers_and_sigmas():
+    p = cloud({"x_m": -1.5, "y_m": 8.0, "z_m": 0.4, "velocity_mps": -2.25, "azimuth_deg": -10.6,
+               "elevation_deg": 2.8, "snr_db": 27.0, "sigma_range_m": 0.004, "sigma_velocity_mps": 0.002,
+               "sigma_azimuth_deg": 0.12, "sigma_elevation_deg": 0.5})[0]
+    lines = V.point_lines(p, 17)
+    assert lines == ["POINT · frame 17", f"range {float(p['range_m']):.3f} ± 0.004 m",
+                     "radial velocity −2.250 ± 0.002 m/s", "azimuth −10.60 ± 0.12 °", "elevation 2.80 ± 0.5 °",
+                     "SNR 27.0 dB per channel", "x −1.50  y 8.00  z 0.40 m"]
 
 
 def test_served_map_is_pooled_to_the_wire_limits():

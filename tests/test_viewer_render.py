@@ -166,27 +166,29 @@ def test_offscreen_yard_header_beam_is_plainly_overhead(canvas, yard_messages):
     assert canvas.rd_image.visible and canvas.rd_marks.visible
 
 
+class FakeFeed:
+    """A Feed's interface without a socket: `put` decodes one message into the latest-value slots."""
+    endpoint = "tcp://127.0.0.1:5999"
+
+    def __init__(self):
+        self.snap = FeedSnapshot(endpoint=self.endpoint, started_s=time.monotonic())
+
+    def put(self, parts):
+        m = decode_parts(parts)
+        self.snap.latest.setdefault(m["sensor_id"], {})[m["kind"]] = m
+        c = self.snap.counts.setdefault(m["sensor_id"], {})
+        c[m["kind"]] = c.get(m["kind"], 0) + 1
+        self.snap.last_message_s = m["received_s"]
+
+    def snapshot(self):
+        return self.snap
+
+    def stop(self):
+        pass
+
+
 def test_app_keys_pause_step_and_stall(canvas):
     from cubecast.viewer.app import ViewerApp
-
-    class FakeFeed:
-        endpoint = "tcp://127.0.0.1:5999"
-
-        def __init__(self):
-            self.snap = FeedSnapshot(endpoint=self.endpoint, started_s=time.monotonic())
-
-        def put(self, parts):
-            m = decode_parts(parts)
-            self.snap.latest.setdefault(m["sensor_id"], {})[m["kind"]] = m
-            c = self.snap.counts.setdefault(m["sensor_id"], {})
-            c[m["kind"]] = c.get(m["kind"], 0) + 1
-            self.snap.last_message_s = m["received_s"]
-
-        def snapshot(self):
-            return self.snap
-
-        def stop(self):
-            pass
 
     feed = FakeFeed()
     app = ViewerApp(feed, canvas=canvas, show=False, stall_after_s=3.0)
@@ -307,3 +309,59 @@ def test_no_rings_when_the_maps_frame_points_are_gone(canvas):
     x0, y0, x1, y1 = canvas.panel_rect("rd")
     assert _rose(img[y0:y1, x0:x1]).sum() == 0
     assert canvas.rd_sub.text == "frame 7 · its points not received: no rings"
+
+
+# ---- a click shows the numbers of a point or a map cell ---------------------------------------------
+
+class _Mouse:
+    """The two fields of a vispy mouse event the viewer reads."""
+
+    def __init__(self, pos, button=1):
+        self.pos, self.button = pos, button
+
+
+def test_click_shows_a_points_or_a_cells_numbers(canvas, tmp_path, monkeypatch):
+    from cubecast.viewer.app import ViewerApp
+    feed = FakeFeed()
+    app = ViewerApp(feed, canvas=canvas, show=False)
+    msgs = _van_messages(10)
+    for parts in msgs[:3]:                        # sensor, frame 10's points and its map
+        feed.put(parts)
+        app.tick()
+    for parts in msgs[3:]:                        # frames 11 and 12, one tick each
+        feed.put(parts)
+        app.tick()
+    canvas.reset_cameras(app.state)
+    canvas.render()
+    # frame 12's point in the top view (x 0, y 11.2): its numbers, with the frame it belongs to
+    lines = app.click(canvas.data_to_pixel("top", [(0.0, 11.2)])[0] + (3, -2))
+    assert lines[0] == "POINT · frame 12" and lines[1].startswith("range 11.200 ± ") and lines[1].endswith(" m")
+    assert any(l.startswith("radial velocity −11.000 ± ") for l in lines)
+    assert canvas.info_box.visible
+    img = canvas.render()[..., :3].astype(int)
+    x0, y0, x1, y1 = canvas.panel_rect("rd")
+    # the panel sits in the lower left of the range-Doppler map, framed in the ring's rose
+    low_left = img[y1 - 240: y1, x0: x0 + 220]
+    assert _rose(low_left).sum() > 100
+    # the map's ring of frame 10 on the map: that frame's point
+    lines = app.click(canvas.data_to_pixel("rd", [(5.0, 13.4)])[0])
+    assert lines[0] == "POINT · frame 10" and lines[1].startswith("range 13.400")
+    # an empty map cell: the cell's extent and level, and that frame 10 has no point in it
+    lines = app.click(canvas.data_to_pixel("rd", [(-5.0, 3.0)])[0])
+    assert lines[0] == "RANGE-DOPPLER CELL · frame 10"
+    assert "range 2.90 … 3.10 m" in lines and "level 0.0 dB over the noise floor" in lines
+    assert "points of frame 10 in this cell: 0" in lines
+    # a drag is a pan, not a click; a click on empty space closes the panel
+    empty = canvas.data_to_pixel("top", [(-12.0, 2.0)])[0]
+    app._on_mouse_press(_Mouse(empty))
+    app._on_mouse_release(_Mouse(empty + (40, 0)))
+    assert canvas.info_box.visible
+    app._on_mouse_press(_Mouse(empty))
+    app._on_mouse_release(_Mouse(empty + (1, 1)))
+    assert not canvas.info_box.visible and app.state.selection is None
+    # s saves the window to the current folder and says where in the footer
+    monkeypatch.chdir(tmp_path)
+    app.handle_key("s", "s")
+    saved = tmp_path / app.saved[-1]
+    assert saved.exists() and saved.name.startswith("cubecast-view-") and saved.suffix == ".png"
+    assert canvas.footer_text.text == f"saved {saved}"

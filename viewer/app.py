@@ -8,7 +8,10 @@ one set_data per visual per displayed frame. The GUI never waits on the network.
 from __future__ import annotations
 
 import logging
+import os
 import time
+
+import numpy as np
 
 from . import views as V
 from .feed import Feed
@@ -17,6 +20,8 @@ log = logging.getLogger(__name__)
 
 TICK_S = 1.0 / 30.0
 STATUS_EVERY_S = 0.25
+NOTICE_S = 6.0     # how long the footer shows what a key did (the saved file's path)
+CLICK_PX = 4.0     # a press and release closer than this is a click, not a drag
 
 
 class ViewerApp:
@@ -40,6 +45,10 @@ class ViewerApp:
         self.closed = False
         self.vc.canvas.events.key_press.connect(self._on_key)
         self.vc.canvas.events.close.connect(self._on_close)
+        self.vc.canvas.events.mouse_press.connect(self._on_mouse_press)
+        self.vc.canvas.events.mouse_release.connect(self._on_mouse_release)
+        self._press_px = None
+        self._notice, self._notice_until_s = "", 0.0
         self.timer = None
         self.vc.show_state(self.state)
 
@@ -86,7 +95,7 @@ class ViewerApp:
             self.vc.show_data(st)
         if changed or now_s - self._last_status_s >= STATUS_EVERY_S:
             self._last_status_s = now_s
-            self.vc.show_status(st)
+            self.vc.show_status(st, self._footer(now_s))
             changed = True
         if self.vc.refresh_axes() or changed:
             self.vc.canvas.update()
@@ -132,8 +141,35 @@ class ViewerApp:
             return
         else:
             return
-        self.vc.show_state(st)
+        self.vc.show_state(st, self._footer())
         self.vc.canvas.update()
+
+    def _footer(self, now_s: float | None = None) -> str:
+        """A notice (what the last key did) for NOTICE_S, else the default footer."""
+        now_s = time.monotonic() if now_s is None else now_s
+        return self._notice if now_s < self._notice_until_s else ""
+
+    def _say(self, text: str) -> None:
+        self._notice, self._notice_until_s = text, time.monotonic() + NOTICE_S
+        log.info("cubecast view: %s", text)
+
+    # ---- mouse: a click (press and release in one place) picks a point or a map cell ----
+    def _on_mouse_press(self, event) -> None:
+        self._press_px = np.asarray(event.pos, np.float64) if event.button == 1 else None
+
+    def _on_mouse_release(self, event) -> None:
+        start, self._press_px = self._press_px, None
+        if start is None or event.button != 1 or np.hypot(*(np.asarray(event.pos) - start)) > CLICK_PX:
+            return   # a drag pans; only a click picks
+        self.click(start * np.asarray(self.vc.canvas.pixel_scale))
+
+    def click(self, px) -> list[str] | None:
+        """Show the numbers of what is drawn at canvas pixel `px` (physical pixels), or close the panel
+        when nothing is there. Returns the lines shown."""
+        self.state.selection = self.vc.pick(self.state, px)
+        self.vc.show_selection(self.state.selection)
+        self.vc.canvas.update()
+        return self.state.selection
 
     def next_sensor(self) -> None:
         if self.fixed_sensor:
@@ -148,6 +184,7 @@ class ViewerApp:
         paused = self.state.paused
         self.state = self._new_state(nxt)
         self.state.paused = paused
+        self.vc.show_selection(None)
         self._seen = {k: v for k, v in self._seen.items() if k[0] != nxt}
         self.vc.reset_cameras(self.state)
         self.tick()
@@ -158,6 +195,7 @@ class ViewerApp:
         img = self.vc.canvas.render(alpha=False)
         write_png(path, img[..., :3])
         self.saved.append(path)
+        self._say(f"saved {os.path.abspath(path)}")
         return path
 
     def close(self) -> None:

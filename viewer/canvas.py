@@ -254,6 +254,14 @@ class ViewerCanvas:
         self.help_desc = self._text("", parent=self.overlay, color=V.TEXT, font_size=10, face=FONT,
                                     anchor_x="left", anchor_y="bottom")
         self.set_help(False)
+        # the numbers of a clicked point or map cell, in the lower left of the range-Doppler panel
+        self.info_box = scene.visuals.Rectangle(center=(0, 0), width=10, height=10, color=(0.04, 0.05, 0.07, 0.9),
+                                                border_color=V.DETECTION_RING, parent=self.overlay)
+        self.info_title = self._text("", parent=self.overlay, color=V.TEXT, font_size=9.5, bold=True, face=FONT,
+                                     anchor_x="left", anchor_y="center")
+        self.info_lines = self._text("", parent=self.overlay, color=V.TEXT, font_size=9, face=FONT,
+                                     anchor_x="left", anchor_y="center")
+        self.show_selection(None)
 
     # ---- construction helpers ----
     def _text(self, *args, **kwargs):
@@ -273,14 +281,15 @@ class ViewerCanvas:
 
     def _layout_overlays(self) -> None:
         w, h = self.canvas.size
-        bw, bh = 600, 40 + 24 * len(V.KEYS)
+        rows = V.HELP_ROWS
+        bw, bh = 600, 40 + 22 * len(rows)
         cx, cy = w / 2, h / 2
         self.help_box.center = (cx, cy)
         self.help_box.width, self.help_box.height = bw, bh
         self.help_title.pos = (cx - bw / 2 + 24, cy - bh / 2 + 14)
-        self.help_keys.text = [k for k, _ in V.KEYS]
-        self.help_desc.text = [d for _, d in V.KEYS]
-        ys = cy - bh / 2 + 44 + 24 * np.arange(len(V.KEYS))
+        self.help_keys.text = [k for k, _ in rows]
+        self.help_desc.text = [d for _, d in rows]
+        ys = cy - bh / 2 + 44 + 22 * np.arange(len(rows))
         self.help_keys.pos = np.stack([np.full(len(ys), cx - bw / 2 + 28), ys], 1)
         self.help_desc.pos = np.stack([np.full(len(ys), cx - bw / 2 + 170), ys], 1)
         self.footer_right.pos = (w - 24, 12)
@@ -291,10 +300,64 @@ class ViewerCanvas:
         right_w = max(260.0, 0.37 * (w - 2 * MARGIN))
         self.right.width_min = self.right.width_max = right_w
         self._column_w = (w - 2 * MARGIN - right_w, right_w)
+        if getattr(self, "_selection", None):
+            self.show_selection(self._selection)
 
     def set_help(self, visible: bool) -> None:
         for v in (self.help_box, self.help_title, self.help_keys, self.help_desc):
             v.visible = visible
+
+    def show_selection(self, lines: list[str] | None) -> None:
+        """Show the lines of a clicked point or cell (the first is the title), or hide the panel."""
+        self._selection = lines
+        for v in (self.info_box, self.info_title, self.info_lines):
+            v.visible = bool(lines)
+        if not lines:
+            return
+        x0, _, x1, y1 = self.panel_rect("rd")
+        w = min(max(x1 - x0 - 16, 200), 420)
+        h = 30 + 17 * (len(lines) - 1)
+        left, top = x0 + 8, y1 - 8 - h
+        self.info_box.center = (left + w / 2, top + h / 2)
+        self.info_box.width, self.info_box.height = w, h
+        self.info_title.text, self.info_title.pos = lines[0], (left + 10, top + 14)
+        rest = lines[1:] or [""]
+        self.info_lines.text = rest
+        self.info_lines.pos = np.array([[left + 10, top + 31 + 17 * k] for k in range(len(rest))], np.float32)
+
+    @property
+    def selection(self) -> list[str] | None:
+        return self._selection
+
+    def pick(self, state: V.ViewerState, px) -> list[str] | None:
+        """The lines a click at canvas pixel `px` (physical pixels, as data_to_pixel) shows: the nearest
+        drawn point within 10 px in the top or side view, the nearest ring or else the cell under the
+        click on the range-Doppler map; None for empty space."""
+        px = np.asarray(px, np.float64)
+        for panel in ("top", "side"):
+            x0, y0, x1, y1 = self.panel_rect(panel)
+            if not (x0 <= px[0] <= x1 and y0 <= px[1] <= y1):
+                continue
+            clouds = state.persist.clouds()
+            if not any(len(pts) for _, pts in clouds):
+                return None
+            seqs = np.concatenate([np.full(len(pts), -1 if seq is None else seq) for seq, pts in clouds])
+            pts = np.concatenate([pts for _, pts in clouds])
+            xy = V.bev_positions(pts) if panel == "top" else V.side_positions(pts)
+            k = V.nearest_pixel(self.data_to_pixel(panel, xy), px)
+            return None if k is None else V.point_lines(pts[k], None if seqs[k] < 0 else int(seqs[k]))
+        x0, y0, x1, y1 = self.panel_rect("rd")
+        rd = state.rdmap_msg
+        if rd is None or not (x0 <= px[0] <= x1 and y0 <= px[1] <= y1):
+            return None
+        own = state.map_points()
+        if own is not None and len(own):
+            k = V.nearest_pixel(self.data_to_pixel("rd", V.rd_marks(own, rd["header"], rd["data"].shape[1])), px)
+            if k is not None:
+                return V.point_lines(own[k], rd["header"]["seq"])
+        v, r = self.pixel_to_data("rd", px)
+        cell = V.rd_cell_at(rd["header"], rd["data"].shape, v, r)
+        return None if cell is None else V.cell_lines(rd, cell, own)
 
     @property
     def help_visible(self) -> bool:
@@ -381,7 +444,8 @@ class ViewerCanvas:
     def show_status(self, state: V.ViewerState, footer: str = "") -> None:
         """The header's status line and the footer only (cheap: text)."""
         text, level = V.status_line(state)
-        footer = footer or "h: keys   space: pause   c: colour by velocity / SNR   -/+: persistence"
+        footer = footer or ("h: keys   space: pause   c: colour by velocity / SNR   -/+: persistence   "
+                            "click: a point's or cell's numbers   s: save PNG")
         right = (f"persistence {state.persist.n_frames} frames  ·  points coloured by "
                  f"{'radial velocity' if state.color_by == 'velocity' else 'SNR'}")
         key = (text, level, footer, right)
@@ -456,6 +520,13 @@ class ViewerCanvas:
         tr = view.scene.node_transform(self.canvas.scene)
         p = tr.map(np.atleast_2d(np.asarray(xy, np.float64)))
         return p[:, :2] * np.asarray(self.canvas.pixel_scale)
+
+    def pixel_to_data(self, panel: str, px) -> np.ndarray:
+        """Data coordinates in 'top', 'side' or 'rd' of a canvas pixel (the inverse of data_to_pixel)."""
+        view = {"top": self.top, "side": self.side, "rd": self.rd}[panel]
+        tr = view.scene.node_transform(self.canvas.scene)
+        p = np.atleast_2d(np.asarray(px, np.float64)) / np.asarray(self.canvas.pixel_scale)
+        return tr.imap(p)[0, :2]
 
     def panel_rect(self, panel: str) -> tuple[int, int, int, int]:
         """(column0, row0, column1, row1) of a panel's plotting area in canvas pixels, border excluded."""

@@ -441,16 +441,93 @@ KEYS: tuple[tuple[str, str], ...] = (
     ("-  +", "persistence: fewer / more frames"),
     ("n", "next sensor on the bus"),
     ("r", "reset zoom and pan"),
-    ("s", "save a PNG of the window"),
+    ("s", "save the window as cubecast-view-DATE-TIME.png here"),
     ("h or ?", "show / hide this help"),
     ("q or Esc", "quit"),
     ("mouse", "drag to pan, wheel to zoom (per panel)"),
+    ("click", "a point or a map cell: its numbers; empty space: off"),
 )
+# the status line's counters, explained in the help under the keys
+STATUS_WORDS: tuple[tuple[str, str], ...] = (
+    ("skipped N", "point frames this viewer never drew (gaps in seq)"),
+    ("dropped N", "frames serve dropped (its queue was full)"),
+    ("rejected N", "frames serve refused as invalid"),
+    ("gaps N", "frames that never reached serve"),
+)
+HELP_ROWS: tuple[tuple[str, str], ...] = KEYS + (("", ""), ("status line", "")) + STATUS_WORDS
 
 
 def help_text() -> str:
-    w = max(len(k) for k, _ in KEYS)
-    return "\n".join(f"{k:<{w}}   {v}" for k, v in KEYS)
+    w = max(len(k) for k, _ in HELP_ROWS)
+    return "\n".join(f"{k:<{w}}   {v}".rstrip() for k, v in HELP_ROWS)
+
+
+# ---- what a click shows ---------------------------------------------------------------------------
+
+def nearest_pixel(candidates_px: np.ndarray, click_px, max_px: float = 10.0) -> int | None:
+    """Index of the candidate (pixel positions [N, 2]) nearest the click, if within max_px; the last
+    of equally near ones (the newest, drawn on top)."""
+    c = np.asarray(candidates_px, np.float64).reshape(-1, 2)
+    if len(c) == 0:
+        return None
+    d = np.hypot(c[:, 0] - click_px[0], c[:, 1] - click_px[1])
+    k = len(d) - 1 - int(np.argmin(d[::-1]))
+    return k if d[k] <= max_px else None
+
+
+def rd_cell_at(header: dict, shape: tuple[int, int], velocity_mps: float, range_m: float) -> tuple[int, int] | None:
+    """(row, column) of the map cell under (velocity, range) in the panel's coordinates, or None off the map."""
+    x0, y0, sx, sy = rdmap_geometry(header)
+    j, i = math.floor((velocity_mps - x0) / sx), math.floor((range_m - y0) / sy)
+    return (i, j) if 0 <= i < shape[0] and 0 <= j < shape[1] else None
+
+
+def points_in_rd_cell(points: np.ndarray, header: dict, shape: tuple[int, int], cell: tuple[int, int]) -> np.ndarray:
+    """The points whose range and folded velocity fall in map cell (row, column)."""
+    if len(points) == 0:
+        return points
+    marks = rd_marks(points, header, shape[1])
+    cells = [rd_cell_at(header, shape, float(v), float(r)) for v, r in marks]
+    return points[np.array([c == tuple(cell) for c in cells], bool)]
+
+
+def _pm(value: float, sigma: float, digits: int, unit: str) -> str:
+    return f"{value:.{digits}f} ± {sigma:.2g} {unit}".replace("-", "−")
+
+
+def point_lines(p, seq) -> list[str]:
+    """What a click on a point shows: its numbers with their standard deviations."""
+    return [f"POINT · frame {seq if seq is not None else '–'}",
+            f"range {_pm(float(p['range_m']), float(p['sigma_range_m']), 3, 'm')}",
+            f"radial velocity {_pm(float(p['velocity_mps']), float(p['sigma_velocity_mps']), 3, 'm/s')}",
+            f"azimuth {_pm(float(p['azimuth_deg']), float(p['sigma_azimuth_deg']), 2, '°')}",
+            f"elevation {_pm(float(p['elevation_deg']), float(p['sigma_elevation_deg']), 2, '°')}",
+            f"SNR {float(p['snr_db']):.1f} dB per channel",
+            f"x {float(p['x_m']):.2f}  y {float(p['y_m']):.2f}  z {float(p['z_m']):.2f} m".replace("-", "−")]
+
+
+def cell_lines(rdmap_msg: dict, cell: tuple[int, int], own_points: np.ndarray | None) -> list[str]:
+    """What a click on a range-Doppler cell shows: the cell, its level and the map frame's points in it
+    (the spectra of a cell are `cubecast inspect`'s, on a capture)."""
+    h, data = rdmap_msg["header"], rdmap_msg["data"]
+    i, j = cell
+    x0, y0, sx, sy = rdmap_geometry(h)
+    r0, v0 = y0 + i * sy, x0 + j * sx
+    lines = [f"RANGE-DOPPLER CELL · frame {h['seq']}",
+             f"range {r0:.2f} … {r0 + sy:.2f} m",
+             f"velocity before unfolding {v0:+.2f} … {v0 + sx:+.2f} m/s".replace("-", "−"),
+             f"level {float(data[i, j]):.1f} dB over the noise floor"]
+    if own_points is None:
+        return lines + [f"points of frame {h['seq']}: not received"]
+    inside = points_in_rd_cell(own_points, h, data.shape, cell)
+    lines.append(f"points of frame {h['seq']} in this cell: {len(inside)}")
+    r, v = r0 + sy / 2, v0 + sx / 2
+    if len(inside):
+        best = inside[int(np.argmax(inside["snr_db"]))]
+        lines += point_lines(best, h["seq"])[1:6]
+        r, v = float(best["range_m"]), float(best["velocity_mps"])
+    return lines + ["spectra of this cell, from a capture: cubecast inspect",
+                    f"   CAPTURE --frame N --range-m {r:.2f} --velocity-mps {v:.2f}"]
 
 
 @dataclass
@@ -474,6 +551,7 @@ class ViewerState:
     frames_shown: int = 0
     frames_skipped: int = 0          # points frames the viewer never drew (seq gaps seen here)
     recent_points: dict = field(default_factory=dict)  # seq -> points of the last RECENT_FRAMES frames
+    selection: list[str] | None = None   # the lines of the clicked point or cell, shown in a panel
     arrivals: deque = field(default_factory=lambda: deque(maxlen=32))   # receive times of clouds
     bad: int = 0
     bad_by_reason: dict = field(default_factory=dict)
