@@ -277,8 +277,11 @@ class ServerKeys:
         self._on_refused(key)
 
     def start(self, ctx: zmq.Context) -> None:
-        if self._ctx is not None:
+        if self._ctx is ctx:
             return
+        if self._ctx is not None:
+            raise CubecastError(f"{self.dir_role} {self.clients_dir}: these keys are in use in another ZeroMQ "
+                                "context; make one ServerKeys per context")
         local = self.local.public if self.local is not None else None
         _attach(ctx, self.domain, _KeyGate(self.clients_dir, self.dir_role, local, self._refused))
         self._ctx = ctx

@@ -160,12 +160,19 @@ class HandshakeCounter:
     def close(self) -> None:
         if self.monitor is not None:
             self._limit.flush(log, force=True, prefix=f"{self.prefix}: ")
-            try:
-                self.sock.disable_monitor()
-            except zmq.ZMQError:
-                pass
-            self.monitor.close(linger=0)
-            self.monitor = None
+            self.monitor = _close_monitor(self.sock, self.monitor)
+
+
+def _close_monitor(sock: zmq.Socket, monitor: zmq.Socket | None) -> None:
+    """Stop a socket's monitor and close its end (before the socket closes, so that its inproc address
+    is free again); returns None for the caller's attribute."""
+    if monitor is not None:
+        try:
+            sock.disable_monitor()
+        except zmq.ZMQError:
+            pass
+        monitor.close(linger=0)
+    return None
 
 
 _SUB_EVENTS = (zmq.EVENT_CONNECTED | zmq.EVENT_CONNECT_DELAYED | zmq.EVENT_CONNECT_RETRIED | zmq.EVENT_DISCONNECTED
@@ -292,13 +299,7 @@ class Subscriber:
 
     def close(self) -> None:
         self.flush_log(force=True)
-        if self.monitor is not None:
-            try:
-                self.sock.disable_monitor()
-            except zmq.ZMQError:
-                pass
-            self.monitor.close(linger=0)
-            self.monitor = None
+        self.monitor = _close_monitor(self.sock, self.monitor)
         self.sock.close(linger=0)
 
 

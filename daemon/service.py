@@ -359,8 +359,9 @@ class Service:
         next_sensor, next_health = now, now + self.health_interval_s
         last_sensor = -math.inf
         self.ready.set()
-        log.info("cubecast serve: ready: sensor '%s' (digest %s), sub %s, pub %s, queue %d%s", self.sensor.sensor_id,
-                 self.sensor.digest, ", ".join(self.sub_endpoints), self.pub_endpoint, self.queue_depth,
+        log.info("cubecast serve: ready: sensor '%s' (digest %s), sub %s%s, pub %s%s, queue %d%s", self.sensor.sensor_id,
+                 self.sensor.digest, ", ".join(self.sub_endpoints), " (with keys)" if self.source_keys else "",
+                 self.pub_endpoint, " (keys required)" if self.pub_keys else "", self.queue_depth,
                  self.processor.describe())
         while not stop.is_set():
             while True:  # new subscribers: send them the sensor description now (rate-limited)
@@ -448,5 +449,7 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
     s = svc.stats()
     log.info("cubecast serve: stopped: %d frames received, %d processed, %d dropped, %d rejected%s",
              s["frames_received"], s["frames_processed"], s["frames_dropped"], s["frames_rejected"],
-             f", {s['frames_lost_worker']} lost with workers" if isinstance(svc.processor, PoolProcessor) else "")
+             (f", {s['frames_lost_worker']} lost with workers" if isinstance(svc.processor, PoolProcessor) else "")
+             + "".join(f", {s[k]} {k.replace('_', ' ')}" for k in ("subscriber_handshakes_refused",
+                       "source_handshakes_failed", "source_protocol_errors") if s[k]))
     return 0

@@ -10,6 +10,7 @@ sends a message larger than ZMQ_MAXMSGSIZE it is disconnected"; from memory) and
 
 from __future__ import annotations
 
+import contextlib
 import threading
 import time
 import zlib
@@ -106,22 +107,29 @@ def test_serve_redials_after_a_part_above_its_hard_limit(sensor, frames):
     assert s["frames_processed"] == 10 and seqs == list(range(10))
 
 
-def test_record_counts_big_parts_and_keeps_the_stream(tmp_path, sensor, frames):
-    pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
-    rec = Recorder([pub.endpoint], tmp_path / "rec.cap", sensor=sensor)
+@contextlib.contextmanager
+def recording(rec: Recorder, pub: AdcPublisher):
+    """rec.run in a thread, connected to `pub`; yields the dict its summary goes into once it stopped."""
     stop = threading.Event()
     result: dict = {}
     t = threading.Thread(target=lambda: result.update(rec.run(stop)), daemon=True)
     t.start()
     try:
         assert pub.wait_for_subscribers(1, 10, stop)
-        sent = _send_around_big_ones(pub, frames, [_big_adc(sensor, 0, n) for n in BIG_PARTS])
-        assert wait_until(lambda: rec.frames_written == sent, 20), (rec.frames_written, dict(rec.rejected))
+        yield result
     finally:
         stop.set()
         t.join(10)
         pub.close()
-    assert not t.is_alive()
+    assert not t.is_alive(), "record did not stop"
+
+
+def test_record_counts_big_parts_and_keeps_the_stream(tmp_path, sensor, frames):
+    pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
+    rec = Recorder([pub.endpoint], tmp_path / "rec.cap", sensor=sensor)
+    with recording(rec, pub) as result:
+        sent = _send_around_big_ones(pub, frames, [_big_adc(sensor, 0, n) for n in BIG_PARTS])
+        assert wait_until(lambda: rec.frames_written == sent, 20), (rec.frames_written, dict(rec.rejected))
     assert result["rejected"] == {"oversized": len(BIG_PARTS)} and result["protocol_errors"] == 0
     assert result["frames_written"] == sent and result["sequence_gaps"] == 0
     with CaptureReader(tmp_path / "rec.cap") as r:
@@ -134,21 +142,12 @@ def test_record_counts_big_parts_and_keeps_the_stream(tmp_path, sensor, frames):
 def test_record_redials_after_a_part_above_its_hard_limit(tmp_path, sensor, frames):
     pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
     rec = Recorder([pub.endpoint], tmp_path / "rec.cap", sensor=sensor, max_part_bytes=MIB)
-    stop = threading.Event()
-    result: dict = {}
-    t = threading.Thread(target=lambda: result.update(rec.run(stop)), daemon=True)
-    t.start()
-    try:
-        assert pub.wait_for_subscribers(1, 10, stop)
+    with recording(rec, pub) as result:
         pub.send(frames[0], 0.0)
         pub.sock.send_multipart(_big_adc(sensor, 0, 4 * MIB), copy=False)
-        assert pub.wait_for_subscribers(2, 10, stop), "record did not dial the source again"
+        assert pub.wait_for_subscribers(2, 10, threading.Event()), "record did not dial the source again"
         pub.send(frames[1], 0.1)
         assert wait_until(lambda: rec.frames_written == 2, 10), rec.summary()
-    finally:
-        stop.set()
-        t.join(10)
-        pub.close()
     assert result["protocol_errors"] == 1 and result["frames_written"] == 2 and result["rejected"] == {}
 
 
