@@ -245,7 +245,7 @@ def inspect_cell(pipe: Pipeline, frame: np.ndarray, range_m: float, velocity_mps
     power = pipe.detection_map.copy()
     cf, det, threshold = _cfar_at(pipe, power, r, col)
     here, nearby = _points_at(geo, points, det, r, col)
-    median = float(np.median(power))
+    median = max(float(np.median(power)), TINY)    # 0 dB of the dB figures (a frame of zeros: TINY)
     n_dop = geo.n_doppler
     unfolded_bin = col - geo.half + q * n_dop
     if len(here):
@@ -261,7 +261,7 @@ def inspect_cell(pipe: Pipeline, frame: np.ndarray, range_m: float, velocity_mps
     # per-channel noise: the CFAR's noise of a map cell is K times one slot value's (cfar.py); a decoded
     # virtual channel has 1 / virtual_snr_factor of it (mimo.py), scaled by its calibration factor
     noise_slot = cf["noise"] / pipe.cfar.n_integrated
-    noise_virtual = noise_slot / pipe.mimo.virtual_snr_factor()
+    noise_virtual = max(noise_slot / pipe.mimo.virtual_snr_factor(), TINY)
     est = _estimate(pipe, raw, here, noise_virtual)
     az, el = math.radians(est["azimuth_deg"]), math.radians(est["elevation_deg"])
     spectra = angle_spectra(pipe, x, math.sin(az) * math.cos(el), math.sin(el))
@@ -279,7 +279,7 @@ def inspect_cell(pipe: Pipeline, frame: np.ndarray, range_m: float, velocity_mps
             "range_bin_m": geo.range_bin_m, "velocity_bin_mps": geo.velocity_bin_mps,
             "power_db": float(_db(cf["power"] / median)), "noise_db": float(_db(cf["noise"] / median)),
             "threshold_db": float(_db(cf["threshold"] / median)), "snr_db": _num(_db(cf["snr"])),
-            "threshold_over_noise_db": float(_db(cf["threshold"] / cf["noise"])),
+            "threshold_over_noise_db": float(_db(cf["threshold"] / max(cf["noise"], TINY))),
             "threshold_factor": cf["factor"], "noise_statistic": cf["statistic"], "noise": cf["noise"],
             "map_median": median, "cfar_kind": pipe.cfar.settings.kind,
             "above_threshold": cf["power"] > cf["threshold"], "detected": cf["detected"],
@@ -327,12 +327,15 @@ def format_inspection(result: dict) -> str:
         f"unfolded, bin {c['velocity_bin_mps']:.4f} m/s)",
         f"map           {c['power_db']:.1f} dB over the map's median; CFAR ({c['cfar_kind']}) noise {c['noise_db']:.1f} dB, "
         f"threshold {c['threshold_db']:.1f} dB ({c['threshold_over_noise_db']:.1f} dB over the noise)",
-        f"SNR           {c['snr_db']:.1f} dB per channel; "
+        ("SNR           – (no noise in the training cells); " if c["snr_db"] is None else
+         f"SNR           {c['snr_db']:.1f} dB per channel; ")
         + ("above the threshold" if c["above_threshold"] else "below the threshold")
         + ("; detected" if c["detected"] else "; not detected")
         + ("" if c["in_range_gates"] else " (outside the range gates)"),
-        f"direction     azimuth {_pm(est['azimuth_deg'], est['sigma_azimuth_deg'], 'deg', 2)}, elevation "
-        f"{_pm(est['elevation_deg'], est['sigma_elevation_deg'], 'deg', 2)} (from the {est['source']}; ± 1 sigma)",
+        ("direction     none: the angle estimator finds no peak in this cell's snapshot" if est["source"] == "none"
+         else f"direction     azimuth {_pm(est['azimuth_deg'], est['sigma_azimuth_deg'], 'deg', 2)}, elevation "
+              f"{_pm(est['elevation_deg'], est['sigma_elevation_deg'], 'deg', 2)} (from the {est['source']}; "
+              f"± 1 sigma)"),
     ]
     for p in result["points"]:
         lines.append(f"point         range {_pm(p['range_m'], p['sigma_range_m'], 'm', 3)}, velocity "

@@ -238,6 +238,15 @@ def test_an_empty_cell_is_not_detected(pipe, frame):
     json.dumps(res, allow_nan=False)
 
 
+def test_a_frame_of_zeros_gives_valid_json(pipe):
+    # nothing to measure: no detection, no direction, and JSON (RFC 8259) has no inf or nan, so the SNR
+    # of a cell without noise is null rather than a number json.dumps would refuse
+    res = inspect_cell(pipe, np.zeros(pipe.frame_shape, np.complex64), 10.0, 0.0)
+    assert not res["cell"]["detected"] and res["cell"]["snr_db"] is None and res["points"] == []
+    assert res["angle"]["estimate"]["source"] == "none"
+    json.loads(json.dumps(res, allow_nan=False))
+
+
 @pytest.mark.parametrize("r, v, word", [(30.0, 0.0, "--range-m 30"), (-1.0, 0.0, "--range-m -1"),
                                          (10.0, 30.0, "--velocity-mps 30"), (10.0, float("nan"), "--velocity-mps nan")])
 def test_outside_the_coverage_is_an_error_naming_the_value(pipe, frame, r, v, word):

@@ -271,7 +271,8 @@ def cell_lines(result: dict) -> list[tuple[str, tuple | None]]:
          + verdict, V.STATUS_OK if c["detected"] else V.STATUS_WAIT),
         (f"direction: azimuth {_fmt_pm(est['azimuth_deg'], est['sigma_azimuth_deg'], 2)}°, elevation "
          f"{_fmt_pm(est['elevation_deg'], est['sigma_elevation_deg'], 2)}°", None),
-        (f"   (from the {est['source']}; ± 1 sigma)", None),
+        ("   (none: the angle estimator finds no peak)" if est["source"] == "none" else
+         f"   (from the {est['source']}; ± 1 sigma)", None),
         (f"points from this cell: {len(result['points'])}", None),
     ]
     for k, p in enumerate(result["points"][:4]):
