@@ -32,6 +32,7 @@ from cubecast.daemon.sources import ReplaySource
 from cubecast.daemon.wire import WireError, decode
 from cubecast.viewer.feed import Feed
 from cubecast.viewer.keyfiles import KeyFileError, load_feed_keys
+from tests.helpers import SAMPLES
 from tests.test_service import run_in_thread, wait_until
 from tests.test_workers import YARD, YARD_SENSOR, frames, ref_points, reference_bytes, sensor  # noqa: F401
 
@@ -295,7 +296,7 @@ def test_cli_key_flags_come_in_pairs_and_name_the_file(keyring, capsys, caplog):
          "each needs --server-key"),
         (["serve", "--sensor", str(YARD_SENSOR), "--server-key", missing, "--client-keys",
           str(keyring / "serve-accepts")], f"--server-key {missing}: no such key file"),
-        (["simulate", "replay_samples/yard_scene.toml", "--sensor", str(YARD_SENSOR), "--out", "x.cap",
+        (["simulate", str(SAMPLES / "yard_scene.toml"), "--sensor", str(YARD_SENSOR), "--out", "x.cap",
           "--server-key", sec], "only with --pub"),
     ]
     for argv, expect in cases:
@@ -316,3 +317,27 @@ def test_viewer_key_reading_agrees_with_the_daemons(keyring):
     k = load_feed_keys(keyring / "serve" / "serve.key", keyring / "tracker" / "tracker.key_secret")
     assert k.server_public == load_public_key(keyring / "serve" / "serve.key")
     assert (k.public, k.secret) == load_secret_key(keyring / "tracker" / "tracker.key_secret")
+
+
+def test_adapter_publisher_takes_the_commands_keys(keyring, sensor, tmp_path, capsys):
+    """The adapter's publisher is made inside the command: --server-key / --client-keys / --insecure reach
+    it through netio.publisher_security (what cli.py wraps the adapter's command in)."""
+    from cubecast.daemon.adapter import StreamAdapter
+    from cubecast.daemon.netio import publisher_security
+    from cubecast.daemon.streamlayout import load_layout
+    dgram = tmp_path / "empty.dgram"
+    dgram.write_bytes(b"")
+    layout = load_layout(str(SAMPLES / "example_layout.toml"))
+    keys = ServerKeys(keyring / "source" / "source.key_secret", keyring / "source-accepts", clients="subscriber")
+    with publisher_security(keys, False):
+        a = StreamAdapter(layout, sensor, "tcp://127.0.0.1:*", file=dgram)
+        ep = a.bind()
+    try:
+        assert a.publisher.keys is keys
+        assert collect(ep, None, 1, 1.0) == []  # nothing is published, and an unkeyed subscriber is refused
+        assert wait_until(lambda: a.publisher.poll_subscriptions() >= 0 and a.publisher.handshakes_refused >= 1, 5)
+    finally:
+        a.publisher.close()
+    assert cli_main(["adapter", "--file", str(dgram), "--layout", str(SAMPLES / "example_layout.toml"), "--sensor",
+                     str(YARD_SENSOR), "--pub", "tcp://0.0.0.0:0"]) == 2
+    assert "--insecure" in capsys.readouterr().err
