@@ -158,7 +158,6 @@ def band_gather(spec, k0, l0, h, halves, n_range_fft, out):
     n_det, n_j = h.shape
     n_ch = n_rx * n_slots
     half_j = n_j // 2
-    rows = spec.reshape(n_ch, n_bins, n_dop)
     cols = np.empty(n_j, np.int64)
     mirror = np.empty(n_j, np.int64)
     wts = np.empty(n_j, np.complex64)
@@ -177,16 +176,17 @@ def band_gather(spec, k0, l0, h, halves, n_range_fft, out):
                 if c_ahead < n_ch:
                     k = (k0[i] + ahead - half) % n_range_fft
                     if k < n_bins:
-                        prefetch(rows[c_ahead, k], cols[0])
-                        prefetch(rows[c_ahead, k], cols[n_j - 1])
+                        ahead_row = spec[c_ahead // n_slots, c_ahead % n_slots, k]
+                        prefetch(ahead_row, cols[0])
+                        prefetch(ahead_row, cols[n_j - 1])
                 k = (k0[i] + b - half) % n_range_fft
                 acc = np.complex64(0.0)
                 if k < n_bins:
-                    src = rows[c, k]
+                    src = spec[c // n_slots, c % n_slots, k]
                     for j in range(n_j):
                         acc += wts[j] * src[cols[j]]
                 elif n_range_fft - k < n_bins:
-                    src = rows[c, n_range_fft - k]
+                    src = spec[c // n_slots, c % n_slots, n_range_fft - k]
                     for j in range(n_j):
                         acc += wts[j] * np.conj(src[mirror[j]])
                 out[i, c, b] = acc
