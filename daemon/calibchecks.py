@@ -2,12 +2,25 @@
 and is every channel alive? Pure functions of what the estimation measured; each returns its
 warnings (possibly none) and the figures the result records.
 
-Each check gives a warning (logged, and kept in the calibration file's [report] section) that
+Refusals: a capture that cannot give a usable calibration is refused (`calibrate` writes nothing and
+exits 2 unless --force; reflector_refusals). The phase of a complex sample with SNR rho has standard
+deviation 1 / sqrt(2 rho) rad at high SNR (the Cramér-Rao bound of a phase: Rife and Boorstyn,
+"Single-tone parameter estimation from discrete-time observations", IEEE Trans. IT, 1974; Kay,
+"Fundamentals of Statistical Signal Processing: Estimation Theory", 1993); averaged over F frames the
+channel's gain phase has 1 / sqrt(2 F rho). The calibration states PHASE_ACCURACY_DEG (1 deg rms per
+channel), so it needs an integrated per-channel SNR F rho of MIN_INTEGRATED_SNR_DB = 10 log10(1 / (2
+(1 deg in rad)^2)) = 32.2 dB. Refused:
+- no reflector: the reflector's cell is no brighter than noise alone makes the brightest of the
+  searched cells with probability DETECTION_FALSE_ALARM (mean |z|^2 / sigma^2 over the F x V samples
+  of a cell is Gamma(F V) / (F V) distributed under noise alone; common practice), or it is no peak
+  (the slope of an echo outside the searched cells);
+- too weak: a reflector is there, but its integrated SNR is below MIN_INTEGRATED_SNR_DB.
+Each refusal says what would make the capture usable: where to put a reflector and how large (by the
+sensor description's link budget), the range of a strong enough echo seen elsewhere, or how many
+frames, how much more RCS or how much nearer.
+
+Each check below gives a warning (logged, and kept in the calibration file's [report] section) that
 states its rule:
-- weak: the per-channel SNR of the reflector's cell integrated over the frames used is below
-  MIN_INTEGRATED_SNR_DB. The phase of a complex sample with SNR rho has standard deviation
-  1 / sqrt(2 rho) rad at high SNR (Rife and Boorstyn, "Single-tone parameter estimation from
-  discrete-time observations", IEEE Trans. IT, 1974): 30 dB gives 1.3 deg.
 - near: the range is below max(2 D^2 / lambda, NEAR_RANGE_CELLS range resolutions), D the largest
   distance between two virtual elements (the far-field distance of the aperture, common practice)
   and the first range cells being where TX-RX coupling and the DC leakage live.
@@ -26,12 +39,16 @@ states its rule:
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 
 from .sensor import Sensor
 
-MIN_INTEGRATED_SNR_DB = 30.0  # per-channel cell SNR x frames; 1 / sqrt(2 rho) = 1.3 deg at 30 dB
+PHASE_ACCURACY_DEG = 1.0  # the calibration's stated accuracy: each channel's gain phase to 1 deg rms
+MIN_INTEGRATED_SNR_DB = 10.0 * math.log10(1.0 / (2.0 * math.radians(PHASE_ACCURACY_DEG) ** 2))  # 32.2 dB
+DETECTION_FALSE_ALARM = 1e-6  # chance that noise alone passes for a reflector somewhere in the searched cells
+ESTIMATE_SIGMAS = 3.0  # advice (frames, RCS, range) from the SNR estimate less this many standard deviations
 NEAR_RANGE_CELLS = 5  # the reflector must be at least this many range resolutions away ...
 # ... and beyond the far-field distance 2 D^2 / lambda of the virtual aperture
 NEIGHBOUR_CELLS = 6  # range and Doppler cells either side searched for other peaks
@@ -68,14 +85,114 @@ def cell_snr(z: np.ndarray, sigma2_v: np.ndarray) -> float:
     return max(float(np.mean(np.abs(z) ** 2 / sigma2_v[None, :])) - 1.0, 1e-12)
 
 
-def weak_reflector_warnings(cell_snr_db: float, integrated_snr_db: float, n_frames: int,
-                             predicted_phase_deg: float) -> list[str]:
-    if integrated_snr_db >= MIN_INTEGRATED_SNR_DB:
+def snr_for_phase_accuracy(phase_accuracy_deg: float) -> float:
+    """The (integrated) SNR at which a phase is known to `phase_accuracy_deg` rms: 1 / (2 sigma^2),
+    the inverse of sigma = 1 / sqrt(2 SNR) (Rife and Boorstyn 1974; Kay 1993)."""
+    return 1.0 / (2.0 * math.radians(phase_accuracy_deg) ** 2)
+
+
+def noise_only_level(n_samples: int, n_cells: int, false_alarm: float = DETECTION_FALSE_ALARM) -> float:
+    """The mean of |z|^2 / sigma^2 over `n_samples` complex noise samples (a Gamma(n, 1) / n variable:
+    the sum of n unit exponentials; common practice) that the largest of `n_cells` independent such cells
+    exceeds with probability `false_alarm`: each cell's exceedance 1 - (1 - false_alarm)^(1 / n_cells)."""
+    from scipy.special import gammainccinv  # scipy: load on use
+    per_cell = -math.expm1(math.log1p(-false_alarm) / n_cells)
+    return float(gammainccinv(n_samples, per_cell)) / n_samples
+
+
+def snr_estimate_sd(snr: float, n_samples: int) -> float:
+    """Standard deviation of the SNR estimate mean(|z|^2 / sigma^2) - 1 over n_samples samples of a
+    constant signal of SNR `snr` in complex Gaussian noise: var |s + n|^2 = sigma^4 (1 + 2 snr) (a
+    non-central chi-square with 2 degrees of freedom; common practice), so sqrt((1 + 2 snr) / n)."""
+    return math.sqrt((1.0 + 2.0 * max(snr, 0.0)) / n_samples)
+
+
+def trihedral_edge_m(rcs_dbsm: float, wavelength_m: float) -> float:
+    """Edge length of the triangular trihedral corner reflector of peak RCS `rcs_dbsm`: sigma =
+    4 pi a^4 / (3 lambda^2) (Knott, Shaeffer and Tuley, "Radar Cross Section", 2004; common practice)."""
+    return (3.0 * wavelength_m ** 2 * 10.0 ** (rcs_dbsm / 10.0) / (4.0 * math.pi)) ** 0.25
+
+
+@dataclass
+class ReflectorEvidence:
+    """What the estimation measured about the reflector's cell, for reflector_refusals."""
+
+    level: float  # mean |z|^2 / sigma^2 over the cell's F x V samples (1 = noise alone)
+    n_frames: int
+    n_virtual: int
+    n_cells: int  # range cells searched
+    is_peak: bool  # the cell is a local maximum of the zero-Doppler column
+    range_m: float  # the cell's range
+    target_range_m: float  # the given place
+    azimuth_deg: float
+    elevation_deg: float
+    search_m: float  # half-width of the searched range interval
+    unit_cell_snr: float  # per-channel cell SNR a 0 dBsm reflector at the given place has (link budget)
+    wavelength_m: float
+    others: list[tuple[float, float]]  # (range m, integrated SNR dB) of strong enough echoes elsewhere
+
+    @property
+    def snr(self) -> float:
+        return max(self.level - 1.0, 1e-12)
+
+    @property
+    def n_samples(self) -> int:
+        return self.n_frames * self.n_virtual
+
+
+def zero_doppler_echoes(column_level: np.ndarray, n_frames: int, skip: tuple[int, int], first_cell: int,
+                        bin_m: float) -> list[tuple[float, float]]:
+    """Echoes of the zero-Doppler column (`column_level`: per-channel level over the noise of each range
+    cell, 1 = noise) strong enough to calibrate with: local maxima from `first_cell` on, outside the
+    cells skip[0]..skip[1], whose integrated SNR F (level - 1) reaches MIN_INTEGRATED_SNR_DB. (range m,
+    integrated SNR dB), strongest first."""
+    need = 10.0 ** (MIN_INTEGRATED_SNR_DB / 10.0)
+    out = []
+    for r in _local_maxima(column_level):
+        if r < first_cell or skip[0] <= r <= skip[1]:
+            continue
+        integrated = n_frames * (column_level[r] - 1.0)
+        if integrated >= need:
+            out.append((r * bin_m, db(integrated)))
+    return sorted(out, key=lambda e: -e[1])
+
+
+def _elsewhere(ev: ReflectorEvidence) -> str:
+    if not ev.others:
+        return "no zero-Doppler echo elsewhere in the capture is strong enough either"
+    r, snr_db = ev.others[0]
+    return f"or give --target-range-m {r:.2f} for the reflector seen at {r:.2f} m ({snr_db:.1f} dB integrated)"
+
+
+def reflector_refusals(ev: ReflectorEvidence) -> list[str]:
+    """Why the capture cannot give a calibration to PHASE_ACCURACY_DEG (none if it can), each with what
+    would make it usable (module docstring)."""
+    need = snr_for_phase_accuracy(PHASE_ACCURACY_DEG)
+    f, n = ev.n_frames, ev.n_samples
+    noise_level = noise_only_level(n, ev.n_cells)
+    rule = (f"a calibration to {PHASE_ACCURACY_DEG:g} deg rms per channel needs {MIN_INTEGRATED_SNR_DB:.1f} dB "
+            f"per-channel SNR integrated over the frames (1 / sqrt(2 SNR))")
+    if not ev.is_peak or ev.level <= noise_level:
+        what = ("is on the slope of an echo outside them, no peak" if not ev.is_peak else
+                f"is {db(ev.level):+.1f} dB over the noise per channel and frame (noise alone reaches "
+                f"{db(noise_level):+.1f} dB in these {ev.n_cells} cells over {f} frames)")
+        rcs = db(need / (f * ev.unit_cell_snr))
+        return [f"no reflector within +-{ev.search_m:.2f} m of {ev.target_range_m:g} m: the strongest "
+                f"zero-Doppler cell there, at {ev.range_m:.2f} m, {what}; {rule}; put a corner reflector at "
+                f"{ev.target_range_m:g} m, azimuth {ev.azimuth_deg:+.1f} deg, elevation {ev.elevation_deg:+.1f} "
+                f"deg (by the sensor description's link budget at least {rcs:.1f} dBsm for {f} frames: a "
+                f"triangular trihedral of {trihedral_edge_m(rcs, ev.wavelength_m) * 1e3:.0f} mm edges), "
+                f"{_elsewhere(ev)}"]
+    integrated = f * ev.snr
+    if integrated >= need:
         return []
-    return [f"reflector too weak: per-channel SNR {cell_snr_db:.1f} dB in its cell, {integrated_snr_db:.1f} dB "
-            f"over {n_frames} frames, below the {MIN_INTEGRATED_SNR_DB:.0f} dB limit (expected gain phase error "
-            f"{predicted_phase_deg:.2f} deg rms, 1 / sqrt(2 SNR)); use a larger reflector, a shorter range or "
-            f"more frames"]
+    low = max(ev.snr - ESTIMATE_SIGMAS * snr_estimate_sd(ev.snr, n), ev.snr / 2.0)  # cautious advice
+    short_db = db(need / (f * low))
+    return [f"reflector too weak: at {ev.range_m:.2f} m its per-channel SNR is {db(ev.snr):.1f} dB per frame, "
+            f"{db(integrated):.1f} dB over {f} frames; {rule}; record at least {math.ceil(need / low)} frames, "
+            f"or use a reflector {short_db:.1f} dB larger (a trihedral with {10.0 ** (short_db / 40.0):.2f} x "
+            f"longer edges), or bring it to {ev.range_m * 10.0 ** (-short_db / 40.0):.2f} m (the SNR grows as "
+            f"1 / R^4); {_elsewhere(ev)}"]
 
 
 def near_limit(sensor: Sensor, r0: float) -> tuple[float, float, list[str]]:

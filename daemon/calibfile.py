@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
+import logging
 import math
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,7 +20,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from .calibchecks import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS
+from .calibchecks import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS, PHASE_ACCURACY_DEG
 from .config import Document, Section, parse_toml, read_text
 from .errors import CubecastError
 from .sensor import Sensor
@@ -29,6 +30,8 @@ if TYPE_CHECKING:
 
 CALIBRATION_FORMAT = "cubecast-calibration"
 CALIBRATION_VERSION = 1
+
+log = logging.getLogger(__name__)
 
 RANGE_BIAS_NOTE = ("with --calibration, process and serve multiply each channel by 1 / gain and subtract "
                    "range_bias_m from every range")
@@ -116,7 +119,8 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
     _table(lines, [
         ("cell_snr_db", _r(result.cell_snr_db, 2), "per channel and frame, in the reflector's cell"),
         ("integrated_snr_db", _r(result.integrated_snr_db, 2), "over the frames used"),
-        ("min_integrated_snr_db", MIN_INTEGRATED_SNR_DB, "rule: below this the reflector is too weak"),
+        ("min_integrated_snr_db", _r(MIN_INTEGRATED_SNR_DB, 3),
+         f"rule: below this the capture is refused (gain phases to {PHASE_ACCURACY_DEG:g} deg rms)"),
         ("predicted_phase_error_deg", _r(result.predicted_phase_deg, 4), "1 / sqrt(2 x integrated SNR)"),
         ("residual_phase_rms_deg", _r(float(np.sqrt(np.mean(result.residual_phase_deg ** 2))), 4),
          "frame-to-frame, all channels"),
@@ -136,13 +140,20 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
         ("near_limit_m", _r(result.near_limit_m, 4),
          f"rule: max(far field, {NEAR_RANGE_CELLS} range cells); a nearer reflector warns"),
         ("clipped_samples", result.clipped_samples, ""),
+        ("refused", list(result.refusals), "written with --force despite these" if result.refusals else ""),
         ("warnings", list(result.warnings), ""),
         ("notes", [RANGE_BIAS_NOTE], ""),
     ])
     return "\n".join(lines) + "\n"
 
 
-def write_calibration(path: str | Path, result: CalibrationResult, created_utc: str | None = None) -> None:
+def write_calibration(path: str | Path, result: CalibrationResult, created_utc: str | None = None, *,
+                      force: bool = False) -> None:
+    """Write the calibration file; a refused result (result.refusals) only with `force`, else
+    CubecastError naming the file and the refusals."""
+    if result.refusals and not force:
+        raise CubecastError(f"--out {path}: not written, the capture gives no usable calibration: "
+                            + "; ".join(result.refusals) + " (--force writes it anyway)")
     text = format_calibration(result, created_utc)
     try:
         Path(path).write_text(text, encoding="utf-8")
@@ -169,6 +180,7 @@ class CalibrationFile:
     frames_used: int
     target: dict
     warnings: tuple[str, ...]
+    refused: tuple[str, ...] = ()  # why `calibrate` refused it (the file was written with --force)
 
 
 _NON_EMPTY = r"(?s).+"
@@ -248,6 +260,7 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
         _check_made_for(doc, head, sensor)
     report = doc.data.get("report", {}) if isinstance(doc.data.get("report"), dict) else {}
     warns = report.get("warnings", [])
+    refused = report.get("refused", [])
     frames_used = head.table.get("frames_used", 0)
     target = doc.data.get("target")
     return CalibrationFile(
@@ -257,10 +270,16 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
         created_utc=str(head.table.get("created_utc", "")),
         frames_used=int(frames_used) if isinstance(frames_used, int) else 0,
         target=dict(target) if isinstance(target, dict) else {},
-        warnings=tuple(str(w) for w in warns) if isinstance(warns, list) else ())
+        warnings=tuple(str(w) for w in warns) if isinstance(warns, list) else (),
+        refused=tuple(str(w) for w in refused) if isinstance(refused, list) else ())
 
 
 def load_calibration(path: str | Path, sensor: Sensor) -> np.ndarray:
     """The calibration vector (complex64 [n_virtual], multiplied onto each virtual channel) of a
-    calibration file made for `sensor`. Raises CubecastError on a file for another sensor."""
-    return load_calibration_file(path, sensor).vector
+    calibration file made for `sensor`. Raises CubecastError on a file for another sensor. A file written
+    with --force despite a refusal is used, with a warning saying so."""
+    f = load_calibration_file(path, sensor)
+    if f.refused:
+        log.warning("cubecast: warning: calibration %s was written with --force although %s", path,
+                    "; ".join(f.refused))
+    return f.vector

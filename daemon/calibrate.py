@@ -23,8 +23,10 @@ place the gains can be measured:
 Range bias: the reflector's range measured with a fine (16x zero-padded) range spectrum of the
 loop-averaged fast-time samples, minus the given range. The chain subtracts it from every range.
 
-Checks: see calibchecks.py (reflector too weak, too near, not alone, not static; clipping; a
-channel far from the others).
+Checks: see calibchecks.py. Refusals (nothing written without --force): no reflector at the given
+place, or one too weak for gain phases to PHASE_ACCURACY_DEG (1 deg rms: an integrated per-channel SNR
+of 32.2 dB); each says what would make the capture usable. Warnings: too near, not alone, not static,
+clipping, a channel far from the others.
 
 The calibration file is TOML in our own layout (see README "Calibration file"), written and read
 back in calibfile.py (its names are also importable from here); `load_calibration` gives the
@@ -43,9 +45,10 @@ from typing import Iterable
 import numpy as np
 
 from .calibchecks import (CHANNEL_GAIN_LIMIT_DB, MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS,
-                          NEIGHBOUR_CELLS, NEIGHBOUR_LEVEL_DB, SECOND_ANGLE_PEAK_DB, azimuth_beams, cell_snr,
-                          channel_gain_warnings, clipping_warnings, db, near_limit, neighbour_misfit,
-                          not_static_warnings, other_peak_warnings, weak_reflector_warnings)
+                          NEIGHBOUR_CELLS, NEIGHBOUR_LEVEL_DB, PHASE_ACCURACY_DEG, SECOND_ANGLE_PEAK_DB,
+                          ReflectorEvidence, azimuth_beams, cell_snr, channel_gain_warnings, clipping_warnings, db,
+                          near_limit, neighbour_misfit, not_static_warnings, other_peak_warnings,
+                          reflector_refusals, zero_doppler_echoes)
 from .calibfile import (CALIBRATION_FORMAT, CALIBRATION_VERSION, RANGE_BIAS_NOTE, CalibrationFile, format_calibration,
                         load_calibration, load_calibration_file, write_calibration)
 from .errors import CubecastError
@@ -57,6 +60,7 @@ __all__ = [
     "CALIBRATION_FORMAT",
     "CALIBRATION_VERSION",
     "MIN_INTEGRATED_SNR_DB",
+    "PHASE_ACCURACY_DEG",
     "NEAR_RANGE_CELLS",
     "NEIGHBOUR_CELLS",
     "NEIGHBOUR_LEVEL_DB",
@@ -155,6 +159,7 @@ class CalibrationResult:
     near_limit_m: float  # max(far field, NEAR_RANGE_CELLS x range resolution)
     clipped_samples: int
     warnings: list[str] = field(default_factory=list)
+    refusals: list[str] = field(default_factory=list)  # why it is no usable calibration (written only by force)
     capture: str = ""
 
     @property
@@ -255,17 +260,26 @@ def _run_front_end(pipe, sensor: Sensor, frames: Iterable[np.ndarray], lo: int, 
     return _FrontEndSums(np.stack(cells), np.stack(loop_means), maps / n_frames, noise, clipped, n_frames)
 
 
-def _find_reflector(zero_col: np.ndarray, lo: int, hi: int, bin_m: float, r0: float, search_cells: int) -> int:
-    """The reflector's range cell: the strongest zero-Doppler cell of the search window, which must be
-    a local maximum of the zero-Doppler column `zero_col` (not the slope of something outside)."""
+def _find_reflector(zero_col: np.ndarray, lo: int, hi: int) -> tuple[int, bool]:
+    """The reflector's range cell: the strongest zero-Doppler cell of the search window, and whether it
+    is a local maximum of the zero-Doppler column `zero_col` (not the slope of something outside)."""
     rb = lo + int(np.argmax(zero_col[lo: hi + 1]))
-    lo_m, hi_m = lo * bin_m, hi * bin_m
-    if not (zero_col[rb] > zero_col[rb - 1] and zero_col[rb] >= zero_col[rb + 1]):
-        raise CubecastError(
-            f"--target-range-m {r0:g}: no reflector peak at zero Doppler within {search_cells} range cells "
-            f"({lo_m:.2f}..{hi_m:.2f} m); the strongest zero-Doppler cell there ({rb * bin_m:.2f} m) is on the "
-            f"slope of something outside the window: check the range or widen --search-cells")
-    return rb
+    return rb, bool(zero_col[rb] > zero_col[rb - 1] and zero_col[rb] >= zero_col[rb + 1])
+
+
+def _unit_cell_snr(pipe, sensor: Sensor, position_m: np.ndarray, range_bin: int) -> float:
+    """Per-channel SNR in the range-Doppler cell of a static 0 dBsm point reflector at `position_m`, by
+    the sensor description's link budget: the per-sample SNR of the radar range equation (simulate.py),
+    times the coherent gain of the range window at that cell, |sum_n w_n e^..|^2 / sum_n w_n^2, and of
+    the Doppler window at zero Doppler, (sum w)^2 / sum w^2 (Harris 1978), times the MIMO decoding's SNR
+    factor (1 for TDM)."""
+    from .simulate import range_equation_snr_db
+    rng_fft, dop = pipe.range_fft, pipe.doppler_fft
+    a = ideal_snapshot(sensor, position_m, [range_bin], rng_fft.window, rng_fft.fft_size)[0]
+    w_r, w_d = rng_fft.window.astype(np.float64), dop.window.astype(np.float64)
+    gain = float(np.mean(np.abs(a) ** 2)) / float(np.sum(w_r ** 2)) * float(w_d.sum() ** 2 / np.sum(w_d ** 2))
+    per_sample = 10.0 ** (float(range_equation_snr_db(sensor, float(np.linalg.norm(position_m)), 0.0)) / 10.0)
+    return per_sample * gain * pipe.mimo.virtual_snr_factor()
 
 
 def _noise_power(pipe, noise: list[float], n_rx: int) -> tuple[float, np.ndarray]:
@@ -352,7 +366,8 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
                          search_cells: int = DEFAULT_SEARCH_CELLS) -> CalibrationResult:
     """Measure the virtual channels' gains and the range bias from canonical frames (complex64
     [chirp, rx, sample]) of a static point reflector at (target_range_m, azimuth_deg,
-    elevation_deg). Pure: no I/O. Raises CubecastError when the reflector cannot be found.
+    elevation_deg). Pure: no I/O. A capture that cannot give a usable calibration (no reflector, too weak)
+    is not an error here: the result says why in `refusals` (write_calibration refuses it unless forced).
     The steps and checks are those of the module docstring, in that order."""
     from .chain.bounds import tone_phase_crb_rad
     from .chain.pipeline import Pipeline  # the chain imports numba kernels: load on use
@@ -366,7 +381,7 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     c0 = n_dop // 2  # zero Doppler in the (shifted) detection map; column 0 of the spectrum
     sums = _run_front_end(pipe, sensor, frames, lo, hi, _noise_cells(sensor, n_range, n_dop, c0, lo, hi))
     n_frames, mean_map = sums.n_frames, sums.mean_map
-    rb = _find_reflector(mean_map[:, c0], lo, hi, bin_m, r0, search_cells)
+    rb, is_peak = _find_reflector(mean_map[:, c0], lo, hi)
     j = rb - lo + 1  # index of the reflector's bin in the stored window
 
     sigma2_c, sigma2_v = _noise_power(pipe, sums.noise, sensor.n_rx)
@@ -375,14 +390,20 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     cell_snr_db = db(rho)
     integrated_snr_db = cell_snr_db + 10.0 * math.log10(n_frames)
     predicted_phase_deg = math.degrees(tone_phase_crb_rad(rho, n_frames))
-    warnings = weak_reflector_warnings(cell_snr_db, integrated_snr_db, n_frames, predicted_phase_deg)
+    pos_t = polar_to_cartesian(r0, az0, el0)
+    column_level = mean_map[:, c0] / (dop.n_channels * sigma2_c)  # per-channel level over the noise
     far_field_m, near_limit_m, near = near_limit(sensor, r0)
-    warnings += near
+    refusals = reflector_refusals(ReflectorEvidence(
+        level=float(np.mean(np.abs(z) ** 2 / sigma2_v[None, :])), n_frames=n_frames, n_virtual=sensor.n_virtual,
+        n_cells=hi - lo + 1, is_peak=is_peak, range_m=rb * bin_m, target_range_m=r0, azimuth_deg=az0,
+        elevation_deg=el0, search_m=search_cells * bin_m,
+        unit_cell_snr=_unit_cell_snr(pipe, sensor, pos_t, int(round(r0 / bin_m))), wavelength_m=sensor.wavelength_m,
+        others=zero_doppler_echoes(column_level, n_frames, (lo, hi), int(math.ceil(near_limit_m / bin_m)), bin_m)))
+    warnings = near
     warnings += other_peak_warnings(mean_map, rb, c0, dop.n_channels * sigma2_c, bin_m,
                                      dop.bin_hz * sensor.wavelength_m / 2.0)
     warnings += not_static_warnings(mean_map[rb], c0, rb * bin_m)
 
-    pos_t = polar_to_cartesian(r0, az0, el0)
     ideal = ideal_snapshot(sensor, pos_t, [rb - 1, rb, rb + 1], rng_fft.window, rng_fft.fft_size)  # [3, V]
     g = _channel_gains(z, ideal[1])
     vector = (1.0 / g.gain).astype(np.complex64)
@@ -413,7 +434,8 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
         azimuth_calibrated_deg=float(np.mean(az_c)), elevation_calibrated_deg=float(np.mean(el_c)),
         azimuth_calibrated_std_deg=float(np.std(az_c)),
         psl_uncalibrated_db=psl_unc, psl_calibrated_db=psl_cal,
-        far_field_m=far_field_m, near_limit_m=near_limit_m, clipped_samples=sums.clipped, warnings=warnings)
+        far_field_m=far_field_m, near_limit_m=near_limit_m, clipped_samples=sums.clipped, warnings=warnings,
+        refusals=refusals)
 
 
 def _chain_angles(estimator, snapshots: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -459,8 +481,8 @@ def format_report(result: CalibrationResult) -> str:
         f"range         measured {result.measured_range_m:.4f} m, bias {result.range_bias_m * 1e3:+.2f} mm "
         f"(rms over frames {result.range_rms_m * 1e3:.2f} mm)",
         f"SNR           {result.cell_snr_db:.1f} dB per channel and frame, {result.integrated_snr_db:.1f} dB "
-        f"integrated (limit {MIN_INTEGRATED_SNR_DB:.0f} dB); expected phase error "
-        f"{result.predicted_phase_deg:.3f} deg",
+        f"integrated (needed {MIN_INTEGRATED_SNR_DB:.1f} dB for {PHASE_ACCURACY_DEG:g} deg); expected phase "
+        f"error {result.predicted_phase_deg:.3f} deg",
         f"residuals     phase {np.sqrt(np.mean(result.residual_phase_deg ** 2)):.3f} deg rms (noise alone: "
         f"{result.frame_phase_deg:.3f}), amplitude {np.sqrt(np.mean(result.residual_amplitude_db ** 2)):.3f} dB "
         f"rms, frame to frame; cells beside the "
@@ -475,6 +497,9 @@ def format_report(result: CalibrationResult) -> str:
         out.append(f"  {v:5d}  {v // s.n_rx:2d} {v % s.n_rx:2d}  {result.gain_db[v]:+8.3f}  {result.gain_phase_deg[v]:+10.3f}"
                    f"  {result.residual_phase_deg[v]:10.3f}  {result.residual_amplitude_db[v]:9.3f}")
     out.append(f"note          {RANGE_BIAS_NOTE}")
+    if result.refusals:
+        out.append(f"refused       {len(result.refusals)}: no usable calibration (--force writes it anyway):")
+        out += [f"  - {w}" for w in result.refusals]
     if result.warnings:
         out.append(f"warnings      {len(result.warnings)}:")
         out += [f"  - {w}" for w in result.warnings]
@@ -486,12 +511,16 @@ def format_report(result: CalibrationResult) -> str:
 # ---- command line -----------------------------------------------------------------------------
 
 def run(args) -> int:
-    """`cubecast calibrate`: the report and the file written at INFO, each warning at WARNING."""
+    """`cubecast calibrate`: the report and the file written at INFO, each warning at WARNING. A refused
+    capture (CalibrationResult.refusals) writes nothing and raises CubecastError (exit 2), unless
+    --force: then the file is written and each refusal is logged as a warning too."""
     result = calibrate_capture(args.capture, args.target_range_m, args.azimuth_deg, args.elevation_deg,
                                search_cells=args.search_cells, skip_corrupt=args.skip_corrupt)
-    write_calibration(args.out, result)
     log.info("%s", format_report(result))
+    write_calibration(args.out, result, force=args.force)
     log.info("wrote %s", args.out)
+    for w in result.refusals:
+        log.warning("cubecast calibrate: warning: written with --force: %s", w)
     for w in result.warnings:
         log.warning("cubecast calibrate: warning: %s", w)
     return 0
@@ -511,5 +540,8 @@ def add_parser(subparsers):
                    help=f"look for the reflector within this many range cells of the given range "
                         f"(default {DEFAULT_SEARCH_CELLS})")
     p.add_argument("--skip-corrupt", action="store_true", help="skip frames whose CRC fails")
+    p.add_argument("--force", action="store_true",
+                   help="write the file even when the capture is refused (no reflector, or too weak for gain "
+                        f"phases to {PHASE_ACCURACY_DEG:g} deg); the refusals are still logged as warnings")
     p.set_defaults(func=run)
     return p

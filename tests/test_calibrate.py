@@ -60,6 +60,21 @@ def write_reflector_capture(path, sensor, scene_text, frames, gains, seed=1):
     return path
 
 
+def cell_gain_db(sensor, range_m):
+    """Per-channel SNR of a static point's range-Doppler cell over its per-sample SNR (TDM): the coherent
+    gain of the Hann-windowed range and Doppler FFTs, (sum w)^2 / sum w^2 each (Harris 1978; the chain's
+    Hann window has no zero ends), less the Hann scalloping loss at the point's fractional range bin (beat
+    frequency 2 S R / c over the bin width fs / N, Richards 2005; common practice)."""
+    w_r, w_d = np.hanning(sensor.samples_per_chirp + 2)[1:-1], np.hanning(sensor.n_loops + 2)[1:-1]
+    gain_db = 10.0 * math.log10(w_r.sum() ** 2 / (w_r ** 2).sum() * w_d.sum() ** 2 / (w_d ** 2).sum())
+    beat_bin = 2.0 * sensor.slope_hz_per_s * range_m / SPEED_OF_LIGHT_MPS \
+        / (sensor.sample_rate_hz / sensor.samples_per_chirp)
+    delta = beat_bin - round(beat_bin)
+    n = np.arange(sensor.samples_per_chirp)
+    scallop_db = 20.0 * math.log10(abs(np.sum(w_r * np.exp(-2j * np.pi * delta * n / len(n)))) / w_r.sum())
+    return gain_db + scallop_db
+
+
 def reflector_scene(range_m=REFLECTOR_RANGE_M, rcs_dbsm=REFLECTOR_RCS_DBSM, extra=""):
     return f"[[target]]\nname = \"corner\"\nrange_m = {range_m}\nrcs_dbsm = {rcs_dbsm}\n{extra}"
 
@@ -161,18 +176,10 @@ def test_measured_gains_match_the_injected_errors(calibration, gains):
 
 def test_cell_snr_matches_the_range_equation(calibration, sensor):
     # Per-sample SNR from the radar range equation (Skolnik, Introduction to Radar Systems, 2001),
-    # plus the coherent gain of the Hann-windowed range and Doppler FFTs, (sum w)^2 / sum w^2 each
-    # (Harris 1978), less the Hann scalloping loss at the reflector's fractional range bin.
+    # plus the gain of the range and Doppler FFTs at the reflector's cell (cell_gain_db, Harris 1978).
     res = calibration["result"]
     snr_sample_db = float(range_equation_snr_db(sensor, REFLECTOR_RANGE_M, REFLECTOR_RCS_DBSM))
-    w_r, w_d = np.hanning(sensor.samples_per_chirp + 2)[1:-1], np.hanning(sensor.n_loops + 2)[1:-1]  # no zero ends
-    gain_db = 10.0 * math.log10(w_r.sum() ** 2 / (w_r ** 2).sum() * w_d.sum() ** 2 / (w_d ** 2).sum())
-    beat_bin = 2.0 * sensor.slope_hz_per_s * REFLECTOR_RANGE_M / SPEED_OF_LIGHT_MPS \
-        / (sensor.sample_rate_hz / sensor.samples_per_chirp)
-    delta = beat_bin - round(beat_bin)
-    n = np.arange(sensor.samples_per_chirp)
-    scallop_db = 20.0 * math.log10(abs(np.sum(w_r * np.exp(-2j * np.pi * delta * n / len(n)))) / w_r.sum())
-    expected_db = snr_sample_db + gain_db + scallop_db
+    expected_db = snr_sample_db + cell_gain_db(sensor, REFLECTOR_RANGE_M)
     assert abs(res.cell_snr_db - expected_db) < 1.0
     # frame-to-frame phase scatter of each channel: 1 / sqrt(2 SNR) rad (Rife and Boorstyn 1974)
     expected_phase_deg = math.degrees(1.0 / math.sqrt(2.0 * 10.0 ** (expected_db / 10.0)))
@@ -268,13 +275,15 @@ def warned(result, text):
     return any(text in w for w in result.warnings)
 
 
-def test_weak_reflector_warns(tmp_path, sensor, gains):
+def test_weak_reflector_is_refused(tmp_path, sensor, gains):
     # -25 dB per sample + ~32 dB of FFT gain: ~7 dB per frame, ~15 dB over 6 frames, under the limit
+    # (the threshold itself is tested in tests/test_calibrate_refusal.py)
     cap = write_reflector_capture(tmp_path / "weak.cap", sensor,
                                   f"[[target]]\nrange_m = {REFLECTOR_RANGE_M}\nsnr_db = -25.0\n", CHECK_FRAMES, gains)
     res = calibrate_capture(cap, REFLECTOR_RANGE_M)
     assert res.integrated_snr_db < MIN_INTEGRATED_SNR_DB
-    assert warned(res, "too weak")
+    assert [r for r in res.refusals if r.startswith("reflector too weak: at 5.0")], res.refusals
+    assert not warned(res, "too weak")
 
 
 def test_near_reflector_warns(tmp_path, sensor, gains):
