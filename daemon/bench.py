@@ -239,7 +239,8 @@ def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: 
                f"tcp://127.0.0.1:{p_src}", "--pub", f"tcp://127.0.0.1:{p_pub}", "--quiet"]
         if workers:
             cmd += ["--workers", str(workers)]
-        proc = subprocess.Popen(cmd)
+        log_file = open(os.path.join(tmp, "serve.log"), "w+", encoding="utf-8")
+        proc = subprocess.Popen(cmd, stderr=log_file)   # serve's and its workers' log lines, kept out of the table
         sub = ctx.socket(zmq.SUB)
         sub.setsockopt(zmq.SUBSCRIBE, b"")
         sub.connect(f"tcp://127.0.0.1:{p_pub}")
@@ -280,15 +281,54 @@ def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: 
             sub.close(0)
             pub.close(0)
             ctx.term()
+            log_file.seek(0)
+            lines = [ln.rstrip() for ln in log_file if ln.strip()]
+            log_file.close()
     return {"workers": workers, "offered_fps": offered_fps, "frames_per_s": round(len(stamps) / seconds, 1),
-            "latency_p50_ms": round(float(np.median(latencies)) * 1e3, 1) if latencies else None}
+            "latency_p50_ms": round(float(np.median(latencies)) * 1e3, 1) if latencies else None,
+            "log_lines": len(lines), "first_log_line": lines[0][:160] if lines else None}
+
+
+# The speed targets (README, Speed): name, the result row's sensor, what is compared, the limit, the
+# sense (True: at most, False: at least)
+TARGETS = (
+    ("reference chain within 1.5 x the FFT floor", "reference", "chain_over_fft_floor", 1.5, True),
+    ("reference at least 60 frames/s on one core", "reference", "frames_per_s", 60.0, False),
+    ("large at least 20 frames/s through serve --workers 2", "large", "served_frames_per_s", 20.0, False),
+    ("first frame within 2 s of process start", None, "first_frame_s", 2.0, True),
+)
+
+
+def check_targets(result: dict) -> list[dict]:
+    """Each target of TARGETS that this result measured: its value and whether it is met."""
+    out = []
+    for text, sensor, key, limit, at_most in TARGETS:
+        for row in result["sensors"]:
+            if sensor is not None and row["name"] != sensor:
+                continue
+            value = row.get("served", {}).get("frames_per_s") if key == "served_frames_per_s" else row.get(key)
+            if value is None:
+                continue
+            met = value <= limit if at_most else value >= limit
+            out.append({"target": text, "sensor": row["name"], "value": value, "limit": limit, "met": bool(met)})
+    return out
+
+
+def _load() -> float | None:
+    try:
+        return round(os.getloadavg()[0], 2)
+    except OSError:
+        return None
 
 
 def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
     """Each sensor in its own fresh interpreter, one after the other; with served_workers, the
-    `large` sensor also through `serve --workers N`."""
+    `large` sensor also through `serve --workers N`. The host's 1-minute load average is recorded
+    before and after (a busy host slows every figure; the ratio to the FFT floor least)."""
     rows = []
+    load_before = _load()
     for name in names:
+        log.info("bench: sensor %s (%d frames after warm-up)", name, frames)
         env = dict(os.environ, NUMBA_NUM_THREADS="1")
         # fill numba's cache first (a fresh checkout compiles once), so first_frame_s is a start-up
         # with the cache in place, as `serve` sees it
@@ -300,9 +340,13 @@ def run(names: list[str], frames: int, served_workers: int = 0) -> dict:
             raise CubecastError(f"bench for sensor '{name}' failed: {out.stderr.strip().splitlines()[-1:]}")
         row = json.loads(out.stdout)
         if served_workers and name == "large":
+            log.info("bench: sensor %s through serve --workers %d", name, served_workers)
             row["served"] = measure_served(name, served_workers)
         rows.append(row)
-    return {"sensors": rows}
+    result = {"sensors": rows, "load_average_before": load_before, "load_average_after": _load(),
+              "cpus": os.cpu_count()}
+    result["targets"] = check_targets(result)
+    return result
 
 
 def print_table(result: dict) -> None:
@@ -317,7 +361,13 @@ def print_table(result: dict) -> None:
         if "served" in row:
             sv = row["served"]
             print(f"  through serve --workers {sv['workers']}: {sv['frames_per_s']:.1f} frames/s "
-                  f"(offered {sv['offered_fps']:.0f}; latency p50 {sv['latency_p50_ms']} ms)")
+                  f"(offered {sv['offered_fps']:.0f}; latency p50 {sv['latency_p50_ms']} ms)"
+                  + (f"; serve logged {sv['log_lines']} lines, first: {sv['first_log_line']}" if sv.get("log_lines") else ""))
+    if result.get("load_average_before") is not None:
+        print(f"host: {result['cpus']} CPUs, 1-minute load average {result['load_average_before']} before, "
+              f"{result['load_average_after']} after (a busy host slows every figure)")
+    for t in result.get("targets", []):
+        print(f"target {'met   ' if t['met'] else 'MISSED'} {t['target']} ({t['sensor']}): {t['value']:g}")
 
 
 ACCURACY_TRIALS = 400  # per SNR and sensor: the whole `bench --accuracy` in about a minute here

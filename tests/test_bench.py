@@ -38,6 +38,14 @@ def test_bench_json_report():
     assert row["points_per_frame"] >= 3  # the bench scene's targets are found
     # start-up is counted from the process start, so it includes the part from building the chain
     assert row["first_frame_s"] >= row["first_frame_in_process_s"] > 0
+    # each target this run measured is reported with its value, compared the way README states it
+    targets = {t["target"]: t for t in result["targets"]}
+    ratio = targets["reference chain within 1.5 x the FFT floor"]
+    assert ratio["value"] == row["chain_over_fft_floor"] and ratio["met"] == (row["chain_over_fft_floor"] <= 1.5)
+    fps = targets["reference at least 60 frames/s on one core"]
+    assert fps["met"] == (row["frames_per_s"] >= 60)
+    assert "large at least 20 frames/s through serve --workers 2" not in targets   # not measured in this run
+    assert result["cpus"] >= 1 and result["load_average_before"] >= 0
 
 
 def test_bench_rejects_too_few_frames():
