@@ -97,7 +97,8 @@ def _serve(args) -> int:
                  calibration_path=args.calibration, queue_depth=args.queue, rdmap_max_hz=args.rdmap_rate,
                  workers=args.workers, tasks=args.tasks, results=args.results,
                  task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys,
-                 client_keys=args.client_keys, source_keys=args.source_key, insecure=args.insecure)
+                 client_keys=args.client_keys, source_keys=args.source_key, insecure=args.insecure,
+                 watch_settings=args.watch_settings)
 
 
 def _worker(args) -> int:
@@ -279,6 +280,9 @@ def _add_serve(sub) -> None:
     sv = sub.add_parser("serve", help="the streaming daemon: ADC frames in over ZeroMQ, point clouds out")
     sv.add_argument("--sensor", required=True, help="sensor description (TOML) of the source")
     sv.add_argument("--settings", help="processing settings (TOML, [processing] section)")
+    sv.add_argument("--watch-settings", action="store_true",
+                    help="live tuning: apply the --settings file again whenever it changes, at the next frame "
+                         "(a file that does not validate is refused and logged; without workers)")
     sv.add_argument("--calibration", help="calibration file (TOML)")
     sv.add_argument("--sub", action="append", metavar="ENDPOINT",
                     help="source endpoint to connect to (repeatable; default tcp://127.0.0.1:5601)")
