@@ -60,6 +60,7 @@ class LocalProcessor:
     def __init__(self, sensor: Sensor, settings: ProcessingSettings, calibration: np.ndarray | None,
                  range_bias_m: float):
         self.sensor = sensor
+        self._calibration, self._range_bias_m = calibration, range_bias_m
         self.pipeline = Pipeline(sensor, settings, calibration, range_bias_m)
         self._canon = np.zeros(self.pipeline.frame_shape, np.complex64)
         self._raw_dtype = sensor.adc.raw_dtype()
@@ -76,6 +77,19 @@ class LocalProcessor:
 
     def describe(self) -> str:
         return ""
+
+    def build(self, settings: ProcessingSettings) -> Pipeline:
+        """A warmed-up chain for other settings (any thread; raises CubecastError for settings the
+        sensor cannot take); use() swaps it in."""
+        pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m)
+        pipe.warm_up()
+        return pipe
+
+    def use(self, pipeline: Pipeline) -> None:
+        """From the processing thread, between frames: the next frame runs on `pipeline`."""
+        self.pipeline = pipeline
+        if pipeline.frame_shape != self._canon.shape:
+            self._canon = np.zeros(pipeline.frame_shape, np.complex64)
 
     def wake(self) -> None:
         self._wake.set()

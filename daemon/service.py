@@ -62,6 +62,7 @@ from .process import load_calibration_for
 from .processors import LocalProcessor, Outcome, PoolProcessor
 from .sensor import Sensor, load_sensor
 from .settings import ProcessingSettings, load_settings
+from .settingswatch import SettingsWatch
 from .wire import REASONS, WireError, decode, encode_health, encode_points, encode_rdmap, encode_sensor
 
 log = logging.getLogger(__name__)
@@ -89,14 +90,15 @@ class Service:
                  tasks_endpoint: str | None = None, results_endpoint: str | None = None,
                  task_timeout_s: float | None = None, worker_keys: ServerKeys | None = None,
                  pub_keys: ServerKeys | None = None, source_keys: list[ClientKeys] | None = None,
-                 insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES):
+                 insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES, watch_settings: str | None = None):
         """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
         for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
         are processed by workers (daemon/pool.py), else in this process. worker_keys: a
         keys.ServerKeys to require keys of the workers (CURVE); pub_keys: the same for subscribers of
         the publish endpoint; source_keys: keys.ClientKeys per source endpoint (same order).
         insecure: allow binding an endpoint other hosts can reach without keys. max_part_bytes: the
-        subscriber's hard limit on one message part (netio.Subscriber)."""
+        subscriber's hard limit on one message part (netio.Subscriber). watch_settings: a settings
+        file to watch and apply live (settingswatch.py; without workers only)."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"queue depth {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -132,6 +134,12 @@ class Service:
                 keys=worker_keys, log_interval_s=log_interval_s)
         else:
             self.processor = LocalProcessor(sensor, self.settings, calibration, range_bias_m)
+        self._watch: SettingsWatch | None = None
+        if watch_settings is not None:
+            if not isinstance(self.processor, LocalProcessor):
+                raise CubecastError("watched settings: only without workers (workers take their settings when "
+                                    "they start)")
+            self._watch = SettingsWatch(watch_settings, self.settings, self.processor.build)
         self.pub_endpoint_requested = pub_endpoint
         self.pub_endpoint: str | None = None
         self.queue_depth = queue_depth
@@ -310,6 +318,9 @@ class Service:
             "subscriber_handshakes_refused": s["subscriber_handshakes_refused"],
             **{k: s[k] for k in self.processor.health_fields},
         }
+        if self._watch is not None:
+            fields.update(settings_applied=self._watch.applied, settings_refused=self._watch.refused,
+                          settings_error=self._watch.last_error)
         self._last_health, self._last_cpu, self._last_processed = now, cpu, processed
         return fields
 
@@ -382,6 +393,12 @@ class Service:
                 self._send(pub, encode_health(self.sensor.sensor_id, self._health(now)), "health")
                 self._error_log.flush(log, prefix="cubecast serve: ")
                 next_health = max(next_health + self.health_interval_s, now)
+            if self._watch is not None:
+                change = self._watch.poll(now)
+                if change is not None:
+                    self.settings = change[0]
+                    self.processor.use(change[1])
+                    next_sensor = now   # the sensor message carries settings (velocity unfolding)
             self._feed(now)
             for out in self.processor.collect(max(0.0, min(0.05, next_sensor - now, next_health - now))):
                 self._publish(pub, out)
@@ -414,10 +431,12 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
           workers: int = 0, tasks: str | None = None, results: str | None = None,
           task_timeout_s: float | None = None, server_key: str | None = None,
           worker_keys: str | None = None, client_keys: str | None = None, source_keys: list[str] | None = None,
-          insecure: bool = False) -> int:
+          insecure: bool = False, watch_settings: bool = False) -> int:
     """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0. server_key: serve's secret key, for
     each of worker_keys (folder of accepted workers), client_keys (folder of accepted subscribers)
     and source_keys (the sources' public keys: one for all, or one per endpoint of `sub`)."""
+    if watch_settings and settings_path is None:
+        raise CubecastError("--watch-settings: give the file to watch with --settings")
     sensor = load_sensor(sensor_path)
     settings = load_settings(settings_path)
     calibration, range_bias_m = load_calibration_for(calibration_path, sensor)
@@ -443,7 +462,7 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
         svc = Service(sensor, subs, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
                       range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks, results_endpoint=results,
                       task_timeout_s=task_timeout_s, worker_keys=keys, pub_keys=pub_keys, source_keys=sub_keys,
-                      insecure=insecure)
+                      insecure=insecure, watch_settings=settings_path if watch_settings else None)
         if not stop.is_set():
             svc.run(stop)
     s = svc.stats()
