@@ -2,7 +2,10 @@
 
 A command's result (a table, a JSON document) goes to stdout; status lines go through the logging
 module to stderr: -v / -q (repeatable) and --log-json, before or after the subcommand, set the level
-and the format. Errors a user can cause (CubecastError) print as one line on stderr and exit with code 2.
+and the format. Errors a user can cause (CubecastError) print as one line on stderr and exit with code 2, among them an
+output path that cannot be written and a malformed endpoint (both checked before the command runs, see
+OUTPUT_FLAGS and ENDPOINT_FLAGS). A closed stdout (`cubecast describe --json | head`) ends the command
+quietly with code 1; printed numbers never show a negative zero (cliout.py).
 """
 
 from __future__ import annotations
@@ -12,7 +15,7 @@ import json
 import logging
 import sys
 
-from . import logs
+from . import cliout, logs
 from .errors import CubecastError
 
 log = logging.getLogger("cubecast.daemon.cli" if __name__ == "__main__" else __name__)
@@ -128,7 +131,7 @@ def _replay(args) -> int:
 def _record(args) -> int:
     from .sources import record
     return record(args.sub, args.out, args.points_out, frames=args.frames, duration_s=args.duration,
-                  sensor_path=args.sensor, server_keys=args.server_key, key=args.key)
+                  sensor_path=args.sensor, server_keys=args.server_key, key=args.key, progress=logs.show_progress())
 
 
 def _with_publisher_security(func):
@@ -214,13 +217,14 @@ def _add_file_commands(sub) -> None:
     s.add_argument("--pub", help="publish ADC frames live at the frame period on this ZeroMQ endpoint")
     s.add_argument("--frames", type=int, default=20, help="frames to write with --out (default 20)")
     s.add_argument("--frames-live", type=int, default=0, help="with --pub: stop after N frames (0 = run until stopped)")
-    s.add_argument("--seed", type=int, default=0)
+    s.add_argument("--seed", type=int, default=0, help="seed of the noise (default 0); the same seed gives the same "
+                                                       "frames")
     s.add_argument("--no-quantize", action="store_true", help="store canonical complex64 instead of the ADC format")
     _add_publisher_key_options(s, "the simulator")
     s.set_defaults(func=_simulate)
 
     pr = sub.add_parser("process", help="process a capture offline into a point-cloud file")
-    pr.add_argument("capture")
+    pr.add_argument("capture", help="capture file (from simulate, record or the adapter)")
     pr.add_argument("--out", required=True, help="output file (.csv or .npz)")
     pr.add_argument("--format", choices=("csv", "npz"), default=None, help="default: from the file name")
     pr.add_argument("--settings", help="processing settings (TOML, [processing] section)")
@@ -264,7 +268,7 @@ def _inspect(args) -> int:
 def _add_inspect(sub) -> None:
     i = sub.add_parser("inspect", help="one range-Doppler cell of one frame of a capture: its numbers, spectra and "
                                        "channels (text, --json, --png)")
-    i.add_argument("capture")
+    i.add_argument("capture", help="capture file")
     i.add_argument("--frame", type=int, required=True, metavar="N", help="frame index in the capture (0-based)")
     i.add_argument("--range-m", type=float, required=True, metavar="R", help="range of the cell (m)")
     i.add_argument("--velocity-mps", type=float, required=True, metavar="V",
@@ -344,7 +348,7 @@ def _add_worker_commands(sub) -> None:
 def _add_stream_commands(sub) -> None:
     """replay, record, demo: sources and sinks of the streams."""
     rp = sub.add_parser("replay", help="publish a capture's ADC frames over ZeroMQ with their recorded timing")
-    rp.add_argument("capture")
+    rp.add_argument("capture", help="capture file to publish")
     rp.add_argument("--pub", default="tcp://127.0.0.1:5601", metavar="ENDPOINT",
                     help="endpoint to bind (default tcp://127.0.0.1:5601)")
     rp.add_argument("--speed", default="1", help="factor of recorded time, or 'max' (default 1)")
@@ -393,9 +397,19 @@ def _add_bench(sub) -> None:
     b.set_defaults(func=_bench)
 
 
+def _version() -> str:
+    from importlib.metadata import PackageNotFoundError, version
+    try:
+        return version("cubecast")
+    except PackageNotFoundError:
+        return "unknown (not installed: pip install -e .)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="cubecast", description="FMCW MIMO radar processing chain: ADC frames in, "
                                 "point clouds out.")
+    p.add_argument("--version", action="version", version=f"cubecast {_version()}",
+                   help="print the installed cubecast version and exit")
     _add_log_options(p)
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
     for add in (_add_file_commands, _add_inspect, _add_serve, _add_worker_commands, _add_stream_commands, _add_bench):
@@ -412,9 +426,50 @@ def build_parser() -> argparse.ArgumentParser:
     except ImportError as exc:  # pragma: no cover - only without the viewer package
         v = sub.add_parser("view", help="live viewer (needs the viewer extra)")
         v.set_defaults(func=lambda args, exc=exc: _missing_viewer(exc))
-    for sp in sub.choices.values():
+    purpose = {a.dest: a.help for a in sub._choices_actions}
+    for name, sp in sub.choices.items():
         _add_log_options(sp, SUBCOMMAND_LOG_SUFFIX)
+        if not sp.description:  # `cubecast NAME -h` starts with the purpose shown in `cubecast -h`
+            sp.description = purpose.get(name)
     return p
+
+
+# flags naming a file a command writes (FOLDER_FLAGS: a folder), and the ZeroMQ endpoint flags each
+# command binds (True) or connects (False): checked before the command runs, so that a typo costs no
+# processing and ZeroMQ never sees a port it would wrap
+OUTPUT_FLAGS = ("--out", "--points-out", "--png", "--save-datagrams", "--snapshot")
+FOLDER_FLAGS = ("--dir",)
+ENDPOINT_FLAGS = {
+    "simulate": {"--pub": True}, "replay": {"--pub": True}, "adapter": {"--pub": True},
+    "serve": {"--sub": False, "--pub": True, "--tasks": True, "--results": True},
+    "worker": {"--connect": False, "--results": False},
+    "record": {"--sub": False}, "view": {"--sub": False},
+}
+
+
+def subcommands(parser: argparse.ArgumentParser) -> dict[str, argparse.ArgumentParser]:
+    """The subcommand parsers of build_parser(), by name."""
+    return next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices
+
+
+def check_flags(parser: argparse.ArgumentParser, args: argparse.Namespace) -> dict[str, str]:
+    """Check the output paths and endpoints of a parsed command line (CubecastError naming the flag and
+    the value); returns {output path: its flag}."""
+    from .netio import check_endpoint
+    outputs = {}
+    endpoints = ENDPOINT_FLAGS.get(args.command, {})
+    for action in subcommands(parser)[args.command]._actions:
+        flag = next((f for f in action.option_strings if f.startswith("--")), None)
+        value = getattr(args, action.dest, None)
+        if flag is None or value is None or isinstance(value, bool):
+            continue
+        for v in value if isinstance(value, list) else [value]:
+            if flag in OUTPUT_FLAGS or flag in FOLDER_FLAGS:
+                cliout.check_output_path(flag, str(v), folder=flag in FOLDER_FLAGS)
+                outputs[str(v)] = flag
+            if flag in endpoints:
+                check_endpoint(v, flag, bind=endpoints[flag])
+    return outputs
 
 
 SUBCOMMAND_LOG_SUFFIX = "_sub"
@@ -452,12 +507,33 @@ def _missing_viewer(exc) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
-    logs.configure(*log_level_and_json(args))
+    stdout, sys.stdout = sys.stdout, cliout.PlainZeroStream(sys.stdout)
     try:
-        return int(args.func(args) or 0)
+        return _run(argv)
+    except BrokenPipeError:  # the reader of stdout went away (`| head`): no traceback
+        return cliout.quiet_on_closed_stdout()
+    finally:
+        sys.stdout = stdout
+
+
+def _run(argv: list[str] | None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logs.configure(*log_level_and_json(args))
+    outputs: dict[str, str] = {}
+    try:
+        outputs = check_flags(parser, args)
+        code = int(args.func(args) or 0)
+        sys.stdout.flush()  # a closed stdout shows here, inside main, not at the interpreter's exit
+        return code
     except CubecastError as exc:
         print(f"cubecast {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except OSError as exc:  # an output that failed after the check (a full disk, a folder removed meanwhile)
+        if isinstance(exc, BrokenPipeError) or exc.filename is None or str(exc.filename) not in outputs:
+            raise
+        print(f"cubecast {args.command}: error: {outputs[str(exc.filename)]} {exc.filename}: cannot write: "
+              f"{exc.strerror or exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130

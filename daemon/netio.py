@@ -65,9 +65,90 @@ def stop_on_signals(stop: threading.Event):
             signal.signal(sig, h)
 
 
+_HOST_NAME = re.compile(r"[A-Za-z0-9](?:[A-Za-z0-9_.-]*[A-Za-z0-9])?")  # a DNS name or an interface name
+_TRANSPORTS = "tcp://HOST:PORT, ipc://PATH or inproc://NAME"
+
+
+def _host_problem(host: str, bind: bool) -> str | None:
+    if host == "*":
+        return None if bind else "host * (every interface) can only be bound; connect to an address or a name"
+    if host.startswith("["):
+        if not host.endswith("]"):
+            return f"host {host}: an IPv6 address goes in brackets, [ADDRESS]"
+        try:
+            ipaddress.IPv6Address(host[1:-1].split("%", 1)[0])
+        except ValueError:
+            return f"host {host}: not an IPv6 address"
+        return None
+    if ":" in host:
+        return f"host {host}: write an IPv6 address in brackets, tcp://[{host}]:PORT"
+    if re.fullmatch(r"[0-9.]+", host):
+        try:
+            ipaddress.IPv4Address(host)
+        except ValueError:
+            return f"host {host}: not an IPv4 address"
+        return None
+    if not _HOST_NAME.fullmatch(host):
+        return f"host {host!r}: not an address, a host name or an interface name"
+    return None
+
+
+def _port_problem(port: str, bind: bool) -> str | None:
+    # ZeroMQ reads the port with its own parser and takes it modulo 65536 (99999 binds 34463), so the
+    # range is checked here; * (and 0) ask the system for a free port when binding (zmq_tcp(7))
+    if bind and port in ("*", "0"):
+        return None
+    if port == "*" or port == "0":
+        return f"port {port}: a free port can only be asked for when binding; give the bound side's port"
+    if not re.fullmatch(r"[0-9]{1,5}", port) or not 1 <= int(port) <= 65535:
+        return f"port {port!r}: must be a number in 1..65535" + (" (or * for a free port)" if bind else "")
+    return None
+
+
+def endpoint_problem(endpoint: str, bind: bool) -> str | None:
+    """What is wrong with a ZeroMQ endpoint given to bind (bind=True) or connect, or None: the
+    transport (tcp, ipc, inproc), the host (an IPv4 address, a bracketed IPv6 address, a host or
+    interface name; * only to bind) and the port (1..65535; * or 0 only to bind). ZeroMQ itself
+    accepts some of these silently (a port above 65535 wraps), so they are checked before it sees them."""
+    if not isinstance(endpoint, str) or endpoint != endpoint.strip():
+        return f"must be {_TRANSPORTS}, without spaces"
+    scheme, sep, rest = endpoint.partition("://")
+    if not sep or scheme not in ("tcp", "ipc", "inproc"):
+        return f"must be {_TRANSPORTS}"
+    if scheme in ("ipc", "inproc"):
+        if not rest:
+            return f"{scheme}:// needs a {'path' if scheme == 'ipc' else 'name'}"
+        if rest == "*" and scheme == "inproc":
+            return "inproc://* is not a name (ipc://* binds a generated path)"
+        if rest == "*" and not bind:
+            return "ipc://* (a generated path) can only be bound; give the bound side's path"
+        return None
+    if not bind and ";" in rest:  # tcp://SOURCE;HOST:PORT: connect from a given local address
+        source, rest = rest.split(";", 1)
+        src_host, colon, src_port = source.rpartition(":")
+        if not colon or src_host.endswith(":"):  # the source port is optional (an unbracketed IPv6 has colons)
+            src_host, src_port = source, "*"
+        problem = _host_problem(src_host, bind=True) or _port_problem(src_port, bind=True)
+        if problem:
+            return f"source address {source}: {problem}"
+    host, colon, port = rest.rpartition(":")
+    if not colon or not host:
+        return "tcp needs tcp://HOST:PORT" + (" (HOST may be * for every interface)" if bind else "")
+    return _host_problem(host, bind) or _port_problem(port, bind)
+
+
+def check_endpoint(endpoint: str, role: str, bind: bool) -> str:
+    """The endpoint, or CubecastError "ROLE ENDPOINT: what is wrong" (see endpoint_problem)."""
+    problem = endpoint_problem(endpoint, bind)
+    if problem:
+        raise CubecastError(f"{role} {endpoint}: {problem}")
+    return endpoint
+
+
 def bind_socket(sock: zmq.Socket, endpoint: str, role: str) -> str:
     """Bind and return the actual endpoint (resolves tcp://host:* and port 0). `role` names the
     endpoint in the error ("publish endpoint")."""
+    check_endpoint(endpoint, role, bind=True)
     try:
         sock.bind(endpoint)
     except zmq.ZMQError as exc:
@@ -76,6 +157,7 @@ def bind_socket(sock: zmq.Socket, endpoint: str, role: str) -> str:
 
 
 def connect_socket(sock: zmq.Socket, endpoint: str, role: str) -> None:
+    check_endpoint(endpoint, role, bind=False)
     try:
         sock.connect(endpoint)
     except zmq.ZMQError as exc:

@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from .capture import CaptureReader
+from .cliout import check_output_path
 from .errors import CubecastError
 from .chain.pipeline import Pipeline
 from .chain.points import to_records
@@ -49,6 +50,7 @@ def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None
     fmt = fmt or ("npz" if str(out).endswith(".npz") else "csv" if str(out).endswith(".csv") else None)
     if fmt is None:
         raise CubecastError(f"--out {out}: name a .csv or .npz file, or give --format")
+    check_output_path("--out", str(out))  # before the processing, not after it
     settings = load_settings(settings_path)
     # a copy of an earlier record (the reader's `repeated`) holds no new frame: it is not processed
     with CaptureReader(capture, skip_corrupt=skip_corrupt, skip_repeated=True) as reader:
@@ -57,7 +59,10 @@ def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None
         records = process_frames(reader, pipeline, progress)
         problems = reader.problems
         repeated = reader.counts["repeated"]
-    n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
+    try:
+        n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
+    except OSError as exc:
+        raise CubecastError(f"--out {out}: cannot write: {exc.strerror or exc}") from None
     for p in problems:
         log.warning("cubecast process: warning: %s: %s", capture, p)
     skipped = f" ({repeated} repeated record{'s' if repeated != 1 else ''} skipped)" if repeated else ""
