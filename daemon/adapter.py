@@ -24,6 +24,11 @@ health lines once a second, SIGINT/SIGTERM via the CLI).
 Logging (logger `cubecast.daemon.adapter`): the start line, the first datagram's header fields, the
 health lines and the summary at INFO; warnings, dropped frames, malformed datagrams and restarts at
 WARNING, each kind at most once per EVENT_LOG_INTERVAL_S (logs.RateLimitFilter).
+
+A layout that cannot be right (layoutcheck.py: a header field misread, or a sensor frame size the stream
+contradicts) is logged once at ERROR in plain words (file, field, fix). From a file the adapter then
+stops reading and raises CubecastError (exit 2) after its summary; live, it goes on counting, publishes
+nothing the stream contradicts, and every health line says so.
 """
 
 from __future__ import annotations
@@ -207,6 +212,7 @@ class StreamAdapter:
         self._pace: tuple[float, int] | None = None
         self._next_health = math.inf
         self._warned: set[str] = set()
+        self._layout_reported: list[str] = []
         self._event_limit = logs.RateLimitFilter(EVENT_LOG_INTERVAL_S)  # attached to `log` while running
 
     def bind(self) -> str:
@@ -261,10 +267,23 @@ class StreamAdapter:
         if target > now:
             stop.wait(target - now)
 
+    def _check_layout(self) -> bool:
+        """Log what the layout checks found (reassembly.py layout_errors) once, at ERROR; True while the
+        layout (or the sensor's frame size) cannot be right."""
+        errors = self.reassembler.layout_errors
+        if errors != self._layout_reported:
+            self._layout_reported = list(errors)
+            for text in errors:
+                log.error("cubecast adapter: error: %s", text)
+        return bool(errors)
+
     def _log_events(self) -> None:
         r = self.reassembler
         while r.events:
             kind, text = r.events.popleft()
+            if kind == "unchecked":
+                log.info("cubecast adapter: %s", text)
+                continue
             if kind == "frame_number" and kind in self._warned:
                 continue
             if kind == "frame_number":
@@ -291,7 +310,8 @@ class StreamAdapter:
     def _health(self) -> None:
         s = self.stats()
         self.last_health = s
-        log.info("cubecast adapter: %s; published %d", _format_stats(s), s["frames_published"])
+        log.info("cubecast adapter: %s; published %d%s", _format_stats(s), s["frames_published"],
+                 "; the layout error above stands" if self._layout_reported else "")
 
     def _open_udp(self) -> socket.socket:
         family, host, port = self.udp
@@ -338,6 +358,7 @@ class StreamAdapter:
                         frames = r.feed(dg, time.time())
                     if "first" not in self._warned:
                         self._show_first()
+                    self._check_layout()  # live: said, and counted on
                     if frames:
                         self._publish(frames, stop, live=True)
                 self._tick()
@@ -361,6 +382,8 @@ class StreamAdapter:
                 self._show_first()
             if frames:
                 self._publish(frames, stop, live=False)
+            if self._check_layout():  # a file: no point in reading on
+                break
             self._tick()
 
     def run(self, stop: threading.Event | None = None) -> dict:
@@ -384,9 +407,12 @@ class StreamAdapter:
             self._log_events()
             self._event_limit.flush(log, force=True, prefix="cubecast adapter: ")
             log.removeFilter(self._event_limit)
+        self._check_layout()
         s = self.stats()
         self.last_health = s
         log.info("cubecast adapter: published %d frames; %s", s["frames_published"], _format_stats(s))
+        if self.file is not None and self.reassembler.layout_errors:
+            raise CubecastError(f"--file {self.file}: " + "; ".join(self.reassembler.layout_errors))
         return s
 
 

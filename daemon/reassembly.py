@@ -17,6 +17,14 @@ and inside the reordering window behind, byte offset exactly where the grid puts
 others are held as possible evidence of a new stream and, unless RESTART_PACKETS of them agree with
 each other (the board restarted: followed with a new `run` id, the held datagrams replayed), counted
 by their reason. Bytes once placed in a frame are never overwritten.
+
+Layout checks (layoutcheck.py): when no stream can be followed after DIAGNOSE_DATAGRAMS datagrams (or at
+the end), the first datagrams' headers say which field is misread (byte-swapped, mis-sized, other
+units): `layout_errors`. Once a stream is followed, its first frames wait until the stream confirms the
+sensor's frame size (frame_number field, cuts at frame ends); a frame size the stream contradicts
+publishes nothing more (frames counted dropped as "frame_size"), and `layout_errors` names the board's
+own frame size. A stream with no such evidence is published unchecked (an
+"unchecked" event says so once).
 """
 
 from __future__ import annotations
@@ -28,6 +36,8 @@ from typing import Any
 import numpy as np
 
 from .errors import CubecastError
+from .layoutcheck import (DIAGNOSE_DATAGRAMS, PENDING, UNCHECKED, WRONG, FrameSizeCheck, describe_frame_mismatch,
+                          diagnose_fields)
 from .sensor import Sensor
 from .streamcheck import (COUNTER, EXPIRE_EVERY, LATE, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW, MAX_HELD_AGE,
                           MIN_COUNTER_WINDOW, OFFSET, RESTART_PACKETS, SIZE, UNCONFIRMED, UNDECIDED, Evidence,
@@ -167,6 +177,12 @@ class Reassembler:
         self.evidence = Evidence(self.frame_bytes, seq_f.bits, off_f.bits)
         self._replay: collections.deque = collections.deque()
         self._arrivals = 0
+        self._first: list[tuple[bytes, int]] | None = []  # (header, length) of the first datagrams; None: done
+        self.field_errors: list[str] = []  # header fields misread (from the first datagrams)
+        self.frame_size_error: str | None = None  # the sensor's frame size, contradicted by the stream
+        self._pending: list[AssembledFrame] = []  # complete frames waiting for the frame size's confirmation
+        self._wrong_at = 0  # the datagram count at which the frame size was found wrong
+        self._told_unchecked = False
         self._reset()
 
     def _reset(self) -> None:
@@ -178,6 +194,8 @@ class Reassembler:
         self._step = self._off = 0  # _judge's result: step from the anchor, unwrapped byte offset
         self.grid = UNDECIDED  # streamcheck: continuous, or cut at frame ends (told apart at a frame end)
         self._fn_diff: int | None = None
+        self._anchor_len = 0  # payload length of the anchor datagram
+        self.frame_check: FrameSizeCheck | None = None
 
     # -- public ---------------------------------------------------------------------------------
     def feed(self, datagram, arrival_s: float = 0.0) -> list[AssembledFrame]:
@@ -189,6 +207,8 @@ class Reassembler:
         self._feed(memoryview(datagram), arrival_s, out, None)
         if self._replay:
             self._run_replay(out)
+        if self._first is not None and len(self._first) >= DIAGNOSE_DATAGRAMS:
+            self._diagnose()
         if self.evidence.held and self._arrivals % EXPIRE_EVERY == 0:
             self.evidence.expire(self._arrivals - MAX_HELD_AGE, self._give_up)
         return out
@@ -203,10 +223,17 @@ class Reassembler:
             if best is not None and len(best.items) >= 2:  # a lone datagram agrees with nothing
                 self._establish(best, out)
                 self._run_replay(out)
+        if self._first is not None:
+            self._diagnose()
         for item in self.evidence.take_all():
             self._give_up(item)
         self._finish(out, reason)
         return out
+
+    @property
+    def layout_errors(self) -> list[str]:
+        """What cannot be right about the layout or the sensor's frame size, in plain words (layoutcheck.py)."""
+        return self.field_errors + ([self.frame_size_error] if self.frame_size_error else [])
 
     def stats(self) -> dict:
         s: dict[str, Any] = dict(self.counters)
@@ -252,13 +279,15 @@ class Reassembler:
         if self.first_header is None:
             self.first_header = {f.name: f.shown(f.reader()(dg)) for f in self.layout.fields}
             self.first_header["datagram_bytes"] = n
-        reason = self._judge(seq_raw, off_raw, length, item is None)
+        if self._first is not None and item is None and len(self._first) < DIAGNOSE_DATAGRAMS:
+            self._first.append((bytes(dg[:h]), n))
+        reason = self._judge(seq_raw, off_raw, length, item is None, out)
         if reason is not None:
             self._hold(dg, t, reason, seq_raw, off_raw, length, item, out)
             return
         self._use(self._anchor_seq + self._step, self._off, dg, payload, t, out)
 
-    def _judge(self, seq_raw: int, off_raw: int, length: int, tell: bool) -> str | None:
+    def _judge(self, seq_raw: int, off_raw: int, length: int, tell: bool, out: list) -> str | None:
         """None if the datagram fits the stream (its step from the anchor in self._step, its unwrapped
         byte offset in self._off), else the reason it does not (an event text too, if `tell`)."""
         P = self.payload
@@ -283,6 +312,9 @@ class Reassembler:
                 self.events.append(("implausible", f"datagram counter {seq_raw} is {where}"))
             return COUNTER
         if off < 0:
+            end = self._anchor_off + self._anchor_len
+            if d == 1 and 0 < self._anchor_len < P and (off_raw - end) % self._off_mod == 0:
+                self._frame_evidence(out, lambda c: c.cut(end))  # the board cut where no frame of ours ends
             if tell:
                 expect = (self._anchor_off + d * P) % self._off_mod
                 self.events.append(("implausible", f"datagram counter {seq_raw} carries byte_offset {off_raw}; "
@@ -294,9 +326,12 @@ class Reassembler:
 
     def _use(self, s: int, off: int, dg: memoryview, payload: memoryview, t: float, out: list) -> None:
         cls = self.seqs.classify(s)
-        if cls == NEW:
-            self._anchor_seq, self._anchor_off = s, off
         length = payload.nbytes
+        if cls == NEW:
+            end = self._anchor_off + self._anchor_len
+            if s == self._anchor_seq + 1 and 0 < self._anchor_len < self.payload and off == end:
+                self._frame_evidence(out, lambda c: c.cut(end))  # a cut on the grid (at one of our frame ends)
+            self._anchor_seq, self._anchor_off, self._anchor_len = s, off, length
         if cls == DUPLICATE:
             if length:
                 self._place(off, payload, t, out)  # fills only bytes no datagram has filled yet
@@ -306,15 +341,19 @@ class Reassembler:
             return
         self.counters["payload_bytes"] += length
         F = self.frame_bytes
-        if self._read_fn is not None:
-            d = (self._read_fn(dg) - off // F) % self._fn_mod
+        fn = self._read_fn(dg) if self._read_fn is not None else None
+        if fn is not None:
+            d = (fn - off // F) % self._fn_mod
             if self._fn_diff is None:
                 self._fn_diff = d
             elif d != self._fn_diff:
                 self.counters["frame_number_mismatches"] += 1
-                self.events.append(("frame_number", f"datagram at byte offset {off} carries frame_number "
-                                                    f"{self._read_fn(dg)}, off by {(d - self._fn_diff) % self._fn_mod} "
-                                                    f"from the frame its offset gives with frames of {F} bytes"))
+                by = signed_step(self._fn_diff, d, self._fn_mod)
+                if self.counters["frame_number_mismatches"] == 1:  # the first tells; the count says how many
+                    self.events.append(("frame_number", f"datagram at byte offset {off} carries frame_number {fn}, "
+                                                        f"off by {by:+d} from the frame its offset gives with frames "
+                                                        f"of {F} bytes"))
+        self._frame_evidence(out, lambda c: c.datagram(off, length, fn))
         used = self._place(off, payload, t, out) if length else True
         self.counters["used" if used else "late"] += 1
 
@@ -353,7 +392,9 @@ class Reassembler:
                                            f"{c.seq}, byte offset {c.off} (the stream was at counter {old[0]}, "
                                            f"byte offset {old[1]}); new run"))
         self.payload = c.payload
-        self._anchor_seq, self._anchor_off = c.seq, c.off
+        self._anchor_seq, self._anchor_off, self._anchor_len = c.seq, c.off, 0
+        fn_f = self.layout.field("frame_number")
+        self.frame_check = FrameSizeCheck(self.frame_bytes, fn_f.bits if fn_f else None, c.payload)
         per_frame = -(-self.frame_bytes // c.payload)
         window = min(MAX_COUNTER_WINDOW, max(MIN_COUNTER_WINDOW, (self.window + 1) * per_frame))
         self.seqs = SequenceTracker(self._seq_bits, window)
@@ -368,10 +409,78 @@ class Reassembler:
             item = self._replay.popleft()
             self._feed(memoryview(item.data), item.t, out, item)
 
+    # -- the layout checks (layoutcheck.py) --------------------------------------------------------
+    def _diagnose(self) -> None:
+        """After the first DIAGNOSE_DATAGRAMS datagrams (or at the end): if no stream was followed, or the
+        one followed used fewer than half of them, which header field is misread?"""
+        first, self._first = self._first, None
+        if self.payload is not None and 2 * self.counters["used"] >= self.counters["packets"]:
+            return
+        found = diagnose_fields(self.layout, [h for h, _ in first], [n for _, n in first])
+        if found:
+            self.field_errors = found
+
+    def _frame_evidence(self, out: list, step) -> None:
+        """Give the frame-size check one piece of evidence (`step(check)`); publish the waiting frames once
+        it is confirmed (or cannot be checked), drop them once it is wrong, and report."""
+        chk = self.frame_check
+        if chk is None:
+            return
+        before = chk.state
+        step(chk)
+        if chk.state == UNCHECKED and before == PENDING and self.frame_size_error is not None:
+            chk.state, chk.reported = WRONG, True  # contradicted in this run before, and nothing to say otherwise
+        if chk.state != before and before == PENDING and chk.state != WRONG:
+            self.frame_size_error = None  # a new stream (the board set up again) that fits
+            self._publish_pending(out)
+            if chk.state == UNCHECKED and not self._told_unchecked:
+                self._told_unchecked = True
+                self.events.append(("unchecked", f"the frame size of {self.frame_bytes} bytes cannot be checked "
+                                                  "against the stream: no frame_number field, and the board does "
+                                                  "not cut its datagrams at frame ends"))
+        if chk.state == WRONG and before != WRONG:
+            self._wrong_at = self.counters["packets"]
+            self._drop_pending()
+        if chk.state == WRONG and not chk.reported:
+            self._report_frame_size(False)
+
+    def _report_frame_size(self, final: bool) -> None:
+        """The plain-words report of a wrong frame size, once the board's own size is estimated (or at
+        the end of the stream, or DIAGNOSE_DATAGRAMS datagrams after it was found wrong)."""
+        chk = self.frame_check
+        est = chk.estimate()
+        precise = est is not None and 0 <= est[1] <= self.frame_bytes / self.sensor.chirps_per_frame / 2
+        if not final and not precise and self.counters["packets"] - self._wrong_at < DIAGNOSE_DATAGRAMS:
+            return
+        chk.reported = True
+        if self.frame_size_error is None:  # the first report stands (a restart of a wrong stream repeats it)
+            self.frame_size_error = describe_frame_mismatch(self.layout, self.sensor, self.frame_bytes, chk)
+
+    def _publish_pending(self, out: list) -> None:
+        self.counters["frames_complete"] += len(self._pending)
+        out.extend(self._pending)
+        self._pending.clear()
+
+    def _drop_pending(self) -> None:
+        for _ in self._pending:
+            self._count_drop("frame_size")
+        self._pending.clear()
+
+    def _count_drop(self, reason: str) -> None:
+        self.counters["frames_dropped"] += 1
+        self.drop_reasons[reason] += 1
+
     # -- frames ---------------------------------------------------------------------------------
     def _finish(self, out: list, reason: str) -> None:
         if self.slots:
             self._advance(max(self.slots) + 1, out, reason)
+        chk = self.frame_check
+        if chk is not None and chk.state == WRONG:
+            self._drop_pending()
+            if not chk.reported:
+                self._report_frame_size(True)
+        else:
+            self._publish_pending(out)
         if self.seqs is not None:
             self.seqs.finish()
             for k in ("duplicates", "reordered", "lost"):
@@ -440,9 +549,16 @@ class Reassembler:
 
     def _release(self, slot: _Slot, out: list, reason: str | None) -> None:
         F = self.frame_bytes
-        if slot.received == F:
-            out.append(AssembledFrame(slot.index, self.converter.convert(slot.data), slot.arrival_s, self.epoch))
-            self.counters["frames_complete"] += 1
+        state = self.frame_check.state if self.frame_check is not None else None
+        if slot.received == F and state == WRONG:
+            self._count_drop("frame_size")  # whole, but not a frame of this sensor
+        elif slot.received == F:
+            frame = AssembledFrame(slot.index, self.converter.convert(slot.data), slot.arrival_s, self.epoch)
+            if state == PENDING:
+                self._pending.append(frame)  # counted complete when published
+            else:
+                out.append(frame)
+                self.counters["frames_complete"] += 1
         else:
             missing = F - slot.received
             self.counters["frames_dropped"] += 1

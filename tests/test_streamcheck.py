@@ -25,6 +25,7 @@ import pytest
 from hypothesis import HealthCheck, event, given, settings
 from hypothesis import strategies as st
 
+from cubecast.daemon.layoutcheck import CONFIRM_FRAMES, DIAGNOSE_DATAGRAMS
 from cubecast.daemon.reassembly import Reassembler
 from cubecast.daemon.streamcheck import (CANDIDATE_SPAN, MAX_CANDIDATES, MAX_COUNTER_STEP, MAX_COUNTER_WINDOW,
                                          MAX_HELD_AGE, MAX_HELD_DATAGRAMS, RESTART_PACKETS, EXPIRE_EVERY,
@@ -463,7 +464,10 @@ def check_invariants(r, s, before, window):
     check_partition(s)
     for k in MONOTONE:
         assert s[k] >= before.get(k, 0), k
-    assert s["frames_dropped"] <= s["missing_bytes"] <= s["frames_dropped"] * r.frame_bytes
+    # frames dropped for want of bytes miss at least one byte each; those of a frame size the stream
+    # contradicts (layoutcheck.py) are whole
+    short = s["frames_dropped"] - s["drop_reasons"].get("frame_size", 0)
+    assert short <= s["missing_bytes"] <= short * r.frame_bytes
     accepted = s["used"] + s["late"] + s["duplicates"]
     assert s["lost"] <= accepted * MAX_COUNTER_STEP
     reach = (MAX_COUNTER_STEP + 1) * MAX_DATAGRAM_BYTES // r.frame_bytes + window + 1
@@ -478,22 +482,31 @@ def check_invariants(r, s, before, window):
     assert all(len(c.items) < RESTART_PACKETS and len(c.steps) == len(c.items) <= CANDIDATE_SPAN + 1
                for c in r.evidence.candidates)
     assert not r._replay and len(r.events) <= 256
+    # frames waiting for the frame size's confirmation: the first CONFIRM_FRAMES frames and what one datagram
+    # starting there can complete
+    assert len(r._pending) <= CONFIRM_FRAMES + MAX_DATAGRAM_BYTES // r.frame_bytes + 2
+    assert r._first is None or len(r._first) <= DIAGNOSE_DATAGRAMS
     if r.seqs is not None:
         assert r.seqs.window <= MAX_COUNTER_WINDOW and max(r.seqs.sizes()) <= r.seqs.window
 
 
 @settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(name=st.sampled_from(sorted(LAYOUTS)), payload=st.sampled_from([96, 200, 300, 512]),
-       window=st.integers(1, 4), prefix=st.integers(0, 40), ops=st.lists(op, max_size=90))
-def test_fuzz_the_parser_and_reassembler(name, payload, window, prefix, ops):
+       window=st.integers(1, 4), prefix=st.integers(0, 40), ops=st.lists(op, max_size=90),
+       loops=st.sampled_from([2, 2, 1, 4]))
+def test_fuzz_the_parser_and_reassembler(name, payload, window, prefix, ops, loops):
     """Arbitrary datagrams after a genuine prefix (0..40 datagrams): edited headers (counters, offsets),
     cut and grown datagrams, random bytes. Checked after every datagram: no exception at all; every
     datagram counted once (packets = malformed + implausible + duplicates + late + used + held) and each
     reason tally adds up to its total; no counter ever decreases; lost at most MAX_COUNTER_STEP per
     datagram used, frames finished at most what one datagram can reach per datagram used; and the state
     within its bounds (frames in flight <= window, held <= MAX_HELD_DATAGRAMS, grids <= MAX_CANDIDATES,
-    the counter window's sets <= its size <= MAX_COUNTER_WINDOW). After flush nothing is held or in flight."""
+    the counter window's sets <= its size <= MAX_COUNTER_WINDOW; frames waiting for the frame size's
+    confirmation bounded). After flush nothing is held or in flight. Half the examples read the stream with
+    the board's frame size (2 loops), the others with half or twice it."""
     layout, sensor, fb, header, packets = base_packets(name, payload)
+    if loops != 2:
+        sensor = LAYOUTS[name][2](loops=loops)
     datagrams = [p[3] for p in packets[:prefix]] + build(ops, packets, header, fb)
     r = Reassembler(layout, sensor, window_frames=window)
     before: dict = {}
