@@ -184,11 +184,18 @@ class CalibrationFile:
 
 
 _NON_EMPTY = r"(?s).+"
+CALIBRATION_SECTIONS = ("calibration", "target", "channel", "report")
+# written for people, not read back: named here so that a misspelt field is still an error
+HEADER_INFO_FIELDS = ("created_utc", "capture", "frames_used", "amplitude_reference", "phase_reference")
+CHANNEL_INFO_FIELDS = ("position_m", "residual_phase_deg", "residual_amplitude_db")
 
 
 def _read_header(doc: Document) -> Section:
     """[calibration]: format, version, the sensor's id and digests, the TX and RX counts."""
+    doc.check_sections(CALIBRATION_SECTIONS)
     head = doc.section("calibration")
+    head.check_unknown(("format", "version", "sensor_id", "sensor_digest", "array_digest", "n_tx", "n_rx",
+                        "range_bias_m") + HEADER_INFO_FIELDS)
     fmt = head.raw("format")
     if fmt != CALIBRATION_FORMAT:
         raise head.fail("format", fmt, f"must be {CALIBRATION_FORMAT!r}")
@@ -213,6 +220,7 @@ def _read_gains(doc: Document, n_tx: int, n_rx: int) -> np.ndarray:
         raise doc.error(f"has {len(chans)} [[channel]] entries; n_tx x n_rx = {n_tx} x {n_rx} needs {n_virt}")
     gain = np.full(n_virt, np.nan, np.complex128)
     for ch in chans:
+        ch.check_unknown(("index", "tx", "rx", "gain_amplitude", "gain_phase_deg") + CHANNEL_INFO_FIELDS)
         idx = ch.integer("index", ge=0, le=n_virt - 1)
         tx = ch.integer("tx", ge=0, le=n_tx - 1)
         rx = ch.integer("rx", ge=0, le=n_rx - 1)
@@ -249,7 +257,8 @@ def _check_made_for(doc: Document, head: Section, sensor: Sensor) -> None:
 def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> CalibrationFile:
     """Read and validate a calibration file; with `sensor`, also check it was made for that sensor
     (digest, TX/RX counts, channel count). Raises CubecastError naming the problem (config.py's
-    format, the file named "calibration PATH"). Fields the reader does not use are not checked."""
+    format, the file named "calibration PATH"), an unknown section or an unknown field of [calibration] or
+    [[channel]] among them; [target] and [report] are the calibration's account for people and not checked."""
     path = Path(path)
     doc = parse_toml(read_text(path, "calibration"), f"calibration {path}")
     head = _read_header(doc)

@@ -40,7 +40,9 @@ API (everything else in this module is private):
 returned as given, unchecked (so None can mean "not given"). Values in messages are shown with
 repr(). Rules read "must be > 0", "must be >= 8", "must be in [0, 50]" (interval notation),
 "must be a whole number", "must be one of 'complex', 'real'"; a misspelt name is answered with
-"unknown field antena_gain (did you mean antenna_gain?)". The parsed document is left as TOML produced it, so a digest of `Document.data` is a digest
+"unknown field antena_gain (did you mean antenna_gain?)", and a required field that is missing next
+to a field of a close name with "slope_hz_per_s is missing (slope_hz_per_sec is given: did you mean
+slope_hz_per_s?)". The parsed document is left as TOML produced it, so a digest of `Document.data` is a digest
 of the file's content, not of its formatting.
 """
 
@@ -211,9 +213,17 @@ class Section(_Tables):
         self.used.add(name)
         if name not in self.table:
             if default is REQUIRED:
-                raise self.error(f"{name} is missing")
+                raise self.error(f"{name} is missing{self._given_instead(name)}")
             return default
         return self.table[name]
+
+    def _given_instead(self, name: str) -> str:
+        """" (slope_hz_per_sec is given: did you mean slope_hz_per_s?)" when a field of a close name,
+        not read so far, is in the table: the likely misspelling of a required field is named, though
+        a reader that checks unknown fields only after reading never gets that far."""
+        unread = [k for k in self.table if k not in self.used and isinstance(k, str)]
+        close = difflib.get_close_matches(name, unread, n=1)
+        return f" ({close[0]} is given: did you mean {name}?)" if close else ""
 
     def _get(self, name: str, default: Any) -> tuple[bool, Any]:
         """(given, value): a field not given returns its default, which is not checked."""
