@@ -25,6 +25,7 @@ import collections
 import logging
 import math
 import secrets
+import sys
 import threading
 import time
 from pathlib import Path
@@ -41,6 +42,7 @@ from .logs import RateLimitFilter
 from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
 from .netio import (DEFAULT_PUB, DEFAULT_SUB, HandshakeCounter, Subscriber, bind_socket, check_exposure,
                     stop_on_signals)
+from .progress import Progress
 from .scene import Scene
 from .sensor import Sensor
 from .wire import ADC_DTYPES, WireError, decode, encode_adc, sensor_from_message
@@ -392,7 +394,7 @@ class Recorder:
     def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
                  frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
                  context: zmq.Context | None = None, keys: list[ClientKeys] | None = None,
-                 max_part_bytes: int | None = None):
+                 max_part_bytes: int | None = None, progress: bool | None = None):
         if not subs:
             raise CubecastError("record: give at least one --sub ENDPOINT")
         if out is None and points_out is None:
@@ -405,6 +407,7 @@ class Recorder:
         if keys is not None and len(keys) != len(self.subs):
             raise CubecastError(f"record: {len(keys)} keys for {len(self.subs)} endpoints; one per endpoint")
         self.keys, self.max_part_bytes = keys, max_part_bytes
+        self.progress = progress  # None: no progress; False: a log line a second; True: a tqdm bar
         self.subscriber: Subscriber | None = None
         self.frames, self.duration_s = frames, duration_s
         self.sensor = sensor
@@ -526,7 +529,7 @@ class Recorder:
     def run(self, stop: threading.Event | None = None) -> dict:
         stop = stop or threading.Event()
         ctx = self.context or zmq.Context()
-        sock = None
+        sock = shown = None
         self._reject_logger.addFilter(self._reject_limit)
         try:
             if self.points_out is not None:
@@ -537,6 +540,7 @@ class Recorder:
             sock = self.subscriber = Subscriber(ctx, self.subs, "--sub", rcvhwm=64, prefix="cubecast record",
                                                 keys=self.keys, **extra)
             self.connected.set()
+            shown = self._progress()
             t_end = time.monotonic() + self.duration_s if self.duration_s else math.inf
             grace_end = math.inf
             done = False
@@ -560,7 +564,11 @@ class Recorder:
                         del parts
                 self._flush_rejects()
                 sock.flush_log()
+                if shown is not None:
+                    shown.update(**self._counts())
         finally:
+            if shown is not None:
+                shown.close()
             if sock is not None:
                 sock.close()
             if self.context is None:
@@ -577,6 +585,19 @@ class Recorder:
                                 "(it publishes the description) or pass --sensor")
         return self.summary()
 
+    def _counts(self) -> dict[str, int]:
+        """What has been written so far, by the names of the progress line."""
+        counts = {"frames": self.frames_written} if self.out is not None else {}
+        if self.points_out is not None:
+            counts |= {"point clouds": self.clouds_written, "points": self.csv.points if self.csv else 0}
+        return counts
+
+    def _progress(self) -> Progress | None:
+        if self.progress is None:
+            return None
+        return Progress("cubecast record", tuple(self._counts()), logger=log, bar=self.progress,
+                        total=self.frames or None)
+
     def summary(self) -> dict:
         sub = self.subscriber
         return {"frames_written": self.frames_written, "clouds_written": self.clouds_written,
@@ -589,9 +610,11 @@ class Recorder:
 
 def record(subs: list[str], out: str | None, points_out: str | None = None, frames: int = 0,
            duration_s: float = 0.0, sensor_path: str | None = None, server_keys: list[str] | None = None,
-           key: str | None = None) -> int:
+           key: str | None = None, progress: bool = False) -> int:
     """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM. server_keys: the public keys
-    of the endpoints (one for all, or one per --sub); key: this recorder's secret key."""
+    of the endpoints (one for all, or one per --sub); key: this recorder's secret key. Progress (frames
+    and points written, and their rates) goes to standard error once a second as a log line, or, with
+    `progress` (a person watches), as a tqdm bar when standard error is a terminal."""
     sensor = None
     if sensor_path is not None:
         from .sensor import load_sensor
@@ -601,7 +624,8 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, fram
                                     endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        rec = Recorder(subs, out, points_out, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys)
+        rec = Recorder(subs, out, points_out, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys,
+                       progress=bool(progress and sys.stderr.isatty()))
         s = rec.run(stop)
     parts = []
     if out is not None:
