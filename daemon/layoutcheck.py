@@ -256,23 +256,26 @@ def _diagnose_offset(layout: StreamLayout, headers: list[bytes], steps: list[int
     return [f"{head}; they step by {step} per datagram: check header_size_bytes and payload_size"]
 
 
-def _diagnose_payload_size(layout: StreamLayout, headers: list[bytes], lengths: list[int]) -> list[str]:
+def _diagnose_payload_size(layout: StreamLayout, headers: list[bytes], lengths: list[int]) -> tuple[list[str],
+                                                                                                    list[int]]:
+    """(findings about payload_size, the payload lengths to judge the offsets by: those of the reading found)."""
     f = layout.field("payload_size")
+    payloads = _payload_lengths(layout, headers, lengths)
     if f is None:
-        return []
+        return [], payloads
     h = layout.header_size_bytes
     values = _Reading(f.offset_bytes, f.size_bytes, f.byte_order).values(headers)
     room = [n - h for n in lengths]
     if sum(v > r for v, r in zip(values, room)) * 2 <= len(values):
-        return []
+        return [], payloads
     head = (f"{_where(layout)}[[packet.field]] '{f.name}' (payload_size, {_label(f)}) reads {_shown(values)} "
             f"for datagrams with {_shown(room)} bytes after the {h}-byte header")
     for r, kind in _variants(f, h):
         alt = r.values(headers)
         if all(0 < v <= n for v, n in zip(alt, room)):
             how = "read the other way round" if kind == "byte-swapped" else f"read as {r.size} bytes"
-            return [f"{head}; {how} ({_label(f, r.size, r.order)}) it is {_shown(alt)}: {_fix(f, r)}"]
-    return [head + ": check payload_size and header_size_bytes"]
+            return [f"{head}; {how} ({_label(f, r.size, r.order)}) it is {_shown(alt)}: {_fix(f, r)}"], alt
+    return [head + ": check payload_size and header_size_bytes"], payloads
 
 
 def diagnose_fields(layout: StreamLayout, headers: list[bytes], lengths: list[int]) -> list[str]:
@@ -281,10 +284,10 @@ def diagnose_fields(layout: StreamLayout, headers: list[bytes], lengths: list[in
     is misread, naming the layout file, the field and the fix; [] when nothing is found."""
     if len(headers) < RESTART_PACKETS:
         return []
-    out = _diagnose_payload_size(layout, headers, lengths)
+    out, payloads = _diagnose_payload_size(layout, headers, lengths)
     found, steps = _diagnose_counter(layout, headers)
     out += found
-    out += _diagnose_offset(layout, headers, steps, _payload_lengths(layout, headers, lengths))
+    out += _diagnose_offset(layout, headers, steps, payloads)
     return out
 
 

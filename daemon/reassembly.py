@@ -266,6 +266,11 @@ class Reassembler:
             return
         seq_raw = self._read_seq(dg)
         off_raw = self._read_off(dg)
+        if self.first_header is None:
+            self.first_header = {f.name: f.shown(f.reader()(dg)) for f in self.layout.fields}
+            self.first_header["datagram_bytes"] = n
+        if self._first is not None and item is None and len(self._first) < DIAGNOSE_DATAGRAMS:
+            self._first.append((bytes(dg[:h]), n))
         if self._read_size is not None:
             size = self._read_size(dg)
             if h + size > n:
@@ -276,11 +281,6 @@ class Reassembler:
         else:
             payload = dg[h:]
         length = payload.nbytes
-        if self.first_header is None:
-            self.first_header = {f.name: f.shown(f.reader()(dg)) for f in self.layout.fields}
-            self.first_header["datagram_bytes"] = n
-        if self._first is not None and item is None and len(self._first) < DIAGNOSE_DATAGRAMS:
-            self._first.append((bytes(dg[:h]), n))
         reason = self._judge(seq_raw, off_raw, length, item is None, out)
         if reason is not None:
             self._hold(dg, t, reason, seq_raw, off_raw, length, item, out)

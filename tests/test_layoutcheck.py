@@ -302,3 +302,22 @@ def test_live_mode_counts_on_and_says_so(tmp_path, adapter_log):
     assert len(errors) == 1 and "twice the sensor's" in errors[0]
     info = [r.getMessage() for r in adapter_records(adapter_log, logging.INFO)]
     assert info[-1].startswith("cubecast adapter: published 0 frames; packets ")
+
+
+def test_a_byte_swapped_payload_size_is_named():
+    # layout B's payload_size is big-endian; a board that sends it little-endian: 176 = 0x00b0 reads 0xb000
+    sensor = small_sensor()
+    frames = raw_frames(sensor, 4)
+    stream = b"".join(encode_frame(f, ["chirp", "sample", "rx", "iq"], "qi", byte_order="big") for f in frames)
+
+    def header_le_size(seq, offset, frame_bytes, n):
+        h = header_b(seq, offset, frame_bytes, n)
+        return h[:2] + struct.pack("<H", n) + h[4:]
+
+    packets = packetize(stream, 176, header_le_size, FB, padding=b"\xee" * 5)
+    text = diagnosis(parse_layout(LAYOUT_B, "B.toml"), [p[3] for p in packets], 176, sensor)
+    assert text.startswith(f"layout B.toml: [[packet.field]] 'len' (payload_size, bytes 2..3, big-endian) reads "
+                           f"{0xb000}, {0xb000}, {0xb000}, {0xb000}, ... for datagrams with 181, 181, 181, 181, ... "
+                           f"bytes after the 12-byte header")
+    assert text.endswith('read the other way round (bytes 2..3, little-endian) it is 176, 176, 176, 176, ...: set '
+                         'byte_order = "little"')
