@@ -5,7 +5,7 @@ module to stderr: -v / -q (repeatable) and --log-json, before or after the subco
 and the format. Errors a user can cause (CubecastError) print as one line on stderr and exit with code 2, among them an
 output path that cannot be written and a malformed endpoint (both checked before the command runs, see
 OUTPUT_FLAGS and ENDPOINT_FLAGS). A closed stdout (`cubecast describe --json | head`) ends the command
-quietly with code 1; printed numbers never show a negative zero (cliout.py).
+quietly with code 1; numbers on stdout and stderr never show a negative zero (cliout.py).
 """
 
 from __future__ import annotations
@@ -507,13 +507,15 @@ def _missing_viewer(exc) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    stdout, sys.stdout = sys.stdout, cliout.PlainZeroStream(sys.stdout)
+    streams = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = (cliout.PlainZeroStream(s) for s in streams)
     try:
         return _run(argv)
     except BrokenPipeError:  # the reader of stdout went away (`| head`): no traceback
+        sys.stdout, sys.stderr = streams
         return cliout.quiet_on_closed_stdout()
     finally:
-        sys.stdout = stdout
+        sys.stdout, sys.stderr = streams
 
 
 def _run(argv: list[str] | None) -> int:

@@ -17,19 +17,21 @@ from .errors import CubecastError
 # Not inside a word or a number (yard-0, 2024-01-05, 1e-05, -0.05 and -10 are left alone); "+-" (a span
 # written +-x) is left alone too
 _NEGATIVE_ZERO = re.compile(r"(?<![\w.+-])-(?=0+(?:\.0*)?(?:[eE][+-]?\d+)?(?![\w.]))")
+_IN_COLUMN = re.compile(r"(?<=  )-$")
 
 
 def no_negative_zero(text: str) -> str:
     """`text` with every printed negative zero written as zero ("-0.00 deg" -> "0.00 deg"): a value
     that rounds to zero at the printed precision, or IEEE 754's -0.0, is shown as 0 (Python writes
-    the sign; PEP 682, 2022, gives format specs a "z" option for the same reason)."""
-    return _NEGATIVE_ZERO.sub("", text)
+    the sign; PEP 682, 2022, gives format specs a "z" option for the same reason). In a padded column
+    (two spaces or more before it) the sign becomes a space, so the column keeps its width."""
+    return _NEGATIVE_ZERO.sub(lambda m: " " if _IN_COLUMN.search(text, 0, m.end()) else "", text)
 
 
 class PlainZeroStream:
-    """A text stream writing through `no_negative_zero` to `stream` (every command's standard output
-    while it runs). Whole strings are rewritten, so a number split across two write calls would not
-    be: print and json.dumps write each number whole."""
+    """A text stream writing through `no_negative_zero` to `stream` (every command's standard output and
+    standard error while it runs: results, log lines, progress bars). Whole strings are rewritten, so a
+    number split across two write calls would not be: print, logging and json.dumps write each whole."""
 
     def __init__(self, stream):
         self._stream = stream
