@@ -228,3 +228,16 @@ def test_no_reflector_at_the_given_range_is_refused_with_what_would_work(tmp_pat
     assert cli(["calibrate", str(cap), "--target-range-m", f"{seen}", "--azimuth-deg", f"{BENCH_AZIMUTH_DEG}",
                 "--elevation-deg", f"{BENCH_ELEVATION_DEG}", "--out", str(good), "--quiet"]) == 0
     assert load_calibration_file(good, sensor).refused == ()
+
+
+def test_the_slope_of_an_echo_outside_the_searched_cells_is_no_reflector(tmp_path, sensor):
+    # a strong reflector at 6.1 m, given as 5 m: the searched cells (4 either side, 0.195 m each: c / 2B,
+    # Richards 2005) end at 5.86 m, on its slope; the refusal points to it
+    cap = write_reflector_capture(tmp_path / "slope.cap", sensor, "[[target]]\nrange_m = 6.1\nrcs_dbsm = 10.0\n", 4,
+                                  phase_only_errors(sensor))
+    (text,) = calibrate_capture(cap, 5.0).refusals
+    assert text.startswith("no reflector within +-0.78 m of 5 m: the strongest zero-Doppler cell there, at 5.86 m, "
+                           "is on the slope of an echo outside them, no peak;")
+    seen = float(re.search(r"give --target-range-m ([0-9.]+) for the reflector seen", text).group(1))
+    assert abs(seen - 6.1) < 0.1
+    assert calibrate_capture(cap, seen).refusals == []
