@@ -24,11 +24,11 @@ log = logging.getLogger("cubecast.daemon.cli" if __name__ == "__main__" else __n
 def _describe(args) -> int:
     from .sensor import load_sensor
     sensor = load_sensor(args.sensor)
-    d = sensor.describe()
+    d = sensor.describe()  # plain zeros throughout (sensor.describe), for --json and the text alike
     if args.json:
         print(json.dumps(d, indent=2))
         return 0
-    va = d["virtual_array"]
+    va, lp = d["virtual_array"], d["if_filter"]
     rows = [
         ("sensor", f"{d['sensor_id']}  (digest {d['digest']})"),
         ("wavelength", f"{d['wavelength_m'] * 1e3:.4f} mm at {d['center_frequency_hz'] / 1e9:.3f} GHz "
@@ -36,6 +36,9 @@ def _describe(args) -> int:
         ("swept bandwidth in ADC window", f"{d['bandwidth_hz'] / 1e6:.1f} MHz"),
         ("range resolution", f"{d['range_resolution_m']:.4f} m"),
         ("maximum range", f"{d['max_range_m']:.2f} m ({d['range_bins']} range bins)"),
+        ("IF low-pass filter", f"Butterworth order {lp['order']}, cutoff {lp['cutoff_hz'] / 1e6:.3f} MHz "
+                               f"(range {lp['cutoff_range_m']:.2f} m{'; default' if lp['default'] else ''}), "
+                               f"{_plain(lp['loss_at_max_range_db'], 2)} dB loss at the maximum range"),
         ("velocity resolution", f"{d['velocity_resolution_mps']:.4f} m/s"),
         ("unambiguous velocity", f"+-{d['max_velocity_mps']:.3f} m/s ({d['mimo_scheme'].upper()}, "
                                  f"{d['n_tx']} TX); unfolded +-{d['max_velocity_unfolded_mps']:.3f} m/s"),
@@ -48,18 +51,34 @@ def _describe(args) -> int:
         ("apertures", f"azimuth {va['azimuth_aperture_m'] * 1e3:.2f} mm, elevation "
                       f"{va['elevation_aperture_m'] * 1e3:.2f} mm"),
         ("Rayleigh resolution at boresight",
-         f"azimuth {_deg(va['azimuth_resolution_deg'])}, elevation {_deg(va['elevation_resolution_deg'])}"),
+         f"{_deg(va, 'azimuth', 'columns')}; {_deg(va, 'elevation', 'rows')}"),
     ]
     width = max(len(k) for k, _ in rows)
     for k, v in rows:
         print(f"{k:<{width}}  {v}")
     print("virtual element positions [x, z] in half wavelengths:")
-    print("  " + " ".join(f"[{p[0]:g},{p[2]:g}]" for p in va["positions_half_wavelength"]))
+    print("  " + " ".join(f"[{_plain(p[0])},{_plain(p[2])}]" for p in va["positions_half_wavelength"]))
     return 0
 
 
-def _deg(v) -> str:
-    return "none (one row)" if v is None else f"{v:.2f} deg"
+def _plain(x: float, digits: int | None = None) -> str:
+    """x as %g (or with `digits` decimals), never a negative zero: rounded first, then + 0.0."""
+    if digits is None:
+        return f"{round(x, 6) + 0.0:g}"
+    return f"{round(x, digits) + 0.0:.{digits}f}"
+
+
+def _deg(va: dict, axis: str, lines: str) -> str:
+    """A Rayleigh resolution, or why there is none: one row (column), or an aperture too small to
+    resolve two sources (lambda / L >= 1 in sine space), which still measures the angle."""
+    v = va[f"{axis}_resolution_deg"]
+    if v is not None:
+        return f"{axis} {v:.2f} deg"
+    count = va[f"{axis}_{lines}"]
+    if count < 2:
+        return f"{axis}: no {axis} aperture (one {lines[:-1]})"
+    return (f"{axis}: no {axis} aperture that resolves ({count} {lines} over "
+            f"{va[f'{axis}_aperture_m'] * 1e3:.2f} mm: measured, not resolved)")
 
 
 def _simulate(args) -> int:

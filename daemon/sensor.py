@@ -9,6 +9,21 @@ Processing, 2005; common practice):
   maximum range         Rmax = fs_IF * c / (2 S)  fs_IF = fs (complex sampling) or fs / 2 (real)
   velocity resolution   dv   = lambda / (2 N_loops T_loop)
   unambiguous velocity  vmax = lambda / (4 T_loop), T_loop = N_slots * T_c (TDM divides by N_tx)
+
+The receiver's IF low-pass filter (optional section [if_filter]) is an analog Butterworth low-pass
+of order N and cutoff fc (Butterworth, "On the theory of filter amplifiers", 1930; common practice
+for anti-alias filters), magnitude response |H(f)| = 1 / sqrt(1 + (f / fc)^(2N)). The simulator
+weights each echo by |H| at its beat frequency, so an echo from beyond the maximum range is
+attenuated before it folds into the band, as on a board. Its phase response (a delay, calibrated
+out as range bias) is not modelled. Defaults: order 8 at 1.2 x the IF band edge (the sample rate
+for complex sampling, half of it for real): in the band the loss stays below 0.02 dB up to 85 % of
+the maximum range (where the accuracy trials draw their targets) and is 0.23 dB at the band edge,
+while an echo at twice the band edge's beat frequency, whose alias would land in the band, loses
+35.5 dB and one at 2.4 times 48 dB. A board's own figures belong in the file; these defaults are our
+choice, a steep filter that leaves the band as it was.
+
+Values no FMCW front end takes (a carrier of 77 Hz, a slope of 30 Hz/s: unit slips) are refused with
+the unit that was probably meant; the limits and their reasons are in sensorlimits.py.
 """
 
 from __future__ import annotations
@@ -22,6 +37,7 @@ from typing import Any
 
 import numpy as np
 
+from . import sensorlimits
 from .config import Document, Section, parse_toml, read_toml
 from .errors import CubecastError
 from .wire import SENSOR_ID_PATTERN, SENSOR_ID_RULE
@@ -33,6 +49,8 @@ REFERENCE_TEMPERATURE_K = 290.0
 ADC_SAMPLE_TYPES = ("int16", "float32")
 ADC_FORMATS = ("complex", "real")
 MIMO_SCHEMES = ("tdm", "bpm")
+IF_FILTER_DEFAULT_ORDER = 8
+IF_FILTER_DEFAULT_CUTOFF_PER_BAND = 1.2  # default cutoff, in multiples of the IF band edge
 
 
 @dataclass(frozen=True)
@@ -96,6 +114,10 @@ class Sensor:
     mimo_scheme: str
     mimo_code: np.ndarray
     adc: AdcFormat
+    # receiver IF low-pass: Butterworth of this order and cutoff (defaults when the file has no [if_filter])
+    if_cutoff_hz: float
+    if_filter_order: int
+    if_filter_default: bool
     digest: str = field(default="")
 
     # ---- derived figures -------------------------------------------------------------
@@ -103,9 +125,9 @@ class Sensor:
     def array_digest(self) -> str:
         """16-hex digest of what an array calibration depends on: the carrier and IF (start
         frequency, slope, sample rate, samples per chirp, ADC start delay), the antenna positions,
-        the MIMO code and the ADC format. Not the id, frame, link budget, field of view or mount
-        height: editing those keeps a calibration valid, where `digest` (the whole description)
-        changes."""
+        the MIMO code and the ADC format. Not the id, frame, link budget, IF filter (a magnitude
+        common to every channel, modelled without phase), field of view or mount height: editing
+        those keeps a calibration valid, where `digest` (the whole description) changes."""
         doc = {
             "chirp": [self.start_frequency_hz, self.slope_hz_per_s, self.sample_rate_hz, self.samples_per_chirp,
                       self.adc_start_delay_s],
@@ -168,6 +190,16 @@ class Sensor:
     def max_range_m(self) -> float:
         return self.if_bandwidth_hz * SPEED_OF_LIGHT_MPS / (2.0 * self.slope_hz_per_s)
 
+    def beat_frequency_hz(self, range_m):
+        """Beat frequency of an echo from range_m: 2 S R / c."""
+        return 2.0 * self.slope_hz_per_s * np.asarray(range_m, np.float64) / SPEED_OF_LIGHT_MPS
+
+    def if_filter_gain(self, beat_hz):
+        """Amplitude response |H(f)| = 1 / sqrt(1 + (f / fc)^(2N)) of the IF low-pass (Butterworth 1930)."""
+        ratio = np.abs(np.asarray(beat_hz, np.float64)) / self.if_cutoff_hz
+        with np.errstate(over="ignore"):  # far out of band the power overflows to inf: the gain is 0
+            return 1.0 / np.sqrt(1.0 + ratio ** (2 * self.if_filter_order))
+
     @property
     def n_range_bins(self) -> int:
         """Range bins the chain keeps (before zero padding): all for complex, the lower half for real."""
@@ -216,15 +248,18 @@ class Sensor:
         n_el = int(np.unique(cells[:, 1]).size)
 
         def rayleigh_deg(n: int, aperture_m: float) -> float | None:
-            # Rayleigh limit in sine space: lambda / L with L = N * d (common practice, 2/N at d = lambda/2)
+            # Rayleigh limit in sine space: lambda / L with L = N * d (common practice, 2/N at d = lambda/2).
+            # None without an aperture that resolves: one row, or lambda / L >= 1 (two elements lambda / 2
+            # apart), where the first null lies outside the visible region and no two sources are resolved
             if n < 2:
                 return None
             span = aperture_m + half  # N elements at pitch d span (N-1) d; the beam uses N d
-            return math.degrees(math.asin(min(1.0, self.wavelength_m / span)))
+            sine = self.wavelength_m / span
+            return math.degrees(math.asin(sine)) if sine < 1.0 else None
 
         return {
             "positions_m": pos.tolist(),
-            "positions_half_wavelength": (pos / half).round(6).tolist(),
+            "positions_half_wavelength": ((pos / half).round(6) + 0.0).tolist(),  # + 0.0: no -0.0
             "elements": int(pos.shape[0]),
             "unique_elements": int(unique.shape[0]),
             "redundant_elements": int(pos.shape[0] - unique.shape[0]),
@@ -237,7 +272,8 @@ class Sensor:
         }
 
     def describe(self) -> dict[str, Any]:
-        return {
+        """The derived figures as plain JSON-able values (no negative zero anywhere)."""
+        return _plain_zero({
             "sensor_id": self.sensor_id,
             "digest": self.digest,
             "wavelength_m": self.wavelength_m,
@@ -266,8 +302,16 @@ class Sensor:
                 "swap_iq": self.adc.swap_iq,
                 "conjugate": self.adc.conjugate,
             },
+            "if_filter": {
+                "kind": "butterworth",
+                "order": self.if_filter_order,
+                "cutoff_hz": self.if_cutoff_hz,
+                "cutoff_range_m": self.if_cutoff_hz * SPEED_OF_LIGHT_MPS / (2.0 * self.slope_hz_per_s),
+                "default": self.if_filter_default,
+                "loss_at_max_range_db": -20.0 * math.log10(float(self.if_filter_gain(self.if_bandwidth_hz))),
+            },
             "virtual_array": self.virtual_array(),
-        }
+        })
 
     # ---- ADC format <-> canonical frame ---------------------------------------------
     def raw_to_canonical(self, raw: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
@@ -323,11 +367,23 @@ class Sensor:
         return out
 
 
+def _plain_zero(value: Any) -> Any:
+    """`value` (nested dicts and lists) with every -0.0 written as 0.0: a position on an axis, or a
+    value rounded to zero, prints as 0 (-0.0 + 0.0 is +0.0 in IEEE 754 round-to-nearest)."""
+    if isinstance(value, dict):
+        return {k: _plain_zero(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_plain_zero(v) for v in value]
+    if isinstance(value, float):
+        return value + 0.0
+    return value
+
+
 # ---- loading and validation -------------------------------------------------------------
 # One reader per section, in the order the rules need them: each returns Sensor fields; rules
 # across sections come after both are read.
 
-SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc")
+SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc", "if_filter")
 
 
 def _read_id(s: Section) -> str:
@@ -349,6 +405,7 @@ def _read_chirp(c: Section) -> dict[str, Any]:
         design_max_range_m=c.number("design_max_range_m", 0.0, ge=0),
     )
     c.check_unknown()
+    sensorlimits.check_chirp_fields(c, out)
     adc_end = out["adc_start_delay_s"] + out["samples_per_chirp"] / out["sample_rate_hz"]
     ramp_end = out["ramp_end_time_s"]
     if ramp_end < adc_end:
@@ -357,11 +414,13 @@ def _read_chirp(c: Section) -> dict[str, Any]:
                      f"samples_per_chirp / sample_rate_hz = {adc_end:.6g} s")
     if out["chirp_period_s"] < ramp_end:
         raise c.fail("chirp_period_s", out["chirp_period_s"], f"must be at least ramp_end_time_s = {ramp_end:.6g} s")
+    sensorlimits.check_chirp_timing(c, out)
     return out
 
 
-def _check_design_range(c: Section, chirp: dict[str, Any], adc: AdcFormat) -> None:
-    """The beat frequency of a target at the design range, 2 S R / c, must lie in the IF band."""
+def _check_design_range(c: Section, chirp: dict[str, Any], adc: AdcFormat, if_filter: dict[str, Any]) -> None:
+    """The beat frequency of a target at the design range, 2 S R / c, must lie in the IF band and
+    below the IF filter's cutoff."""
     fs, slope, design_range = chirp["sample_rate_hz"], chirp["slope_hz_per_s"], chirp["design_max_range_m"]
     if_band = fs if adc.is_complex else fs / 2.0
     beat_hz = 2.0 * slope * design_range / SPEED_OF_LIGHT_MPS
@@ -369,12 +428,29 @@ def _check_design_range(c: Section, chirp: dict[str, Any], adc: AdcFormat) -> No
         raise c.fail("sample_rate_hz", fs,
                      f"too low for design_max_range_m = {design_range:g}: its beat frequency "
                      f"2 * slope * range / c = {beat_hz:.6g} Hz exceeds the IF band {if_band:.6g} Hz the ADC covers")
+    if design_range > 0 and beat_hz > if_filter["if_cutoff_hz"]:
+        raise c.fail("design_max_range_m", design_range,
+                     f"its beat frequency {beat_hz:.6g} Hz lies above the IF filter's cutoff "
+                     f"{if_filter['if_cutoff_hz']:.6g} Hz ([if_filter] cutoff_hz): echoes from there lose over 3 dB")
+
+
+def _read_if_filter(f: Section, chirp: dict[str, Any], adc: AdcFormat) -> dict[str, Any]:
+    """[if_filter] (optional): `order` (default IF_FILTER_DEFAULT_ORDER) and `cutoff_hz` (default
+    IF_FILTER_DEFAULT_CUTOFF_PER_BAND x the IF band edge) of the receiver's Butterworth low-pass."""
+    if_band = chirp["sample_rate_hz"] if adc.is_complex else chirp["sample_rate_hz"] / 2.0
+    given = f.has("cutoff_hz") or f.has("order")
+    order = f.integer("order", IF_FILTER_DEFAULT_ORDER, ge=1, le=sensorlimits.IF_ORDER_MAX)
+    cutoff = f.number("cutoff_hz", IF_FILTER_DEFAULT_CUTOFF_PER_BAND * if_band, gt=0)
+    f.check_unknown()
+    sensorlimits.check_if_filter(f, cutoff, if_band)
+    return dict(if_cutoff_hz=cutoff, if_filter_order=order, if_filter_default=not given)
 
 
 def _read_frame(fr: Section, chirp_period_s: float) -> dict[str, Any]:
     chirps = fr.integer("chirps_per_frame", ge=1)
     frame_period = fr.number("frame_period_s", gt=0)
     fr.check_unknown()
+    sensorlimits.check_frame_period(fr, frame_period)
     if chirps * chirp_period_s > frame_period:
         raise fr.fail("frame_period_s", frame_period,
                       f"must be at least chirps_per_frame * chirp_period_s = {chirps * chirp_period_s:.6g} s")
@@ -475,14 +551,15 @@ def sensor_from_document(doc: Document) -> Sensor:
     frame_section = doc.section("frame")
     frame = _read_frame(frame_section, chirp["chirp_period_s"])
     adc = _read_adc(doc.section("adc"))
-    _check_design_range(chirp_section, chirp, adc)
+    if_filter = _read_if_filter(doc.section("if_filter", required=False), chirp, adc)
+    _check_design_range(chirp_section, chirp, adc, if_filter)
     antennas = _read_antennas(doc.section("antennas"), chirp)
     mimo = _read_mimo(doc.section("mimo"), frame_section, antennas["tx_positions_m"].shape[0],
                       frame["chirps_per_frame"])
     link = _read_link(doc.section("link"), adc)
     # The maximum range follows from the IF band the ADC covers; a range gate beyond is rejected by the chain.
     sensor = Sensor(
-        sensor_id=sensor_id, source_text=doc.text, **chirp, **frame, **antennas, **link, **mimo, adc=adc,
+        sensor_id=sensor_id, source_text=doc.text, **chirp, **frame, **antennas, **link, **mimo, adc=adc, **if_filter,
         digest=hashlib.sha256(json.dumps(doc.data, sort_keys=True).encode()).hexdigest()[:16],
     )
     for arr in (sensor.tx_positions_m, sensor.rx_positions_m, sensor.mimo_code):
