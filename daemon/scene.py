@@ -19,6 +19,12 @@ A scene file is TOML (our own layout, see README "Scene description"):
     radial_velocity_mps = -1.3         # ... moving along the line of sight
     rcs_dbsm = -5.0
     snr_db = 10.0                      # optional: per-sample SNR on one channel, overrides the range equation
+
+Impossible values are refused, naming the file, the target and the field: azimuth outside
+[-180, 180] deg, elevation outside [-90, 90] deg, a speed of light or more (velocity_mps or
+radial_velocity_mps), a target at the sensor origin, and an RCS outside [-80, 80] dBsm (from memory:
+insects about -30 dBsm, people about 0, cars 10..20, large ships about 50..60; a value beyond is
+a square-metre figure written as dBsm, and the error says what it would be in dBsm).
 """
 
 from __future__ import annotations
@@ -30,6 +36,9 @@ from pathlib import Path
 import numpy as np
 
 from .config import Document, Section, parse_toml, read_toml
+
+SPEED_OF_LIGHT_MPS = 299_792_458.0  # as sensor.py (not imported: the scene does not depend on a sensor)
+RCS_DBSM_LIMITS = (-80.0, 80.0)
 
 
 @dataclass(frozen=True)
@@ -79,13 +88,30 @@ def _read_target(t: Section, index: int) -> Target:
         if np.linalg.norm(pos) <= 0:
             raise t.fail("position_m", t.table["position_m"], "a target cannot sit at the sensor origin")
         vel = np.asarray(t.numbers("velocity_mps", [0.0, 0.0, 0.0], length=3), np.float64)
+        if np.linalg.norm(vel) >= SPEED_OF_LIGHT_MPS:
+            raise t.fail("velocity_mps", t.table["velocity_mps"],
+                         f"a speed of {np.linalg.norm(vel):.6g} m/s, not below the speed of light")
     else:  # r > 0, so the position is never the origin
         r = t.number("range_m", gt=0)
-        az = t.number("azimuth_deg", 0.0)
+        az = t.number("azimuth_deg", 0.0, ge=-180, le=180)
         el = t.number("elevation_deg", 0.0, ge=-90, le=90)
         pos = polar_to_cartesian(r, az, el)
-        vel = pos / r * t.number("radial_velocity_mps", 0.0)
-    return Target(name, pos, vel, t.number("rcs_dbsm", 0.0), t.number("snr_db", None))
+        vr = t.number("radial_velocity_mps", 0.0)
+        if abs(vr) >= SPEED_OF_LIGHT_MPS:
+            raise t.fail("radial_velocity_mps", t.table["radial_velocity_mps"], "is not below the speed of light")
+        vel = pos / r * vr
+    return Target(name, pos, vel, _rcs_dbsm(t), t.number("snr_db", None))
+
+
+def _rcs_dbsm(t: Section) -> float:
+    rcs = t.number("rcs_dbsm", 0.0)
+    low, high = RCS_DBSM_LIMITS
+    if not low <= rcs <= high:
+        as_m2 = f"; {rcs:g} m^2 would be {10.0 * math.log10(rcs):.1f} dBsm" if rcs > 0 else ""
+        raise t.fail("rcs_dbsm", t.table["rcs_dbsm"],
+                     f"must be in [{low:g}, {high:g}] dBsm (people are about 0 dBsm, cars 10..20, large ships "
+                     f"about 50..60){as_m2}")
+    return rcs
 
 
 def scene_from_document(doc: Document) -> Scene:

@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import filecmp
+import functools
+import logging
 import math
 import tomllib
 
@@ -10,7 +12,9 @@ import numpy as np
 import pytest
 import scipy.fft
 
+from cubecast.daemon import files
 from cubecast.daemon.capture import CaptureReader
+from cubecast.daemon.chain.pipeline import Pipeline
 from cubecast.daemon.cli import main
 from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.files import capture_sensor, simulate_capture
@@ -18,6 +22,7 @@ from cubecast.daemon.scene import load_scene, parse_scene
 from cubecast.daemon.sensor import load_sensor
 from cubecast.daemon.simulate import Simulator, range_equation_snr_db
 from tests.helpers import SAMPLES, YARD_SENSOR, make_sensor
+from tests.if_reference import butterworth_db
 
 C = 299_792_458.0
 
@@ -182,7 +187,10 @@ BUNDLED = [("yard.cap", "yard_scene.toml"), ("gate.cap", "gate_scene.toml")]
 
 
 @pytest.mark.parametrize("capture,scene", BUNDLED)
-def test_bundled_sample_regenerates_byte_for_byte(tmp_path, capture, scene):
+def test_bundled_sample_regenerates_byte_for_byte(tmp_path, monkeypatch, capture, scene):
+    # The bundled captures are recorded files, simulated before the IF filter was modelled: they
+    # regenerate byte for byte with the filter left out (and stay as they are).
+    monkeypatch.setattr(files, "Simulator", functools.partial(Simulator, if_filter=False))
     with CaptureReader(SAMPLES / capture) as r:
         meta, n = r.metadata, len(r)
         assert r.problems == []
@@ -207,6 +215,154 @@ def test_bundled_ground_truth_matches_scene(capture, scene):
         sensor = capture_sensor(r)
     doc = tomllib.loads((SAMPLES / scene).read_text())
     assert gt["targets"] == [t["name"] for t in doc["target"]]
-    sim = Simulator(sensor, load_scene(SAMPLES / scene))
+    sim = Simulator(sensor, load_scene(SAMPLES / scene), if_filter=False)  # recorded without the filter
     for i, rows in enumerate(gt["frames"]):
         assert np.allclose(np.array(rows), sim.truth(i), atol=1e-8)
+
+
+# ---- the receiver's IF low-pass filter ---------------------------------------------------------
+# Reference: scipy.signal's analog Butterworth (tests/if_reference.py); beat frequency f_b = 2 S R / c
+# (Richards 2005, ch. 4). The bundled sensor: S = 30 MHz/us, complex sampling at 5 MHz (band edge
+# 5 MHz, 24.98 m), default filter order 8 at 1.2 x 5 MHz; real sampling halves the band edge.
+
+def power_ratio_db(sensor, scene_text: str) -> float:
+    """Power of the simulated echo with the IF filter over that without, in dB (noise-free frames)."""
+    scene = parse_scene(scene_text)
+    on = Simulator(sensor, scene, noise=False).clean_frame(0)
+    off = Simulator(sensor, scene, noise=False, if_filter=False).clean_frame(0)
+    return 10 * math.log10(np.mean(np.abs(on) ** 2) / np.mean(np.abs(off) ** 2))
+
+
+@pytest.mark.parametrize("sampling,range_m", [("complex", 40.0), ("complex", 60.0), ("complex", 90.0),
+                                              ("real", 20.0), ("real", 30.0)])
+def test_echo_beyond_the_maximum_range_attenuated_by_the_butterworth_response(sampling, range_m):
+    s = make_sensor(sampling=sampling)
+    band_edge = 5.0e6 if sampling == "complex" else 2.5e6
+    f_b = 2 * 30.0e12 * range_m / C
+    assert f_b > band_edge  # beyond the maximum range: the echo folds into the band when sampled
+    predicted = butterworth_db(8, 1.2 * band_edge, f_b)[0]
+    # exact distances move f_b across the 12 channels by (x^2 / 2R) / R < 1e-7 relative: far inside 0.01 dB
+    assert power_ratio_db(s, one_target(range_m=range_m, snr_db=30.0)) == pytest.approx(predicted, abs=0.01)
+    assert predicted < -10.0
+
+
+@pytest.mark.parametrize("range_m", [2.0, 10.0, 17.0, 21.2])
+def test_in_band_echo_unchanged_within_the_passband(range_m):
+    # A Butterworth is maximally flat (no ripple): in the band the echo loses only the droop |H(f_b)|,
+    # below 0.02 dB up to 85 % of the maximum range (21.2 m of 24.98 m) for the default filter.
+    s = load_sensor(YARD_SENSOR)
+    predicted = butterworth_db(8, 6.0e6, 2 * 30.0e12 * range_m / C)[0]
+    measured = power_ratio_db(s, one_target(range_m=range_m, azimuth_deg=20.0, snr_db=30.0))
+    assert measured == pytest.approx(predicted, abs=1e-4)
+    assert -0.02 < measured <= 0.0
+
+
+def test_truth_snr_is_after_the_filter():
+    # ground truth snr_db: the scene's SNR (before the filter) plus 20 log10 |H(f_b)|
+    s = load_sensor(YARD_SENSOR)
+    sim = Simulator(s, parse_scene(one_target(range_m=60.0, snr_db=30.0) + one_target(range_m=8.0, snr_db=12.0)))
+    snr = sim.truth(0)[:, 10]
+    assert snr[0] == pytest.approx(30.0 + butterworth_db(8, 6.0e6, 2 * 30.0e12 * 60.0 / C)[0], abs=1e-6)
+    assert snr[1] == pytest.approx(12.0 + butterworth_db(8, 6.0e6, 2 * 30.0e12 * 8.0 / C)[0], abs=1e-6)
+
+
+def folded_range_m(range_m: float, fs: float = 5.0e6, slope: float = 30.0e12) -> float:
+    """Where complex sampling at fs shows a beat 2 S R / c: modulo fs (sampling theorem, common practice)."""
+    return ((2 * slope * range_m / C) % fs) * C / (2 * slope)
+
+
+def test_process_does_not_report_a_folded_echo():
+    # 60 m with the 25 m bundled sensor folds to 10.03 m. Without the filter the fold is a strong
+    # false target; the default filter takes 48.2 dB off it (scipy), below anything CFAR detects.
+    s = load_sensor(YARD_SENSOR)
+    scene = parse_scene(one_target(name="far wall", range_m=60.0, azimuth_deg=5.0, rcs_dbsm=30.0))
+    alias_m = folded_range_m(60.0)
+    assert alias_m == pytest.approx(10.03, abs=0.01)
+    pipe = Pipeline(s)
+
+    def near_alias(frame):
+        pts = pipe.process(frame)
+        return pts[np.abs(pts["range_m"] - alias_m) < 5 * s.range_resolution_m]
+
+    unfiltered = near_alias(Simulator(s, scene, seed=4, if_filter=False).frame(0))
+    assert len(unfiltered) and unfiltered["snr_db"].max() > 25.0
+    loss_db = -butterworth_db(8, 6.0e6, 2 * 30.0e12 * 60.0 / C)[0]
+    assert unfiltered["snr_db"].max() - loss_db < 0.0  # what would remain: below the noise
+    sim = Simulator(s, scene, seed=4)
+    for i in range(3):
+        assert len(near_alias(sim.frame(i))) == 0
+
+
+def test_target_beyond_the_maximum_range_is_logged(caplog):
+    s = load_sensor(YARD_SENSOR)
+    with caplog.at_level(logging.WARNING, logger="cubecast.daemon.simulate"):
+        Simulator(s, parse_scene('[scene]\nname = "yard"\n' + one_target(name="far wall", range_m=60.0)))
+    loss_db = -butterworth_db(8, 6.0e6, 2 * 30.0e12 * 60.0 / C)[0]
+    assert [r.getMessage() for r in caplog.records] == [
+        f"scene 'yard': target 'far wall' at 60.00 m (t = 0) lies beyond the maximum range 24.98 m: its echo folds to "
+        f"{folded_range_m(60.0):.2f} m, attenuated {loss_db:.1f} dB by the IF filter"]
+
+
+def test_real_sampling_folds_by_mirroring():
+    # real sampling at fs: a beat above fs / 2 shows at fs - f (common practice); 20 m beats at 4.0 MHz
+    s = make_sensor(sampling="real")
+    sim = Simulator(s, parse_scene(one_target(range_m=20.0, snr_db=30.0)), noise=False)
+    f_b = 2 * 30.0e12 * 20.0 / C
+    assert float(sim.apparent_range_m(20.0)) == pytest.approx((5.0e6 - f_b) * C / (2 * 30.0e12), rel=1e-9)
+    spec = np.abs(scipy.fft.fft(sim.frame(0)[0, 0].astype(np.complex128), 1 << 14))[: 1 << 13]
+    assert np.argmax(spec) * 5.0e6 / (1 << 14) == pytest.approx(5.0e6 - f_b, abs=5.0e6 / (1 << 14))
+
+
+# ---- impossible scene values ---------------------------------------------------------------------
+
+SCENE_CASES = [
+    ('azimuth_deg = 400', r"azimuth_deg = 400: must be in \[-180, 180\]$"),
+    ('azimuth_deg = -180.5', r"azimuth_deg = -180.5: must be in \[-180, 180\]$"),
+    ('elevation_deg = -95.0', r"elevation_deg = -95.0: must be in \[-90, 90\]$"),
+    ('radial_velocity_mps = -3.0e8', r"radial_velocity_mps = -300000000.0: is not below the speed of light$"),
+    ('rcs_dbsm = 100.0', r"rcs_dbsm = 100.0: must be in \[-80, 80\] dBsm .*; 100 m\^2 would be 20.0 dBsm$"),
+    ('rcs_dbsm = -90.0', r"rcs_dbsm = -90.0: must be in \[-80, 80\] dBsm \(people .* about 50..60\)$"),
+]
+
+
+@pytest.mark.parametrize("line,pattern", SCENE_CASES, ids=[c for c, _ in SCENE_CASES])
+def test_impossible_scene_values_named_with_file_and_target(tmp_path, line, pattern):
+    # angles: azimuth = atan2(x, y) in [-180, 180], elevation = asin(z / r) in [-90, 90] (README
+    # conventions); no target moves at the speed of light c = 299792458 m/s (SI definition)
+    path = tmp_path / "scene.toml"
+    path.write_text(f'[[target]]\nname = "w"\nrange_m = 5.0\n[[target]]\nname = "odd"\nrange_m = 8.0\n{line}\n')
+    with pytest.raises(CubecastError, match="^" + str(path).replace(".", r"\.") + r": \[\[target\]\] #1 \(odd\) " + pattern):
+        load_scene(path)
+
+
+def test_scene_edges_accepted_and_cartesian_speed_checked():
+    for az in (-180.0, 180.0):
+        t = parse_scene(one_target(range_m=3.0, azimuth_deg=az)).targets[0]
+        assert t.position_m[1] == pytest.approx(-3.0)  # behind the sensor, y = r cos(az)
+    with pytest.raises(CubecastError, match=r"\[\[target\]\] #0 velocity_mps = \[250000000.0, 250000000.0, 0.0\]: a "
+                                            r"speed of 3.53553e\+08 m/s, not below the speed of light$"):
+        parse_scene("[[target]]\nposition_m = [1.0, 5.0, 0.0]\nvelocity_mps = [2.5e8, 2.5e8, 0.0]\n")
+
+
+def test_target_running_through_the_sensor_refused():
+    # 1.019 m ahead, closing at 10 m/s: at frame 1's measurement epoch, 0.1 s + 47.5 chirps of 40 us
+    # = 0.1019 s, it sits on TX0 at the origin (chirp 47 starts at 0.10188 s, 0.2 mm away)
+    s = load_sensor(YARD_SENSOR)
+    sim = Simulator(s, parse_scene('[scene]\nname = "crash"\n[[target]]\nname = "cart"\n'
+                                   'position_m = [0.0, 1.019, 0.0]\nvelocity_mps = [0.0, -10.0, 0.0]\n'))
+    sim.frame(0)
+    sim.truth(0)
+    with pytest.raises(CubecastError, match=r"^scene 'crash': target 'cart' comes within 0.0002 m of an antenna at "
+                                            r"t = 0.10188 s \(frame 1\): a target must stay at least a wavelength "
+                                            r"\(3.87 mm\) from the sensor"):
+        sim.frame(1)
+    with pytest.raises(CubecastError, match=r"target 'cart' comes within"):
+        sim.truth(1)
+
+
+def test_simulate_cli_refuses_an_impossible_scene(tmp_path, capsys):
+    path = tmp_path / "az.toml"
+    path.write_text("[[target]]\nrange_m = 10.0\nazimuth_deg = 400\n")
+    assert main(["simulate", str(path), "--sensor", str(YARD_SENSOR), "--out", str(tmp_path / "x.cap")]) == 2
+    assert f"{path}: [[target]] #0 azimuth_deg = 400: must be in [-180, 180]" in capsys.readouterr().err
+    assert not (tmp_path / "x.cap").exists()
