@@ -504,6 +504,14 @@ class CaptureReader:
         """Sequence number of frame `index`, from the index (no I/O, so also for a corrupt payload)."""
         return self._entry(index)[1].sequence
 
+    def frame_timestamp_s(self, index: int) -> float:
+        """Timestamp of frame `index`, from the index (no I/O, so also for a corrupt payload)."""
+        return self._entry(index)[1].timestamp_s
+
+    def frame_nbytes(self, index: int) -> int:
+        """Payload byte count of frame `index`, from the index (no I/O)."""
+        return self._entry(index)[1].nbytes
+
     def frame_dtype(self, index: int) -> np.dtype:
         """Payload dtype (little-endian) of frame `index`, from the index (no I/O)."""
         return self._entry(index)[1].dtype

@@ -435,6 +435,8 @@ def build_parser() -> argparse.ArgumentParser:
         add(sub)
     from .calibrate import add_parser as add_calibrate
     add_calibrate(sub)
+    from .info import add_parser as add_info
+    add_info(sub)
     from .adapter import add_parser as add_adapter
     ap = add_adapter(sub)
     _add_publisher_key_options(ap, "the adapter")
