@@ -52,6 +52,7 @@ def _describe(args) -> int:
                       f"{va['elevation_aperture_m'] * 1e3:.2f} mm"),
         ("Rayleigh resolution at boresight",
          f"{_deg(va, 'azimuth', 'columns')}; {_deg(va, 'elevation', 'rows')}"),
+        ("pose on the platform", _pose_text(d["pose"])),
     ]
     width = max(len(k) for k, _ in rows)
     for k, v in rows:
@@ -59,6 +60,14 @@ def _describe(args) -> int:
     print("virtual element positions [x, z] in half wavelengths:")
     print("  " + " ".join(f"[{_plain(p[0])},{_plain(p[2])}]" for p in va["positions_half_wavelength"]))
     return 0
+
+
+def _pose_text(pose: dict) -> str:
+    if not pose["given"]:
+        return "none ([pose]): the platform frame is the sensor frame"
+    x, y, z = (_plain(v, 3) for v in pose["position_m"])
+    return (f"at [{x}, {y}, {z}] m, yaw {_plain(pose['yaw_deg'], 2)} deg, pitch {_plain(pose['pitch_deg'], 2)} deg, "
+            f"roll {_plain(pose['roll_deg'], 2)} deg")
 
 
 def _plain(x: float, digits: int | None = None) -> str:

@@ -118,6 +118,13 @@ class Sensor:
     if_cutoff_hz: float
     if_filter_order: int
     if_filter_default: bool
+    # pose on the platform ([pose]; identity when the file has none): platform = rotation @ sensor + position
+    pose_position_m: np.ndarray  # [3], the sensor origin in the platform frame
+    pose_yaw_deg: float
+    pose_pitch_deg: float
+    pose_roll_deg: float
+    pose_rotation: np.ndarray  # [3, 3], sensor-frame vectors -> platform-frame vectors
+    has_pose: bool
     digest: str = field(default="")
 
     # ---- derived figures -------------------------------------------------------------
@@ -311,7 +318,17 @@ class Sensor:
                 "loss_at_max_range_db": -20.0 * math.log10(float(self.if_filter_gain(self.if_bandwidth_hz))),
             },
             "virtual_array": self.virtual_array(),
+            "pose": self.pose_summary() | {"given": self.has_pose},
         })
+
+    def pose_summary(self) -> dict:
+        """The pose as plain numbers (wire `sensor` summary, describe)."""
+        return {"position_m": [float(v) for v in self.pose_position_m], "yaw_deg": self.pose_yaw_deg,
+                "pitch_deg": self.pose_pitch_deg, "roll_deg": self.pose_roll_deg}
+
+    def to_platform(self, xyz_m: np.ndarray) -> np.ndarray:
+        """Sensor-frame points [..., 3] in the platform frame."""
+        return np.asarray(xyz_m, np.float64) @ self.pose_rotation.T + self.pose_position_m
 
     # ---- ADC format <-> canonical frame ---------------------------------------------
     def raw_to_canonical(self, raw: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
@@ -383,7 +400,7 @@ def _plain_zero(value: Any) -> Any:
 # One reader per section, in the order the rules need them: each returns Sensor fields; rules
 # across sections come after both are read.
 
-SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc", "if_filter")
+SECTIONS = ("sensor", "chirp", "frame", "antennas", "link", "mimo", "adc", "if_filter", "pose")
 
 
 def _read_id(s: Section) -> str:
@@ -501,6 +518,33 @@ def _read_antennas(an: Section, chirp: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def pose_rotation(yaw_deg: float, pitch_deg: float, roll_deg: float) -> np.ndarray:
+    """The rotation [3, 3] taking sensor-frame vectors to the platform frame (both x right, y forward
+    or boresight, z up): yaw about the platform's z, positive turning the boresight right (clockwise
+    seen from above, as azimuth); then pitch about the sensor's own x, positive tilting the boresight
+    up (as elevation); then roll about the sensor's own boresight, positive lowering its right side.
+    Intrinsic z-x'-y'' Tait-Bryan angles: R = Rz(yaw) Rx(pitch) Ry(roll)."""
+    y, p, r = (math.radians(a) for a in (yaw_deg, pitch_deg, roll_deg))
+    rz = np.array([[math.cos(y), math.sin(y), 0.0], [-math.sin(y), math.cos(y), 0.0], [0.0, 0.0, 1.0]])
+    rx = np.array([[1.0, 0.0, 0.0], [0.0, math.cos(p), -math.sin(p)], [0.0, math.sin(p), math.cos(p)]])
+    ry = np.array([[math.cos(r), 0.0, math.sin(r)], [0.0, 1.0, 0.0], [-math.sin(r), 0.0, math.cos(r)]])
+    return rz @ rx @ ry
+
+
+def _read_pose(ps: Section) -> dict[str, Any]:
+    """[pose]: where the sensor sits on its platform (optional; without it the platform frame is the
+    sensor frame)."""
+    given = bool(ps.table)
+    position = ps.numbers("position_m", [0.0, 0.0, 0.0], length=3)
+    angles = (ps.number("yaw_deg", 0.0, ge=-180, le=180), ps.number("pitch_deg", 0.0, ge=-90, le=90),
+              ps.number("roll_deg", 0.0, ge=-180, le=180))
+    ps.check_unknown()
+    rotation = pose_rotation(*angles)
+    return dict(pose_position_m=np.asarray(position, np.float64), pose_yaw_deg=float(angles[0]),
+                pose_pitch_deg=float(angles[1]), pose_roll_deg=float(angles[2]), pose_rotation=rotation,
+                has_pose=given)
+
+
 def _read_mimo(m: Section, fr: Section, n_tx: int, chirps_per_frame: int) -> dict[str, Any]:
     """MIMO code[slot, tx]: TDM from the TX order (one TX per slot), BPM from the given sign codes."""
     scheme = m.choice("scheme", MIMO_SCHEMES)
@@ -557,12 +601,15 @@ def sensor_from_document(doc: Document) -> Sensor:
     mimo = _read_mimo(doc.section("mimo"), frame_section, antennas["tx_positions_m"].shape[0],
                       frame["chirps_per_frame"])
     link = _read_link(doc.section("link"), adc)
+    pose = _read_pose(doc.section("pose", required=False))
     # The maximum range follows from the IF band the ADC covers; a range gate beyond is rejected by the chain.
     sensor = Sensor(
         sensor_id=sensor_id, source_text=doc.text, **chirp, **frame, **antennas, **link, **mimo, adc=adc, **if_filter,
+        **pose,
         digest=hashlib.sha256(json.dumps(doc.data, sort_keys=True).encode()).hexdigest()[:16],
     )
-    for arr in (sensor.tx_positions_m, sensor.rx_positions_m, sensor.mimo_code):
+    for arr in (sensor.tx_positions_m, sensor.rx_positions_m, sensor.mimo_code, sensor.pose_position_m,
+                sensor.pose_rotation):
         arr.setflags(write=False)
     return sensor
 
