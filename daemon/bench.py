@@ -219,7 +219,7 @@ def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: 
     from .scene import parse_scene
     from .sensor import parse_sensor
     from .simulate import Simulator
-    from .wire import decode
+    from .wire import WIRE_VERSION, decode
 
     text = sensor_toml(name)
     sensor = parse_sensor(text, f"bench sensor {name}")
@@ -254,7 +254,7 @@ def measure_served(name: str, workers: int, offered_fps: float = 50.0, seconds: 
                 seq, t_next = 0, time.monotonic()
                 while not stop.is_set():
                     j = seq % len(raws)
-                    h = msgpack.packb({"wire": 1, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": seq,
+                    h = msgpack.packb({"wire": WIRE_VERSION, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": seq,
                                        "run": "bench", "timestamp_s": seq / offered_fps, "dtype": "<i2",
                                        "shape": list(raws[j].shape), "digest": sensor.digest, "crc32": crcs[j]})
                     pub.send_multipart([f"{sensor.sensor_id}/adc".encode(), h,

@@ -4,6 +4,8 @@ A scene file is TOML (our own layout, see README "Scene description"):
 
     [scene]
     name = "loading yard"
+    frame = "sensor"                   # or "platform": positions on the platform, seen through the
+                                       # sensor file's [pose] (default "sensor")
 
     [[target]]
     name = "forklift mast"
@@ -50,11 +52,26 @@ class Target:
     snr_db: float | None  # explicit per-sample, per-channel SNR; None = radar range equation
 
 
+SCENE_FRAMES = ("sensor", "platform")
+
+
 @dataclass(frozen=True)
 class Scene:
     name: str
     source_text: str
     targets: tuple[Target, ...]
+    frame: str = "sensor"  # the frame of the targets' positions and velocities (SCENE_FRAMES)
+
+    def in_sensor_frame(self, rotation: np.ndarray, position_m: np.ndarray) -> "Scene":
+        """The scene as a sensor with this pose sees it (platform = rotation @ sensor + position_m):
+        a platform-frame scene's positions p become rotation^T (p - position_m), its velocities
+        rotation^T v. A sensor-frame scene is returned as it is."""
+        if self.frame == "sensor":
+            return self
+        r = np.asarray(rotation, np.float64)
+        moved = tuple(Target(t.name, r.T @ (t.position_m - position_m), r.T @ t.velocity_mps, t.rcs_dbsm, t.snr_db)
+                      for t in self.targets)
+        return Scene(self.name, self.source_text, moved, "sensor")
 
     def positions_at(self, t_s: np.ndarray) -> np.ndarray:
         """Target positions [n_t, len(t), 3] at times t_s (seconds from the scene start)."""
@@ -75,7 +92,7 @@ POLAR_FIELDS = ("range_m", "azimuth_deg", "elevation_deg", "radial_velocity_mps"
 COMMON_FIELDS = ("name", "rcs_dbsm", "snr_db")
 
 
-def _read_target(t: Section, index: int) -> Target:
+def _read_target(t: Section, index: int, frame: str) -> Target:
     t.check_unknown(CARTESIAN_FIELDS + POLAR_FIELDS + COMMON_FIELDS)
     name = t.string("name", f"target {index}")
     if t.has("name"):
@@ -85,7 +102,7 @@ def _read_target(t: Section, index: int) -> Target:
                       "azimuth_deg/elevation_deg/radial_velocity_mps: give either, not both")
     if t.has("position_m"):
         pos = np.asarray(t.numbers("position_m", length=3), np.float64)
-        if np.linalg.norm(pos) <= 0:
+        if frame == "sensor" and np.linalg.norm(pos) <= 0:  # on a platform: the simulator checks the antennas
             raise t.fail("position_m", t.table["position_m"], "a target cannot sit at the sensor origin")
         vel = np.asarray(t.numbers("velocity_mps", [0.0, 0.0, 0.0], length=3), np.float64)
         if np.linalg.norm(vel) >= SPEED_OF_LIGHT_MPS:
@@ -119,11 +136,12 @@ def scene_from_document(doc: Document) -> Scene:
     doc.check_sections(("scene", "target"))
     head = doc.section("scene", required=False)
     name = head.string("name", "unnamed scene")
+    frame = head.choice("frame", SCENE_FRAMES, "sensor")
     head.check_unknown()
-    targets = tuple(_read_target(t, i) for i, t in enumerate(doc.tables("target")))
+    targets = tuple(_read_target(t, i, frame) for i, t in enumerate(doc.tables("target")))
     if not targets:
         raise doc.error("a scene needs at least one [[target]]")
-    return Scene(name=name, source_text=doc.text, targets=targets)
+    return Scene(name=name, source_text=doc.text, targets=targets, frame=frame)
 
 
 def parse_scene(text: str, origin: str | None = None) -> Scene:

@@ -69,7 +69,9 @@ class Simulator:
     noise comes from numpy's PCG64 seeded with (seed, i), so any frame can be made on its own."""
 
     def __init__(self, sensor: Sensor, scene: Scene, seed: int = 0, noise: bool = True, if_filter: bool = True):
-        self.sensor, self.scene, self.seed, self.noise, self.if_filter = sensor, scene, int(seed), noise, if_filter
+        # a platform-frame scene is simulated as this sensor sees it, through its [pose]
+        self.scene = scene.in_sensor_frame(sensor.pose_rotation, sensor.pose_position_m)
+        self.sensor, self.seed, self.noise, self.if_filter = sensor, int(seed), noise, if_filter
         s = sensor
         m = np.arange(s.chirps_per_frame)
         code = s.mimo_code[m % s.n_slots]  # [M, n_tx]
@@ -168,6 +170,9 @@ class Simulator:
         self._check_clear_of_antennas(np.concatenate([d_tx, d_rx], axis=-1), t_m, index)
         r0 = np.linalg.norm(pos[:, 0, :], axis=-1)
         amp = s.noise_rms_counts * np.sqrt(10.0 ** (self.target_snr_db(r0) / 10.0))  # [T]
+        # the array radiates forward only: a target behind its plane (y <= 0) returns nothing (a
+        # simplification of the back lobe; on a platform, another sensor's side of the scene)
+        front = (pos[:, :, 1] > 0).astype(np.float64)  # [T, M]
         out = np.zeros((s.chirps_per_frame, s.n_rx, s.samples_per_chirp), np.complex128)
         m_idx = np.arange(s.chirps_per_frame)
         t_n = plan.fast_time_s
@@ -180,7 +185,7 @@ class Simulator:
                 # phase in cycles; the large f_c*tau term is reduced modulo 1 before it meets 2*pi
                 cyc0 = np.mod(s.start_frequency_hz * tau - 0.5 * s.slope_hz_per_s * tau * tau, 1.0)
                 cyc = cyc0[:, :, None] + (s.slope_hz_per_s * tau)[:, :, None] * t_n[None, None, :]
-                out += (amp[ti] * w)[:, None, None] * gain[:, :, None] * np.exp(2j * np.pi * cyc)
+                out += (amp[ti] * w * front[ti])[:, None, None] * gain[:, :, None] * np.exp(2j * np.pi * cyc)
         return out
 
     def frame(self, index: int) -> np.ndarray:

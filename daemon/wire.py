@@ -1,4 +1,4 @@
-"""cubecast wire format, version 1: encode and decode every message kind (pure functions, no sockets).
+"""cubecast wire format, version 2: encode and decode every message kind (pure functions, no sockets).
 
 The contract is README "Wire format". Every message is three parts:
 
@@ -12,7 +12,7 @@ against the kind's schema (the Structs below; daemon/schema.py), then the payloa
 header (length, CRC-32). A failure raises WireError, a CubecastError with `reason` (one of REASONS)
 and a message naming the field, its value and the rule.
 
-Header keys a kind does not define are ignored (forward compatibility within version 1).
+Header keys a kind does not define are ignored (forward compatibility within a version).
 
 This module is the contract shared by the daemon, the workers and the viewer: it imports nothing of
 the chain or the service (the viewer imports it), only errors.py and schema.py.
@@ -37,7 +37,7 @@ from .schema import (MAX_ENTRIES, Count, Digest, Finite, NonNegative, Positive, 
 if TYPE_CHECKING:
     from .sensor import Sensor
 
-WIRE_VERSION = 1
+WIRE_VERSION = 2
 KINDS = ("adc", "points", "rdmap", "sensor", "health")
 REASONS = ("malformed", "wire_version", "unknown_sensor", "digest", "shape", "dtype", "crc", "repeated",
            "oversized")
@@ -61,7 +61,7 @@ SENSOR_ID_RULE = f"1..{MAX_SENSOR_ID_CHARS} letters, digits, '-', '_' or '.'"
 SENSOR_ID_PATTERN = r"[\w.-]{1,%d}" % MAX_SENSOR_ID_CHARS   # the sensor file's [sensor] id follows it too
 _SENSOR_ID_RE = re.compile(SENSOR_ID_PATTERN)
 
-# [name, unit, dtype] of each record field, in order: 64 bytes, no padding (README "Wire format").
+# [name, unit, dtype] of each record field, in order: 76 bytes, no padding (README "Wire format").
 # The chain's point records (chain/points.RECORD_DTYPE) have exactly this layout (tests check it).
 POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
     ("frame", "", "<u8"), ("timestamp_s", "s", "<f8"),
@@ -70,14 +70,15 @@ POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
     ("velocity_mps", "m/s", "<f4"), ("snr_db", "dB", "<f4"),
     ("sigma_range_m", "m", "<f4"), ("sigma_azimuth_deg", "deg", "<f4"),
     ("sigma_elevation_deg", "deg", "<f4"), ("sigma_velocity_mps", "m/s", "<f4"),
+    ("platform_x_m", "m", "<f4"), ("platform_y_m", "m", "<f4"), ("platform_z_m", "m", "<f4"),
 )
 RECORD_DTYPE = np.dtype([(name, dtype) for name, _, dtype in POINT_WIRE_FIELDS])
-assert RECORD_DTYPE.itemsize == 64
+assert RECORD_DTYPE.itemsize == 76
 _FIELDS_LIST = [list(f) for f in POINT_WIRE_FIELDS]
-FIELDS_RULE = ("must be exactly the record layout of README's wire format (64-byte records, frame <u8, timestamp_s <f8, "
-               "then 12 <f4 fields)")
+FIELDS_RULE = ("must be exactly the record layout of README's wire format (76-byte records, frame <u8, timestamp_s <f8, "
+               "then 15 <f4 fields)")
 
-SENSOR_SUMMARY_KEYS = ("max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
+SENSOR_SUMMARY_KEYS = ("pose", "max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
                        "range_resolution_m", "velocity_resolution_mps")
 HEALTH_INT_FIELDS = ("frames_received", "frames_processed", "frames_dropped", "frames_rejected",
                      "sequence_gaps", "source_restarts", "queue_depth", "points_last")
@@ -139,6 +140,16 @@ class RdmapHeader(Schema):
     unit: Annotated[Literal["dB"], Meta(description="must be 'dB'")]
 
 
+Position3 = Annotated[list[Finite], Meta(min_length=3, max_length=3, description="must be [x, y, z], 3 finite numbers")]
+
+
+class SensorPose(Schema):
+    position_m: Position3
+    yaw_deg: Annotated[float, Meta(ge=-180.0, le=180.0, description="must be a number in -180..180")]
+    pitch_deg: Annotated[float, Meta(ge=-90.0, le=90.0, description="must be a number in -90..90")]
+    roll_deg: Annotated[float, Meta(ge=-180.0, le=180.0, description="must be a number in -180..180")]
+
+
 class SensorSummary(Schema):
     max_range_m: Positive
     max_velocity_mps: Positive
@@ -146,6 +157,7 @@ class SensorSummary(Schema):
     fov_half_elevation_deg: Positive
     range_resolution_m: Positive
     velocity_resolution_mps: Positive
+    pose: Annotated[SensorPose, Meta(description="must be a map")]
     mount_height_m: NonNegativeOrNil = None
 
 
@@ -292,6 +304,7 @@ def sensor_summary(sensor: Sensor, velocity_unfolding: bool = True) -> dict:
         "fov_half_elevation_deg": float(sensor.fov_half_elevation_deg),
         "range_resolution_m": float(sensor.range_resolution_m),
         "velocity_resolution_mps": float(sensor.velocity_resolution_mps),
+        "pose": sensor.pose_summary(),
     } | ({} if sensor.mount_height_m is None else {"mount_height_m": float(sensor.mount_height_m)})
 
 

@@ -413,8 +413,13 @@ def test_point_kernel_matches_the_bound_functions(layout):
     bin_m, bias, half_wl = 0.0469, 0.012, lam / 2
     out = np.empty(n_pts, POINT_DTYPE)
     half_wl_det = half_wl * (1 + rng.uniform(-1e-3, 1e-3, n_det))   # each detection's echo frequency
+    # a pose: yaw 30 deg right, pitch 10 deg up, roll -5 deg, as scipy's intrinsic z-x'-y'' Euler
+    # rotation (scipy.spatial.transform.Rotation; right-handed angles, so the rightward yaw is -30 about z)
+    from scipy.spatial.transform import Rotation
+    pose_r = Rotation.from_euler("ZXY", [-30.0, 10.0, -5.0], degrees=True).as_matrix()
+    pose_t = np.array([1.5, -0.4, 2.25])
     fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl_det, cell_snr, element_snr,
-                sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), np.empty(n_det),
+                sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), pose_r, pose_t, np.empty(n_det),
                 out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
 
     first = np.zeros(n_det)
@@ -429,6 +434,9 @@ def test_point_kernel_matches_the_bound_functions(layout):
     np.testing.assert_allclose(out["x_m"], rng_m * u_dir[:, 0], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["y_m"], rng_m * u_dir[:, 1], rtol=1e-5, atol=1e-6)
     np.testing.assert_allclose(out["z_m"], rng_m * u_dir[:, 2], rtol=1e-5, atol=1e-6)
+    platform = (rng_m[:, None] * u_dir) @ pose_r.T + pose_t
+    for j, name in enumerate(("platform_x_m", "platform_y_m", "platform_z_m")):
+        np.testing.assert_allclose(out[name], platform[:, j], rtol=1e-5, atol=1e-5)
     np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl_det[det_index], rtol=1e-6)
     np.testing.assert_allclose(out["snr_db"], 10 * np.log10(cell_snr[det_index] * share), rtol=1e-5)
     np.testing.assert_allclose(out["sigma_range_m"], sigma_r[det_index], rtol=1e-6)

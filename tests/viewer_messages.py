@@ -13,10 +13,11 @@ import numpy as np
 from cubecast.viewer.feed import POINT_DTYPE, POINT_FIELDS
 
 SUMMARY = {"max_range_m": 20.0, "max_velocity_mps": 8.0, "fov_half_azimuth_deg": 60.0,
-           "fov_half_elevation_deg": 20.0, "range_resolution_m": 0.2, "velocity_resolution_mps": 0.1}
+           "fov_half_elevation_deg": 20.0, "range_resolution_m": 0.2, "velocity_resolution_mps": 0.1,
+           "pose": {"position_m": [0.0, 0.0, 0.0], "yaw_deg": 0.0, "pitch_deg": 0.0, "roll_deg": 0.0}}
 
 
-def enc(sensor_id: str, kind: str, header: dict, payload: bytes = b"", wire=1) -> list[bytes]:
+def enc(sensor_id: str, kind: str, header: dict, payload: bytes = b"", wire=2) -> list[bytes]:
     h = {"wire": wire, "kind": kind, "sensor_id": sensor_id}
     h.update(header)
     return [f"{sensor_id}/{kind}".encode(), msgpack.packb(h, use_bin_type=True), payload]
@@ -31,6 +32,9 @@ def cloud(*rows: dict) -> np.ndarray:
             pts[i]["range_m"] = math.sqrt(pts[i]["x_m"] ** 2 + pts[i]["y_m"] ** 2 + pts[i]["z_m"] ** 2)
         if "snr_db" not in r:
             pts[i]["snr_db"] = 30.0
+        for axis in "xyz":  # no pose: the platform frame is the sensor frame
+            if f"platform_{axis}_m" not in r:
+                pts[i][f"platform_{axis}_m"] = pts[i][f"{axis}_m"]
     return pts
 
 

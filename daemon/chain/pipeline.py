@@ -142,6 +142,8 @@ class Pipeline:
         self._crb_unit = crb_unit_covariance(self.virtual_positions_m, sensor.wavelength_m)
         # ranges are measured from the virtual array's phase centre, mean(tx_k + rx_l) / 2
         self._phase_centre_m = np.ascontiguousarray(self.virtual_positions_m.mean(axis=0) / 2.0, np.float64)
+        self._pose_rotation = np.ascontiguousarray(sensor.pose_rotation, np.float64)
+        self._pose_position_m = np.ascontiguousarray(sensor.pose_position_m, np.float64)
         self.stage_ms = dict.fromkeys(STAGES, 0.0)
         self._canonical = None
         self.range_bias_m = float(range_bias_m)
@@ -245,7 +247,8 @@ class Pipeline:
         fill_points(ref.range_bin, self.range_fft.bin_m, self.range_bias_m, ang.det_index, ang.azimuth_deg,
                     ang.elevation_deg, ang.peak_power, doppler_hz, half_wl, snr,
                     ref.value_snr * self._virtual_snr, ref.sigma_range_bins * self.range_fft.bin_m,
-                    ref.sigma_doppler_bins * bin_v, self._phase_centre_m, *self._crb_unit, np.empty(n, np.float64),
+                    ref.sigma_doppler_bins * bin_v, self._phase_centre_m, *self._crb_unit, self._pose_rotation,
+                    self._pose_position_m, np.empty(n, np.float64),
                     out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
         t6 = time.perf_counter()
         self._times(t0, t1, t2, t3, t4, t5, t6)

@@ -25,6 +25,7 @@ POINT_FIELDS: tuple[tuple[str, str], ...] = (
     ("snr_db", "dB"),
     ("sigma_range_m", "m"), ("sigma_azimuth_deg", "deg"), ("sigma_elevation_deg", "deg"),
     ("sigma_velocity_mps", "m/s"),
+    ("platform_x_m", "m"), ("platform_y_m", "m"), ("platform_z_m", "m"),
 )
 POINT_DTYPE = np.dtype([(name, "<f4") for name, _ in POINT_FIELDS])
 
@@ -46,8 +47,8 @@ def to_records(points: np.ndarray, frame: int, timestamp_s: float) -> np.ndarray
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, peak_power, doppler_hz,
                 half_wavelength_m, cell_snr, element_snr, sigma_range_m, sigma_velocity_mps, phase_centre_m,
-                var_u1, var_w1, cov_uw1, has_x, has_z, first, out):
-    """The point records of one frame as float32 [n_points, 12] in POINT_FIELDS order.
+                var_u1, var_w1, cov_uw1, has_x, has_z, pose_rotation, pose_position_m, first, out):
+    """The point records of one frame as float32 [n_points, 15] in POINT_FIELDS order.
 
     Point k is angle peak k of detection i = det_index[k]; range_bin[i] is its refined range in FFT
     bins. That range is the mean over the virtual channels of the two-way path / 2, i.e. the range
@@ -58,6 +59,7 @@ def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevatio
     (sigma_range_m, sigma_velocity_mps). Azimuth and elevation: the direction-cosine CRB (var_u1,
     var_w1, cov_uw1 at 2 SNR = 1, from bounds.crb_unit_covariance) through the Jacobians of
     az = atan2(u, v) and el = asin(w) (direction_sigmas_deg), with ANGLE_FLOOR_DEG in quadrature.
+    The platform-frame point is pose_rotation @ (x, y, z) + pose_position_m (sensor.Sensor's pose).
     `first` is scratch of at least the number of detections. has_x is not used (the bound is inf
     along an axis without extent). half_wavelength_m[i]: half the wavelength of detection i's echo
     over the sampled sweep (velocity = Doppler frequency x that)."""
@@ -78,9 +80,13 @@ def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevatio
                   + np.sin(el) * phase_centre_m[2])
         rng = np.float32(np.float64(range_bin[i]) * bin_m - range_bias_m + toward)
         r64 = np.float64(rng)
-        out[k, 0] = r64 * np.cos(el) * np.sin(az)
-        out[k, 1] = r64 * np.cos(el) * np.cos(az)
-        out[k, 2] = r64 * np.sin(el)
+        x, y, z = r64 * np.cos(el) * np.sin(az), r64 * np.cos(el) * np.cos(az), r64 * np.sin(el)
+        out[k, 0] = x
+        out[k, 1] = y
+        out[k, 2] = z
+        for j in range(3):
+            out[k, 12 + j] = (pose_rotation[j, 0] * x + pose_rotation[j, 1] * y + pose_rotation[j, 2] * z
+                              + pose_position_m[j])
         out[k, 3] = rng
         out[k, 4] = azimuth_deg[k]
         out[k, 5] = elevation_deg[k]
