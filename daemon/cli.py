@@ -158,8 +158,9 @@ def _replay(args) -> int:
 
 def _record(args) -> int:
     from .sources import record
-    return record(args.sub, args.out, args.points_out, frames=args.frames, duration_s=args.duration,
-                  sensor_path=args.sensor, server_keys=args.server_key, key=args.key, progress=logs.show_progress())
+    return record(args.sub, args.out, args.points_out, points_format=args.points_format, frames=args.frames,
+                  duration_s=args.duration, sensor_path=args.sensor, server_keys=args.server_key, key=args.key,
+                  progress=logs.show_progress())
 
 
 def _with_publisher_security(func):
@@ -253,8 +254,10 @@ def _add_file_commands(sub) -> None:
 
     pr = sub.add_parser("process", help="process a capture offline into a point-cloud file")
     pr.add_argument("capture", help="capture file (from simulate, record or the adapter)")
-    pr.add_argument("--out", required=True, help="output file (.csv or .npz)")
-    pr.add_argument("--format", choices=("csv", "npz"), default=None, help="default: from the file name")
+    pr.add_argument("--out", required=True, help="point file (.csv, .npz, .mcap) or, with --format pcd, ply or "
+                                                 "rosbag, a new folder")
+    pr.add_argument("--format", default=None, metavar="{csv,npz,pcd,ply,mcap,rosbag}",
+                    help="default: from the file name (pcd, ply, mcap, rosbag need cubecast[export])")
     pr.add_argument("--settings", help="processing settings (TOML, [processing] section)")
     pr.add_argument("--calibration", help="calibration file (TOML)")
     pr.add_argument("--skip-corrupt", action="store_true",
@@ -387,12 +390,15 @@ def _add_stream_commands(sub) -> None:
     _add_publisher_key_options(rp)
     rp.set_defaults(func=_replay)
 
-    rc = sub.add_parser("record", help="record ADC frames to a capture and/or point clouds to CSV from ZeroMQ")
+    rc = sub.add_parser("record", help="record ADC frames to a capture and/or point clouds to a point file from ZeroMQ")
     rc.add_argument("--sub", action="append", metavar="ENDPOINT",
                     help="endpoint to connect to (repeatable: a source for ADC frames, the daemon for points "
                          "and the sensor description; default tcp://127.0.0.1:5602)")
     rc.add_argument("--out", help="capture file for the ADC frames")
-    rc.add_argument("--points-out", help="CSV file for the point clouds")
+    rc.add_argument("--points-out", help="point file for the point clouds (.csv, .npz, .mcap) or, with "
+                                         "--points-format pcd, ply or rosbag, a new folder")
+    rc.add_argument("--points-format", default=None, metavar="{csv,npz,pcd,ply,mcap,rosbag}",
+                    help="format of --points-out; default: from the file name")
     rc.add_argument("--frames", type=int, default=0, metavar="N",
                     help="stop after N ADC frames (N point clouds without --out); default: no limit")
     rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
@@ -469,6 +475,7 @@ def build_parser() -> argparse.ArgumentParser:
 # processing and ZeroMQ never sees a port it would wrap
 OUTPUT_FLAGS = ("--out", "--points-out", "--png", "--save-datagrams", "--snapshot")
 FOLDER_FLAGS = ("--dir",)
+POINT_FILE_FLAGS = {("process", "--out"): "format", ("record", "--points-out"): "points_format"}  # exports.py
 ENDPOINT_FLAGS = {
     "simulate": {"--pub": True}, "replay": {"--pub": True}, "adapter": {"--pub": True},
     "serve": {"--sub": False, "--pub": True, "--tasks": True, "--results": True},
@@ -494,7 +501,11 @@ def check_flags(parser: argparse.ArgumentParser, args: argparse.Namespace) -> di
         if flag is None or value is None or isinstance(value, bool):
             continue
         for v in value if isinstance(value, list) else [value]:
-            if flag in OUTPUT_FLAGS or flag in FOLDER_FLAGS:
+            if (args.command, flag) in POINT_FILE_FLAGS:
+                from .exports import check_target
+                check_target(flag, str(v), getattr(args, POINT_FILE_FLAGS[args.command, flag]))
+                outputs[str(v)] = flag
+            elif flag in OUTPUT_FLAGS or flag in FOLDER_FLAGS:
                 cliout.check_output_path(flag, str(v), folder=flag in FOLDER_FLAGS)
                 outputs[str(v)] = flag
             if flag in endpoints:

@@ -1,18 +1,18 @@
-"""Offline processing: a capture file through the chain into a point-cloud file (CSV or npz)."""
+"""Offline processing: a capture file through the chain into a point-cloud file (any format of exports.py)."""
 
 from __future__ import annotations
 
 import logging
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
+from . import exports
 from .capture import CaptureReader
-from .cliout import check_output_path
-from .errors import CubecastError
 from .chain.pipeline import Pipeline
 from .chain.points import to_records
-from .files import capture_sensor, iter_capture_frames, write_points_csv, write_points_npz
+from .files import capture_sensor, iter_capture_frames
 from .settings import load_settings
 
 log = logging.getLogger(__name__)
@@ -32,39 +32,41 @@ def make_pipeline(sensor, settings, calibration_path=None) -> Pipeline:
     return Pipeline(sensor, settings, vector, bias)
 
 
-def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = False) -> list[np.ndarray]:
-    """Run every readable frame of a capture through the chain; one record array per frame."""
-    records = []
+def iter_processed(reader: CaptureReader, pipeline: Pipeline,
+                   progress: bool = False) -> Iterator[tuple[int, float, np.ndarray]]:
+    """(sequence, timestamp_s, records) for every readable frame of a capture, in order; frames without
+    points give an empty record array."""
     frames = iter_capture_frames(reader, pipeline.sensor)
     if progress:
         from tqdm import tqdm
         total = len(reader) - (reader.counts["repeated"] if reader.skip_repeated else 0)
         frames = tqdm(frames, total=total, desc="process", unit="frame")
     for seq, ts, frame in frames:
-        records.append(to_records(pipeline.process(frame), seq, ts))
-    return records
+        yield seq, ts, to_records(pipeline.process(frame), seq, ts)
+
+
+def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = False) -> list[np.ndarray]:
+    """Run every readable frame of a capture through the chain; one record array per frame."""
+    return [records for _, _, records in iter_processed(reader, pipeline, progress)]
 
 
 def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None, settings_path=None,
                     calibration_path=None, progress: bool = True, skip_corrupt: bool = False) -> int:
-    fmt = fmt or ("npz" if str(out).endswith(".npz") else "csv" if str(out).endswith(".csv") else None)
-    if fmt is None:
-        raise CubecastError(f"--out {out}: name a .csv or .npz file, or give --format")
-    check_output_path("--out", str(out))  # before the processing, not after it
+    """`cubecast process`: every frame's points into `out` in `fmt` (or the format its name says),
+    written as they come under a temporary name and renamed into place at the end."""
+    fmt = exports.check_target("--out", out, fmt)  # before the processing, not after it
     settings = load_settings(settings_path)
     # a copy of an earlier record (the reader's `repeated`) holds no new frame: it is not processed
     with CaptureReader(capture, skip_corrupt=skip_corrupt, skip_repeated=True) as reader:
         sensor = capture_sensor(reader)
         pipeline = make_pipeline(sensor, settings, calibration_path)
-        records = process_frames(reader, pipeline, progress)
+        with exports.WRITERS[fmt](out, "--out") as writer:
+            for seq, ts, records in iter_processed(reader, pipeline, progress):
+                writer.write_frame(seq, ts, records, sensor.sensor_id)
         problems = reader.problems
         repeated = reader.counts["repeated"]
-    try:
-        n = (write_points_npz if fmt == "npz" else write_points_csv)(out, records)
-    except OSError as exc:
-        raise CubecastError(f"--out {out}: cannot write: {exc.strerror or exc}") from None
     for p in problems:
         log.warning("cubecast process: warning: %s: %s", capture, p)
     skipped = f" ({repeated} repeated record{'s' if repeated != 1 else ''} skipped)" if repeated else ""
-    log.info("%d frames, %d points -> %s%s", len(records), n, out, skipped)
+    log.info("%d frames, %d points -> %s%s", writer.frames, writer.points, out, skipped)
     return 0

@@ -36,7 +36,8 @@ import zmq
 from .capture import CaptureReader, CaptureWriter, CorruptFrameError
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
-from .files import _fmt, capture_sensor
+from .exports import CsvWriter, PointWriter, WRITERS, check_target
+from .files import capture_sensor
 from .intake import AdcValidator
 from .logs import RateLimitFilter
 from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
@@ -355,34 +356,22 @@ class _nullcontext:
 
 # ---- recorder ---------------------------------------------------------------------------------
 
-class PointsCsvWriter:
-    """Streams point records to CSV in exactly the format of files.write_points_csv."""
+class PointsCsvWriter(CsvWriter):
+    """exports.CsvWriter opened at once, taking records only: the format of files.write_points_csv."""
 
     def __init__(self, path: str | Path):
-        try:
-            self._f = open(path, "w", encoding="utf-8", newline="\n")
-        except OSError as exc:
-            raise CubecastError(f"--points-out {path}: cannot create file: {exc.strerror or exc}") from None
-        self.path = str(path)
-        self.points = 0
-        self._names = RECORD_DTYPE.names
-        self._f.write(",".join(self._names) + "\n")
+        super().__init__(path, "--points-out")
+        self.open()
 
     def write(self, records: np.ndarray) -> None:
-        names = self._names
-        lines = [f"{int(row['frame'])},{float(row['timestamp_s']):.6f}," + ",".join(
-            _fmt(float(row[k])) for k in names[2:]) + "\n" for row in records]
-        self._f.write("".join(lines))
-        self.points += len(lines)
-
-    def close(self) -> None:
-        if self._f is not None:
-            self._f.close()
-            self._f = None
+        self.write_frame(0, 0.0, records, "")  # CSV rows carry their own frame and timestamp
 
 
 class Recorder:
-    """Records ADC frames to a capture and/or point clouds to CSV from one or more endpoints.
+    """Records ADC frames to a capture and/or point clouds to a point file (exports.py; `points_format`,
+    else the one its name says) from one or more endpoints. Every points message is one cloud, also one
+    without points (frame = its seq, stamp = its timestamp_s, frame id = its sensor id); the point file
+    is renamed into place when the recorder stops.
 
     ADC frames come from a source's endpoint, points and the sensor description from the daemon's;
     give both to get both. The sensor description is `sensor` (from --sensor) or the first `sensor`
@@ -392,18 +381,19 @@ class Recorder:
     ignored as 'oversized'; dropped connections are dialled again (netio.Subscriber)."""
 
     def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
-                 frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
+                 points_format: str | None = None, frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
                  context: zmq.Context | None = None, keys: list[ClientKeys] | None = None,
                  max_part_bytes: int | None = None, progress: bool | None = None):
         if not subs:
             raise CubecastError("record: give at least one --sub ENDPOINT")
         if out is None and points_out is None:
-            raise CubecastError("record: give --out CAPTURE and/or --points-out CSV")
+            raise CubecastError("record: give --out CAPTURE and/or --points-out FILE")
         if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
             raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = no limit)")
         if not (duration_s >= 0 and math.isfinite(duration_s)):
             raise CubecastError(f"--duration {duration_s!r}: must be a number of seconds >= 0 (0 = no limit)")
         self.subs, self.out, self.points_out = list(subs), out, points_out
+        self.points_format = None if points_out is None else check_target("--points-out", points_out, points_format)
         if keys is not None and len(keys) != len(self.subs):
             raise CubecastError(f"record: {len(keys)} keys for {len(self.subs)} endpoints; one per endpoint")
         self.keys, self.max_part_bytes = keys, max_part_bytes
@@ -419,7 +409,7 @@ class Recorder:
         self._reject_logger = logging.getLogger(f"{__name__}.record")
         self._reject_limit = RateLimitFilter(REJECT_LOG_INTERVAL_S)
         self.writer: CaptureWriter | None = None
-        self.csv: PointsCsvWriter | None = None
+        self.points_writer: PointWriter | None = None  # the point file's writer (any format)
         self.validator: AdcValidator | None = None
         self.pending: collections.deque = collections.deque(maxlen=256)
         self.pending_bytes = 0
@@ -518,10 +508,10 @@ class Recorder:
             self.sensor_known.set()
         elif msg.kind == "adc":
             self._on_adc(msg)
-        elif msg.kind == "points" and self.csv is not None:
+        elif msg.kind == "points" and self.points_writer is not None:
             if self.out is None and self._limit_reached():
                 return False
-            self.csv.write(msg.data)
+            self.points_writer.write_frame(msg.header["seq"], msg.header["timestamp_s"], msg.data, msg.sensor_id)
             self.clouds_written += 1
             return self._last_frame == (msg.header["run"], msg.header["seq"])
         return False
@@ -533,7 +523,7 @@ class Recorder:
         self._reject_logger.addFilter(self._reject_limit)
         try:
             if self.points_out is not None:
-                self.csv = PointsCsvWriter(self.points_out)
+                self.points_writer = WRITERS[self.points_format](self.points_out, "--points-out").open()
             if self.sensor is not None:
                 self._set_sensor(self.sensor)
             extra = {} if self.max_part_bytes is None else {"max_part_bytes": self.max_part_bytes}
@@ -550,7 +540,7 @@ class Recorder:
                     break
                 if self._limit_reached() and grace_end == math.inf:
                     # the frame limit is reached; wait briefly for the points of the last frame
-                    if self.csv is None or self.out is None or self._last_frame is None:
+                    if self.points_writer is None or self.out is None or self._last_frame is None:
                         break
                     grace_end = now + 1.0
                 if sock.poll(50):
@@ -575,8 +565,8 @@ class Recorder:
                 ctx.term()
             if self.writer is not None:
                 self.writer.close()
-            if self.csv is not None:
-                self.csv.close()
+            if self.points_writer is not None:
+                self.points_writer.close()
             self._flush_rejects(force=True)
             self._reject_logger.removeFilter(self._reject_limit)
         if self.out is not None and self.sensor is None:
@@ -589,7 +579,7 @@ class Recorder:
         """What has been written so far, by the names of the progress line."""
         counts = {"frames": self.frames_written} if self.out is not None else {}
         if self.points_out is not None:
-            counts |= {"point clouds": self.clouds_written, "points": self.csv.points if self.csv else 0}
+            counts |= {"point clouds": self.clouds_written, "points": self.points_writer.points if self.points_writer else 0}
         return counts
 
     def _progress(self) -> Progress | None:
@@ -601,16 +591,16 @@ class Recorder:
     def summary(self) -> dict:
         sub = self.subscriber
         return {"frames_written": self.frames_written, "clouds_written": self.clouds_written,
-                "points_written": self.csv.points if self.csv else 0, "runs": list(self.runs),
+                "points_written": self.points_writer.points if self.points_writer else 0, "runs": list(self.runs),
                 "rejected": dict(self.rejected), "pending_lost": self.pending_lost,
                 "sequence_gaps": self.validator.sequence_gaps if self.validator else 0,
                 "protocol_errors": sub.protocol_errors if sub else 0,
                 "handshakes_failed": sub.handshakes_failed if sub else 0}
 
 
-def record(subs: list[str], out: str | None, points_out: str | None = None, frames: int = 0,
-           duration_s: float = 0.0, sensor_path: str | None = None, server_keys: list[str] | None = None,
-           key: str | None = None, progress: bool = False) -> int:
+def record(subs: list[str], out: str | None, points_out: str | None = None, points_format: str | None = None,
+           frames: int = 0, duration_s: float = 0.0, sensor_path: str | None = None,
+           server_keys: list[str] | None = None, key: str | None = None, progress: bool = False) -> int:
     """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM. server_keys: the public keys
     of the endpoints (one for all, or one per --sub); key: this recorder's secret key. Progress (frames
     and points written, and their rates) goes to standard error once a second as a log line, or, with
@@ -624,7 +614,7 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, fram
                                     endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        rec = Recorder(subs, out, points_out, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys,
+        rec = Recorder(subs, out, points_out, points_format=points_format, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys,
                        progress=bool(progress and sys.stderr.isatty()))
         s = rec.run(stop)
     parts = []

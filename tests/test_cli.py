@@ -101,16 +101,17 @@ def test_a_write_failing_after_the_check_is_one_line_naming_the_flag(tmp_path, m
 
 
 def test_process_names_its_output_when_the_write_fails(tmp_path, monkeypatch):
-    from cubecast.daemon import process
+    from cubecast.daemon import exports, process
     from cubecast.daemon.errors import CubecastError
     out = tmp_path / "p.csv"
 
-    def refused(path, records):
-        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(path))
+    def refused(self, *args):
+        raise PermissionError(errno.EACCES, os.strerror(errno.EACCES), str(self.tmp))
 
-    monkeypatch.setattr(process, "write_points_csv", refused)
+    monkeypatch.setattr(exports.CsvWriter, "_frame", refused)
     with pytest.raises(CubecastError, match=re.escape(f"--out {out}: cannot write: {os.strerror(errno.EACCES)}")):
         process.process_capture(YARD, out, progress=False)
+    assert list(tmp_path.iterdir()) == []  # neither the output nor its temporary name is left
 
 
 # ---- endpoints ----------------------------------------------------------------------------------

@@ -145,7 +145,8 @@ def test_process_cli_bad_inputs(tmp_path, capsys):
     assert main(["process", str(tmp_path / "none.cap"), "--out", str(tmp_path / "p.csv")]) == 2
     assert "none.cap" in capsys.readouterr().err
     assert main(["process", str(SAMPLES / "gate.cap"), "--out", str(tmp_path / "p.txt")]) == 2
-    assert "name a .csv or .npz file" in capsys.readouterr().err
+    err = capsys.readouterr().err
+    assert "extension '.txt'" in err and "name a .csv, .npz, .mcap file" in err and "--format" in err
     bad = tmp_path / "s.toml"
     bad.write_text("[processing]\ncfar_kind = \"median\"\n")
     assert main(["process", str(SAMPLES / "gate.cap"), "--out", str(tmp_path / "p.csv"), "--settings", str(bad)]) == 2
