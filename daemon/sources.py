@@ -381,7 +381,8 @@ class Recorder:
     ignored as 'oversized'; dropped connections are dialled again (netio.Subscriber)."""
 
     def __init__(self, subs: list[str], out: str | Path | None = None, points_out: str | Path | None = None, *,
-                 points_format: str | None = None, frames: int = 0, duration_s: float = 0.0, sensor: Sensor | None = None,
+                 points_format: str | None = None, frames: int = 0, duration_s: float = 0.0,
+                 sensor: Sensor | None = None,
                  context: zmq.Context | None = None, keys: list[ClientKeys] | None = None,
                  max_part_bytes: int | None = None, progress: bool | None = None):
         if not subs:
@@ -579,7 +580,8 @@ class Recorder:
         """What has been written so far, by the names of the progress line."""
         counts = {"frames": self.frames_written} if self.out is not None else {}
         if self.points_out is not None:
-            counts |= {"point clouds": self.clouds_written, "points": self.points_writer.points if self.points_writer else 0}
+            points = self.points_writer.points if self.points_writer else 0
+            counts |= {"point clouds": self.clouds_written, "points": points}
         return counts
 
     def _progress(self) -> Progress | None:
@@ -614,7 +616,8 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, poin
                                     endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        rec = Recorder(subs, out, points_out, points_format=points_format, frames=frames, duration_s=duration_s, sensor=sensor, keys=keys,
+        rec = Recorder(subs, out, points_out, points_format=points_format, frames=frames, duration_s=duration_s,
+                       sensor=sensor, keys=keys,
                        progress=bool(progress and sys.stderr.isatty()))
         s = rec.run(stop)
     parts = []
