@@ -40,7 +40,7 @@ import numpy as np
 from . import sensorlimits
 from .config import Document, Section, parse_toml, read_toml
 from .errors import CubecastError
-from .wire import SENSOR_ID_PATTERN, SENSOR_ID_RULE
+from .wire import SENSOR_ID_PATTERN, SENSOR_ID_RULE, pose_rotation  # noqa: F401 (pose_rotation: also ours)
 
 SPEED_OF_LIGHT_MPS = 299_792_458.0
 BOLTZMANN_J_PER_K = 1.380649e-23
@@ -516,19 +516,6 @@ def _read_antennas(an: Section, chirp: dict[str, Any]) -> dict[str, Any]:
     )
     an.check_unknown()
     return out
-
-
-def pose_rotation(yaw_deg: float, pitch_deg: float, roll_deg: float) -> np.ndarray:
-    """The rotation [3, 3] taking sensor-frame vectors to the platform frame (both x right, y forward
-    or boresight, z up): yaw about the platform's z, positive turning the boresight right (clockwise
-    seen from above, as azimuth); then pitch about the sensor's own x, positive tilting the boresight
-    up (as elevation); then roll about the sensor's own boresight, positive lowering its right side.
-    Intrinsic z-x'-y'' Tait-Bryan angles: R = Rz(yaw) Rx(pitch) Ry(roll)."""
-    y, p, r = (math.radians(a) for a in (yaw_deg, pitch_deg, roll_deg))
-    rz = np.array([[math.cos(y), math.sin(y), 0.0], [-math.sin(y), math.cos(y), 0.0], [0.0, 0.0, 1.0]])
-    rx = np.array([[1.0, 0.0, 0.0], [0.0, math.cos(p), -math.sin(p)], [0.0, math.sin(p), math.cos(p)]])
-    ry = np.array([[math.cos(r), 0.0, math.sin(r)], [0.0, 1.0, 0.0], [-math.sin(r), 0.0, math.cos(r)]])
-    return rz @ rx @ ry
 
 
 def _read_pose(ps: Section) -> dict[str, Any]:

@@ -82,12 +82,25 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
     return [decode_parts([bytes(part) for part in p], now) for p in ordered]
 
 
-def snapshot_capture(capture_path: str, frame: int | None, out_png: str, size=(1280, 800), **options) -> dict:
-    """Render frames 0..frame of a capture as the viewer shows them; returns a short description."""
+def snapshot_capture(capture_path, frame: int | None, out_png: str, size=(1280, 800), **options) -> dict:
+    """Render frames 0..frame of a capture as the viewer shows them; returns a short description.
+    `capture_path` may be a list of captures of different sensors (drawn together in the platform
+    frame; the first one's map and status are shown)."""
     from ..viewer.snapshot import render_snapshot
     history = int(options.get("persist_frames", 8))
-    msgs = capture_messages(capture_path, frame, options.pop("settings_path", None), history)
-    points = [m for m in msgs if m["kind"] == "points"]
-    footer = f"capture {capture_path}, frames 0..{points[-1]['header']['seq']} processed offline"
-    render_snapshot(msgs, out_png, size, endpoint=str(capture_path), footer=footer, **options)
-    return {"frames": len(points), "points": int(points[-1]["header"]["count"]), "sensor_id": msgs[0]["sensor_id"]}
+    settings_path = options.pop("settings_path", None)
+    paths = [capture_path] if isinstance(capture_path, (str, bytes)) or not hasattr(capture_path, "__iter__") \
+        else list(capture_path)
+    per_capture = [capture_messages(p, frame, settings_path, history) for p in paths]
+    ids = [m[0]["sensor_id"] for m in per_capture]
+    for k, sid in enumerate(ids):
+        if sid in ids[:k]:
+            raise CubecastError(f"--capture {paths[k]}: sensor '{sid}' is also the sensor of {paths[ids.index(sid)]}; "
+                                f"the platform picture needs one capture per sensor")
+    # the first capture's messages last, so that its map and health are the ones shown
+    msgs = [m for ms in per_capture[1:] for m in ms] + per_capture[0]
+    points = [m for m in per_capture[0] if m["kind"] == "points"]
+    names = " + ".join(str(p) for p in paths)
+    footer = f"capture{'s' if len(paths) > 1 else ''} {names}, frames 0..{points[-1]['header']['seq']} processed offline"
+    render_snapshot(msgs, out_png, size, endpoint=names, sensor_id=ids[0], footer=footer, **options)
+    return {"frames": len(points), "points": int(points[-1]["header"]["count"]), "sensor_id": ", ".join(ids)}

@@ -295,6 +295,20 @@ def encode_rdmap(sensor_id: str, seq: int, timestamp_s: float, values_db: np.nda
     return [topic_of(sensor_id, "rdmap"), _pack("rdmap", sensor_id, fields), _array_view(arr)]
 
 
+def pose_rotation(yaw_deg: float, pitch_deg: float, roll_deg: float) -> np.ndarray:
+    """The rotation [3, 3] of a pose (a sensor file's [pose], a `sensor` summary's `pose`; the viewer
+    draws with it too) taking sensor-frame vectors to the platform frame (both x right, y forward
+    or boresight, z up): yaw about the platform's z, positive turning the boresight right (clockwise
+    seen from above, as azimuth); then pitch about the sensor's own x, positive tilting the boresight
+    up (as elevation); then roll about the sensor's own boresight, positive lowering its right side.
+    Intrinsic z-x'-y'' Tait-Bryan angles: R = Rz(yaw) Rx(pitch) Ry(roll)."""
+    y, p, r = (math.radians(a) for a in (yaw_deg, pitch_deg, roll_deg))
+    rz = np.array([[math.cos(y), math.sin(y), 0.0], [-math.sin(y), math.cos(y), 0.0], [0.0, 0.0, 1.0]])
+    rx = np.array([[1.0, 0.0, 0.0], [0.0, math.cos(p), -math.sin(p)], [0.0, math.sin(p), math.cos(p)]])
+    ry = np.array([[math.cos(r), 0.0, math.sin(r)], [0.0, 1.0, 0.0], [-math.sin(r), 0.0, math.cos(r)]])
+    return rz @ rx @ ry
+
+
 def sensor_summary(sensor: Sensor, velocity_unfolding: bool = True) -> dict:
     return {
         "max_range_m": float(sensor.max_range_m),

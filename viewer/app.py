@@ -29,12 +29,12 @@ class ViewerApp:
                  persist_frames: int = V.DEFAULT_PERSIST_FRAMES, color_by: str = "velocity",
                  velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS,
                  sensor_height_m: float | None = None, stall_after_s: float = 3.0, dpi=None,
-                 canvas=None):
+                 canvas=None, view_frame: str = "sensor"):
         from .canvas import ViewerCanvas
         self.feed = feed
         self.stall_after_s = stall_after_s
         self.options = dict(persist_frames=persist_frames, color_by=color_by, velocity_span_mps=velocity_span_mps,
-                            sensor_height_m=sensor_height_m)
+                            sensor_height_m=sensor_height_m, view_frame=view_frame)
         self.fixed_sensor = (sensor or "").rstrip("/") or None
         self.vc = canvas or ViewerCanvas(size=size, show=show, title=f"cubecast view · {feed.endpoint}", dpi=dpi)
         self.state = self._new_state(self.fixed_sensor)
@@ -57,7 +57,7 @@ class ViewerApp:
         st = V.ViewerState(endpoint=self.feed.endpoint, sensor_id=sensor_id,
                            persist=V.Persistence(o["persist_frames"]), color_by=o["color_by"],
                            velocity_span_mps=o["velocity_span_mps"], sensor_height_m=o["sensor_height_m"],
-                           stall_after_s=self.stall_after_s)
+                           stall_after_s=self.stall_after_s, frame=o["view_frame"])
         return st
 
     # ---- the timer ----
@@ -91,6 +91,8 @@ class ViewerApp:
             changed = True
             if kind == "points":
                 self._step_pending = False
+        if st.frame == "platform" and not (st.paused and not self._step_pending):
+            changed |= self._take_others(snap)
         if changed:
             self.vc.show_data(st)
         if changed or now_s - self._last_status_s >= STATUS_EVERY_S:
@@ -99,6 +101,20 @@ class ViewerApp:
             changed = True
         if self.vc.refresh_axes() or changed:
             self.vc.canvas.update()
+        return changed
+
+    def _take_others(self, snap) -> bool:
+        """The platform picture: the other sensors' new descriptions and point clouds."""
+        changed = False
+        for sid, latest in snap.latest.items():
+            if sid == self.state.sensor_id:
+                continue
+            for kind in ("sensor", "points"):
+                msg, n = latest.get(kind), snap.counts.get(sid, {}).get(kind, 0)
+                if msg is None or self._seen.get((sid, kind)) == n:
+                    continue
+                self._seen[(sid, kind)] = n
+                changed |= self.state.ingest(msg)
         return changed
 
     # ---- keys ----
@@ -117,7 +133,8 @@ class ViewerApp:
             if st.paused:
                 self._step_pending = True
         elif k in ("c", "C"):
-            st.color_by = "snr" if st.color_by == "velocity" else "velocity"
+            order = V.COLOR_BY if st.frame == "platform" else V.COLOR_BY[:2]
+            st.color_by = order[(order.index(st.color_by) + 1) % len(order)] if st.color_by in order else order[0]
             self.options["color_by"] = st.color_by
         elif k in ("[", "]"):
             f = 0.5 if k == "[" else 2.0
@@ -125,10 +142,13 @@ class ViewerApp:
             self.options["velocity_span_mps"] = st.velocity_span_mps
         elif k in ("-", "+", "="):
             n = st.persist.n_frames + (-1 if k == "-" else 1)
-            st.persist.set_frames(min(50, max(1, n)))
+            st.set_persist_frames(min(50, max(1, n)))
             self.options["persist_frames"] = st.persist.n_frames
         elif k in ("n", "N"):
             self.next_sensor()
+            return
+        elif k in ("p", "P"):
+            self.toggle_platform()
             return
         elif k in ("r", "R"):
             self.vc.reset_cameras(st)
@@ -181,11 +201,24 @@ class ViewerApp:
         nxt = ids[(ids.index(cur) + 1) % len(ids)] if cur in ids else ids[0]
         if nxt == cur:
             return
+        self._restart_state(nxt)
+
+    def toggle_platform(self) -> None:
+        """Between one sensor in its own frame and every sensor on the bus in the platform frame."""
+        self.options["view_frame"] = "sensor" if self.state.frame == "platform" else "platform"
+        if self.options["view_frame"] == "sensor" and self.state.color_by == "sensor":
+            self.options["color_by"] = "velocity"
+        self._restart_state(self.state.sensor_id)
+        self._say("platform frame: every sensor in one picture" if self.options["view_frame"] == "platform"
+                  else f"sensor frame: {self.state.sensor_id or 'the first sensor'} alone")
+        self.vc.show_status(self.state, self._footer())
+
+    def _restart_state(self, sensor_id: str | None) -> None:
         paused = self.state.paused
-        self.state = self._new_state(nxt)
+        self.state = self._new_state(sensor_id)
         self.state.paused = paused
         self.vc.show_selection(None)
-        self._seen = {k: v for k, v in self._seen.items() if k[0] != nxt}
+        self._seen = {}
         self.vc.reset_cameras(self.state)
         self.tick()
 
@@ -213,7 +246,7 @@ class ViewerApp:
         self.feed.stop()
 
 
-def run_window(endpoint: str, sensor: str | None = None, size=(1280, 800), stall_after_s: float = 3.0,
+def run_window(endpoint: str | list[str], sensor: str | None = None, size=(1280, 800), stall_after_s: float = 3.0,
                keys=None, **options) -> int:
     """Open the window on `endpoint` and run until it is closed (keys: keyfiles.FeedKeys, or None)."""
     from vispy import app
@@ -221,7 +254,7 @@ def run_window(endpoint: str, sensor: str | None = None, size=(1280, 800), stall
     try:
         feed.start()
     except Exception as exc:
-        log.error("cubecast view: error: --sub %s: %s", endpoint, exc)
+        log.error("cubecast view: error: --sub %s: %s", feed.endpoint, exc)
         return 2
     try:
         viewer = ViewerApp(feed, size=size, sensor=sensor, show=True, stall_after_s=stall_after_s, **options)

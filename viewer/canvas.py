@@ -100,6 +100,10 @@ class Legend:
                                              method="gl")
         self._last = None
 
+    def set_visible(self, visible: bool) -> None:
+        for v in (self.bar, self.frame, self.left, self.right, self.ticks, self.tick_lines):
+            v.visible = visible
+
     def set(self, kind: str, left: str, right: str, ticks, x0: float, y0: float, width: float,
             height: float) -> None:
         key = (kind, left, right, tuple(ticks), x0, y0, width, height)
@@ -184,13 +188,21 @@ class ViewerCanvas:
                                          face=FONT)
         self.top_sensor = scene.visuals.Markers(parent=self.top.scene)
         self.top_points = scene.visuals.Markers(parent=self.top.scene, antialias=1)
+        # the platform picture: a Cartesian grid, each sensor's field of view and name in its hue
+        self.plat_grid = scene.visuals.Line(parent=self.top.scene, color=V.GRID, width=1, connect="segments",
+                                            method="gl", antialias=True)
+        self.plat_fov = scene.visuals.Line(parent=self.top.scene, width=1.6, connect="segments", method="gl",
+                                           antialias=True)
+        self.plat_labels = self._text("", parent=self.top.scene, color=V.TEXT, font_size=9, face=FONT,
+                                      anchor_x="left", anchor_y="center")
 
     def _build_side(self, left) -> None:
         """Side view (elevation)."""
         self.side_title = left.add_widget(row=3, col=0, col_span=2)
         self.side_title.height_min = self.side_title.height_max = TITLE_H
         self.side = self._panel(left, 4, "y forward (m)", "z height (m)", 1.0)
-        self._panel_title(self.side_title, "SIDE VIEW", "forward distance against height · sensor at z = 0")
+        _, self.side_sub = self._panel_title(self.side_title, "SIDE VIEW",
+                                             "forward distance against height · sensor at z = 0")
         self.ground_fill = scene.visuals.Mesh(parent=self.side.scene, color=V.GROUND_FILL)
         self.side_fov = scene.visuals.Line(parent=self.side.scene, color=V.FOV_EDGE, width=1.2,
                                            connect="segments", method="gl", antialias=True)
@@ -204,6 +216,13 @@ class ViewerCanvas:
                                       face=FONT, anchor_x="right", anchor_y="center")
         self.side_sensor = scene.visuals.Markers(parent=self.side.scene)
         self.side_points = scene.visuals.Markers(parent=self.side.scene, antialias=1)
+        self.plat_side_fov = scene.visuals.Line(parent=self.side.scene, width=1.2, connect="segments",
+                                                method="gl", antialias=True)
+        self._sensor_frame_visuals = (self.fov_fill, self.fov_line, self.rings, self.bearings, self.ring_labels,
+                                      self.bearing_labels, self.side_fov, self.sensor_line)
+        self._platform_visuals = (self.plat_grid, self.plat_fov, self.plat_labels, self.plat_side_fov)
+        for vis in self._platform_visuals:
+            vis.visible = False
 
     def _build_rd(self, right) -> None:
         """Range-Doppler map."""
@@ -231,13 +250,15 @@ class ViewerCanvas:
                            (self.sensor_line, 2), (self.ground_line, 2), (self.rd_zero, 2),
                            (self.ring_labels, 3), (self.bearing_labels, 3), (self.side_labels, 3),
                            (self.top_sensor, 4), (self.side_sensor, 4), (self.top_points, 5),
-                           (self.side_points, 5), (self.rd_marks, 5)):
+                           (self.side_points, 5), (self.rd_marks, 5), (self.plat_grid, 1), (self.plat_fov, 2),
+                           (self.plat_side_fov, 2), (self.plat_labels, 3)):
             vis.order = order
         for m in (self.top_points, self.side_points, self.rd_marks, self.top_sensor, self.side_sensor):
             m.set_gl_state("translucent", depth_test=False)
         # everything is flat at z = 0: draw in order, never depth-tested against each other
         for m in (self.fov_fill, self.ground_fill, self.rings, self.bearings, self.fov_line, self.side_fov,
-                  self.side_grid, self.sensor_line, self.ground_line, self.rd_zero, self.rd_image):
+                  self.side_grid, self.sensor_line, self.ground_line, self.rd_zero, self.rd_image, self.plat_grid,
+                  self.plat_fov, self.plat_side_fov):
             m.set_gl_state("translucent", depth_test=False)
         self.top_points.visible = self.side_points.visible = self.rd_marks.visible = False
 
@@ -338,14 +359,18 @@ class ViewerCanvas:
             x0, y0, x1, y1 = self.panel_rect(panel)
             if not (x0 <= px[0] <= x1 and y0 <= px[1] <= y1):
                 continue
-            clouds = state.persist.clouds()
-            if not any(len(pts) for _, pts in clouds):
+            clouds = [(sid, seq, pts) for sid, persist in state.clouds_by_sensor() for seq, pts in persist.clouds()]
+            if not any(len(pts) for _, _, pts in clouds):
                 return None
-            seqs = np.concatenate([np.full(len(pts), -1 if seq is None else seq) for seq, pts in clouds])
-            pts = np.concatenate([pts for _, pts in clouds])
-            xy = V.bev_positions(pts) if panel == "top" else V.side_positions(pts)
+            seqs = np.concatenate([np.full(len(pts), -1 if seq is None else seq) for _, seq, pts in clouds])
+            sids = [sid for sid, _, pts in clouds for _ in range(len(pts))]
+            pts = np.concatenate([pts for _, _, pts in clouds])
+            xy = V.bev_positions(pts, state.frame) if panel == "top" else V.side_positions(pts, state.frame)
             k = V.nearest_pixel(self.data_to_pixel(panel, xy), px)
-            return None if k is None else V.point_lines(pts[k], None if seqs[k] < 0 else int(seqs[k]))
+            if k is None:
+                return None
+            return V.point_lines(pts[k], None if seqs[k] < 0 else int(seqs[k]),
+                                 sids[k] if state.frame == "platform" else None)
         x0, y0, x1, y1 = self.panel_rect("rd")
         rd = state.rdmap_msg
         if rd is None or not (x0 <= px[0] <= x1 and y0 <= px[1] <= y1):
@@ -372,12 +397,21 @@ class ViewerCanvas:
             self._apply_rd_geometry(state.rdmap_msg, force=True)
 
     def _apply_geometry(self, state: V.ViewerState, force: bool = False) -> None:
+        if state.frame == "platform":
+            self._apply_platform_geometry(state, force)
+            return
         s = state.summary
         known = state.sensor_msg is not None
         key = (s["max_range_m"], s["fov_half_azimuth_deg"], s["fov_half_elevation_deg"], state.ground_height_m, known)
         if key == self._geometry_key and not force:
             return
         self._geometry_key = key
+        for vis in self._platform_visuals:
+            vis.visible = False
+        for vis in self._sensor_frame_visuals:
+            vis.visible = True
+        self.top_sensor.visible = self.side_sensor.visible = True
+        self.side_sub.text = "forward distance against height · sensor at z = 0"
         tg = V.top_grid(s["max_range_m"], s["fov_half_azimuth_deg"])
         self.rings.set_data(tg.rings)
         self.bearings.set_data(tg.bearings)
@@ -424,6 +458,62 @@ class ViewerCanvas:
                                   size=11, symbol="triangle_up", edge_width=1)
         self.side.camera.rect = sg.extent
 
+    def _apply_platform_geometry(self, state: V.ViewerState, force: bool = False) -> None:
+        """The platform picture's grid, the sensors' fields of view, marks and names."""
+        places = state.places()
+        ground_z = state.platform_ground_z_m
+        key = ("platform", ground_z, tuple((p.sensor_id, p.rgb, tuple(p.position_m), tuple(p.rotation.ravel()),
+                                            p.max_range_m, p.fov_half_azimuth_deg, p.fov_half_elevation_deg)
+                                           for p in places))
+        if key == self._geometry_key and not force:
+            return
+        self._geometry_key = key
+        pg = V.platform_grid(places, ground_z)
+        for vis in self._sensor_frame_visuals:
+            vis.visible = False
+        self.plat_grid.set_data(pg.grid)
+        self.plat_grid.visible = True
+        if places:
+            fov = np.concatenate(pg.wedges)
+            col = np.concatenate([np.tile((*p.rgb, 0.85), (len(w), 1)) for p, w in zip(places, pg.wedges)])
+            self.plat_fov.set_data(fov, color=col.astype(np.float32))
+            side = np.concatenate(pg.side_edges)
+            scol = np.concatenate([np.tile((*p.rgb, 0.85), (len(e), 1)) for p, e in zip(places, pg.side_edges)])
+            self.plat_side_fov.set_data(side, color=scol.astype(np.float32))
+            faces = np.array([(*p.rgb, 1.0) for p in places], np.float32)
+            self.top_sensor.set_data(pg.marks_top, face_color=faces, edge_color=V.BACKGROUND, size=11,
+                                     symbol="square", edge_width=1)
+            self.side_sensor.set_data(pg.marks_side, face_color=faces, edge_color=V.BACKGROUND, size=11,
+                                      symbol="square", edge_width=1)
+            self.plat_labels.text = [lab.text for lab in pg.labels_top]
+            self.plat_labels.pos = np.array([lab.pos for lab in pg.labels_top], np.float32)
+            self.plat_labels.color = faces
+        for vis in (self.plat_fov, self.plat_side_fov, self.plat_labels):
+            vis.visible = bool(places)
+        self.top_sensor.visible = self.side_sensor.visible = bool(places)
+        self.top.camera.rect = pg.extent_top
+        names = ", ".join(p.sensor_id for p in places) or "no sensor description yet"
+        self.top_sub.text = f"platform frame · grid {V._fmt_num(pg.step_m)} m" if places else f"platform frame · {names}"
+        self.side_sub.text = "platform frame · forward distance against height"
+        y0, z0, w, h = pg.extent_side
+        self.ground_line.set_data(np.array([[y0, ground_z], [y0 + w, ground_z]], np.float32))
+        depth = ground_z - z0
+        verts, faces_ = _quad(np.array([[y0, ground_z], [y0 + w, ground_z], [y0 + w, z0], [y0, z0]], np.float32))
+        self.ground_fill.set_data(vertices=verts, faces=faces_, color=V.GROUND_FILL)
+        zs = np.arange(np.ceil(z0), z0 + h, 1.0)
+        zs = zs[zs > ground_z + 1e-6]
+        g = np.zeros((2 * len(zs), 2), np.float32)
+        g[0::2, 0], g[1::2, 0] = y0, y0 + w
+        g[0::2, 1] = g[1::2, 1] = zs
+        self.side_grid.set_data(g if len(g) else np.zeros((2, 2), np.float32))
+        self.side_grid.visible = bool(len(g))
+        self.side_labels.text = [f"ground, z = {V._fmt_num(round(ground_z, 2))} m" if depth > 0 else "ground"]
+        self.side_labels.pos = np.array([[y0 + w - 0.01 * w, ground_z - 0.3]], np.float32)
+        self.side.camera.rect = pg.extent_side
+        if state.rdmap_msg is None:
+            v = float(state.summary["max_velocity_mps"])
+            self.rd.camera.rect = (-v, 0.0, 2 * v, float(state.summary["max_range_m"]))
+
     def _apply_rd_geometry(self, msg: dict, force: bool = False) -> None:
         h = msg["header"]
         n_r, n_d = msg["data"].shape
@@ -446,8 +536,10 @@ class ViewerCanvas:
         text, level = V.status_line(state)
         footer = footer or ("h: keys   space: pause   c: colour by velocity / SNR   -/+: persistence   "
                             "click: a point's or cell's numbers   s: save PNG")
-        right = (f"persistence {state.persist.n_frames} frames  ·  points coloured by "
-                 f"{'radial velocity' if state.color_by == 'velocity' else 'SNR'}")
+        by = {"velocity": "radial velocity", "snr": "SNR", "sensor": "sensor"}[state.color_by]
+        right = f"persistence {state.persist.n_frames} frames  ·  points coloured by {by}"
+        if state.frame == "platform" and state.color_by != "sensor":
+            right += ", ringed in their sensor's hue"
         key = (text, level, footer, right)
         if key == getattr(self, "_status_key", None):
             return
@@ -461,18 +553,20 @@ class ViewerCanvas:
         """Points, legends, the range-Doppler image and the panel geometry."""
         self._apply_geometry(state)
 
-        styled = state.persist.merged(state.color_by, state.velocity_span_mps, state.snr_range_db)
+        styled, edge = state.styled()
         if len(styled.sizes):
-            edge = styled.colors.copy()
-            edge[:, :3] *= 0.35
+            ew = 1.8 if state.frame == "platform" else 1.0
             self.top_points.set_data(styled.top, face_color=styled.colors, edge_color=edge, size=styled.sizes,
-                                     edge_width=1)
+                                     edge_width=ew)
             self.side_points.set_data(styled.side, face_color=styled.colors, edge_color=edge, size=styled.sizes,
-                                      edge_width=1)
+                                      edge_width=ew)
         self.top_points.visible = self.side_points.visible = bool(len(styled.sizes))
 
         tw = self._column_w[0]
-        if state.color_by == "velocity":
+        self.top_legend.set_visible(state.color_by != "sensor")
+        if state.color_by == "sensor":
+            pass   # the sensors' names beside their marks, in their hues, are the legend
+        elif state.color_by == "velocity":
             _, ticks = V.legend_ticks("velocity", state.velocity_span_mps)
             ticks = ticks[:-1] + [(1.0, ticks[-1][1] + " m/s")]
             self.top_legend.set("velocity", "approaching", "receding", ticks, tw - 300, 5, 220, 10)

@@ -65,11 +65,17 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
     v = subparsers.add_parser("view", help="live viewer of a daemon's point clouds, or a PNG snapshot",
                               description="Show a daemon's points, range-Doppler map and health in a window, "
                                           "or render one view to a PNG without a display.")
-    v.add_argument("--sub", metavar="ENDPOINT", help=f"the daemon's PUB endpoint (default {DEFAULT_ENDPOINT})")
+    v.add_argument("--sub", metavar="ENDPOINT", action="append",
+                   help=f"the daemon's PUB endpoint (default {DEFAULT_ENDPOINT}); repeat it to subscribe to several "
+                        f"daemons at once (one per sensor, for --platform)")
     v.add_argument("--sensor", metavar="ID", help="show only this sensor (default: all, the first one seen "
                                                   "is shown; key n switches)")
     v.add_argument("--snapshot", metavar="PNG", help="render to this PNG file instead of opening a window")
-    v.add_argument("--capture", metavar="FILE", help="with --snapshot: process this capture offline")
+    v.add_argument("--capture", metavar="FILE", action="append",
+                   help="with --snapshot: process this capture offline (with --platform, give one per sensor)")
+    v.add_argument("--platform", action="store_true",
+                   help="draw every sensor on the bus in one picture, in the platform frame of their [pose] "
+                        "(key p switches; the map and status stay one sensor's, key n)")
     v.add_argument("--frame", type=_nonneg_int, default=None,
                    help="with --capture: the frame to show (frames 0..N are processed; default the last)")
     v.add_argument("--size", type=_size, default=(1280, 800), metavar="WxH", help="window / image size")
@@ -77,7 +83,8 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
                    help="with --snapshot --sub: the longest wait for messages (default 10 s)")
     v.add_argument("--persist", type=_nonneg_int, default=8, metavar="N",
                    help="point clouds kept on screen, fading (default 8; 1 shows only the latest)")
-    v.add_argument("--color", choices=("velocity", "snr"), default="velocity", help="colour points by")
+    v.add_argument("--color", choices=("velocity", "snr", "sensor"), default="velocity",
+                   help="colour points by (sensor: with --platform)")
     v.add_argument("--velocity-span-mps", type=_positive_float, default=2.5,
                    help="radial velocity at the ends of the colour scale (default 2.5 m/s)")
     v.add_argument("--sensor-height-m", type=_height, default=None,
@@ -108,8 +115,12 @@ def run(args, capture_snapshot=None) -> int:
         return _err("give either --capture or --sub, not both")
     if args.frame is not None and not args.capture:
         return _err("--frame applies to --capture only")
+    if args.capture and len(args.capture) > 1 and not args.platform:
+        return _err("several --capture files are drawn together in the platform frame: add --platform")
+    if args.color == "sensor" and not args.platform:
+        return _err("--color sensor applies to --platform only")
     options = dict(persist_frames=persist, color_by=args.color, velocity_span_mps=args.velocity_span_mps,
-                   sensor_height_m=args.sensor_height_m)
+                   sensor_height_m=args.sensor_height_m, view_frame="platform" if args.platform else "sensor")
     server_key, key = getattr(args, "server_key", None), getattr(args, "key", None)
     if args.capture and (server_key or key):
         return _err("--server-key and --key apply to --sub only")
@@ -127,7 +138,8 @@ def run(args, capture_snapshot=None) -> int:
                     return _err("--capture needs the processing chain: run it as `cubecast view`")
                 if args.settings:
                     options["settings_path"] = args.settings
-                info = capture_snapshot(args.capture, args.frame, args.snapshot, args.size, **options)
+                captures = args.capture if len(args.capture) > 1 else args.capture[0]
+                info = capture_snapshot(captures, args.frame, args.snapshot, args.size, **options)
                 print(f"wrote {args.snapshot}: sensor {info['sensor_id']}, {info['frames']} frames shown, "
                       f"{info['points']} points in the last")
                 return 0
@@ -138,15 +150,17 @@ def run(args, capture_snapshot=None) -> int:
     if args.settings:
         return _err("--settings applies to --capture only")
     from .app import run_window
-    return run_window(args.sub or DEFAULT_ENDPOINT, sensor=args.sensor, size=args.size,
+    return run_window(args.sub or [DEFAULT_ENDPOINT], sensor=args.sensor, size=args.size,
                       stall_after_s=args.stall_s, keys=keys, **options)
 
 
 def _snapshot_sub(args, options, keys=None) -> int:
     from .snapshot import collect_from_sub, make_state, render_state, write_png
-    endpoint = args.sub or DEFAULT_ENDPOINT
+    endpoints = args.sub or [DEFAULT_ENDPOINT]
+    endpoint = " + ".join(endpoints)
     try:
-        msgs, info = collect_from_sub(endpoint, args.sensor, args.wait_s, options["persist_frames"], keys=keys)
+        msgs, info = collect_from_sub(endpoints, args.sensor, args.wait_s, options["persist_frames"], keys=keys,
+                                      every_sensor=options["view_frame"] == "platform" and not args.sensor)
     except Exception as exc:  # a malformed endpoint string, for one
         return _err(f"--sub {endpoint}: {exc}")
     sensor_id = (args.sensor or "").rstrip("/") or None

@@ -45,8 +45,8 @@ VIEW_KINDS = ("points", "rdmap", "sensor", "health")
 
 HEADER_MAX_BYTES = wire.MAX_HEADER_BYTES
 SENSOR_HEADER_MAX_BYTES = wire.MAX_SENSOR_HEADER_BYTES
-MAX_POINTS = 65536                       # 4 MiB of records: far beyond any one cloud the chain sends
-PAYLOAD_MAX_BYTES = MAX_POINTS * 64      # larger payloads are rejected as 'oversized'
+MAX_POINTS = 65536                       # about 5 MiB of records: far beyond any one cloud the chain sends
+PAYLOAD_MAX_BYTES = MAX_POINTS * wire.RECORD_DTYPE.itemsize  # larger payloads are rejected as 'oversized'
 MAX_PART_BYTES = wire.DEFAULT_MAX_PAYLOAD_BYTES  # the socket's per-part limit (ZMQ_MAXMSGSIZE)
 REDIAL_CHECK_S = 0.5   # a connection lost and not redialled by ZeroMQ within this is dialled again
 REDIAL_MAX_S = 4.0
@@ -107,11 +107,16 @@ class Feed:
     feed = Feed("tcp://127.0.0.1:5602"); feed.start(); ...; snap = feed.snapshot(); ...; feed.stop()
     """
 
-    def __init__(self, endpoint: str, sensor: str | None = None, poll_ms: int = 50, context=None,
+    def __init__(self, endpoint: str | list[str], sensor: str | None = None, poll_ms: int = 50, context=None,
                  keys: FeedKeys | None = None):
-        """keys: the daemon's public key and this side's key pair (keyfiles.load_feed_keys), for a
-        daemon that requires keys."""
-        self.endpoint = endpoint
+        """endpoint: one PUB endpoint, or a list (one SUB socket connects to all of them: several
+        daemons, one per sensor, share one picture). keys: the daemon's public key and this side's
+        key pair (keyfiles.load_feed_keys), for a daemon that requires keys (the same for every
+        endpoint)."""
+        self.endpoints = [endpoint] if isinstance(endpoint, str) else list(endpoint)
+        if not self.endpoints:
+            raise ValueError("no endpoint to subscribe to")
+        self.endpoint = " + ".join(self.endpoints)
         self.keys = keys
         self._lost_at: float | None = None   # our connection lost and not redialled by ZeroMQ (since)
         self._redials = 0
@@ -161,7 +166,8 @@ class Feed:
                 | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
             if self.keys is not None:
                 self.keys.apply(sock)
-            sock.connect(self.endpoint)
+            for ep in self.endpoints:
+                sock.connect(ep)
         except zmq.ZMQError:
             sock.close(0)
             raise
@@ -253,13 +259,15 @@ class Feed:
             with self._lock:
                 self._snap.protocol_errors += 1
         self._handshake_failed = False
-        try:
-            sock.disconnect(self.endpoint)
-        except zmq.ZMQError:
-            pass
+        for ep in self.endpoints:
+            try:
+                sock.disconnect(ep)
+            except zmq.ZMQError:
+                pass
         if self.keys is not None:
             self.keys.apply(sock)
-        sock.connect(self.endpoint)
+        for ep in self.endpoints:
+            sock.connect(ep)
 
     def ingest(self, parts) -> dict | None:
         """Decode one message into the latest-value slots (also usable without the thread)."""

@@ -91,9 +91,10 @@ def write_png(path: str | Path, rgba: np.ndarray) -> None:
 def make_state(messages, endpoint: str = "", sensor_id: str | None = None, color_by: str = "velocity",
                persist_frames: int = V.DEFAULT_PERSIST_FRAMES, sensor_height_m: float | None = None,
                velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, bad_by_reason: dict | None = None,
-               idle_s: float = 0.0, connected: bool | None = None) -> V.ViewerState:
+               idle_s: float = 0.0, connected: bool | None = None, view_frame: str = "sensor") -> V.ViewerState:
     state = V.ViewerState(endpoint=endpoint, sensor_id=sensor_id, persist=V.Persistence(persist_frames),
-                          color_by=color_by, sensor_height_m=sensor_height_m, velocity_span_mps=velocity_span_mps)
+                          color_by=color_by, sensor_height_m=sensor_height_m, velocity_span_mps=velocity_span_mps,
+                          frame=view_frame)
     for m in messages:
         state.ingest(m)
     if bad_by_reason:
@@ -120,26 +121,33 @@ def render_snapshot(messages, out_png: str | Path, size=(1280, 800), *, endpoint
                     persist_frames: int = V.DEFAULT_PERSIST_FRAMES,
                     sensor_height_m: float | None = None,
                     velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, footer: str = "",
-                    help_overlay: bool = False) -> np.ndarray:
+                    help_overlay: bool = False, view_frame: str = "sensor") -> np.ndarray:
     """Render decoded wire messages to a PNG file; returns the RGBA pixels written."""
     state = make_state(messages, endpoint=endpoint, sensor_id=sensor_id, color_by=color_by,
                        persist_frames=persist_frames, sensor_height_m=sensor_height_m,
-                       velocity_span_mps=velocity_span_mps)
+                       velocity_span_mps=velocity_span_mps, view_frame=view_frame)
     img, vc = render_state(state, size, footer=footer, help_overlay=help_overlay)
     vc.canvas.close()
     write_png(out_png, img[..., :3])
     return img
 
 
+SETTLE_S = 1.0   # every sensors: done once no new sensor has appeared for this long
+
+
 def collect_from_sub(endpoint: str, sensor: str | None = None, wait_s: float = 10.0,
-                     want_frames: int = V.DEFAULT_PERSIST_FRAMES, keys=None) -> tuple[list[dict], dict]:
+                     want_frames: int = V.DEFAULT_PERSIST_FRAMES, keys=None,
+                     every_sensor: bool = False) -> tuple[list[dict], dict]:
     """Listen on `endpoint` for at most `wait_s`: until a sensor description, a range-Doppler map and
-    `want_frames` point clouds of one sensor have come. Returns (messages in arrival order, info)."""
+    `want_frames` point clouds of one sensor have come (`every_sensor`: a description and
+    `want_frames` clouds of every sensor seen, none new for SETTLE_S). Returns (messages in arrival
+    order, info)."""
     from .feed import Feed
     msgs: list[dict] = []
     seen: dict[tuple[str, str], int] = {}
     clouds: dict[str, int] = {}
     t_end = time.monotonic() + wait_s
+    n_sensors, settled_s = 0, time.monotonic()
     with Feed(endpoint, sensor, keys=keys) as feed:
         snap = feed.snapshot()
         while time.monotonic() < t_end:
@@ -153,7 +161,14 @@ def collect_from_sub(endpoint: str, sensor: str | None = None, wait_s: float = 1
                             clouds[sid] = clouds.get(sid, 0) + 1
             done = [sid for sid, n in clouds.items() if n >= want_frames
                     and (sid, "sensor") in seen and (sid, "rdmap") in seen]
-            if done:
+            if every_sensor:
+                sids = {sid for sid, _ in seen}
+                if len(sids) != n_sensors:
+                    n_sensors, settled_s = len(sids), time.monotonic()
+                ready = all(clouds.get(sid, 0) >= want_frames and (sid, "sensor") in seen for sid in sids)
+                if done and ready and time.monotonic() - settled_s >= SETTLE_S:
+                    break
+            elif done:
                 break
             if feed.error is not None:
                 raise feed.error

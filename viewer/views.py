@@ -9,6 +9,11 @@ Panels (the names are ours):
   sensor-height line, the ground line below it and the elevation field of view;
 - range-Doppler: the daemon's map in dB over (radial velocity, range) with this frame's detections.
 
+In the platform frame (`--platform`, key p) the top and side views draw every sensor on the bus in
+one picture: each point at its `platform_x_m/y_m/z_m`, each sensor at its pose (the `sensor`
+summary's `pose`) with its field of view turned accordingly, on a Cartesian grid; the range-Doppler
+map, health and the status line stay those of one sensor (key n).
+
 Colour scales (ours): radial velocity on a diverging "tide" scale, approaching (negative, range
 shrinking) in blue-greens, receding (positive) in ambers, zero a neutral stone grey; SNR on a
 sequential "ember" scale; the range-Doppler map on a "deep water" scale from ink to pale sand.
@@ -21,6 +26,8 @@ from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
+
+from ..daemon import wire
 
 # ---- palette ------------------------------------------------------------------------------------
 BACKGROUND = (0.067, 0.075, 0.090, 1.0)       # graphite
@@ -39,6 +46,17 @@ DETECTION_RING = (1.00, 0.32, 0.60, 1.0)      # rose: apart from every hue of th
 STATUS_OK = (0.62, 0.86, 0.62, 1.0)
 STATUS_WAIT = (0.92, 0.80, 0.40, 1.0)
 STATUS_STALL = (1.00, 0.45, 0.38, 1.0)
+# one hue per sensor in the platform picture (ring of each point, its field of view, its mark, its
+# name), in the order of the sorted sensor ids; chosen apart from the velocity scale's ends
+SENSOR_COLORS = (
+    (0.40, 0.86, 0.78),   # jade
+    (0.98, 0.70, 0.36),   # apricot
+    (0.78, 0.58, 0.98),   # lilac
+    (0.92, 0.90, 0.42),   # citron
+    (0.98, 0.50, 0.62),   # coral
+    (0.56, 0.74, 1.00),   # cornflower
+)
+FRAMES = ("sensor", "platform")
 
 # (position on the scale in [-1, 1], RGB): approaching blue-greens, stone at zero, receding ambers
 VELOCITY_STOPS = (
@@ -125,19 +143,30 @@ def map_colors(values_db, lo_db: float, hi_db: float) -> np.ndarray:
     return out
 
 
-def bev_positions(points: np.ndarray) -> np.ndarray:
-    """[N, 2] float32 (x_m, y_m): the top view's data coordinates."""
+def xyz_fields(frame: str = "sensor") -> tuple[str, str, str]:
+    """The record fields of x, y, z in the sensor frame or in the platform frame."""
+    if frame == "sensor":
+        return "x_m", "y_m", "z_m"
+    if frame == "platform":
+        return "platform_x_m", "platform_y_m", "platform_z_m"
+    raise ValueError(f"frame = {frame!r}: one of {FRAMES}")
+
+
+def bev_positions(points: np.ndarray, frame: str = "sensor") -> np.ndarray:
+    """[N, 2] float32 (x, y): the top view's data coordinates, in the sensor or the platform frame."""
+    fx, fy, _ = xyz_fields(frame)
     out = np.empty((len(points), 2), np.float32)
-    out[:, 0] = points["x_m"]
-    out[:, 1] = points["y_m"]
+    out[:, 0] = points[fx]
+    out[:, 1] = points[fy]
     return out
 
 
-def side_positions(points: np.ndarray) -> np.ndarray:
-    """[N, 2] float32 (y_m, z_m): the side view's data coordinates."""
+def side_positions(points: np.ndarray, frame: str = "sensor") -> np.ndarray:
+    """[N, 2] float32 (y, z): the side view's data coordinates, in the sensor or the platform frame."""
+    _, fy, fz = xyz_fields(frame)
     out = np.empty((len(points), 2), np.float32)
-    out[:, 0] = points["y_m"]
-    out[:, 1] = points["z_m"]
+    out[:, 0] = points[fy]
+    out[:, 1] = points[fz]
     return out
 
 
@@ -273,6 +302,108 @@ def side_grid(max_range_m: float, fov_half_elevation_deg: float,
                     extent=(y0, z0, y_end - y0 + 0.02 * max_range_m, z_top - z0))
 
 
+# ---- the platform picture -------------------------------------------------------------------------
+
+@dataclass
+class SensorPlace:
+    """One sensor in the platform picture: where it sits and where it looks."""
+    sensor_id: str
+    rgb: tuple[float, float, float]
+    position_m: np.ndarray          # [3], platform frame
+    rotation: np.ndarray            # [3, 3], sensor -> platform
+    max_range_m: float
+    fov_half_azimuth_deg: float
+    fov_half_elevation_deg: float
+
+
+def pose_of(summary: dict) -> tuple[np.ndarray, np.ndarray]:
+    """(position [3], rotation [3, 3]) from a `sensor` summary's `pose` (identity when absent)."""
+    pose = summary.get("pose") or {}
+    pos = np.asarray(pose.get("position_m", (0.0, 0.0, 0.0)), np.float64).reshape(3)
+    rot = wire.pose_rotation(float(pose.get("yaw_deg", 0.0)), float(pose.get("pitch_deg", 0.0)),
+                             float(pose.get("roll_deg", 0.0)))
+    return pos, rot
+
+
+def sensor_place(sensor_id: str, summary: dict, index: int) -> SensorPlace:
+    pos, rot = pose_of(summary)
+    return SensorPlace(sensor_id, SENSOR_COLORS[index % len(SENSOR_COLORS)], pos, rot,
+                       float(summary["max_range_m"]), float(summary["fov_half_azimuth_deg"]),
+                       float(summary["fov_half_elevation_deg"]))
+
+
+def _to_platform(place: SensorPlace, xyz: np.ndarray) -> np.ndarray:
+    return np.asarray(xyz, np.float64) @ place.rotation.T + place.position_m
+
+
+def fov_wedge_platform(place: SensorPlace, n: int = 48) -> np.ndarray:
+    """The azimuth field of view (at zero elevation, to the maximum range) as a closed polyline [K, 3]
+    in the platform frame: the sensor, the arc, back to the sensor."""
+    fov = math.radians(min(max(place.fov_half_azimuth_deg, 1.0), 90.0))
+    az = np.linspace(-fov, fov, n)
+    arc_s = np.stack([place.max_range_m * np.sin(az), place.max_range_m * np.cos(az), np.zeros(n)], 1)
+    poly = np.concatenate([[[0.0, 0.0, 0.0]], arc_s, [[0.0, 0.0, 0.0]]])
+    return _to_platform(place, poly)
+
+
+def elevation_edges_platform(place: SensorPlace) -> np.ndarray:
+    """The two edges of the elevation field of view (boresight plane), as segments [4, 3] from the sensor."""
+    fe = math.radians(min(max(place.fov_half_elevation_deg, 0.5), 89.0))
+    r = place.max_range_m
+    ends = np.array([[0.0, r * math.cos(fe), r * math.sin(fe)], [0.0, r * math.cos(fe), -r * math.sin(fe)]])
+    origin = np.zeros(3)
+    return _to_platform(place, np.array([origin, ends[0], origin, ends[1]]))
+
+
+@dataclass
+class PlatformGrid:
+    grid: np.ndarray             # segments [2M, 2], the top view's Cartesian grid
+    wedges: list[np.ndarray]     # per sensor, segments [2K, 2] of its field of view (top view)
+    side_edges: list[np.ndarray]  # per sensor, segments [4, 2] (y, z) of its elevation field of view
+    marks_top: np.ndarray        # [S, 2] sensor positions (x, y)
+    marks_side: np.ndarray       # [S, 2] sensor positions (y, z)
+    labels_top: list[Label]      # sensor names, a key in the top left corner
+    ground_z_m: float
+    step_m: float
+    extent_top: tuple[float, float, float, float]
+    extent_side: tuple[float, float, float, float]
+
+
+def platform_grid(places: list[SensorPlace], ground_z_m: float) -> PlatformGrid:
+    """The top and side views of the platform picture: a Cartesian grid every nice step over all the
+    sensors' fields of view and the platform origin, each sensor's wedge and elevation edges, marks,
+    names, and the views' extents."""
+    wedges3 = [fov_wedge_platform(p) for p in places]
+    edges3 = [elevation_edges_platform(p) for p in places]
+    pts = np.concatenate([np.zeros((1, 3))] + wedges3) if places else np.array([[0.0, 0.0, 0.0], [0.0, 20.0, 0.0]])
+    x0, x1 = float(pts[:, 0].min()), float(pts[:, 0].max())
+    y0, y1 = float(pts[:, 1].min()), float(pts[:, 1].max())
+    span = max(x1 - x0, y1 - y0, 1.0)
+    pad = 0.06 * span
+    x0, x1, y0, y1 = x0 - pad, x1 + pad, y0 - pad, y1 + pad
+    step = nice_step(span, 6)
+    xs = np.arange(math.ceil(x0 / step) * step, x1 + 1e-9, step)
+    ys = np.arange(math.ceil(y0 / step) * step, y1 + 1e-9, step)
+    seg = [[[x, y0], [x, y1]] for x in xs] + [[[x0, y], [x1, y]] for y in ys]
+    grid = np.asarray(seg, np.float32).reshape(-1, 2)
+    wedges = [polyline_segments(w[:, :2]) for w in wedges3]
+    side_edges = [e[:, 1:].astype(np.float32) for e in edges3]
+    marks = np.array([p.position_m for p in places], np.float64).reshape(-1, 3)
+    # the sensors' names, a list in their hues in the grid's top left corner: the key to the marks
+    labels = [Label(f"sensor {p.sensor_id}", (x0 + 0.02 * span, y1 - 0.05 * span - k * 0.05 * span),
+                    ("left", "center")) for k, p in enumerate(places)]
+    side_pts = np.concatenate([np.array([[0.0, 0.0, ground_z_m]])] + edges3) if places else np.zeros((1, 3))
+    sy0 = min(float(side_pts[:, 1].min()), y0)
+    sy1 = max(float(side_pts[:, 1].max()), y1)
+    z_top = max(float(side_pts[:, 2].max()), ground_z_m + 5.0)
+    depth = max(0.6, 0.04 * (sy1 - sy0))
+    return PlatformGrid(grid=grid, wedges=wedges, side_edges=side_edges,
+                        marks_top=marks[:, :2].astype(np.float32), marks_side=marks[:, 1:].astype(np.float32),
+                        labels_top=labels, ground_z_m=float(ground_z_m), step_m=step,
+                        extent_top=(x0, y0, x1 - x0, y1 - y0),
+                        extent_side=(sy0, ground_z_m - depth, sy1 - sy0, z_top + 1.0 - (ground_z_m - depth)))
+
+
 # ---- range-Doppler --------------------------------------------------------------------------------
 
 def rdmap_geometry(header: dict) -> tuple[float, float, float, float]:
@@ -361,17 +492,35 @@ class StyledPoints:
     sizes: np.ndarray    # [N]
 
 
+COLOR_BY = ("velocity", "snr", "sensor")
+
+
 def style_points(points: np.ndarray, color_by: str = "velocity",
                  velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
-                 snr_range_db=DEFAULT_SNR_RANGE_DB, alpha: float = 1.0, size_scale: float = 1.0) -> StyledPoints:
+                 snr_range_db=DEFAULT_SNR_RANGE_DB, alpha: float = 1.0, size_scale: float = 1.0,
+                 frame: str = "sensor", sensor_rgb=None) -> StyledPoints:
+    """Positions, colours and sizes of one cloud. color_by 'sensor' paints every point in
+    `sensor_rgb` (the platform picture's hue of its sensor)."""
     if color_by == "velocity":
         colors = velocity_colors(points["velocity_mps"], velocity_span_mps, alpha)
     elif color_by == "snr":
         colors = snr_colors(points["snr_db"], *snr_range_db, alpha=alpha)
+    elif color_by == "sensor":
+        colors = np.empty((len(points), 4), np.float32)
+        colors[:, :3] = sensor_rgb if sensor_rgb is not None else SENSOR_COLORS[0]
+        colors[:, 3] = alpha
     else:
-        raise ValueError(f"color_by = {color_by!r}: 'velocity' or 'snr'")
-    return StyledPoints(bev_positions(points), side_positions(points), colors,
+        raise ValueError(f"color_by = {color_by!r}: one of {COLOR_BY}")
+    return StyledPoints(bev_positions(points, frame), side_positions(points, frame), colors,
                         snr_sizes(points["snr_db"], *snr_range_db) * np.float32(size_scale))
+
+
+def _concat_styled(parts: list[StyledPoints]) -> StyledPoints:
+    if not parts:
+        e2 = np.empty((0, 2), np.float32)
+        return StyledPoints(e2, e2.copy(), np.empty((0, 4), np.float32), np.empty(0, np.float32))
+    return StyledPoints(np.concatenate([p.top for p in parts]), np.concatenate([p.side for p in parts]),
+                        np.concatenate([p.colors for p in parts]), np.concatenate([p.sizes for p in parts]))
 
 
 def fade(age: int, n_frames: int) -> tuple[float, float]:
@@ -415,20 +564,21 @@ class Persistence:
         """(frame seq, points) of every kept cloud, oldest first: the order `merged` draws them in."""
         return list(self._clouds)
 
-    def merged(self, color_by: str = "velocity", velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
-               snr_range_db=DEFAULT_SNR_RANGE_DB) -> StyledPoints:
+    def styled_parts(self, color_by: str = "velocity", velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
+                     snr_range_db=DEFAULT_SNR_RANGE_DB, frame: str = "sensor", sensor_rgb=None) -> list[StyledPoints]:
         parts = []
         n = len(self._clouds)
         for k, (_, pts) in enumerate(self._clouds):
             if len(pts) == 0:
                 continue
             alpha, scale = fade(n - 1 - k, self.n_frames)
-            parts.append(style_points(pts, color_by, velocity_span_mps, snr_range_db, alpha, scale))
-        if not parts:
-            e2 = np.empty((0, 2), np.float32)
-            return StyledPoints(e2, e2.copy(), np.empty((0, 4), np.float32), np.empty(0, np.float32))
-        return StyledPoints(np.concatenate([p.top for p in parts]), np.concatenate([p.side for p in parts]),
-                            np.concatenate([p.colors for p in parts]), np.concatenate([p.sizes for p in parts]))
+            parts.append(style_points(pts, color_by, velocity_span_mps, snr_range_db, alpha, scale, frame,
+                                      sensor_rgb))
+        return parts
+
+    def merged(self, color_by: str = "velocity", velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS,
+               snr_range_db=DEFAULT_SNR_RANGE_DB, frame: str = "sensor", sensor_rgb=None) -> StyledPoints:
+        return _concat_styled(self.styled_parts(color_by, velocity_span_mps, snr_range_db, frame, sensor_rgb))
 
 
 # ---- status and help ------------------------------------------------------------------------------
@@ -436,10 +586,11 @@ class Persistence:
 KEYS: tuple[tuple[str, str], ...] = (
     ("space", "pause / resume"),
     ("right or .", "single step (while paused)"),
-    ("c", "colour points by radial velocity / SNR"),
+    ("c", "colour points by radial velocity / SNR (/ sensor)"),
     ("[  ]", "velocity colour span down / up"),
     ("-  +", "persistence: fewer / more frames"),
-    ("n", "next sensor on the bus"),
+    ("n", "next sensor on the bus (its map and health)"),
+    ("p", "platform frame: every sensor in one picture / one sensor"),
     ("r", "reset zoom and pan"),
     ("s", "save the window as cubecast-view-DATE-TIME.png here"),
     ("h or ?", "show / hide this help"),
@@ -495,15 +646,23 @@ def _pm(value: float, sigma: float, digits: int, unit: str) -> str:
     return f"{value:.{digits}f} ± {sigma:.2g} {unit}".replace("-", "−")
 
 
-def point_lines(p, seq) -> list[str]:
-    """What a click on a point shows: its numbers with their standard deviations."""
-    return [f"POINT · frame {seq if seq is not None else '–'}",
+def point_lines(p, seq, sensor_id: str | None = None) -> list[str]:
+    """What a click on a point shows: its numbers with their standard deviations (with `sensor_id`,
+    as in the platform picture: the sensor's name and the point in the platform frame too)."""
+    head = f"POINT · frame {seq if seq is not None else '–'}"
+    if sensor_id is not None:
+        head = f"POINT · sensor {sensor_id} · frame {seq if seq is not None else '–'}"
+        plat = [f"platform x {float(p['platform_x_m']):.2f}  y {float(p['platform_y_m']):.2f}  "
+                f"z {float(p['platform_z_m']):.2f} m".replace("-", "−")]
+    else:
+        plat = []
+    return [head,
             f"range {_pm(float(p['range_m']), float(p['sigma_range_m']), 3, 'm')}",
             f"radial velocity {_pm(float(p['velocity_mps']), float(p['sigma_velocity_mps']), 3, 'm/s')}",
             f"azimuth {_pm(float(p['azimuth_deg']), float(p['sigma_azimuth_deg']), 2, '°')}",
             f"elevation {_pm(float(p['elevation_deg']), float(p['sigma_elevation_deg']), 2, '°')}",
             f"SNR {float(p['snr_db']):.1f} dB per channel",
-            f"x {float(p['x_m']):.2f}  y {float(p['y_m']):.2f}  z {float(p['z_m']):.2f} m".replace("-", "−")]
+            f"x {float(p['x_m']):.2f}  y {float(p['y_m']):.2f}  z {float(p['z_m']):.2f} m".replace("-", "−")] + plat
 
 
 def cell_lines(rdmap_msg: dict, cell: tuple[int, int], own_points: np.ndarray | None) -> list[str]:
@@ -531,11 +690,21 @@ def cell_lines(rdmap_msg: dict, cell: tuple[int, int], own_points: np.ndarray | 
 
 
 @dataclass
+class OtherSensor:
+    """In the platform picture: what the viewer keeps of a sensor other than the one shown."""
+    persist: Persistence
+    sensor_msg: dict | None = None
+    run: str | None = None
+
+
+@dataclass
 class ViewerState:
     """Everything the canvas shows, fed message by message (from a Feed snapshot or a list)."""
 
     endpoint: str = ""
     sensor_id: str | None = None
+    frame: str = "sensor"            # "platform": every sensor's points in one picture (FRAMES)
+    others: dict = field(default_factory=dict)   # platform frame: sensor_id -> OtherSensor (not the shown one)
     persist: Persistence = field(default_factory=Persistence)
     color_by: str = "velocity"
     velocity_span_mps: float = DEFAULT_VELOCITY_SPAN_MPS
@@ -562,11 +731,12 @@ class ViewerState:
 
     def ingest(self, msg: dict) -> bool:
         """Take one decoded message; True when the display needs updating. Messages of another
-        sensor than the one shown are skipped (the first sensor seen is shown by default)."""
+        sensor than the one shown are skipped (the first sensor seen is shown by default), except
+        in the platform frame, where the other sensors' points and descriptions are kept too."""
         if self.sensor_id is None:
             self.sensor_id = msg["sensor_id"]
         if msg["sensor_id"] != self.sensor_id:
-            return False
+            return self._ingest_other(msg)
         self.any_message = True
         kind = msg["kind"]
         if kind == "points":
@@ -593,6 +763,83 @@ class ViewerState:
         else:
             return False
         return True
+
+    def _ingest_other(self, msg: dict) -> bool:
+        if self.frame != "platform" or msg["kind"] not in ("points", "sensor"):
+            return False
+        o = self.others.get(msg["sensor_id"])
+        if o is None:
+            o = self.others[msg["sensor_id"]] = OtherSensor(Persistence(self.persist.n_frames))
+        if msg["kind"] == "sensor":
+            o.sensor_msg = msg
+            return True
+        h = msg["header"]
+        if o.run is not None and h["run"] != o.run:
+            o.persist.clear()
+        o.run = h["run"]
+        o.persist.push(msg["data"], h["seq"])
+        return True
+
+    def set_persist_frames(self, n_frames: int) -> None:
+        self.persist.set_frames(n_frames)
+        for o in self.others.values():
+            o.persist.set_frames(n_frames)
+
+    def sensor_ids(self) -> list[str]:
+        """Every sensor of the picture, sorted (the shown one and, in the platform frame, the others)."""
+        ids = set(self.others) if self.frame == "platform" else set()
+        if self.sensor_id is not None:
+            ids.add(self.sensor_id)
+        return sorted(ids)
+
+    def sensor_rgb(self, sensor_id: str) -> tuple[float, float, float]:
+        ids = self.sensor_ids()
+        k = ids.index(sensor_id) if sensor_id in ids else 0
+        return SENSOR_COLORS[k % len(SENSOR_COLORS)]
+
+    def clouds_by_sensor(self) -> list[tuple[str, Persistence]]:
+        """(sensor id, its kept clouds) of every sensor drawn: the shown one only in the sensor frame."""
+        out = []
+        for sid in self.sensor_ids():
+            if sid == self.sensor_id:
+                out.append((sid, self.persist))
+            elif sid in self.others:
+                out.append((sid, self.others[sid].persist))
+        return out
+
+    def places(self) -> list[SensorPlace]:
+        """Where each sensor with a known description sits on the platform, in sensor-id order."""
+        out = []
+        for k, sid in enumerate(self.sensor_ids()):
+            msg = self.sensor_msg if sid == self.sensor_id else self.others[sid].sensor_msg
+            if msg is not None:
+                out.append(sensor_place(sid, msg["header"]["summary"], k))
+        return out
+
+    @property
+    def platform_ground_z_m(self) -> float:
+        """The ground's height in the platform frame: the shown sensor's height on the platform less
+        its height above the ground."""
+        pos, _ = pose_of(self.summary)
+        return float(pos[2]) - self.ground_height_m
+
+    def styled(self) -> tuple[StyledPoints, np.ndarray]:
+        """What the top and side views draw, and each marker's edge colour: in the sensor frame the
+        face colour darkened; in the platform frame each point ringed in its sensor's hue."""
+        parts, edges = [], []
+        for sid, persist in self.clouds_by_sensor():
+            rgb = self.sensor_rgb(sid)
+            for part in persist.styled_parts(self.color_by, self.velocity_span_mps, self.snr_range_db,
+                                             self.frame, rgb):
+                edge = part.colors.copy()
+                if self.frame == "platform" and self.color_by != "sensor":
+                    edge[:, :3] = rgb
+                else:
+                    edge[:, :3] *= 0.35
+                parts.append(part)
+                edges.append(edge)
+        styled = _concat_styled(parts)
+        return styled, (np.concatenate(edges) if edges else np.empty((0, 4), np.float32))
 
     def map_points(self) -> np.ndarray | None:
         """The points of the range-Doppler map's own frame (the map's `seq`), which the map's rings
@@ -635,6 +882,9 @@ def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple
                                                    else "  (not connected)")
         return f"waiting for data on {state.endpoint or '(no endpoint)'}{conn}", "wait"
     parts = [f"sensor {state.sensor_id}"]
+    if state.frame == "platform":
+        n = len(state.sensor_ids())
+        parts = [f"platform frame, {n} sensor{'' if n == 1 else 's'}", f"map and health of {state.sensor_id}"]
     pm, hm = state.points_msg, state.health_msg
     parts.append(f"frame {pm['header']['seq']}" if pm else "frame –")
     fps = hm["header"]["fps"] if hm else state.fps_measured()
