@@ -153,22 +153,8 @@ def test_colour_by_sensor_and_persistence_of_the_others():
 
 # ---- drawn offscreen -------------------------------------------------------------------------------
 
-@pytest.fixture(scope="module")
-def canvas():
-    from cubecast.viewer.snapshot import OffscreenUnavailable, offscreen_backend
-    try:
-        offscreen_backend()
-    except OffscreenUnavailable as exc:
-        pytest.fail(f"no offscreen GL context: {exc}")
-    from cubecast.viewer.canvas import ViewerCanvas
-    vc = ViewerCanvas(size=(1280, 800), show=False, dpi=96)
-    yield vc
-    vc.canvas.close()
-
-
-def _patch(img, px, r: int = 1) -> np.ndarray:
-    c, rr = int(round(px[0])), int(round(px[1]))
-    return np.median(img[rr - r: rr + r + 1, c - r: c + r + 1].reshape(-1, 3), axis=0)
+# the module-scoped offscreen canvas (fails without a GL context) and the pixel patch reader
+from tests.test_viewer_render import _patch, canvas  # noqa: E402,F401
 
 
 def test_offscreen_platform_picture_puts_each_sensor_and_point_at_its_place(canvas):
