@@ -23,6 +23,14 @@ started with another sensor description); the worker builds and warms up its Pip
 ready; only then does serve count its capacity. A task carries the ADC payload exactly as received
 from the source (zero-copy).
 
+Live settings changes (daemon/retune.py asks; workproto.py "Settings epochs" has the protocol):
+begin_change sends `prepare` to every ready worker (and to a worker that becomes ready while the
+change is pending); change_state says whether all have answered, whether one refused (its reason),
+or whether time ran out; commit_change switches serve to the new epoch (tasks from then on carry it,
+`commit` goes to the workers, the welcome of later workers carries the new settings) and
+abort_change sends `abort` (nobody switches). Results carry the epoch of their task; one that does
+not is counted invalid and its frame lost.
+
 Re-sequencing: serve numbers tasks in dispatch order (which is arrival order) and publishes results
 strictly in that order from a bounded reorder window. A task whose worker died (its local process
 exited, its connection dropped, or it went silent) or whose result did not come back within the task
@@ -56,7 +64,7 @@ import subprocess
 import sys
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import zmq
 from zmq.utils.monitor import recv_monitor_message
@@ -66,8 +74,10 @@ from .errors import CubecastError
 from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ServerKeys
 from .logs import RateLimitFilter, log_limited, uses_json_lines
 from .netio import PARENT_PID_ENV, bind_socket, local_endpoint
+from .settings import ProcessingSettings
 from .workproto import (MAX_CAPACITY, MAX_CONTROL_BYTES, ProtocolError, Result, WorkerConfig, decode_control,
-                        decode_hello, decode_result, encode_refuse, encode_task, encode_welcome, encode_who)
+                        decode_hello, decode_prepared, decode_result, encode_abort, encode_commit, encode_prepare,
+                        encode_refuse, encode_task, encode_welcome, encode_who)
 
 log = logging.getLogger(__name__)
 
@@ -76,6 +86,8 @@ DEFAULT_REORDER_WINDOW = 64
 STARTUP_TIMEOUT_S = 120.0  # local workers: numba loads from the cache serve filled, but a loaded host is slow
 RESTART_DELAY_S = (1.0, 30.0)  # local worker restarts: first delay, doubling up to the second
 STOPPED = "it stopped"  # a worker's clean exit (bye)
+CHANGE_TIMEOUT_S = 60.0  # a settings change every worker has not answered within this is refused
+RESULT_MARGIN_BYTES = 2 << 20  # the results socket's message limit: 4 x the records of the settings, plus this
 
 SENT, DONE, LOST = 0, 1, 2
 
@@ -94,6 +106,7 @@ class Pending:
     want_rdmap: bool
     state: int = SENT
     result: Result | None = None
+    epoch: int = 0  # the settings epoch it was dispatched in
 
 
 @dataclass
@@ -104,6 +117,7 @@ class WorkerInfo:
     host: str
     capacity: int
     local_slot: int | None
+    live_settings: bool = False  # it follows prepare / commit / abort
     state: str = "welcomed"  # welcomed -> ready -> gone
     outstanding: set = field(default_factory=set)
     tasks_done: int = 0
@@ -117,6 +131,19 @@ class WorkerInfo:
     @property
     def alive(self) -> bool:
         return self.state == "ready"
+
+
+@dataclass
+class LiveChange:
+    """A settings change sent to the workers, until committed or aborted."""
+
+    epoch: int
+    config: WorkerConfig
+    started: float
+    timeout_s: float
+    asked: set = field(default_factory=set)  # worker keys sent the prepare
+    waiting: set = field(default_factory=set)  # asked and not answered yet
+    refusals: list = field(default_factory=list)
 
 
 @dataclass
@@ -176,6 +203,9 @@ class WorkerPool:
         self._dirty = True
         self._welcome_parts = encode_welcome(self.session, config)
         self._ignored_log = RateLimitFilter(log_interval_s)
+        self.epoch = config.epoch  # the settings epoch tasks are dispatched in
+        self.change: LiveChange | None = None
+        self.max_result_bytes = 0  # set by bind
 
     # ---- set-up and tear-down --------------------------------------------------------------
     def bind(self, ctx: zmq.Context, wake: zmq.Socket | None = None) -> None:
@@ -187,9 +217,8 @@ class WorkerPool:
         self.router.setsockopt(zmq.SNDHWM, 4 * MAX_CAPACITY)
         self.pull = ctx.socket(zmq.PULL)
         self.pull.setsockopt(zmq.LINGER, 0)
-        s = self.config.settings
-        max_records = s.max_points * s.angle_max_peaks * RECORD_DTYPE.itemsize
-        self.pull.setsockopt(zmq.MAXMSGSIZE, 4 * max_records + (2 << 20))
+        self.max_result_bytes = 4 * self.result_bytes(self.config.settings) + RESULT_MARGIN_BYTES
+        self.pull.setsockopt(zmq.MAXMSGSIZE, self.max_result_bytes)
         if self.keys is not None:
             self.keys.start(ctx)  # the authenticator of this context, before anything can connect
         for sock in (self.router, self.pull):
@@ -212,6 +241,11 @@ class WorkerPool:
         if wake is not None:
             self.wake = wake
             self.poller.register(wake, zmq.POLLIN)
+
+    @staticmethod
+    def result_bytes(settings: ProcessingSettings) -> int:
+        """The largest records payload of one result under these settings."""
+        return settings.max_points * settings.angle_max_peaks * RECORD_DTYPE.itemsize
 
     def start_local(self) -> None:
         for slot in self.slots:
@@ -304,7 +338,8 @@ class WorkerPool:
             if w is None:
                 return False
             task_id = self.next_task_id
-            parts = [w.key] + encode_task(self.session, task_id, h, msg.payload, received_unix, want_rdmap)
+            parts = [w.key] + encode_task(self.session, task_id, h, msg.payload, received_unix, want_rdmap,
+                                          self.epoch)
             try:
                 self.router.send_multipart(parts, flags=zmq.NOBLOCK, copy=False)
             except zmq.ZMQError as exc:  # EHOSTUNREACH (gone) or EAGAIN (its pipe is full): not usable
@@ -314,7 +349,7 @@ class WorkerPool:
             w.outstanding.add(task_id)
             w.last_dispatch = now
             self.pending[task_id] = Pending(task_id, h["seq"], h["run"], h["timestamp_s"], t_recv, w.key, now,
-                                            want_rdmap)
+                                            want_rdmap, epoch=self.epoch)
             self._dirty = True
             return True
 
@@ -413,12 +448,23 @@ class WorkerPool:
                 if h.get("session") != self.session or h.get("digest") != self.config.sensor.digest:
                     raise ProtocolError(f"ready for session {h.get('session')!r:.40} digest "
                                         f"{h.get('digest')!r:.40}")
+                if h.get("epoch", 0) != self.epoch and w.state != "ready":
+                    # welcomed before a settings change was committed: the welcome of now
+                    log.info("cubecast serve: worker '%s' is ready for settings epoch %r; sending it epoch %d",
+                             w.name, h.get("epoch"), self.epoch)
+                    if not self._send_to(key, self._welcome_parts):
+                        self._gone(w, "cannot send it the welcome")
+                    return
                 if w.state != "ready":
                     w.state = "ready"
                     self._dirty = True
                     where = "local" if w.local_slot is not None else f"on {w.host}"
                     log.info("cubecast serve: worker '%s' (%s, pid %d) ready, capacity %d", w.name, where, w.pid,
                              w.capacity)
+                    if self.change is not None:
+                        self._ask(w)
+            elif kind == b"prepared":
+                self._prepared(w, decode_prepared(h))
             elif kind == b"beat":
                 if h.get("session") != self.session:
                     self._send_to(key, encode_who(self.session))
@@ -451,7 +497,7 @@ class WorkerPool:
             self._gone(old, "it introduced itself again")
         slot = next((sl.index for sl in self.slots if sl.proc is not None and sl.proc.pid == pid
                      and host == socket.gethostname()[:255]), None)
-        w = WorkerInfo(key, name, pid, host, capacity, slot, last_heard=now, fd=fd)
+        w = WorkerInfo(key, name, pid, host, capacity, slot, hello.live_settings, last_heard=now, fd=fd)
         if old is not None:
             w.tasks_done, w.tasks_lost = old.tasks_done, old.tasks_lost
         self.workers[key] = w
@@ -474,10 +520,11 @@ class WorkerPool:
         if session != self.session or w is None or entry is None or entry.state != SENT or entry.worker != key:
             self.results_discarded += 1  # late (the task was counted lost) or from another serve session
             return
-        if res.seq != entry.seq:
+        if res.seq != entry.seq or res.epoch != entry.epoch:
             self.results_invalid += 1
-            log.warning("cubecast serve: worker '%s' answered task %d with seq %d; the task was frame %d; counted as "
-                        "lost", w.name, res.task_id, res.seq, entry.seq)
+            log.warning("cubecast serve: worker '%s' answered task %d with seq %d of settings epoch %d; the task was "
+                        "frame %d of epoch %d; counted as lost", w.name, res.task_id, res.seq, res.epoch, entry.seq,
+                        entry.epoch)
             self._lose(entry)
             return
         w.last_heard = time.monotonic()
@@ -485,6 +532,71 @@ class WorkerPool:
         w.tasks_done += 1
         entry.state, entry.result = DONE, res
         self._dirty = True
+
+    # ---- live settings changes ------------------------------------------------------------------
+    def begin_change(self, epoch: int, settings: ProcessingSettings, timeout_s: float = CHANGE_TIMEOUT_S) -> None:
+        """Send `prepare` for these settings to every ready worker (serve built them already, so they
+        are valid for the sensor); poll change_state() until it is not 'pending'."""
+        self.change = LiveChange(epoch, replace(self.config, settings=settings, epoch=epoch), time.monotonic(),
+                                 timeout_s)
+        for w in list(self.workers.values()):
+            if w.alive:
+                self._ask(w)
+
+    def _ask(self, w: WorkerInfo) -> None:
+        c = self.change
+        where = "local" if w.local_slot is not None else f"on {w.host}"
+        if not w.live_settings:
+            c.refusals.append(f"worker '{w.name}' ({where}) is a cubecast that cannot change settings while it runs; "
+                              "restart it with the version serve runs")
+        elif self._send_to(w.key, encode_prepare(self.session, c.epoch, c.config.settings)):
+            c.asked.add(w.key)
+            c.waiting.add(w.key)
+        else:
+            self._gone(w, "cannot send it the settings change")
+
+    def _prepared(self, w: WorkerInfo, h) -> None:
+        c = self.change
+        if c is None or h.session != self.session or h.epoch != c.epoch or w.key not in c.waiting:
+            return  # the answer to a change that was aborted or is done
+        c.waiting.discard(w.key)
+        if h.error is not None:
+            where = "local" if w.local_slot is not None else f"on {w.host}"
+            c.refusals.append(f"worker '{w.name}' ({where}) cannot build the chain: {h.error}")
+
+    def change_state(self, now: float | None = None) -> tuple[str, str]:
+        """('pending', ''), ('ready', '') or ('refused', reason) of the change begun."""
+        c = self.change
+        now = time.monotonic() if now is None else now
+        c.waiting = {k for k in c.waiting if k in self.workers and self.workers[k].alive}  # the gone need not answer
+        if c.refusals:
+            return "refused", "; ".join(c.refusals)
+        if not c.waiting:
+            return "ready", ""
+        if now - c.started > c.timeout_s:
+            names = ", ".join(sorted(f"'{self.workers[k].name}'" for k in c.waiting))
+            return "refused", f"worker {names} did not answer the settings change within {c.timeout_s:g} s"
+        return "pending", ""
+
+    def commit_change(self) -> None:
+        """From now on tasks carry the new epoch; every worker asked switches (after its old tasks)."""
+        c, self.change = self.change, None
+        self.config, self.epoch = c.config, c.epoch
+        self._welcome_parts = encode_welcome(self.session, self.config)
+        for key in sorted(c.asked):
+            w = self.workers.get(key)
+            if w is not None and w.alive and not self._send_to(key, encode_commit(self.session, c.epoch)):
+                self._gone(w, "cannot send it the settings commit")
+
+    def abort_change(self) -> None:
+        """Every worker asked drops what it built; the running epoch goes on."""
+        c, self.change = self.change, None
+        if c is None:
+            return
+        for key in sorted(c.asked):
+            w = self.workers.get(key)
+            if w is not None and w.alive:
+                self._send_to(key, encode_abort(self.session, c.epoch))
 
     # ---- failures ----------------------------------------------------------------------------
     def _lose(self, entry: Pending) -> None:

@@ -9,7 +9,10 @@ two endpoints, and workers can come and go while serve runs:
 The worker introduces itself (hello), is told the whole configuration (welcome: sensor description,
 processing settings, calibration; daemon/workproto.py), builds its Pipeline, warms it up and says
 ready; then it processes tasks until stopped, sending a heartbeat when idle. The records of a task
-are exactly those serve computes in-process. A worker that serve no longer knows (serve restarted,
+are exactly those serve computes in-process. A settings change (live tuning) arrives as `prepare`:
+the new chain is built in a thread while tasks go on with the running one, the worker answers
+`prepared` (or the error that stopped the build) and switches only on serve's `commit`, which comes
+after the last task of the old settings (workproto.py, "Settings epochs"). A worker that serve no longer knows (serve restarted,
 or thought it gone) is asked to introduce itself again; a refused worker stops with serve's reason.
 
 Local workers (started by serve) skip the CRC re-check: serve checked it on receipt, and over
@@ -18,6 +21,7 @@ loopback for a large frame it costs a quarter of the chain's time. They die with
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import os
@@ -38,15 +42,32 @@ from .keys import HANDSHAKE_FAILED_EVENTS, LOCAL_KEYS_ENV, ClientKeys
 from .logs import RateLimitFilter, log_limited
 from .netio import PARENT_PID_ENV, connect_socket, die_with_parent, stop_on_signals
 from .sensor import Sensor, load_sensor
-from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_NAME_CHARS, ProtocolError, Task, WorkerConfig, decode_refuse,
-                        decode_task, decode_welcome, encode_beat, encode_bye, encode_hello, encode_ready,
-                        encode_result, task_ids)
+from .workproto import (HEARTBEAT_S, MAX_CAPACITY, MAX_NAME_CHARS, ProtocolError, Task, WorkerConfig, decode_epoch,
+                        decode_prepare, decode_refuse, decode_task, decode_welcome, encode_beat, encode_bye,
+                        encode_hello, encode_prepared, encode_ready, encode_result, task_ids)
 
 log = logging.getLogger(__name__)
 
 DEFAULT_CAPACITY = 2  # tasks a worker holds: one being processed, one waiting
 HELLO_RETRY_S = 1.0
 MAX_HANDSHAKE_FAILURES = 3  # undecipherable handshakes in a row before a worker gives up
+BUILDING_POLL_S = 0.02  # while a chain is built aside: how often the loop looks whether it is done
+
+
+class _Prepared:
+    """A chain for another settings epoch, built in a thread (pipeline or error set when done)."""
+
+    def __init__(self, epoch: int, config: WorkerConfig):
+        self.epoch, self.config = epoch, config
+        self.pipeline: Pipeline | None = None
+        self.error: str | None = None
+        self.warm_up_s = 0.0
+        self.answered = False
+        self.thread: threading.Thread | None = None
+
+    @property
+    def done(self) -> bool:
+        return self.thread is not None and not self.thread.is_alive()
 
 
 def compute(pipeline: Pipeline, task: Task, canon: np.ndarray) -> tuple[np.ndarray, tuple | None]:
@@ -89,11 +110,14 @@ class Worker:
         self.session: str | None = None
         self.config: WorkerConfig | None = None
         self.pipeline = None
+        self.epoch = 0  # the settings epoch of self.pipeline
+        self._prepared: _Prepared | None = None
         self._canon: np.ndarray | None = None
         self.tasks_done = 0
         self.tasks_failed = 0
         self.tasks_ignored = 0  # tasks of another session (a serve that has gone)
         self.welcomes = 0
+        self.changes = 0  # settings changes committed
         self._handshake_failures = 0
 
     def _say(self, text: str) -> None:
@@ -110,18 +134,24 @@ class Worker:
         return self._send(dealer, encode_hello(self.key, self.name, os.getpid(), socket.gethostname()[:255],
                                                self.capacity, self.expect.digest if self.expect else None))
 
+    def build_pipeline(self, config: WorkerConfig) -> Pipeline:
+        """The warmed-up chain of a configuration (raises CubecastError for settings it cannot take)."""
+        pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m)
+        pipeline.warm_up()
+        return pipeline
+
     def _welcome(self, dealer: zmq.Socket, parts: list) -> None:
         session, config = decode_welcome(parts, self.expect.digest if self.expect else None)
         self.welcomes += 1
+        self._prepared = None  # a welcome states the whole configuration: a change being built is moot
         t0 = time.perf_counter()
         if not config.same_as(self.config):
-            self.pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m)
+            self.pipeline = self.build_pipeline(config)
             self._canon = np.empty(self.pipeline.frame_shape, np.complex64)
-            self.pipeline.warm_up()
-            self.config = config
+        self.config, self.epoch = config, config.epoch
         warm = time.perf_counter() - t0
         self.session = session
-        self._send(dealer, encode_ready(self.key, session, config.sensor.digest, warm))
+        self._send(dealer, encode_ready(self.key, session, config.sensor.digest, warm, self.epoch))
         self.ready.set()
         self._say(f"ready: sensor '{config.sensor.sensor_id}' (digest {config.sensor.digest}), session {session}, "
                   f"warm-up {warm:.2f} s")
@@ -138,6 +168,9 @@ class Worker:
             except ProtocolError:
                 pass
             task = decode_task(parts, self.config.sensor, self.session, self.check_crc)
+            if task.epoch != self.epoch:
+                raise ProtocolError(f"task {task.task_id} is of settings epoch {task.epoch}; this worker runs epoch "
+                                    f"{self.epoch}")
             records, rdmap = compute(self.pipeline, task, self._canon)
             error = None
             self.tasks_done += 1
@@ -154,7 +187,64 @@ class Worker:
                 return  # nothing to answer to; serve counts it lost after its timeout
         stage = dict(self.pipeline.stage_ms) if error is None else {}
         self._send(push, encode_result(self.key, self.session, task_id, seq, records, error, stage,
-                                       time.perf_counter() - t0, rdmap))
+                                       time.perf_counter() - t0, rdmap, self.epoch))
+
+    # ---- live settings changes ----------------------------------------------------------------
+    def _prepare(self, parts: list) -> None:
+        """Build the chain of a `prepare` in a thread; tasks go on with the running one meanwhile."""
+        epoch, settings = decode_prepare(parts, self.session)
+        prep = _Prepared(epoch, dataclasses.replace(self.config, settings=settings, epoch=epoch))
+        self._prepared = prep  # a newer prepare replaces one still being built (its result is dropped)
+
+        def build() -> None:
+            t0 = time.perf_counter()
+            try:
+                prep.pipeline = self.build_pipeline(prep.config)
+            except CubecastError as exc:
+                prep.error = str(exc)
+            except Exception as exc:  # whatever stops the build is the refusal's reason
+                prep.error = f"{type(exc).__name__}: {exc}"
+            prep.warm_up_s = time.perf_counter() - t0
+
+        prep.thread = threading.Thread(target=build, name=f"cubecast-worker-prepare-{epoch}", daemon=True)
+        prep.thread.start()
+        self._say(f"building the chain of settings epoch {epoch} aside")
+
+    def _answer_prepared(self, dealer: zmq.Socket) -> bool:
+        """Once the chain being built is done: tell serve (ready, or the error). True when sent."""
+        prep = self._prepared
+        if prep is None or prep.answered or not prep.done:
+            return False
+        if not self._send(dealer, encode_prepared(self.key, self.session, prep.epoch, prep.error, prep.warm_up_s)):
+            return False  # not connected now: tried again on the next pass
+        prep.answered = True
+        if prep.error is not None:
+            log.warning("cubecast worker %s: cannot build the chain of settings epoch %d: %s", self.name, prep.epoch,
+                        prep.error)
+            self._prepared = None
+        return True
+
+    def _commit(self, parts: list) -> bool:
+        """Switch to the prepared chain; False when this worker has no such chain (out of step)."""
+        epoch = decode_epoch(parts, "commit", self.session)
+        prep = self._prepared
+        if prep is None or prep.epoch != epoch or prep.pipeline is None:
+            log.warning("cubecast worker %s: serve committed settings epoch %d, which this worker has not built; "
+                        "introducing itself again", self.name, epoch)
+            return False
+        self.pipeline, self.config, self.epoch = prep.pipeline, prep.config, epoch
+        if self._canon is None or self._canon.shape != self.pipeline.frame_shape:
+            self._canon = np.empty(self.pipeline.frame_shape, np.complex64)
+        self._prepared = None
+        self.changes += 1
+        self._say(f"now running settings epoch {epoch}")
+        return True
+
+    def _abort(self, parts: list) -> None:
+        epoch = decode_epoch(parts, "abort", self.session)
+        if self._prepared is not None and self._prepared.epoch == epoch:
+            self._prepared = None
+            self._say(f"settings epoch {epoch} dropped (serve keeps the running settings)")
 
     def _handshake_failed(self, monitor: zmq.Socket) -> None:
         """Raise CubecastError on a security handshake serve refused or that cannot work; count the
@@ -216,7 +306,12 @@ class Worker:
                 if monitor.poll(0):
                     self._handshake_failed(monitor)
                 self._failed_log.flush(log, prefix=f"cubecast worker {self.name}: ")
-                if not dealer.poll(int(self.heartbeat_s * 1000) if self.session else 100, zmq.POLLIN):
+                if self.session is not None and self._answer_prepared(dealer):
+                    last_sent = time.monotonic()
+                wait_s = self.heartbeat_s if self.session else 0.1
+                if self._prepared is not None and not self._prepared.answered:
+                    wait_s = min(wait_s, BUILDING_POLL_S)
+                if not dealer.poll(int(wait_s * 1000), zmq.POLLIN):
                     continue
                 for _ in range(4 * MAX_CAPACITY):
                     try:
@@ -233,10 +328,25 @@ class Worker:
                     elif kind == b"welcome":
                         self._welcome(dealer, parts)
                         last_sent = time.monotonic()
+                    elif kind in (b"prepare", b"commit", b"abort") and self.session is not None:
+                        try:
+                            if kind == b"prepare":
+                                self._prepare(parts)
+                            elif kind == b"abort":
+                                self._abort(parts)
+                            elif not self._commit(parts):
+                                self.session, self._prepared = None, None
+                                self.ready.clear()
+                                last_hello = -math.inf
+                        except ProtocolError as exc:
+                            log_limited(log, self._failed_log, logging.WARNING, "settings message",
+                                        "cubecast worker %s: ignored %s from serve: %s", self.name,
+                                        kind.decode(), exc)
                     elif kind == b"who":
                         self._say("serve asks this worker to introduce itself again (serve restarted, or "
                                   "it thought this worker was gone)")
                         self.session = None
+                        self._prepared = None
                         self.ready.clear()
                         last_hello = -math.inf
                     elif kind == b"refuse":

@@ -6,18 +6,22 @@ its messages are multipart [kind, header (msgpack map), payload...] decoded with
 (no pickle, no ext types) and validated against the header schemas below, by the same mechanism and
 with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
 
-    worker -> serve (DEALER)  hello {worker, name, pid, host, capacity, expect_digest}
-                              ready {worker, session, digest, warm_up_s}
+    worker -> serve (DEALER)  hello {worker, name, pid, host, capacity, expect_digest, live_settings}
+                              ready {worker, session, digest, warm_up_s, epoch}
                               beat  {worker, session}                     every 0.25 s when idle
                               bye   {worker}                              on a clean exit
+                              prepared {worker, session, epoch, error, warm_up_s}  answer to prepare
     serve -> worker (ROUTER)  welcome {session, sensor_toml, digest, settings, range_bias_m,
-                                       calibration} + calibration bytes   the whole configuration
+                                       calibration, epoch} + calibration bytes   the whole configuration
                               refuse  {reason, message}                   e.g. a sensor digest mismatch
                               who     {session}                           "introduce yourself again"
                               task    {session, task_id, seq, run, timestamp_s, received_unix_s,
-                                       digest, dtype, shape, crc32, rdmap} + the raw ADC payload
+                                       digest, dtype, shape, crc32, rdmap, epoch} + the raw ADC payload
+                              prepare {session, epoch, settings}          build a chain for these aside
+                              commit  {session, epoch}                    switch to it (tasks after it)
+                              abort   {session, epoch}                    drop it
     worker -> serve (PUSH)    result  {worker, session, task_id, seq, count, error, stage_ms,
-                                       process_s, rdmap} + point records + pooled map (or empty)
+                                       process_s, rdmap, epoch} + point records + pooled map (or empty)
 
 Handshake: a worker sends `hello`; serve answers `welcome` with the sensor description (TOML text,
 re-parsed and digest-checked by the worker), the processing settings and the calibration, so every
@@ -25,6 +29,21 @@ worker computes exactly what serve would. A worker started with a sensor descrip
 description's digest in its hello; serve refuses a mismatch and the worker exits with an error
 naming both. A task carries the ADC payload exactly as received from the source (zero-copy); the
 worker checks its digest, dtype, shape, length and CRC-32 before processing.
+
+Settings epochs (live tuning, daemon/retune.py): every configuration serve runs has a number, its
+epoch (0 at start-up; each attempted change takes the next number, so a refused change uses one up).
+A change is made in two phases. serve sends `prepare` to every ready worker; each builds the new
+chain aside (in a thread, processing tasks of the running epoch meanwhile) and answers `prepared`,
+with the error if it cannot build it. Only when every worker has answered without an error does
+serve `commit`: from then on it numbers tasks with the new epoch, and since the commit travels on the
+same connection as the tasks, a worker has processed every task of the old epoch before it switches.
+A refusal (or no answer in time) makes serve send `abort` to every worker asked: nobody switches,
+and the running epoch goes on. Tasks and results carry their epoch; a result of another epoch than
+its task's is refused (counted invalid, the frame lost), so a point cloud is never computed with
+settings other than those of the epoch it was dispatched in. A worker welcomed before a commit that
+reports ready for the old epoch is sent the new welcome. The epoch fields default to 0, and a hello
+without `live_settings` marks a worker that cannot follow a change (an older cubecast): a change is
+then refused, naming it.
 """
 
 from __future__ import annotations
@@ -87,6 +106,7 @@ class HelloHeader(Schema):
     host: Host
     capacity: Capacity  # as announced; serve caps it at MAX_CAPACITY
     expect_digest: OptionalDigest = None
+    live_settings: Flag = False  # follows prepare / commit / abort
 
 
 class CalibrationInfo(Schema):
@@ -103,6 +123,7 @@ class WelcomeHeader(Schema):
     sensor_toml: SensorToml
     range_bias_m: Finite
     calibration: OptionalCalibration = None
+    epoch: Count = 0
 
 
 class TaskHeader(Schema):
@@ -116,6 +137,7 @@ class TaskHeader(Schema):
     dtype: AnyAdcDtype
     shape: AdcShape
     crc32: Crc32
+    epoch: Count = 0
 
 
 class MapInfo(Schema):
@@ -141,6 +163,26 @@ class ResultHeader(Schema):
     stage_ms: StageTimes
     error: ErrorText = None
     rdmap: OptionalMap = None
+    epoch: Count = 0
+
+
+class PrepareHeader(Schema):
+    session: Name
+    epoch: Count
+
+
+class PreparedHeader(Schema):
+    session: Name
+    epoch: Count
+    warm_up_s: NonNegative
+    error: ErrorText = None
+
+
+class EpochHeader(Schema):
+    """commit and abort."""
+
+    session: Name
+    epoch: Count
 
 
 # ---- encoding and bounded decoding ----------------------------------------------------------------
@@ -184,15 +226,16 @@ def settings_to_map(settings: ProcessingSettings) -> dict:
     return dataclasses.asdict(settings)
 
 
-def settings_from_map(values: Any) -> ProcessingSettings:
-    """Processing settings from a `welcome` header: every field known and of the default's type."""
+def settings_from_map(values: Any, what: str = "welcome") -> ProcessingSettings:
+    """Processing settings from a `welcome` (or `prepare`) header: every field known and of the
+    default's type."""
     if not isinstance(values, dict):
-        raise ProtocolError(f"welcome header field 'settings' = {values!r}: must be a map")
+        raise ProtocolError(f"{what} header field 'settings' = {values!r}: must be a map")
     fields = {f.name: f for f in dataclasses.fields(ProcessingSettings)}
     out = {}
     for key, value in values.items():
         if key not in fields:
-            raise ProtocolError(f"welcome header field 'settings': unknown setting {key!r} (run the same cubecast "
+            raise ProtocolError(f"{what} header field 'settings': unknown setting {key!r} (run the same cubecast "
                                 "version on serve and workers)")
         kind = type(fields[key].default)
         ok = (isinstance(value, bool) if kind is bool else
@@ -200,10 +243,10 @@ def settings_from_map(values: Any) -> ProcessingSettings:
               (isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value))
               if kind is float else isinstance(value, str))
         if not ok:
-            raise ProtocolError(f"welcome header field 'settings': {key} = {value!r}: must be a {kind.__name__}")
+            raise ProtocolError(f"{what} header field 'settings': {key} = {value!r}: must be a {kind.__name__}")
         out[key] = float(value) if kind is float else value
     try:
-        return ProcessingSettings(**out).validate("welcome from serve")
+        return ProcessingSettings(**out).validate(f"{what} from serve")
     except CubecastError as exc:
         raise ProtocolError(str(exc)) from None
 
@@ -216,6 +259,7 @@ class WorkerConfig:
     settings: ProcessingSettings
     calibration: np.ndarray | None
     range_bias_m: float
+    epoch: int = 0  # the settings epoch (live tuning); not part of same_as
 
     def same_as(self, other: "WorkerConfig | None") -> bool:
         if other is None:
@@ -233,7 +277,7 @@ def encode_welcome(session: str, config: WorkerConfig) -> list:
         "sensor_toml": config.sensor.source_text, "settings": settings_to_map(config.settings),
         "range_bias_m": float(config.range_bias_m),
         "calibration": None if cal is None else {"dtype": "<c8", "count": int(cal.shape[0])},
-        "heartbeat_s": HEARTBEAT_S})
+        "heartbeat_s": HEARTBEAT_S, "epoch": int(config.epoch)})
     payload = b"" if cal is None else np.ascontiguousarray(cal, "<c8").tobytes()
     if len(header) > MAX_WELCOME_BYTES:
         raise CubecastError(f"the sensor description is too large for a worker welcome ({len(header)} bytes; "
@@ -278,7 +322,7 @@ def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerC
             raise ProtocolError("welcome calibration holds values that are not finite")
     elif payload.nbytes:
         raise ProtocolError(f"welcome without calibration has a {payload.nbytes}-byte payload; it must be empty")
-    return f.session, WorkerConfig(sensor, settings, calibration, float(f.range_bias_m))
+    return f.session, WorkerConfig(sensor, settings, calibration, float(f.range_bias_m), f.epoch)
 
 
 @dataclass(frozen=True)
@@ -291,16 +335,17 @@ class Task:
     want_rdmap: bool
     data: np.ndarray  # the ADC payload (read-only view on the received message)
     raw: bool  # True: the sensor's ADC format; False: canonical complex64
+    epoch: int = 0  # the settings epoch it was dispatched in
 
 
 def encode_task(session: str, task_id: int, header: dict, payload: memoryview, received_unix_s: float,
-                want_rdmap: bool) -> list:
+                want_rdmap: bool, epoch: int = 0) -> list:
     """A task from a validated `adc` message header; the payload goes out without a copy."""
     return [b"task", _pack({
         "session": session, "task_id": int(task_id), "seq": header["seq"], "run": header["run"],
         "timestamp_s": header["timestamp_s"], "received_unix_s": float(received_unix_s),
         "digest": header["digest"], "dtype": header["dtype"], "shape": list(header["shape"]),
-        "crc32": header["crc32"], "rdmap": bool(want_rdmap)}), payload]
+        "crc32": header["crc32"], "rdmap": bool(want_rdmap), "epoch": int(epoch)}), payload]
 
 
 def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = True) -> Task:
@@ -338,7 +383,7 @@ def decode_task(parts: list, sensor: Sensor, session: str, check_crc: bool = Tru
         raise ProtocolError(f"task header field 'crc32' = 0x{crc:08X}: the payload's CRC-32 is 0x{actual:08X}")
     data = np.frombuffer(payload, np.dtype(dtype)).reshape(shape)
     return Task(f.task_id, f.seq, f.run, float(f.timestamp_s), float(f.received_unix_s), f.rdmap, data,
-                dtype == raw_dtype)
+                dtype == raw_dtype, f.epoch)
 
 
 @dataclass
@@ -353,18 +398,19 @@ class Result:
     stage_ms: dict
     process_s: float
     rdmap: tuple | None  # (values_db float32 [r, d], range_start_m, range_step_m, velocity_start_mps, ..._step_mps)
+    epoch: int = 0  # the settings epoch of the chain that computed it
 
 
 RDMAP_AXES = ("range_start_m", "range_step_m", "velocity_start_mps", "velocity_step_mps")
 
 
 def encode_result(worker: str, session: str, task_id: int, seq: int, records: np.ndarray | None,
-                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None) -> list:
+                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None, epoch: int = 0) -> list:
     recs = records if records is not None else np.empty(0, RECORD_DTYPE)
     fields = {"worker": worker, "session": session, "task_id": int(task_id), "seq": int(seq),
               "count": int(recs.shape[0]), "error": None if error is None else str(error)[:MAX_ERROR_CHARS],
               "stage_ms": {k: float(v) for k, v in stage_ms.items()}, "process_s": float(process_s),
-              "rdmap": None}
+              "rdmap": None, "epoch": int(epoch)}
     map_payload: Any = b""
     if rdmap is not None:
         values = np.ascontiguousarray(rdmap[0], "<f4")
@@ -406,7 +452,8 @@ def decode_result(parts: list) -> tuple[str, str, Result]:
     elif map_view.nbytes:
         raise ProtocolError("result without rdmap has a map payload; it must be empty")
     return f.worker, f.session, Result(f.worker, f.task_id, seq, records, f.error,
-                                       {k: float(v) for k, v in f.stage_ms.items()}, float(f.process_s), rdmap)
+                                       {k: float(v) for k, v in f.stage_ms.items()}, float(f.process_s), rdmap,
+                                       f.epoch)
 
 
 # ---- control messages: hello, ready, beat, bye (worker -> serve); refuse, who (serve -> worker) ------
@@ -418,11 +465,12 @@ class Hello:
     host: str
     capacity: int  # as announced; serve caps it at MAX_CAPACITY
     expect_digest: str | None
+    live_settings: bool = False
 
 
 def encode_hello(worker: str, name: str, pid: int, host: str, capacity: int, expect_digest: str | None) -> list:
     return [b"hello", _pack({"worker": worker, "name": name, "pid": pid, "host": host, "capacity": capacity,
-                             "expect_digest": expect_digest})]
+                             "expect_digest": expect_digest, "live_settings": True})]
 
 
 def decode_control(key: bytes, kind: bytes, part: Any) -> dict:
@@ -437,11 +485,12 @@ def decode_control(key: bytes, kind: bytes, part: Any) -> dict:
 
 def decode_hello(h: dict) -> Hello:
     f = _fields(h, HelloHeader, "hello")
-    return Hello(f.name, f.pid, f.host, f.capacity, f.expect_digest)
+    return Hello(f.name, f.pid, f.host, f.capacity, f.expect_digest, f.live_settings)
 
 
-def encode_ready(worker: str, session: str, digest: str, warm_up_s: float) -> list:
-    return [b"ready", _pack({"worker": worker, "session": session, "digest": digest, "warm_up_s": warm_up_s})]
+def encode_ready(worker: str, session: str, digest: str, warm_up_s: float, epoch: int = 0) -> list:
+    return [b"ready", _pack({"worker": worker, "session": session, "digest": digest, "warm_up_s": warm_up_s,
+                             "epoch": int(epoch)})]
 
 
 def encode_beat(worker: str, session: str) -> list:
@@ -472,3 +521,49 @@ def task_ids(parts: list) -> tuple[Any, Any, Any]:
     a task it cannot decode with an error result for that task id."""
     h = _unpack(parts[1], "task") if len(parts) > 1 else {}
     return h.get("session"), h.get("task_id"), h.get("seq")
+
+
+# ---- live settings changes: prepare, commit, abort (serve -> worker); prepared (worker -> serve) -----
+
+def encode_prepare(session: str, epoch: int, settings: ProcessingSettings) -> list:
+    return [b"prepare", _pack({"session": session, "epoch": int(epoch), "settings": settings_to_map(settings)})]
+
+
+def decode_prepare(parts: list, session: str | None) -> tuple[int, ProcessingSettings]:
+    """(epoch, settings) of a `prepare` for this worker's session."""
+    _parts(parts, 2, 2, "prepare")
+    h = _unpack(parts[1], "prepare")
+    f = _fields(h, PrepareHeader, "prepare")
+    if f.session != session:
+        raise ProtocolError(f"prepare header field 'session' = {f.session!r}: this worker was welcomed by "
+                            f"session {session!r}")
+    return f.epoch, settings_from_map(h.get("settings"), "prepare")
+
+
+def encode_prepared(worker: str, session: str, epoch: int, error: str | None, warm_up_s: float) -> list:
+    return [b"prepared", _pack({"worker": worker, "session": session, "epoch": int(epoch),
+                                "error": None if error is None else str(error)[:MAX_ERROR_CHARS],
+                                "warm_up_s": float(warm_up_s)})]
+
+
+def decode_prepared(h: dict) -> PreparedHeader:
+    """A `prepared` header (from decode_control)."""
+    return _fields(h, PreparedHeader, "prepared")
+
+
+def encode_commit(session: str, epoch: int) -> list:
+    return [b"commit", _pack({"session": session, "epoch": int(epoch)})]
+
+
+def encode_abort(session: str, epoch: int) -> list:
+    return [b"abort", _pack({"session": session, "epoch": int(epoch)})]
+
+
+def decode_epoch(parts: list, kind: str, session: str | None) -> int:
+    """The epoch of a `commit` or `abort` for this worker's session."""
+    _parts(parts, 2, 2, kind)
+    f = _fields(_unpack(parts[1], kind), EpochHeader, kind)
+    if f.session != session:
+        raise ProtocolError(f"{kind} header field 'session' = {f.session!r}: this worker was welcomed by "
+                            f"session {session!r}")
+    return f.epoch
