@@ -7,6 +7,11 @@
     submit(msg, t_recv, map)     hand over one validated `adc` message; False if nobody could take it
     collect(timeout_s)           the finished frames in frame order (waits up to timeout_s for any)
     stage_ms, counters(), health_fields, describe(), close()
+    prepare(settings, epoch)     a settings change made ready aside (a Change; the running chain goes on)
+    commit(change), abort(change)  from the processing thread, between frames, once change.poll() says
+
+A Change is polled from the processing thread: 'building' until its chain is ready everywhere it
+runs ('ready') or something refused it ('refused', change.reason). Nothing switches before commit.
 
 A finished frame is an Outcome: its point records (and, when asked, a way to the pooled display
 map), a processing error, or lost with a worker. serve does all the counting under its one lock.
@@ -15,6 +20,7 @@ map), a processing error, or lost with a worker. serve does all the counting und
 from __future__ import annotations
 
 import threading
+import time
 from dataclasses import dataclass
 from typing import Callable
 
@@ -22,10 +28,11 @@ import numpy as np
 import zmq
 
 from .chain.pipeline import Pipeline
-from .chain.points import to_records
+from .chain.points import RECORD_DTYPE, to_records
 from .files import to_canonical
 from .keys import ServerKeys
-from .pool import DEFAULT_TASK_TIMEOUT_S, STARTUP_TIMEOUT_S, WorkerPool
+from .errors import CubecastError
+from .pool import CHANGE_TIMEOUT_S, DEFAULT_TASK_TIMEOUT_S, STARTUP_TIMEOUT_S, WorkerPool
 from .sensor import Sensor
 from .settings import ProcessingSettings
 from .wire import Message
@@ -44,6 +51,47 @@ class Outcome:
     rdmap: Callable[[], tuple] | None = None  # the pooled display map of this frame, when asked for
     error: str | None = None  # "frame seq N...: what went wrong"
     lost: bool = False
+
+
+class Change:
+    """A settings change made ready aside. `build()` runs in a thread (returns the chain, or raises
+    CubecastError for settings the sensor cannot take); poll() from the processing thread."""
+
+    def __init__(self, settings: ProcessingSettings, epoch: int, build: Callable[[], object] | None = None):
+        self.settings, self.epoch = settings, epoch
+        self.chain: object | None = None
+        self.reason = ""
+        self.build_s = 0.0
+        self._state = "building"
+        self._thread: threading.Thread | None = None
+        if build is not None:
+            self._thread = threading.Thread(target=self._build, args=(build,), name=f"cubecast-settings-{epoch}",
+                                            daemon=True)
+            self._thread.start()
+
+    def _build(self, build: Callable[[], object]) -> None:
+        t0 = time.perf_counter()
+        try:
+            self.chain = build()
+        except CubecastError as exc:
+            self.reason = str(exc)
+        except Exception as exc:  # whatever stops the build is the refusal's reason
+            self.reason = f"{type(exc).__name__}: {exc}"
+        self.build_s = time.perf_counter() - t0
+
+    def refuse(self, reason: str) -> "Change":
+        self._state, self.reason = "refused", reason
+        return self
+
+    @property
+    def built(self) -> bool:
+        """The thread's build is done (successfully or not)."""
+        return self._thread is not None and not self._thread.is_alive()
+
+    def poll(self) -> str:
+        if self._state == "building" and self.built:
+            self._state = "refused" if self.reason else "ready"
+        return self._state
 
 
 def _header_fields(msg: Message) -> tuple[int, str, float]:
@@ -91,6 +139,15 @@ class LocalProcessor:
         if pipeline.frame_shape != self._canon.shape:
             self._canon = np.zeros(pipeline.frame_shape, np.complex64)
 
+    def prepare(self, settings: ProcessingSettings, epoch: int) -> Change:
+        return Change(settings, epoch, lambda: self.build(settings))
+
+    def commit(self, change: Change) -> None:
+        self.use(change.chain)
+
+    def abort(self, change: Change) -> None:
+        pass
+
     def wake(self) -> None:
         self._wake.set()
 
@@ -127,6 +184,32 @@ class LocalProcessor:
         pass
 
 
+RESULT_MAP_BYTES = 1 << 20  # what a result's pooled map may take of the results socket's message limit
+
+
+class PoolChange(Change):
+    """serve's own build first (in a thread), then the workers' (pool.begin_change) until every one
+    has answered."""
+
+    def __init__(self, pool: WorkerPool, settings: ProcessingSettings, epoch: int, build, timeout_s: float):
+        self.pool, self.timeout_s, self.asked = pool, timeout_s, False
+        super().__init__(settings, epoch, build)
+
+    def poll(self) -> str:
+        if self._state != "building" or not self.built:
+            return self._state
+        if self.reason:
+            self._state = "refused"
+        elif not self.asked:
+            self.pool.begin_change(self.epoch, self.settings, self.timeout_s)
+            self.asked = True
+        else:
+            state, reason = self.pool.change_state()
+            if state != "pending":
+                self._state, self.reason = state, reason
+        return self._state
+
+
 class PoolProcessor:
     """The chain in worker processes: frames go to workers with free capacity; results come back in
     frame order. serve fills the numba cache first (so that workers only load it, never race
@@ -140,6 +223,8 @@ class PoolProcessor:
                  range_bias_m: float, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
                  task_timeout_s: float | None = None, keys: ServerKeys | None = None, log_interval_s: float = 5.0):
         self._pipeline: Pipeline | None = Pipeline(sensor, settings, calibration, range_bias_m)  # checks them
+        self.sensor, self._calibration, self._range_bias_m = sensor, calibration, range_bias_m
+        self.change_timeout_s = CHANGE_TIMEOUT_S
         self.pool = WorkerPool(
             WorkerConfig(sensor, settings, calibration, float(range_bias_m)), tasks_endpoint, results_endpoint,
             local_workers=local_workers, task_timeout_s=DEFAULT_TASK_TIMEOUT_S if task_timeout_s is None
@@ -180,6 +265,30 @@ class PoolProcessor:
 
     def has_capacity(self) -> bool:
         return self.pool.can_dispatch()
+
+    def prepare(self, settings: ProcessingSettings, epoch: int) -> Change:
+        """serve builds the chain first (it checks the settings against the sensor and fills the numba
+        cache, so that workers only load it), then every worker builds its own (PoolChange)."""
+        limit = self.pool.max_result_bytes - RESULT_MAP_BYTES
+        if self.pool.result_bytes(settings) > limit:
+            return Change(settings, epoch).refuse(
+                f"max_points x angle_max_peaks = {settings.max_points * settings.angle_max_peaks} points: serve's "
+                f"results socket was opened for at most {limit // RECORD_DTYPE.itemsize} per frame (4 x those of "
+                "its start-up settings); restart serve with these settings")
+
+        def build() -> None:
+            pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m)
+            pipe.warm_up()
+            return None  # serve keeps no chain: the workers run it
+
+        return PoolChange(self.pool, settings, epoch, build, self.change_timeout_s)
+
+    def commit(self, change: Change) -> None:
+        self.pool.commit_change()
+
+    def abort(self, change: Change) -> None:
+        if isinstance(change, PoolChange) and change.asked:
+            self.pool.abort_change()
 
     def submit(self, msg: Message, t_recv: float, want_rdmap: bool) -> bool:
         return self.pool.dispatch(msg, t_recv, want_rdmap)

@@ -38,6 +38,11 @@ in a folder (refused handshakes: `subscriber_handshakes_refused` in health); wit
 SUB connects to keyed sources (refused or failed handshakes: `source_handshakes_failed`). An endpoint
 reachable from other hosts is bound only with keys or with `insecure` (netio.check_exposure).
 
+Live tuning (daemon/retune.py): a Tuner owned by the processing thread takes settings changes from
+the watched settings file (settingswatch.py) and from the control endpoint (control.py, a ROUTER
+polled by the processing thread), has the processor build the new chain aside and commits it
+between two frames, with or without workers.
+
 Errors name what is wrong by its role ("queue depth", "publish endpoint"); the CLI owns the flag names.
 """
 
@@ -59,10 +64,11 @@ from .logs import RateLimitFilter, log_limited
 from .netio import (DEFAULT_PUB, DEFAULT_SUB, MAX_PART_BYTES, HandshakeCounter, Subscriber, bind_socket,
                     check_exposure, stop_on_signals)
 from .process import load_calibration_for
+from .control import ControlEndpoint
 from .processors import LocalProcessor, Outcome, PoolProcessor
+from .retune import Tuner
 from .sensor import Sensor, load_sensor
 from .settings import ProcessingSettings, load_settings
-from .settingswatch import SettingsWatch
 from .wire import REASONS, WireError, decode, encode_health, encode_points, encode_rdmap, encode_sensor
 
 log = logging.getLogger(__name__)
@@ -90,7 +96,8 @@ class Service:
                  tasks_endpoint: str | None = None, results_endpoint: str | None = None,
                  task_timeout_s: float | None = None, worker_keys: ServerKeys | None = None,
                  pub_keys: ServerKeys | None = None, source_keys: list[ClientKeys] | None = None,
-                 insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES, watch_settings: str | None = None):
+                 insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES, watch_settings: str | None = None,
+                 control_endpoint: str | None = None, control_keys: ServerKeys | None = None):
         """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
         for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
         are processed by workers (daemon/pool.py), else in this process. worker_keys: a
@@ -98,7 +105,8 @@ class Service:
         the publish endpoint; source_keys: keys.ClientKeys per source endpoint (same order).
         insecure: allow binding an endpoint other hosts can reach without keys. max_part_bytes: the
         subscriber's hard limit on one message part (netio.Subscriber). watch_settings: a settings
-        file to watch and apply live (settingswatch.py; without workers only)."""
+        file to watch and apply live (settingswatch.py). control_endpoint: where to bind the control
+        endpoint (control.py); control_keys: a keys.ServerKeys to require keys of its clients."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"queue depth {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -117,6 +125,8 @@ class Service:
         # before anything is bound: endpoints other hosts can reach need keys (or insecure, logged)
         check_exposure(pub_endpoint, "publish endpoint", keyed=pub_keys is not None, insecure=insecure,
                        exposes=PUB_EXPOSES)
+        if control_keys is not None and control_endpoint is None:
+            raise CubecastError("control keys: only with a control endpoint")
         for role, ep in (("tasks endpoint", tasks_endpoint), ("results endpoint", results_endpoint)):
             if ep is not None:
                 check_exposure(ep, role, keyed=worker_keys is not None, insecure=insecure, exposes=WORKERS_EXPOSE,
@@ -134,12 +144,10 @@ class Service:
                 keys=worker_keys, log_interval_s=log_interval_s)
         else:
             self.processor = LocalProcessor(sensor, self.settings, calibration, range_bias_m)
-        self._watch: SettingsWatch | None = None
-        if watch_settings is not None:
-            if not isinstance(self.processor, LocalProcessor):
-                raise CubecastError("watched settings: only without workers (workers take their settings when "
-                                    "they start)")
-            self._watch = SettingsWatch(watch_settings, self.settings, self.processor.build)
+        self._tuner = Tuner(self.settings, self.processor, watch_settings)
+        self._tuning = watch_settings is not None or control_endpoint is not None
+        self._control = ControlEndpoint(control_endpoint, self._tuner, control_keys) if control_endpoint else None
+        self.control_endpoint: str | None = None
         self.pub_endpoint_requested = pub_endpoint
         self.pub_endpoint: str | None = None
         self.queue_depth = queue_depth
@@ -318,9 +326,10 @@ class Service:
             "subscriber_handshakes_refused": s["subscriber_handshakes_refused"],
             **{k: s[k] for k in self.processor.health_fields},
         }
-        if self._watch is not None:
-            fields.update(settings_applied=self._watch.applied, settings_refused=self._watch.refused,
-                          settings_error=self._watch.last_error)
+        if self._tuning:
+            fields.update(self._tuner.health_fields())
+        if self._control is not None:
+            fields.update(self._control.counters())
         self._last_health, self._last_cpu, self._last_processed = now, cpu, processed
         return fields
 
@@ -370,10 +379,11 @@ class Service:
         next_sensor, next_health = now, now + self.health_interval_s
         last_sensor = -math.inf
         self.ready.set()
-        log.info("cubecast serve: ready: sensor '%s' (digest %s), sub %s%s, pub %s%s, queue %d%s", self.sensor.sensor_id,
-                 self.sensor.digest, ", ".join(self.sub_endpoints), " (with keys)" if self.source_keys else "",
-                 self.pub_endpoint, " (keys required)" if self.pub_keys else "", self.queue_depth,
-                 self.processor.describe())
+        log.info("cubecast serve: ready: sensor '%s' (digest %s), sub %s%s, pub %s%s, queue %d%s%s",
+                 self.sensor.sensor_id, self.sensor.digest, ", ".join(self.sub_endpoints),
+                 " (with keys)" if self.source_keys else "", self.pub_endpoint,
+                 " (keys required)" if self.pub_keys else "", self.queue_depth, self.processor.describe(),
+                 f", control {self.control_endpoint}" if self._control else "")
         while not stop.is_set():
             while True:  # new subscribers: send them the sensor description now (rate-limited)
                 try:
@@ -393,11 +403,12 @@ class Service:
                 self._send(pub, encode_health(self.sensor.sensor_id, self._health(now)), "health")
                 self._error_log.flush(log, prefix="cubecast serve: ")
                 next_health = max(next_health + self.health_interval_s, now)
-            if self._watch is not None:
-                change = self._watch.poll(now)
-                if change is not None:
-                    self.settings = change[0]
-                    self.processor.use(change[1])
+            if self._control is not None:
+                self._control.poll()
+            if self._tuning:
+                applied = self._tuner.poll(now)
+                if applied is not None:
+                    self.settings = applied
                     next_sensor = now   # the sensor message carries settings (velocity unfolding)
             self._feed(now)
             for out in self.processor.collect(max(0.0, min(0.05, next_sensor - now, next_health - now))):
@@ -411,6 +422,8 @@ class Service:
         try:
             pub = self._bind_pub(ctx)
             self.processor.start(ctx, stop)
+            if self._control is not None:
+                self.control_endpoint = self._control.bind(ctx)
             rx = self._start_receiver(ctx)
             self._loop(pub, stop)
         finally:
@@ -421,6 +434,8 @@ class Service:
             receiver_stopped = rx is None or not rx.is_alive()
             if pub is not None:
                 self._close_pub(pub)
+            if self._control is not None:
+                self._control.close()
             self.processor.close(receiver_stopped)
             if receiver_stopped:
                 ctx.term()
@@ -431,23 +446,27 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
           workers: int = 0, tasks: str | None = None, results: str | None = None,
           task_timeout_s: float | None = None, server_key: str | None = None,
           worker_keys: str | None = None, client_keys: str | None = None, source_keys: list[str] | None = None,
-          insecure: bool = False, watch_settings: bool = False) -> int:
+          insecure: bool = False, watch_settings: bool = False, control: str | None = None,
+          control_keys: str | None = None) -> int:
     """`cubecast serve`: run until SIGINT/SIGTERM; exit code 0. server_key: serve's secret key, for
-    each of worker_keys (folder of accepted workers), client_keys (folder of accepted subscribers)
-    and source_keys (the sources' public keys: one for all, or one per endpoint of `sub`)."""
+    each of worker_keys (folder of accepted workers), client_keys (folder of accepted subscribers),
+    control_keys (folder of accepted clients of the control endpoint `control`) and source_keys (the
+    sources' public keys: one for all, or one per endpoint of `sub`)."""
     if watch_settings and settings_path is None:
         raise CubecastError("--watch-settings: give the file to watch with --settings")
     sensor = load_sensor(sensor_path)
     settings = load_settings(settings_path)
     calibration, range_bias_m = load_calibration_for(calibration_path, sensor)
     subs = [sub] if isinstance(sub, str) else list(sub)
-    if server_key is None and (worker_keys or client_keys or source_keys):
-        raise CubecastError("--worker-keys, --client-keys and --source-key: each needs --server-key (serve's "
-                            "secret key, NAME.key_secret from `cubecast keys`)")
-    if server_key is not None and not (worker_keys or client_keys or source_keys):
+    if control_keys is not None and control is None:
+        raise CubecastError("--control-keys: only with --control ENDPOINT")
+    if server_key is None and (worker_keys or client_keys or source_keys or control_keys):
+        raise CubecastError("--worker-keys, --client-keys, --control-keys and --source-key: each needs --server-key "
+                            "(serve's secret key, NAME.key_secret from `cubecast keys`)")
+    if server_key is not None and not (worker_keys or client_keys or source_keys or control_keys):
         raise CubecastError("--server-key: give it with --worker-keys DIR (workers), --client-keys DIR "
-                            "(subscribers) and/or --source-key FILE (sources)")
-    keys = pub_keys = sub_keys = None
+                            "(subscribers), --control-keys DIR (control clients) and/or --source-key FILE (sources)")
+    keys = pub_keys = sub_keys = ctl_keys = None
     if server_key is not None:
         if worker_keys is not None:
             keys = ServerKeys(server_key, worker_keys, clients="worker", key_role="--server-key",
@@ -455,6 +474,9 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
         if client_keys is not None:
             pub_keys = ServerKeys(server_key, client_keys, clients="subscriber", key_role="--server-key",
                                   dir_role="--client-keys")
+        if control_keys is not None:
+            ctl_keys = ServerKeys(server_key, control_keys, clients="controller", key_role="--server-key",
+                                  dir_role="--control-keys")
         sub_keys = client_keys_per_endpoint(subs, source_keys, server_key if source_keys else None,
                                             server_role="--source-key", key_role="--server-key", endpoint_role="--sub")
     stop = threading.Event()
@@ -462,7 +484,8 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
         svc = Service(sensor, subs, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
                       range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks, results_endpoint=results,
                       task_timeout_s=task_timeout_s, worker_keys=keys, pub_keys=pub_keys, source_keys=sub_keys,
-                      insecure=insecure, watch_settings=settings_path if watch_settings else None)
+                      insecure=insecure, watch_settings=settings_path if watch_settings else None,
+                      control_endpoint=control, control_keys=ctl_keys)
         if not stop.is_set():
             svc.run(stop)
     s = svc.stats()

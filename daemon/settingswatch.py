@@ -1,13 +1,13 @@
-"""Live tuning: serve watches its settings file and applies a changed one at the next frame.
+"""Live tuning from a file: serve's watched settings file (`serve --settings F --watch-settings`).
 
 The processing thread polls the file's size and modification time every POLL_S (one os.stat). A
 change is taken once the file has stayed the same for one more poll (an editor that truncates and
-then writes is read when it is done). The file is then read and validated as at start-up, and a new
-chain is built for it in a background thread, so frames keep flowing with the old settings; the
-processing thread swaps the new chain in between two frames. A file that does not read, does not
-validate or does not build a chain (for example a range gate beyond the sensor) is refused with the
-reason logged, counted, and the running settings kept: nothing is applied half-way. Each applied
-change is logged with the fields that changed, old and new values.
+then writes is read when it is done). The file is then read and validated as at start-up, in a
+background thread; poll() hands the settings it holds to serve's Tuner (daemon/retune.py), which
+builds the chain for them aside and swaps it in between two frames, with or without workers. A file
+that does not read or does not validate is handed over as a refusal with its reason; the Tuner
+counts it and keeps the running settings. The file holds the whole [processing] section: every
+field it does not name takes its default, whatever a control request set before.
 
 This is I/O at the edge: the chain itself stays pure (a new Pipeline per change).
 """
@@ -15,16 +15,12 @@ This is I/O at the edge: the chain itself stays pure (a new Pipeline per change)
 from __future__ import annotations
 
 import dataclasses
-import logging
 import os
 import threading
 import time
-from typing import Callable
 
 from .errors import CubecastError
 from .settings import ProcessingSettings, load_settings
-
-log = logging.getLogger(__name__)
 
 POLL_S = 0.5
 
@@ -36,18 +32,16 @@ def changed_fields(old: ProcessingSettings, new: ProcessingSettings) -> dict:
 
 
 class SettingsWatch:
-    """Watches `path`; `build(settings)` makes the chain for new settings (run in a background
-    thread; it may raise CubecastError). poll() returns (settings, chain) once per applied change."""
+    """Watches `path`. poll() returns, once per change of the file, ("settings", ProcessingSettings)
+    when it reads and validates, or ("refused", reason) when it does not (or is gone); else None."""
 
-    def __init__(self, path: str, current: ProcessingSettings, build: Callable[[ProcessingSettings], object]):
-        self.path, self.current, self._build = str(path), current, build
-        self.applied = self.refused = 0
-        self.last_error: str | None = None
+    def __init__(self, path: str):
+        self.path = str(path)
         self._seen = self._signature()
         self._pending: tuple | None = None
         self._next_poll = 0.0
         self._ready: tuple | None = None
-        self._worker: threading.Thread | None = None
+        self._reader: threading.Thread | None = None
         self._lock = threading.Lock()
 
     def _signature(self) -> tuple | None:
@@ -57,36 +51,22 @@ class SettingsWatch:
             return None
         return (st.st_mtime_ns, st.st_size)
 
-    def _refuse(self, reason: str) -> None:
-        self.refused += 1
-        self.last_error = reason
-        log.error("cubecast serve: settings %s refused, running settings kept: %s", self.path, reason)
-
-    def _load_and_build(self) -> None:
+    def _read(self) -> None:
         try:
-            settings = load_settings(self.path)
-            chain = self._build(settings)
+            result = ("settings", load_settings(self.path))
         except CubecastError as exc:
-            self._refuse(str(exc))
-            return
+            result = ("refused", str(exc))
         with self._lock:
-            self._ready = (settings, chain)
+            self._ready = result
 
     def poll(self, now: float | None = None) -> tuple | None:
-        """Call between frames; cheap (an os.stat every POLL_S). Returns (settings, chain) to apply
-        now, or None."""
+        """Call between frames; cheap (an os.stat every POLL_S)."""
         with self._lock:
             ready, self._ready = self._ready, None
         if ready is not None:
-            diff = changed_fields(self.current, ready[0])
-            self.current = ready[0]
-            self.applied += 1
-            self.last_error = None
-            log.info("cubecast serve: settings %s applied: %s", self.path,
-                     ", ".join(f"{k} {a!r} -> {b!r}" for k, (a, b) in diff.items()) or "no field changed")
             return ready
         now = time.monotonic() if now is None else now
-        if now < self._next_poll or (self._worker is not None and self._worker.is_alive()):
+        if now < self._next_poll or (self._reader is not None and self._reader.is_alive()):
             return None
         self._next_poll = now + POLL_S
         sig = self._signature()
@@ -96,12 +76,12 @@ class SettingsWatch:
         if sig is None:
             if self._pending != ("gone",):
                 self._pending = ("gone",)
-                self._refuse("the file is gone (or unreadable); it is read again when it comes back")
+                return ("refused", "the file is gone (or unreadable); it is read again when it comes back")
             return None
         if self._pending != sig:   # changed: wait one more poll for it to settle
             self._pending = sig
             return None
         self._seen, self._pending = sig, None
-        self._worker = threading.Thread(target=self._load_and_build, name="cubecast-settings", daemon=True)
-        self._worker.start()
+        self._reader = threading.Thread(target=self._read, name="cubecast-settings-read", daemon=True)
+        self._reader.start()
         return None
