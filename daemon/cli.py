@@ -129,7 +129,7 @@ def _serve(args) -> int:
                  workers=args.workers, tasks=args.tasks, results=args.results,
                  task_timeout_s=args.task_timeout, server_key=args.server_key, worker_keys=args.worker_keys,
                  client_keys=args.client_keys, source_keys=args.source_key, insecure=args.insecure,
-                 watch_settings=args.watch_settings)
+                 watch_settings=args.watch_settings, control=args.control, control_keys=args.control_keys)
 
 
 def _worker(args) -> int:
@@ -317,7 +317,10 @@ def _add_serve(sub) -> None:
     sv.add_argument("--settings", help="processing settings (TOML, [processing] section)")
     sv.add_argument("--watch-settings", action="store_true",
                     help="live tuning: apply the --settings file again whenever it changes, at the next frame "
-                         "(a file that does not validate is refused and logged; without workers)")
+                         "(a file that does not validate is refused and logged)")
+    sv.add_argument("--control", metavar="ENDPOINT",
+                    help="live tuning: bind a control endpoint, e.g. tcp://127.0.0.1:5605, for `cubecast tune` and "
+                         "the viewer's keys (loopback only unless --control-keys)")
     sv.add_argument("--calibration", help="calibration file (TOML)")
     sv.add_argument("--sub", action="append", metavar="ENDPOINT",
                     help="source endpoint to connect to (repeatable; default tcp://127.0.0.1:5601)")
@@ -345,6 +348,9 @@ def _add_serve(sub) -> None:
     g.add_argument("--client-keys", metavar="DIR",
                    help="require keys on --pub: folder of the public keys (*.key) of the subscribers accepted "
                         "(viewers, recorders, trackers; a key added later is accepted without a restart)")
+    g.add_argument("--control-keys", metavar="DIR",
+                   help="require keys on --control: folder of the public keys (*.key) of the clients accepted "
+                        "(tune, viewers)")
     g.add_argument("--source-key", metavar="FILE", action="append",
                    help="the source's public key (its NAME.key), for a source that requires keys (its --client-keys "
                         "folder must hold serve's public key); one for every --sub, or one per --sub in order")
@@ -452,6 +458,8 @@ def build_parser() -> argparse.ArgumentParser:
     add_calibrate(sub)
     from .info import add_parser as add_info
     add_info(sub)
+    from .tune import add_parser as add_tune
+    add_tune(sub)
     from .adapter import add_parser as add_adapter
     ap = add_adapter(sub)
     _add_publisher_key_options(ap, "the adapter")
@@ -478,9 +486,9 @@ FOLDER_FLAGS = ("--dir",)
 POINT_FILE_FLAGS = {("process", "--out"): "format", ("record", "--points-out"): "points_format"}  # exports.py
 ENDPOINT_FLAGS = {
     "simulate": {"--pub": True}, "replay": {"--pub": True}, "adapter": {"--pub": True},
-    "serve": {"--sub": False, "--pub": True, "--tasks": True, "--results": True},
+    "serve": {"--sub": False, "--pub": True, "--tasks": True, "--results": True, "--control": True},
     "worker": {"--connect": False, "--results": False},
-    "record": {"--sub": False}, "view": {"--sub": False},
+    "record": {"--sub": False}, "view": {"--sub": False, "--control": False}, "tune": {"--control": False},
 }
 
 
