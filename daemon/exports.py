@@ -27,6 +27,7 @@ import math
 import os
 import secrets
 import shutil
+import sqlite3
 import tempfile
 import zipfile
 from fractions import Fraction
@@ -158,6 +159,7 @@ class PointWriter:
 
     fmt = ""
     folder = False
+    io_errors: tuple[type[Exception], ...] = (OSError,)  # a failed write (disk full, folder removed), named
 
     def __init__(self, path: str | Path, flag: str = "--out"):
         self.path, self.flag = Path(str(path)), flag
@@ -165,8 +167,8 @@ class PointWriter:
         self.frames = 0
         self.points = 0
 
-    def _fail(self, exc: OSError) -> CubecastError:
-        return CubecastError(f"{self.flag} {self.path}: cannot write: {exc.strerror or exc}")
+    def _fail(self, exc: Exception) -> CubecastError:
+        return CubecastError(f"{self.flag} {self.path}: cannot write: {getattr(exc, 'strerror', None) or exc}")
 
     def _temporary(self) -> Path:
         """A fresh name beside the target (hidden, ending .part), created as a file or a folder with the
@@ -190,7 +192,7 @@ class PointWriter:
         try:
             self.tmp = self._temporary()
             self._begin()
-        except OSError as exc:
+        except self.io_errors as exc:
             self.abort()
             raise self._fail(exc) from None
         except BaseException:
@@ -204,7 +206,7 @@ class PointWriter:
             raise RuntimeError("write_frame before open")
         try:
             self._frame(int(frame), float(timestamp_s), records, str(sensor_id))
-        except OSError as exc:
+        except self.io_errors as exc:
             raise self._fail(exc) from None
         self.frames += 1
         self.points += len(records)
@@ -222,7 +224,7 @@ class PointWriter:
             os.replace(final, self.path)
             if final != self.tmp:
                 self.tmp.rmdir()
-        except OSError as exc:
+        except self.io_errors as exc:
             self.abort()
             raise self._fail(exc) from None
         except CubecastError:
@@ -467,6 +469,7 @@ class RosbagWriter(PointWriter):
 
     fmt = "rosbag"
     folder = True
+    io_errors = (OSError, sqlite3.Error)
 
     def _begin(self) -> None:
         from rosbags.rosbag2 import StoragePlugin, Writer

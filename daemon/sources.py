@@ -566,10 +566,12 @@ class Recorder:
                 ctx.term()
             if self.writer is not None:
                 self.writer.close()
-            if self.points_writer is not None:
-                self.points_writer.close()
-            self._flush_rejects(force=True)
-            self._reject_logger.removeFilter(self._reject_limit)
+            try:
+                if self.points_writer is not None:
+                    self.points_writer.close()  # the point file under its final name
+            finally:
+                self._flush_rejects(force=True)
+                self._reject_logger.removeFilter(self._reject_limit)
         if self.out is not None and self.sensor is None:
             raise CubecastError(f"record: no sensor description received ({len(self.pending)} ADC frames held, "
                                 f"nothing written to {self.out}): also subscribe to the daemon's endpoint "
