@@ -458,6 +458,8 @@ def build_parser() -> argparse.ArgumentParser:
     add_calibrate(sub)
     from .info import add_parser as add_info
     add_info(sub)
+    from .bridge import add_parser as add_bridge
+    add_bridge(sub)
     from .tune import add_parser as add_tune
     add_tune(sub)
     from .adapter import add_parser as add_adapter
@@ -488,6 +490,7 @@ ENDPOINT_FLAGS = {
     "simulate": {"--pub": True}, "replay": {"--pub": True}, "adapter": {"--pub": True},
     "serve": {"--sub": False, "--pub": True, "--tasks": True, "--results": True, "--control": True},
     "worker": {"--connect": False, "--results": False},
+    "bridge": {"--sub": False},
     "record": {"--sub": False}, "view": {"--sub": False, "--control": False}, "tune": {"--control": False},
 }
 

@@ -45,6 +45,7 @@ import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 import zmq
@@ -56,7 +57,7 @@ from .keys import HANDSHAKE_FAILED_EVENTS, ClientKeys
 from .logs import RateLimitFilter, log_limited
 from .netio import DEFAULT_PUB, MAX_PART_BYTES, REDIAL_CHECK_S, REDIAL_MAX_S, WARN_INTERVAL_S, connect_socket
 
-__all__ = ["PointStream", "Cloud", "SensorInfo", "PointStreamTimeout", "RECORD_DTYPE"]
+__all__ = ["PointStream", "Cloud", "SensorInfo", "StreamMessage", "PointStreamTimeout", "RECORD_DTYPE"]
 
 RECORD_DTYPE = wire.RECORD_DTYPE
 POLL_SLICE_MS = 100   # the longest single wait: stop() and Ctrl-C are noticed within it
@@ -106,6 +107,16 @@ class Cloud:
         return int(self.points.shape[0])
 
 
+class StreamMessage(NamedTuple):
+    """One message of next_message(): kind 'points' (value a Cloud), 'sensor' (a SensorInfo), 'health'
+    (its map) or, with rdmap=True, 'rdmap' (the wire.Message: `data` float32 dB [range, doppler], the
+    header's axes)."""
+
+    kind: str
+    sensor: str
+    value: object
+
+
 def _check_timeout(value, name: str) -> float | None:
     if value is None:
         return None
@@ -137,12 +148,14 @@ class PointStream:
     the bus. timeout_s: see PointStreamTimeout. server_key / key / keys: CURVE keys. context: a
     zmq.Context to use (default: one of its own, terminated by close()). rcvhwm: messages ZeroMQ keeps
     while this reader is busy. max_payload_bytes: the largest payload accepted (larger: dropped as
-    'oversized')."""
+    'oversized'). rdmap: also take the range-Doppler maps (next_message() returns them, `rdmaps` keeps the
+    latest per sensor). stop: an event that ends the iteration when set (stop() sets it)."""
 
     def __init__(self, endpoint: str = DEFAULT_PUB, *, sensor_id: str | None = None, timeout_s: float | None = None,
                  server_key: str | Path | None = None, key: str | Path | None = None,
                  keys: ClientKeys | None = None, context: zmq.Context | None = None,
-                 rcvhwm: int = DEFAULT_RCVHWM, max_payload_bytes: int = wire.DEFAULT_MAX_PAYLOAD_BYTES):
+                 rcvhwm: int = DEFAULT_RCVHWM, max_payload_bytes: int = wire.DEFAULT_MAX_PAYLOAD_BYTES,
+                 rdmap: bool = False, stop: threading.Event | None = None):
         if sensor_id is not None and not wire.valid_sensor_id(sensor_id):
             raise CubecastError(f"sensor_id {sensor_id!r}: must be {wire.SENSOR_ID_RULE}")
         self.endpoint = endpoint
@@ -153,9 +166,11 @@ class PointStream:
             raise CubecastError(f"rcvhwm {rcvhwm!r}: must be a whole number of messages >= 1")
         self._rcvhwm = rcvhwm
         self.max_payload_bytes = int(max_payload_bytes)
+        self.kinds = ("points", "sensor", "health") + (("rdmap",) if rdmap else ())
         # what came in
         self.sensors: dict[str, SensorInfo] = {}      # sensor id -> its latest `sensor` message
         self.health: dict[str, dict] = {}             # sensor id -> its latest health map (header fields)
+        self.rdmaps: dict[str, wire.Message] = {}     # sensor id -> its latest range-Doppler map (rdmap=True)
         self.clouds = 0                               # point clouds delivered
         self.ignored = 0                              # valid messages of other kinds (rdmap, adc)
         self.dropped: dict[str, int] = {}             # messages the wire refused, by reason (wire.REASONS)
@@ -173,7 +188,7 @@ class PointStream:
         self._after_handshake = False
         self._tries = 0
         self._limit = RateLimitFilter(WARN_INTERVAL_S)
-        self._stop = threading.Event()
+        self._stop = stop if stop is not None else threading.Event()
         self._closed = False
         self._own_ctx = context is None
         self._ctx = context or zmq.Context()
@@ -192,7 +207,7 @@ class PointStream:
         if self.sensor_id is None:
             sock.setsockopt(zmq.SUBSCRIBE, b"")
         else:
-            for kind in ("points", "sensor", "health"):
+            for kind in self.kinds:
                 sock.setsockopt(zmq.SUBSCRIBE, wire.topic_of(self.sensor_id, kind))
         self._monitor = sock.get_monitor_socket(_EVENTS)
         self._connect()
@@ -255,6 +270,12 @@ class PointStream:
         timeout = self.timeout_s if timeout_s is ... else _check_timeout(timeout_s, "timeout_s")
         return self._pump("health", sensor_id or self.sensor_id, timeout)
 
+    def next_message(self, timeout_s: float | None = ...) -> StreamMessage | None:
+        """The next message of any kind taken (points, sensor, health; rdmap with rdmap=True), counted as
+        the iteration counts it; None once stopped. PointStreamTimeout when none comes within timeout_s."""
+        timeout = self.timeout_s if timeout_s is ... else _check_timeout(timeout_s, "timeout_s")
+        return self._pump(None, None, timeout)
+
     def stop(self) -> None:
         """End the iteration (from any thread): the waiting call returns None / StopIteration."""
         self._stop.set()
@@ -293,18 +314,16 @@ class PointStream:
 
     # ---- the receiving loop -----------------------------------------------------------------------
 
-    def _pump(self, want: str, sensor_id: str | None, timeout_s: float | None):
+    def _pump(self, want: str | None, sensor_id: str | None, timeout_s: float | None):
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         while not self._stop.is_set():
-            ready = dict(self._poller.poll(0))
-            if not ready:
-                wait_ms = POLL_SLICE_MS
-                if deadline is not None:
-                    left = deadline - time.monotonic()
-                    if left <= 0:
-                        raise PointStreamTimeout(self._timeout_message(want, sensor_id, timeout_s))
-                    wait_ms = max(1, min(POLL_SLICE_MS, math.ceil(left * 1000)))
-                ready = dict(self._poller.poll(wait_ms))
+            wait_ms = POLL_SLICE_MS
+            if deadline is not None:  # checked on every message too: a flood of other kinds is no reply
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    raise PointStreamTimeout(self._timeout_message(want, sensor_id, timeout_s))
+                wait_ms = max(1, min(POLL_SLICE_MS, math.ceil(left * 1000)))
+            ready = dict(self._poller.poll(0)) or dict(self._poller.poll(wait_ms))
             if self._monitor in ready:
                 self._events()
             self._redial()
@@ -315,12 +334,16 @@ class PointStream:
                     continue
                 got = self._ingest(parts)
                 del parts  # an oversized part is freed now
-                if got is not None and got[0] == want and (want == "points" or sensor_id in (None, got[1])):
+                if got is None:
+                    continue
+                if want is None:
+                    return StreamMessage(*got)
+                if got[0] == want and (want == "points" or sensor_id in (None, got[1])):
                     return got[2]
         return None
 
     def _timeout_message(self, want: str, sensor_id: str | None, timeout_s: float) -> str:
-        what = {"points": "point cloud", "sensor": "sensor message", "health": "health message"}[want]
+        what = {"points": "point cloud", "sensor": "sensor message", "health": "health message", None: "message"}[want]
         sid = sensor_id or self.sensor_id
         of = f" of sensor '{sid}'" if sid else ""
         if self.handshakes_failed and not self.connected:
@@ -358,6 +381,9 @@ class PointStream:
         if msg.kind == "health":
             self.health[msg.sensor_id] = {k: v for k, v in msg.header.items() if k not in ("wire", "kind", "sensor_id")}
             return "health", msg.sensor_id, self.health[msg.sensor_id]
+        if msg.kind == "rdmap" and "rdmap" in self.kinds:
+            self.rdmaps[msg.sensor_id] = msg
+            return "rdmap", msg.sensor_id, msg
         self.ignored += 1
         return None
 

@@ -126,6 +126,7 @@ def endpoint_argv(command: str, flag: str, value: str, tmp_path: Path) -> list:
         "worker": ["worker", "--connect", "tcp://127.0.0.1:5998", "--results", "tcp://127.0.0.1:5997"],
         "record": ["record", "--out", tmp_path / "r.cap"],
         "view": ["view"],
+        "bridge": ["bridge"],
     }[command]
     if flag in base:  # worker: replace the given endpoint
         i = base.index(flag)
