@@ -127,6 +127,7 @@ def endpoint_argv(command: str, flag: str, value: str, tmp_path: Path) -> list:
         "record": ["record", "--out", tmp_path / "r.cap"],
         "view": ["view"],
         "bridge": ["bridge"],
+        "tune": ["tune"],
     }[command]
     if flag in base:  # worker: replace the given endpoint
         i = base.index(flag)

@@ -36,7 +36,7 @@ from cubecast.daemon.service import Service
 from cubecast.daemon.settings import ProcessingSettings, parse_settings
 from cubecast.daemon.sources import AdcPublisher
 from tests.test_service import Collector, connected, running_service, wait_until
-from tests.test_workers import REPO, YARD, frames, sensor  # noqa: F401
+from tests.test_workers import REPO, frames, sensor  # noqa: F401
 
 TIMEOUT_S = 10.0   # every reply of serve is awaited at most this long (a set: the chain is built first)
 NEW = dict(cfar_kind="ca", cfar_pfa=1e-5, min_range_m=12.0)

@@ -23,7 +23,7 @@ from cubecast.daemon.sources import AdcPublisher
 from cubecast.daemon.worker import Worker
 from tests.test_control import NEW, Feeder, assert_old_then_new, ask, matches, points_from, references
 from tests.test_service import Collector, connected, wait_until
-from tests.test_workers import YARD, frames, sensor, serving  # noqa: F401
+from tests.test_workers import frames, sensor, serving  # noqa: F401
 
 TIMEOUT_S = 60.0   # a change with workers: serve builds the chain, then every worker does
 

@@ -8,6 +8,7 @@ one set_data per visual per displayed frame. The GUI never waits on the network.
 from __future__ import annotations
 
 import logging
+import math
 import os
 import time
 
@@ -29,9 +30,10 @@ class ViewerApp:
                  persist_frames: int = V.DEFAULT_PERSIST_FRAMES, color_by: str = "velocity",
                  velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS,
                  sensor_height_m: float | None = None, stall_after_s: float = 3.0, dpi=None,
-                 canvas=None, view_frame: str = "sensor"):
+                 canvas=None, view_frame: str = "sensor", tuning=None):
         from .canvas import ViewerCanvas
         self.feed = feed
+        self.tuning = tuning  # a tuning.TuningClient (view --control), or None
         self.stall_after_s = stall_after_s
         self.options = dict(persist_frames=persist_frames, color_by=color_by, velocity_span_mps=velocity_span_mps,
                             sensor_height_m=sensor_height_m, view_frame=view_frame)
@@ -95,6 +97,10 @@ class ViewerApp:
             changed |= self._take_others(snap)
         if changed:
             self.vc.show_data(st)
+        notice = self.tuning.take_notice() if self.tuning is not None else None
+        if notice:
+            self._say(notice)   # what serve said to a tuning key, in the footer at once
+            self._last_status_s = -math.inf
         if changed or now_s - self._last_status_s >= STATUS_EVERY_S:
             self._last_status_s = now_s
             self.vc.show_status(st, self._footer(now_s))
@@ -159,6 +165,8 @@ class ViewerApp:
         elif k in ("q", "Q", "Escape"):
             self.close()
             return
+        elif self.tuning is not None and self.tuning.press(k):
+            self._say(f"tuning: key {k} sent to {self.tuning.endpoint}")
         else:
             return
         self.vc.show_state(st, self._footer())
@@ -244,13 +252,19 @@ class ViewerApp:
         if self.timer is not None:
             self.timer.stop()
         self.feed.stop()
+        if self.tuning is not None:
+            self.tuning.stop()
 
 
 def run_window(endpoint: str | list[str], sensor: str | None = None, size=(1280, 800), stall_after_s: float = 3.0,
-               keys=None, **options) -> int:
-    """Open the window on `endpoint` and run until it is closed (keys: keyfiles.FeedKeys, or None)."""
+               keys=None, control: str | None = None, **options) -> int:
+    """Open the window on `endpoint` and run until it is closed (keys: keyfiles.FeedKeys, or None;
+    control: serve's control endpoint for the tuning keys, which use the same keys)."""
     from vispy import app
     feed = Feed(endpoint, sensor, keys=keys)
+    if control is not None:
+        from .tuning import TuningClient
+        options["tuning"] = TuningClient(control, keys)
     try:
         feed.start()
     except Exception as exc:
@@ -264,9 +278,13 @@ def run_window(endpoint: str | list[str], sensor: str | None = None, size=(1280,
                   "a display", type(exc).__name__, " ".join(str(exc).split()))
         return 2
     viewer.start()
+    if viewer.tuning is not None:
+        viewer.tuning.start()
     try:
         app.run()
     finally:
         viewer.close()
         feed.stop()
+        if viewer.tuning is not None:
+            viewer.tuning.stop()
     return 0

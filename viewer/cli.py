@@ -93,6 +93,8 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
     v.add_argument("--stall-s", type=_positive_float, default=3.0,
                    help="seconds without messages before the status shows a stall (default 3)")
     v.add_argument("--settings", help="with --capture: processing settings (TOML)")
+    v.add_argument("--control", metavar="ENDPOINT", help="serve's --control endpoint: keys f/F, k/K, g/G, t/T tune "
+                                                         "its CFAR live (viewer/tuning.py; the same --server-key/--key)")
     g = v.add_argument_group("keys (CURVE; see `cubecast keys`)")
     g.add_argument("--server-key", metavar="FILE", help="the daemon's public key (its NAME.key), for a daemon that "
                                                         "requires keys (serve --client-keys)")
@@ -115,6 +117,8 @@ def run(args, capture_snapshot=None) -> int:
         return _err("give either --capture or --sub, not both")
     if args.frame is not None and not args.capture:
         return _err("--frame applies to --capture only")
+    if getattr(args, "control", None) and args.snapshot:
+        return _err("--control applies to the live window only, not to --snapshot")
     if args.capture and len(args.capture) > 1 and not args.platform:
         return _err("several --capture files are drawn together in the platform frame: add --platform")
     if args.color == "sensor" and not args.platform:
@@ -151,7 +155,7 @@ def run(args, capture_snapshot=None) -> int:
         return _err("--settings applies to --capture only")
     from .app import run_window
     return run_window(args.sub or [DEFAULT_ENDPOINT], sensor=args.sensor, size=args.size,
-                      stall_after_s=args.stall_s, keys=keys, **options)
+                      stall_after_s=args.stall_s, keys=keys, control=getattr(args, "control", None), **options)
 
 
 def _snapshot_sub(args, options, keys=None) -> int:
