@@ -1,4 +1,4 @@
-"""The viewer's side of the wire (README "Wire format", version 1): decoding with limits, and a subscriber thread.
+"""The viewer's side of the wire (README "Wire format"): decoding with limits, and a subscriber thread.
 
 `decode_parts` turns one 3-part ZeroMQ message into a decoded message, a plain dict:
 
@@ -14,9 +14,9 @@ of the wire's rejection reasons.
 `Feed` runs a SUB socket on a thread of its own and keeps, per sensor, only the latest message of each
 kind in a lock-protected slot: the GUI takes a `FeedSnapshot` whenever it likes and never waits.
 ZeroMQ reconnects by itself when the daemon restarts; the snapshot says how long ago the last message
-came and whether the TCP connection is up, so the GUI can show a stall. It is also the client library
-for a tracker written in Python: `Feed(endpoint, keys=load_feed_keys(...))` for a daemon that requires
-keys (viewer/keyfiles.py).
+came and whether the TCP connection is up, so the GUI can show a stall (a tracker written in Python uses
+cubecast.daemon.pointstream.PointStream instead: every cloud in order, with gap and drop counts).
+`Feed(endpoint, keys=load_feed_keys(...))` for a daemon that requires keys (viewer/keyfiles.py).
 
 An oversized or malformed message costs only itself: every part up to MAX_PART_BYTES (the wire's
 generic payload bound) is received without a copy and measured by the decoder (reason 'oversized'
