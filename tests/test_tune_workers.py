@@ -132,11 +132,14 @@ def test_a_worker_that_cannot_build_refuses_the_change_for_all(sensor, frames, r
             with worker_thread(svc, OlderWorker, "older"):
                 assert wait_until(lambda: alive(svc) == 3, 20), svc.stats()["workers"]
                 points_from(col, 0, 4)
-                refused = ask(ep, {"op": "set", "settings": {"cfar_kind": "go"}}, timeout_s=TIMEOUT_S)
-                kept_from = feed.seq
-                kept = points_from(col, kept_from, 6)
-                assert picky._prepared is None and picky.epoch == 0   # it dropped nothing it used
+                # a worker that cannot follow a change at all: refused at once, naming it
+                older = ask(ep, {"op": "set", "settings": NEW}, timeout_s=TIMEOUT_S)
             assert wait_until(lambda: alive(svc) == 2, 20)   # the older worker stopped (bye)
+            refused = ask(ep, {"op": "set", "settings": {"cfar_kind": "go"}}, timeout_s=TIMEOUT_S)
+            kept_from = feed.seq
+            kept = points_from(col, kept_from, 6)
+            assert wait_until(lambda: picky._prepared is None, 10)   # it dropped what it built
+            assert picky.epoch == 0
             # the cluster is not stuck half-way: the next change applies everywhere
             reply = ask(ep, {"op": "set", "settings": NEW}, timeout_s=TIMEOUT_S)
             switched_by, at_switch = feed.seq, done_by(svc)
@@ -145,17 +148,41 @@ def test_a_worker_that_cannot_build_refuses_the_change_for_all(sensor, frames, r
             # a worker joining now is welcomed with the settings of now
             with worker_thread(svc, Worker, "newcomer") as newcomer:
                 late = (newcomer.config.settings, newcomer.epoch)
-            assert (picky.epoch, picky.changes, picky.config.settings) == (2, 1, ProcessingSettings(**NEW))
+            assert (picky.epoch, picky.changes, picky.config.settings) == (3, 1, ProcessingSettings(**NEW))
         health = [h.header for h in col.of("health")][-1]
+    assert older is not None and not older["ok"] and older["reason"] == "refused" and older["epoch"] == 0
+    assert f"worker 'older' (on {socket.gethostname()[:255]}) is a cubecast that cannot change settings while it " \
+        "runs" in older["error"]
     assert refused is not None and not refused["ok"] and refused["reason"] == "refused" and refused["epoch"] == 0
     assert (f"worker 'picky' (on {socket.gethostname()[:255]}) cannot build the chain: this host cannot build a "
-            "GO-CFAR chain") in refused["error"]
-    assert "worker 'older'" in refused["error"] and "cannot change settings while it runs" in refused["error"]
+            "GO-CFAR chain") == refused["error"]
     assert refused["settings"]["cfar_kind"] == "os"
     assert kept and all(matches(m, refs["old"]) for m in kept)
     assert not any(matches(m, refs["go"]) and not matches(m, refs["old"]) for m in col.of("points"))
-    assert reply["ok"] and reply["epoch"] == 2, reply   # epoch 1 was used up by the refused change
+    assert reply["ok"] and reply["epoch"] == 3, reply   # epochs 1 and 2 were used up by the refused changes
     assert after and all(matches(m, refs["new"]) for m in after)
     assert_old_then_new(col.of("points"), refs)
-    assert late == (ProcessingSettings(**NEW), 2)
-    assert health["settings_refused"] == 1 and health["settings_applied"] == 1 and health["settings_epoch"] == 2
+    assert late == (ProcessingSettings(**NEW), 3)
+    assert health["settings_refused"] == 2 and health["settings_applied"] == 1 and health["settings_epoch"] == 3
+
+
+class SilentWorker(Worker):
+    """A worker that never answers a settings change (it keeps processing and beating)."""
+
+    def _prepare(self, parts):
+        pass
+
+
+def test_a_worker_that_does_not_answer_in_time_refuses_the_change(sensor, frames, refs):
+    with workers_with_control(sensor, workers=1, tasks_endpoint="tcp://127.0.0.1:*",
+                              results_endpoint="tcp://127.0.0.1:*") as (svc, pub, col):
+        svc.processor.change_timeout_s = 1.5
+        with worker_thread(svc, SilentWorker, "silent"), Feeder(pub, frames) as feed:
+            assert wait_until(lambda: alive(svc) == 2, 20)
+            reply = ask(svc.control_endpoint, {"op": "set", "settings": NEW}, timeout_s=TIMEOUT_S)
+            kept = points_from(col, feed.seq, 6)
+            assert wait_until(lambda: done_by(svc)["silent"] > 0 and alive(svc) == 2, 20)
+    assert reply is not None and not reply["ok"] and reply["reason"] == "refused" and reply["epoch"] == 0
+    assert "worker 'silent' did not answer the settings change within 1.5 s" in reply["error"]
+    assert kept and all(matches(m, refs["old"]) for m in kept)
+    assert not any(matches(m, refs["new"]) and not matches(m, refs["old"]) for m in col.of("points"))
