@@ -65,7 +65,7 @@ MAX_REPLY_BYTES = 256 * 1024
 MAX_ERROR_CHARS = 4000
 MAX_REQUESTS_PER_POLL = 64
 REQUEST_FIELDS = ("op", "settings")
-CONTROL_EXPOSES = "the processing settings (anyone who reaches it can read and change them)"
+CONTROL_EXPOSES = "the processing settings, to read and to change"
 SET_TIMEOUT_S = 120.0  # a client waits this long for a `set`: serve and every worker build the chain first
 
 
