@@ -305,8 +305,9 @@ def request(endpoint: str, body: dict, timeout_s: float, keys: ClientKeys | None
         connect_socket(sock, endpoint, "control endpoint")
         sock.send(msgpack.packb(body, use_bin_type=True))
         if not sock.poll(int(timeout_s * 1000)):
+            keyed = ", and is this key in its --control-keys folder" if keys else ""
             raise CubecastError(f"control endpoint {endpoint}: no answer within {timeout_s:g} s (is serve running "
-                                f"with --control {endpoint}{', and is this key in its --control-keys folder' if keys else ''}?)")
+                                f"with --control {endpoint}{keyed}?)")
         return decode_reply(sock.recv(), endpoint)
     finally:
         sock.close(linger=0)

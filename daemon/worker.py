@@ -12,8 +12,9 @@ ready; then it processes tasks until stopped, sending a heartbeat when idle. The
 are exactly those serve computes in-process. A settings change (live tuning) arrives as `prepare`:
 the new chain is built in a thread while tasks go on with the running one, the worker answers
 `prepared` (or the error that stopped the build) and switches only on serve's `commit`, which comes
-after the last task of the old settings (workproto.py, "Settings epochs"). A worker that serve no longer knows (serve restarted,
-or thought it gone) is asked to introduce itself again; a refused worker stops with serve's reason.
+after the last task of the old settings (workproto.py, "Settings epochs"). A worker that serve no
+longer knows (serve restarted, or thought it gone) is asked to introduce itself again; a refused
+worker stops with serve's reason.
 
 Local workers (started by serve) skip the CRC re-check: serve checked it on receipt, and over
 loopback for a large frame it costs a quarter of the chain's time. They die with their serve.
