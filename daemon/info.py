@@ -128,8 +128,8 @@ def summarize(ix: CaptureIndex) -> dict:
 def sensor_summary(sensor) -> dict:
     """The sensor's identity, shape and main figures, as `describe` computes them."""
     d = sensor.describe()
-    return {"start_frequency_hz": sensor.start_frequency_hz, "samples_per_chirp": sensor.samples_per_chirp} | {
-        k: d[k] for k in SENSOR_KEYS}
+    chirp = {name: getattr(sensor, name) for name in ("start_frequency_hz", "samples_per_chirp")}
+    return chirp | {k: d[k] for k in SENSOR_KEYS}
 
 
 def payload_layouts(layouts: list[tuple[str, tuple[int, ...]]], sensor) -> list[dict]:

@@ -149,7 +149,7 @@ class PointStream:
     zmq.Context to use (default: one of its own, terminated by close()). rcvhwm: messages ZeroMQ keeps
     while this reader is busy. max_payload_bytes: the largest payload accepted (larger: dropped as
     'oversized'). rdmap: also take the range-Doppler maps (next_message() returns them, `rdmaps` keeps the
-    latest per sensor). stop: an event that ends the iteration when set (stop() sets it)."""
+    latest per sensor id). stop: an event that ends the iteration when set (stop() sets it)."""
 
     def __init__(self, endpoint: str = DEFAULT_PUB, *, sensor_id: str | None = None, timeout_s: float | None = None,
                  server_key: str | Path | None = None, key: str | Path | None = None,
