@@ -122,10 +122,12 @@ def refs(sensor, frames):
 
 
 @contextlib.contextmanager
-def serve_with_control(sensor, **kw):
+def serve_with_control(sensor, runner=running_service, **kw):
+    """A source, a serve with a control endpoint (run by `runner`: running_service, or test_workers'
+    serving for one with workers) and a collector of its points."""
     pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
     try:
-        with running_service(sensor, pub.endpoint, queue_depth=8, rdmap_max_hz=0.0, health_interval_s=0.2,
+        with runner(sensor, pub.endpoint, queue_depth=8, rdmap_max_hz=0.0, health_interval_s=0.2,
                              control_endpoint="tcp://127.0.0.1:*", **kw) as svc:
             col = Collector(svc.pub_endpoint, prefix=b"yard-a/")
             try:

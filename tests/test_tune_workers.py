@@ -19,10 +19,10 @@ import pytest
 
 from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.settings import ProcessingSettings
-from cubecast.daemon.sources import AdcPublisher
 from cubecast.daemon.worker import Worker
-from tests.test_control import NEW, Feeder, assert_old_then_new, ask, matches, points_from, references
-from tests.test_service import Collector, connected, wait_until
+from tests.test_control import (NEW, Feeder, assert_old_then_new, ask, matches, points_from, references,
+                                serve_with_control)
+from tests.test_service import wait_until
 from tests.test_workers import frames, sensor, serving  # noqa: F401
 
 TIMEOUT_S = 60.0   # a change with workers: serve builds the chain, then every worker does
@@ -37,21 +37,8 @@ def refs(sensor, frames):
     return r
 
 
-@contextlib.contextmanager
 def workers_with_control(sensor, **kw):
-    pub = AdcPublisher(sensor, "tcp://127.0.0.1:*")
-    try:
-        with serving(sensor, pub.endpoint, queue_depth=8, rdmap_max_hz=0.0, health_interval_s=0.2,
-                     control_endpoint="tcp://127.0.0.1:*", **kw) as svc:
-            col = Collector(svc.pub_endpoint, prefix=b"yard-a/")
-            try:
-                connected(col)
-                assert pub.wait_for_subscribers(1, 10, threading.Event())
-                yield svc, pub, col
-            finally:
-                col.close()
-    finally:
-        pub.close()
+    return serve_with_control(sensor, runner=serving, **kw)
 
 
 @contextlib.contextmanager
