@@ -29,6 +29,7 @@ from ..settings import ProcessingSettings
 from .angle import AngleEstimator, AngleSettings, VirtualGrid, crb_unit_covariance
 from .cfar import Cfar, CfarSettings
 from .doppler import DopplerFft
+from .frontend import FRONTEND_DTYPE
 from .mimo import MimoDecoder
 from .points import POINT_DTYPE, POINT_FIELDS, fill_points
 from .rangefft import RangeFft
@@ -74,10 +75,12 @@ def _next_pow2(n: int) -> int:
 
 class Pipeline:
     def __init__(self, sensor: Sensor, settings: ProcessingSettings | None = None,
-                 calibration: np.ndarray | None = None, range_bias_m: float = 0.0):
+                 calibration: np.ndarray | None = None, range_bias_m: float = 0.0,
+                 iq_imbalance: np.ndarray | None = None):
         """`calibration`: complex per-virtual-channel factors applied before angle estimation;
-        `range_bias_m`: measured minus true range of a reference target, subtracted from every point
-        (both from `cubecast calibrate`)."""
+        `range_bias_m`: measured minus true range of a reference target, subtracted from every point;
+        `iq_imbalance`: float64 [n_rx, 2], each receive channel's Q-branch gain g and phase error phi
+        (radians) to correct (README "I/Q imbalance"), or None (all from `cubecast calibrate`)."""
         self.sensor = sensor
         self.settings = settings = (settings or ProcessingSettings()).validate()
         self.frame_shape = (sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp)
@@ -148,6 +151,10 @@ class Pipeline:
         self._canonical = None
         self.range_bias_m = float(range_bias_m)
         self.last_detections = 0
+        # the front end's monitors of the last frame, one record per receive channel
+        self.frontend = np.zeros(sensor.n_rx, FRONTEND_DTYPE)
+        self.frontend["samples"] = sensor.chirps_per_frame * sensor.samples_per_chirp
+        self.iq_imbalance = None if iq_imbalance is None else np.array(iq_imbalance, np.float64)
 
     @property
     def detection_map(self) -> np.ndarray:
