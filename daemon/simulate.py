@@ -21,6 +21,46 @@ a board. The SNR above (a scene's snr_db or the range equation) is the echo's be
 ground truth's snr_db is after it (what the ADC sees). The noise stays white at noise_rms_counts:
 it is specified at the ADC. Simulator(if_filter=False) leaves the filter out, as captures simulated
 before it was modelled were made (the bundled captures are such recorded files).
+
+Impairments (the scene's optional [[interferer]] and [impairments]; absent, every frame is what it
+was before they were modelled, byte for byte). The order is the receiver's: interference, leakage
+and echoes sum at the antenna and mixer; receiver noise joins them there (it is the LNA's, ahead of
+the I/Q mixer, so the imbalance acts on it too); then the I/Q imbalance, then the DC offset, then
+the ADC clips and quantises (raw_frame).
+
+Interference (another FMCW sensor, scene.Interferer). Its chirp starting at T sweeps
+f_i + S_i u (0 <= u < ramp) and reaches our RX l after the one-way delay d_l = |p - rx_l| / c. The
+mixer output carries the difference of our LO and the received chirp (the same sign as an echo's):
+
+    i[m, l, n] = A |H(f_b)| exp(j (2 pi (f_c t_n + S t_n^2 / 2 - f_i u - S_i u^2 / 2) + theta))
+    u = t_m + t_n - d_l - T,   f_b = f_c + S t_n - f_i - S_i u   (the instantaneous beat frequency)
+
+while the interferer is in its ramp; theta is a random phase per pair (our chirp, its chirp), seeded
+by (seed, frame, interferer), since the two synthesisers' phases are unrelated. The IF filter is
+applied quasi-statically, |H| at the instantaneous beat frequency: an approximation that holds when
+the sweep stays in one filter bandwidth B longer than the filter's response time, |S - S_i| << B^2
+(for the bundled sensor B ~ 6 MHz: a few 1e13 Hz/s); a faster sweep would show the filter's delay
+and ringing, which are not modelled. Without the filter (if_filter=False) the band is a brick wall,
+|f_b| <= the IF band edge (fs complex, fs / 2 real). The chirps cross where f_b = 0; the burst lasts
+while |f_b| is in the band, 2 B_IF / |S - S_i| for a band of half-width B_IF. Amplitude
+A = noise_rms_counts sqrt(INR) with the scene's inr_db, or from eirp_dbm by the one-way Friis link
+(Friis, "A note on a simple transmission formula", 1946): Pr = EIRP + G_r + 20 log10(lambda_i /
+(4 pi R)) over the noise k T0 F fs (system losses not counted), lambda_i = c / f_i, R from our
+sensor's origin. An interferer behind the array's plane (y <= 0) is not received (as echoes).
+
+Leakage: a static return of amplitude full_scale 10^(level_dbfs / 20) |H(S tau_L)| at beat S tau_L,
+exp(j 2 pi (f_c tau_L + S tau_L t_n - S tau_L^2 / 2)), the same every chirp, TX and RX (its phase is
+the coupling path's, taken as zero on every RX).
+
+I/Q imbalance per RX (gain g = 10^(iq_gain_db / 20), phase error phi): I' = I, Q' = g (Q cos phi -
+I sin phi), i.e. x = mu z + nu conj(z) with mu = (1 + g e^{-j phi}) / 2, nu = (1 - g e^{j phi}) / 2;
+a tone's image at the negative frequency sits |nu|^2 / |mu|^2 below it (the image-rejection ratio,
+common practice; e.g. Razavi, RF Microelectronics, 2nd ed., 2011). Then DC: i + j q counts per RX.
+
+Truth: interference_bursts(index) lists [chirp, rx, first, last] sample runs where the interference's
+amplitude at the ADC (its envelope, after the IF filter weight) exceeds noise_rms_counts;
+clipped_samples(index) counts per RX the complex samples whose I or Q is at or beyond full scale after
+quantisation (count_clipped).
 """
 
 from __future__ import annotations
@@ -39,6 +79,31 @@ log = logging.getLogger(__name__)
 
 TRUTH_COLUMNS = ("x_m", "y_m", "z_m", "vx_mps", "vy_mps", "vz_mps", "range_m", "azimuth_deg",
                  "elevation_deg", "velocity_mps", "snr_db", "in_fov")
+BURST_COLUMNS = ("chirp", "rx", "first_sample", "last_sample")  # interference_bursts: inclusive sample runs
+
+
+def count_clipped(sensor: Sensor, payload: np.ndarray) -> np.ndarray:
+    """int64 [n_rx]: complex samples per RX whose I or Q is at or beyond the ADC full scale, in a
+    frame in the sensor's ADC format (int16 pairs, complex or real float32) or canonical complex64."""
+    fs = sensor.adc.full_scale
+    if np.iscomplexobj(payload):
+        hit = (np.abs(payload.real) >= fs) | (np.abs(payload.imag) >= fs)
+    elif payload.ndim == 4:  # int16 I/Q pairs
+        hit = (np.abs(payload.astype(np.int32)) >= fs).any(axis=-1)
+    else:
+        hit = np.abs(payload) >= fs
+    return np.count_nonzero(hit, axis=(0, 2)).astype(np.int64)
+
+
+def _runs(flags: np.ndarray) -> np.ndarray:
+    """int64 [n, 4] (chirp, rx, first, last) of the contiguous True runs along the last axis of
+    flags [chirp, rx, sample]."""
+    m, l, n = flags.shape
+    pad = np.zeros((m, l, n + 2), np.int8)
+    pad[:, :, 1:-1] = flags
+    d = np.diff(pad, axis=-1)
+    starts, ends = np.nonzero(d == 1), np.nonzero(d == -1)  # same (chirp, rx) order: row-major
+    return np.column_stack([starts[0], starts[1], starts[2], ends[2] - 1]).astype(np.int64)
 
 
 def range_equation_snr_db(sensor: Sensor, range_m, rcs_dbsm) -> np.ndarray:
@@ -49,9 +114,21 @@ def range_equation_snr_db(sensor: Sensor, range_m, rcs_dbsm) -> np.ndarray:
     pr_dbw = (sensor.tx_power_dbm - 30.0 + sensor.tx_gain_dbi + sensor.rx_gain_dbi
               + 20.0 * math.log10(lam) + np.asarray(rcs_dbsm, np.float64)
               - 30.0 * math.log10(4.0 * math.pi) - 40.0 * np.log10(range_m) - sensor.system_loss_db)
-    noise_dbw = 10.0 * math.log10(BOLTZMANN_J_PER_K * REFERENCE_TEMPERATURE_K * sensor.sample_rate_hz) \
+    return pr_dbw - _noise_dbw(sensor)
+
+
+def _noise_dbw(sensor: Sensor) -> float:
+    """Thermal noise k T0 F B in dBW, B = the ADC sample rate."""
+    return 10.0 * math.log10(BOLTZMANN_J_PER_K * REFERENCE_TEMPERATURE_K * sensor.sample_rate_hz) \
         + sensor.noise_figure_db
-    return pr_dbw - noise_dbw
+
+
+def friis_inr_db(sensor: Sensor, eirp_dbm: float, range_m: float, wavelength_m: float) -> float:
+    """Per-sample interference-to-noise ratio of a transmitter of this EIRP at range_m: the one-way
+    Friis link (Friis 1946) into our receive gain, Pr = EIRP + G_r + 20 log10(lambda / (4 pi R)), over
+    k T0 F fs."""
+    pr_dbw = (eirp_dbm - 30.0 + sensor.rx_gain_dbi + 20.0 * math.log10(wavelength_m / (4.0 * math.pi * range_m)))
+    return pr_dbw - _noise_dbw(sensor)
 
 
 @dataclass(frozen=True)
@@ -85,6 +162,60 @@ class Simulator:
         self._plan = _Plan(m * s.chirp_period_s, active_tx, active_w,
                            s.adc_start_delay_s + np.arange(s.samples_per_chirp) / s.sample_rate_hz)
         self._warn_beyond_range()
+        self._rx_impairments = self._check_impairments()
+        self._interferer_amplitudes = self._check_interferers()
+
+    # ---- impairments: checked once ------------------------------------------------------------
+    def _per_rx(self, name: str, values: np.ndarray | None, width: int) -> np.ndarray | None:
+        """A per-RX array from the scene ([n] or [n, 2]; one row = every RX) as [n_rx, width]."""
+        if values is None:
+            return None
+        s, imp = self.sensor, self.scene.impairments
+        rows = values.reshape(len(values), width)
+        if len(rows) not in (1, s.n_rx):
+            shown = values.tolist() if width > 1 else values.tolist()
+            raise CubecastError(f"{imp.where} {name} = {shown!r}: has {len(rows)} entries, sensor '{s.sensor_id}' has "
+                                f"{s.n_rx} RX: give one per RX (or a single one for every RX)")
+        return np.broadcast_to(rows, (s.n_rx, width)).astype(np.float64)
+
+    def _check_impairments(self) -> dict | None:
+        """The scene's [impairments] as per-RX arrays, checked against the sensor."""
+        imp, s = self.scene.impairments, self.sensor
+        if imp is None or not imp.any:
+            return None
+        out = {"dc": self._per_rx("dc_offset_counts", imp.dc_offset_counts, 2),
+               "gain_db": self._per_rx("iq_gain_db", imp.iq_gain_db, 1),
+               "phase_deg": self._per_rx("iq_phase_deg", imp.iq_phase_deg, 1)}
+        if out["dc"] is not None and np.any(np.abs(out["dc"]) >= s.adc.full_scale):
+            raise CubecastError(f"{imp.where} dc_offset_counts = {imp.dc_offset_counts.tolist()!r}: every value must be "
+                                f"below the ADC full scale {s.adc.full_scale:g} of sensor '{s.sensor_id}'")
+        if not s.adc.is_complex:
+            for name, bad in (("iq_gain_db", out["gain_db"]), ("iq_phase_deg", out["phase_deg"]),
+                              ("dc_offset_counts", None if out["dc"] is None else out["dc"][:, 1:])):
+                if bad is not None and np.any(bad != 0):
+                    raise CubecastError(f"{imp.where} {name}: sensor '{s.sensor_id}' samples real (one branch, no "
+                                        f"Q): {'the q offsets must be 0' if name == 'dc_offset_counts' else 'must be 0'}")
+        return out
+
+    def _check_interferers(self) -> list[float]:
+        """Per interferer: its amplitude in counts at the ADC while in band (before the IF filter);
+        0 behind the array (not received, logged)."""
+        s, amps = self.sensor, []
+        for itf in self.scene.interferers:
+            r = float(np.linalg.norm(itf.position_m))
+            d = np.linalg.norm(itf.position_m[None, :] - s.rx_positions_m, axis=1)
+            if d.min() < s.wavelength_m:
+                raise CubecastError(f"scene '{self.scene.name}': interferer '{itf.name}' at {itf.position_m.tolist()} "
+                                    f"is within a wavelength ({s.wavelength_m * 1e3:.2f} mm) of a receive antenna")
+            inr = itf.inr_db if itf.inr_db is not None else friis_inr_db(
+                s, itf.eirp_dbm, r, SPEED_OF_LIGHT_MPS / itf.start_frequency_hz)
+            if itf.position_m[1] <= 0:
+                log.warning("scene '%s': interferer '%s' is behind the array's plane (y <= 0 in the sensor frame): "
+                            "not received", self.scene.name, itf.name)
+                amps.append(0.0)
+            else:
+                amps.append(s.noise_rms_counts * 10.0 ** (inr / 20.0))
+        return amps
 
     def if_gain(self, beat_hz) -> np.ndarray:
         """Amplitude weight of echoes at these beat frequencies: the sensor's IF filter |H(f)|, or 1
@@ -188,10 +319,94 @@ class Simulator:
                 out += (amp[ti] * w * front[ti])[:, None, None] * gain[:, :, None] * np.exp(2j * np.pi * cyc)
         return out
 
+    # ---- interference and leakage --------------------------------------------------------------
+    def _band_gain(self, beat_hz: np.ndarray) -> np.ndarray:
+        """The IF filter's |H| at an interferer's instantaneous beat frequency (quasi-static); without
+        the filter a brick wall at the IF band edge."""
+        if self.if_filter:
+            return self.sensor.if_filter_gain(beat_hz)
+        return (np.abs(beat_hz) <= self.sensor.if_bandwidth_hz).astype(np.float64)
+
+    def _interferer_chirps(self, itf, t0_s: float, t1_s: float) -> np.ndarray:
+        """Start times of the interferer's chirps whose ramp overlaps [t0_s, t1_s) (transmit times)."""
+        p_c = itf.chirp_period_s
+        if itf.chirps == 0:
+            q = np.arange(max(0, math.ceil((t0_s - itf.ramp_time_s - itf.start_time_s) / p_c)),
+                          max(0, math.floor((t1_s - itf.start_time_s) / p_c) + 1))
+            return itf.start_time_s + q * p_c
+        burst_s = (itf.chirps - 1) * p_c + itf.ramp_time_s
+        p = np.arange(max(0, math.ceil((t0_s - burst_s - itf.start_time_s) / itf.frame_period_s)),
+                      max(0, math.floor((t1_s - itf.start_time_s) / itf.frame_period_s) + 1))
+        starts = (itf.start_time_s + p[:, None] * itf.frame_period_s + np.arange(itf.chirps)[None, :] * p_c).ravel()
+        return starts[(starts + itf.ramp_time_s > t0_s) & (starts < t1_s)]
+
+    def interference(self, index: int) -> np.ndarray:
+        """complex128 [chirp, rx, sample]: every interferer's signal at the ADC in frame `index` (after
+        the IF filter's weight, before the receiver's imbalance and noise); zeros without interferers."""
+        s, plan = self.sensor, self._plan
+        out = np.zeros((s.chirps_per_frame, s.n_rx, s.samples_per_chirp), np.complex128)
+        t_n = plan.fast_time_s
+        lo_cyc = s.start_frequency_hz * t_n + 0.5 * s.slope_hz_per_s * t_n * t_n  # our LO's phase, cycles
+        lo_hz = s.start_frequency_hz + s.slope_hz_per_s * t_n
+        t_m = self.frame_time_s(index) + plan.chirp_offsets_s
+        for k, (itf, amp) in enumerate(zip(self.scene.interferers, self._interferer_amplitudes)):
+            if amp == 0.0:
+                continue
+            d = np.linalg.norm(itf.position_m[None, :] - s.rx_positions_m, axis=1) / SPEED_OF_LIGHT_MPS  # [L]
+            rng = np.random.Generator(np.random.PCG64([self.seed, index, 1, k]))
+            for m in range(s.chirps_per_frame):
+                starts = self._interferer_chirps(itf, t_m[m] + t_n[0] - d.max(), t_m[m] + t_n[-1] - d.min() + 1e-12)
+                for start in starts:
+                    theta = rng.uniform(0.0, 1.0)  # cycles: unrelated synthesiser phases
+                    u = (t_m[m] - start) + t_n[None, :] - d[:, None]  # [L, N] time into its ramp, at reception
+                    on = (u >= 0.0) & (u < itf.ramp_time_s)
+                    if not on.any():
+                        continue
+                    beat = lo_hz[None, :] - (itf.start_frequency_hz + itf.slope_hz_per_s * u)
+                    w = amp * self._band_gain(beat) * on
+                    cyc = lo_cyc[None, :] - itf.start_frequency_hz * u - 0.5 * itf.slope_hz_per_s * u * u + theta
+                    out[m] += w * np.exp(2j * np.pi * np.mod(cyc, 1.0))
+        return out
+
+    def interference_bursts(self, index: int, interference: np.ndarray | None = None) -> np.ndarray:
+        """int64 [n, 4] (BURST_COLUMNS: chirp, rx, first, last; inclusive) of frame `index`: the runs of
+        samples where the interference's amplitude at the ADC exceeds noise_rms_counts."""
+        x = self.interference(index) if interference is None else interference
+        return _runs(np.abs(x) > self.sensor.noise_rms_counts)
+
+    def leakage(self) -> np.ndarray | None:
+        """complex128 [sample]: the TX-to-RX leakage tone of every chirp and RX, or None."""
+        imp, s = self.scene.impairments, self.sensor
+        if imp is None or imp.leakage_level_dbfs is None:
+            return None
+        tau = imp.leakage_delay_s
+        amp = s.adc.full_scale * 10.0 ** (imp.leakage_level_dbfs / 20.0) * float(self.if_gain(s.slope_hz_per_s * tau))
+        cyc0 = math.fmod(s.start_frequency_hz * tau - 0.5 * s.slope_hz_per_s * tau * tau, 1.0)
+        return amp * np.exp(2j * np.pi * (cyc0 + s.slope_hz_per_s * tau * self._plan.fast_time_s))
+
+    def _receiver(self, data: np.ndarray) -> np.ndarray:
+        """I/Q imbalance (I' = I, Q' = g (Q cos phi - I sin phi)), then DC, per RX, in place."""
+        rx = self._rx_impairments
+        if rx["gain_db"] is not None or rx["phase_deg"] is not None:
+            g = 10.0 ** ((rx["gain_db"] if rx["gain_db"] is not None else np.zeros((self.sensor.n_rx, 1))) / 20.0)
+            phi = np.radians(rx["phase_deg"] if rx["phase_deg"] is not None else np.zeros((self.sensor.n_rx, 1)))
+            i_part = data.real.copy()
+            data.imag = g[None, :, :] * (data.imag * np.cos(phi)[None] - i_part * np.sin(phi)[None])
+        if rx["dc"] is not None:
+            data += (rx["dc"][:, 0] + 1j * rx["dc"][:, 1])[None, :, None]
+        return data
+
+    # ---- frames ------------------------------------------------------------------------------------
     def frame(self, index: int) -> np.ndarray:
-        """Canonical complex64 frame `index` with receiver noise (if enabled)."""
+        """Canonical complex64 frame `index` with receiver noise (if enabled) and the scene's
+        impairments (interference, leakage, I/Q imbalance, DC: module docstring)."""
         s = self.sensor
         data = self.clean_frame(index)
+        if self.scene.interferers:
+            data += self.interference(index)
+        leak = self.leakage()
+        if leak is not None:
+            data += leak[None, None, :]
         if not s.adc.is_complex:
             data = data.real.astype(np.complex128)
         if self.noise:
@@ -199,8 +414,19 @@ class Simulator:
             sigma = s.noise_rms_counts / math.sqrt(2.0)
             noise = rng.standard_normal((2,) + data.shape) * sigma
             data = data + noise[0] + (1j * noise[1] if s.adc.is_complex else 0.0)
+        if self._rx_impairments is not None:
+            data = self._receiver(data)
         return data.astype(np.complex64)
 
     def raw_frame(self, index: int) -> np.ndarray:
         """Frame `index` as the board would deliver it: quantised, clipped and in its I/Q conventions."""
         return self.sensor.canonical_to_raw(self.frame(index))
+
+    def raw_frame_report(self, index: int) -> tuple[np.ndarray, np.ndarray]:
+        """(raw_frame(index), its clipped samples per RX: count_clipped, int64 [n_rx])."""
+        raw = self.raw_frame(index)
+        return raw, count_clipped(self.sensor, raw)
+
+    def clipped_samples(self, index: int) -> np.ndarray:
+        """int64 [n_rx]: complex samples of raw_frame(index) per RX with I or Q at or beyond full scale."""
+        return self.raw_frame_report(index)[1]
