@@ -159,3 +159,124 @@ def test_interferer_behind_the_array_is_not_received(caplog):
     sim = Simulator(s, parse_scene(TARGET + interferer(position_m=[1.0, -5.0, 0.0])), seed=1)
     assert "behind the array's plane" in caplog.text
     assert not np.any(sim.interference(0)) and len(sim.interference_bursts(0)) == 0
+
+
+# ---- clipping --------------------------------------------------------------------------------------
+
+def test_clipped_samples_equal_a_numpy_count_on_the_raw_frame(tmp_path):
+    # a near strong echo of amplitude ~ 1.05 x full scale clips on part of its cycle only; the count is
+    # per RX, over chirps and samples, of complex samples with |I| or |Q| >= full scale (numpy, by hand)
+    s = load_sensor(YARD_SENSOR)
+    amp_db = 20 * math.log10(1.05 * 8191 / 8.0)
+    scene = parse_scene(f'[[target]]\nrange_m = 3.0\nazimuth_deg = 10.0\nsnr_db = {amp_db!r}\n'
+                        '[impairments]\ndc_offset_counts = [[40.0, -25.0], [0, 0], [0, 0], [0, 0]]\n')
+    sim = Simulator(s, scene, seed=2)
+    raw, report = sim.raw_frame_report(0)
+    by_hand = np.count_nonzero((raw[..., 0] >= 8191) | (raw[..., 0] <= -8191)
+                               | (raw[..., 1] >= 8191) | (raw[..., 1] <= -8191), axis=(0, 2))
+    assert np.array_equal(report, by_hand) and np.array_equal(sim.clipped_samples(0), by_hand)
+    assert 0 < by_hand.min() and by_hand.max() < raw.shape[0] * raw.shape[2]  # partly clipped
+    # stored per frame in the capture's truth, equal to the count on the frames read back
+    out = tmp_path / "clip.cap"
+    simulate_capture(s, scene, out, 2, seed=2)
+    with CaptureReader(out) as r:
+        truth = r.ground_truth["clipped_samples"]
+        frames = [f.payload for f in r]
+    assert "interference" not in r.ground_truth
+    for row, raw in zip(truth, frames):
+        assert row == np.count_nonzero(np.abs(raw.astype(np.int32)).max(axis=-1) >= 8191, axis=(0, 2)).tolist()
+
+
+def test_canonical_capture_counts_its_own_payload(tmp_path):
+    # --no-quantize stores unclipped complex64: the truth counts the components at or beyond full scale
+    s = load_sensor(YARD_SENSOR)
+    scene = parse_scene(f'[[target]]\nrange_m = 3.0\nsnr_db = {20 * math.log10(1.05 * 8191 / 8.0)!r}\n')
+    out = tmp_path / "canon.cap"
+    simulate_capture(s, scene, out, 1, seed=2, quantize=False)
+    with CaptureReader(out) as r:
+        x = next(iter(r)).payload
+        truth = r.ground_truth["clipped_samples"][0]
+    assert truth == np.count_nonzero((np.abs(x.real) >= 8191) | (np.abs(x.imag) >= 8191), axis=(0, 2)).tolist()
+    assert min(truth) > 0
+
+
+def test_a_plain_scene_without_clipping_keeps_the_old_truth(tmp_path):
+    # nothing clipped and no impairment sections: the truth is exactly the older schema
+    s = load_sensor(YARD_SENSOR)
+    out = tmp_path / "plain.cap"
+    simulate_capture(s, parse_scene(TARGET), out, 1, seed=1)
+    with CaptureReader(out) as r:
+        assert sorted(r.ground_truth) == ["columns", "frames", "targets"]
+
+
+# ---- receiver: I/Q imbalance, DC, leakage --------------------------------------------------------
+
+def bin_centred_tone_scene(k: int, sensor, extra: str = "", snr_db: float = 40.0) -> str:
+    # a target whose beat frequency S tau is exactly k fs / N: no spectral leakage between bins
+    range_m = k * sensor.sample_rate_hz / sensor.samples_per_chirp * C / (2 * sensor.slope_hz_per_s)
+    return f'[[target]]\nrange_m = {range_m!r}\nsnr_db = {snr_db!r}\n' + extra
+
+
+def test_iq_imbalance_follows_the_convention_and_the_image_matches_the_irr_formula():
+    # Convention (the plan): I' = I, Q' = g (Q cos phi - I sin phi). The image of a tone at +f
+    # appears at -f with power ratio |nu|^2 / |mu|^2 = (1 - 2 g cos phi + g^2) / (1 + 2 g cos phi + g^2)
+    # (image-rejection ratio, common practice; Razavi, RF Microelectronics, 2nd ed., 2011).
+    s = load_sensor(YARD_SENSOR)
+    gain_db, phase_deg = [1.0, 0.0, -0.5, 0.3], [5.0, 0.0, 0.0, -3.0]  # rx 1 ideal, rx 2 gain only
+    extra = f"[impairments]\niq_gain_db = {gain_db}\niq_phase_deg = {phase_deg}\n"
+    k = 20
+    imp = Simulator(s, parse_scene(bin_centred_tone_scene(k, s, extra)), seed=3)
+    ideal = Simulator(s, parse_scene(bin_centred_tone_scene(k, s)), seed=3)
+    x, z = imp.frame(0).astype(np.complex128), ideal.frame(0).astype(np.complex128)  # same noise
+    g = 10 ** (np.array(gain_db) / 20)[None, :, None]
+    phi = np.radians(phase_deg)[None, :, None]
+    assert np.allclose(x.real, z.real, atol=1e-3)
+    assert np.allclose(x.imag, g * (z.imag * np.cos(phi) - z.real * np.sin(phi)), atol=1e-3)
+    clean = Simulator(s, parse_scene(bin_centred_tone_scene(k, s, extra)), noise=False).frame(0).astype(np.complex128)
+    spec = np.abs(scipy.fft.fft(clean, axis=-1)) ** 2
+    n = s.samples_per_chirp
+    measured_db = 10 * np.log10(spec[:, :, n - k] / spec[:, :, k])
+    g1, p1 = 10 ** (np.array(gain_db) / 20), np.radians(phase_deg)
+    irr = (1 + 2 * g1 * np.cos(p1) + g1 ** 2) / (1 - 2 * g1 * np.cos(p1) + g1 ** 2)
+    for rx in range(4):
+        if gain_db[rx] == 0 and phase_deg[rx] == 0:
+            assert np.all(measured_db[:, rx] < -100)  # no image (float32 rounding only)
+        else:
+            assert np.allclose(measured_db[:, rx], -10 * np.log10(irr[rx]), atol=0.01)
+
+
+def test_dc_offset_is_the_frame_mean():
+    # per RX the frame mean is the offset: a bin-centred tone sums to zero over a chirp, the noise mean
+    # has a standard deviation sigma / sqrt(2 M N) per component (sigma^2 the complex noise power): +-5 sigma
+    s = load_sensor(YARD_SENSOR)
+    dc = [[3.0, -2.0], [0.0, 0.0], [10.5, 4.0], [-6.0, 0.5]]
+    sim = Simulator(s, parse_scene(bin_centred_tone_scene(13, s, f"[impairments]\ndc_offset_counts = {dc}\n")),
+                    seed=4)
+    x = sim.frame(0).astype(np.complex128)
+    mean = x.mean(axis=(0, 2))
+    sd = 8.0 / math.sqrt(2 * s.chirps_per_frame * s.samples_per_chirp)
+    assert np.all(np.abs(mean.real - np.array(dc)[:, 0]) < 5 * sd)
+    assert np.all(np.abs(mean.imag - np.array(dc)[:, 1]) < 5 * sd)
+    one = Simulator(s, parse_scene(bin_centred_tone_scene(13, s, "[impairments]\ndc_offset_counts = [3.0, -2.0]\n")),
+                    seed=4).frame(0).astype(np.complex128).mean(axis=(0, 2))
+    assert np.all(np.abs(one - (3.0 - 2.0j)) < 5 * sd * math.sqrt(2))
+
+
+def test_leakage_is_a_static_tone_at_s_tau_l():
+    # a static return of delay tau_L beats at S tau_L (Richards, Fundamentals of Radar Signal Processing,
+    # 2005, ch. 4: f_b = S tau), the same in every chirp and RX; amplitude full_scale 10^(dBFS/20) times
+    # the Butterworth |H| at that frequency (tests/if_reference.py, scipy.signal)
+    s = load_sensor(YARD_SENSOR)
+    tau, level = 40.0e-9, -30.0
+    extra = f"[impairments]\nleakage_level_dbfs = {level}\nleakage_delay_s = {tau}\n"
+    a = Simulator(s, parse_scene(bin_centred_tone_scene(40, s, extra)), noise=False).frame(0).astype(np.complex128)
+    b = Simulator(s, parse_scene(bin_centred_tone_scene(40, s)), noise=False).frame(0).astype(np.complex128)
+    leak = a - b
+    assert np.max(np.abs(leak - leak[0, 0][None, None, :])) < 2e-3  # float32 rounding of the frames
+    n_fft = 1 << 16
+    f_peak = np.argmax(np.abs(scipy.fft.fft(leak[0, 0], n_fft))) * s.sample_rate_hz / n_fft
+    assert f_peak == pytest.approx(30.0e12 * tau, abs=s.sample_rate_hz / n_fft)
+    t_n = 5.0e-6 + np.arange(s.samples_per_chirp) / s.sample_rate_hz
+    amp = np.abs(np.mean(leak[0, 0] * np.exp(-2j * np.pi * 30.0e12 * tau * t_n)))
+    expected = 8191 * 10 ** (level / 20) * 10 ** (butterworth_db(8, 6.0e6, 30.0e12 * tau)[0] / 20)
+    assert amp == pytest.approx(expected, rel=1e-5)
