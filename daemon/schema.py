@@ -132,15 +132,24 @@ _MISSING = re.compile(r"^Object missing required field `(\w+)`")
 def _explain(message: str, header: dict, schema: type[Struct], what: str, error: ErrorFactory) -> Exception:
     """Turn msgspec's "Expected ... - at `$.a.b`" into our message: the field, its value, its rule."""
     m = _PATH.search(message)
-    names = re.findall(r"\.(\w+)", m.group(1)) if m else []
+    steps = re.findall(r"\.(\w+)|\[(\d+)\]", m.group(1)) if m else []  # (name, "") or ("", index)
     missing = _MISSING.match(message)
     if missing:
-        names.append(missing.group(1))
+        steps.append((missing.group(1), ""))
     value: Any = header
     cls: Any = schema
     label: list[str] = []
     ann: Any = None
-    for name in names:
+    taken = 0
+    for name, index in steps:
+        if index:  # into a list only where its entries are maps with fields of their own
+            entry = _struct_of(_list_entry(ann)) if label else None
+            if entry is None or not isinstance(value, list) or int(index) >= len(value):
+                break  # inside a list of plain values or a map: the named field above is the one that is wrong
+            label[-1] += f"[{index}]"
+            value, cls = value[int(index)], entry
+            taken += 1
+            continue
         hints = _hints(cls) if cls is not None else {}
         if name not in hints:
             break  # inside a list or a map: the named field above is the one that is wrong
@@ -148,10 +157,11 @@ def _explain(message: str, header: dict, schema: type[Struct], what: str, error:
         ann = hints[name]
         value = value.get(name) if isinstance(value, dict) else None
         cls = _struct_of(ann)
+        taken += 1
     if not label:
         return error("malformed", f"{what} header: {message}")
     field = ".".join(label)
-    if missing and len(label) == len(names):
+    if missing and taken == len(steps):
         return error("malformed", f"{what} header field '{field}' is missing")
     rule = _description(ann) or message.split(" - at ")[0]
     return error(_reason(ann), f"{what} header field '{field}' = {short(value)}: {rule}")
@@ -178,6 +188,16 @@ def _reason(tp: Any) -> str:
         if meta.extra and "reason" in meta.extra:
             return meta.extra["reason"]
     return "malformed"
+
+
+def _list_entry(tp: Any) -> Any:
+    """The entry type of a list field (through Annotated and Optional), or None."""
+    while typing.get_origin(tp) is Annotated:
+        tp = typing.get_args(tp)[0]
+    for t in (tp, *typing.get_args(tp)):
+        if typing.get_origin(t) is list:
+            return typing.get_args(t)[0]
+    return None
 
 
 def _struct_of(tp: Any) -> type | None:

@@ -1,4 +1,4 @@
-"""cubecast wire format, version 2: encode and decode every message kind (pure functions, no sockets).
+"""cubecast wire format, version 3: encode and decode every message kind (pure functions, no sockets).
 
 The contract is README "Wire format". Every message is three parts:
 
@@ -28,17 +28,17 @@ from typing import TYPE_CHECKING, Annotated, Any, Literal, Sequence
 
 import msgpack
 import numpy as np
-from msgspec import Meta
+from msgspec import Meta, defstruct
 
 from .errors import CubecastError
-from .schema import (MAX_ENTRIES, Count, Digest, Finite, NonNegative, Positive, Schema, integer, optional,
+from .schema import (MAX_ENTRIES, MAX_FLOAT, Count, Digest, Finite, NonNegative, Positive, Schema, integer, optional,
                      shape_rule, short, text, unpack, validate)
 
 if TYPE_CHECKING:
     from .sensor import Sensor
 
-WIRE_VERSION = 2
-KINDS = ("adc", "points", "rdmap", "sensor", "health")
+WIRE_VERSION = 3  # 3: the `frontend` kind (a version-2 receiver refuses its topic); 2: the platform fields
+KINDS = ("adc", "points", "rdmap", "sensor", "health", "frontend")
 REASONS = ("malformed", "wire_version", "unknown_sensor", "digest", "shape", "dtype", "crc", "repeated",
            "oversized")
 ADC_DTYPES = ("<c8", "<i2", "<f4")
@@ -80,6 +80,29 @@ FIELDS_RULE = ("must be exactly the record layout of README's wire format (76-by
 
 SENSOR_SUMMARY_KEYS = ("pose", "max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
                        "range_resolution_m", "velocity_resolution_mps")
+# The front end's monitor record (chain/frontend.FRONTEND_DTYPE has exactly these fields; tests check
+# it): one per receive channel and frame, [name, unit, dtype]. README "Wire format", kind `frontend`.
+FRONTEND_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
+    ("clipped_samples", "", "<u4"), ("samples", "", "<u4"), ("interference_bursts", "", "<u4"),
+    ("interference_samples", "", "<u4"), ("noise_floor_db", "dB", "<f4"), ("dc_offset_counts", "counts", "<f4"),
+    ("image_rejection_db", "dB", "<f4"),
+)
+FRONTEND_RECORD_DTYPE = np.dtype([(name, dtype) for name, _, dtype in FRONTEND_WIRE_FIELDS])
+# what a front-end warning can name (daemon/frontendwarn.py makes them)
+FRONTEND_CAUSES = ("clipping", "interference", "dc_offset", "image_rejection", "noise_floor_high",
+                   "noise_floor_low", "no_signal")
+FRONTEND_MAX_CHANNELS = 256
+FRONTEND_MAX_WARNINGS = 64  # per message; `warnings_total` counts them all
+FRONTEND_MAX_TEXT_CHARS = 300
+# health's `frontend.channels`: per receive channel over the interval (a list per name, one entry per rx)
+FRONTEND_SUMMARY_FIELDS: tuple[tuple[str, str], ...] = (
+    ("clipped_percent_max", "%"), ("clipped_percent_mean", "%"), ("interference_bursts_max", ""),
+    ("interference_bursts_total", ""), ("interference_share_percent_max", "%"),
+    ("interference_share_percent_mean", "%"), ("noise_floor_db_mean", "dB"), ("noise_floor_db_max", "dB"),
+    ("dc_offset_counts_max", "counts"), ("image_rejection_db_min", "dB"),
+)
+FRONTEND_SUMMARY_COUNTS = ("interference_bursts_max", "interference_bursts_total")  # integers; the rest numbers or nil
+
 HEALTH_INT_FIELDS = ("frames_received", "frames_processed", "frames_dropped", "frames_rejected",
                      "sequence_gaps", "source_restarts", "queue_depth", "points_last")
 HEALTH_FLOAT_FIELDS = ("uptime_s", "cpu_share", "fps")
@@ -167,6 +190,68 @@ class SensorHeader(Schema):
     summary: Annotated[SensorSummary, Meta(description="must be a map")]
 
 
+U32 = integer(0, 0xFFFFFFFF)
+FiniteOrNil = optional(Finite)
+_COLUMN_RULE = f"must be a list of 1..{FRONTEND_MAX_CHANNELS} "
+
+
+def _column(element: Any, what: str) -> Any:
+    return Annotated[list[element], Meta(min_length=1, max_length=FRONTEND_MAX_CHANNELS,
+                                         description=_COLUMN_RULE + what + " (one per receive channel)")]
+
+
+_U32_ELEMENT = Annotated[int, Meta(ge=0, le=0xFFFFFFFF)]
+_COUNT_ELEMENT = Annotated[int, Meta(ge=0)]
+_FINITE_ELEMENT = Annotated[float, Meta(ge=-MAX_FLOAT, le=MAX_FLOAT)] | None
+
+# the per-channel columns of a `frontend` message and of health's `frontend`, generated from the field
+# lists above so that they cannot drift apart
+FrontendRecords = defstruct("FrontendRecords", [
+    (name, _column(_U32_ELEMENT, "integers in 0..4294967295") if dtype == "<u4"
+     else _column(_FINITE_ELEMENT, "finite numbers or nil")) for name, _, dtype in FRONTEND_WIRE_FIELDS],
+    bases=(Schema,), frozen=True)
+FrontendSummaryColumns = defstruct("FrontendSummaryColumns", [
+    (name, _column(_COUNT_ELEMENT, "integers >= 0") if name in FRONTEND_SUMMARY_COUNTS
+     else _column(_FINITE_ELEMENT, "finite numbers or nil")) for name, _ in FRONTEND_SUMMARY_FIELDS],
+    bases=(Schema,), frozen=True)
+Cause = Annotated[Literal[FRONTEND_CAUSES], Meta(description=f"must be one of {', '.join(FRONTEND_CAUSES)}")]
+Rx = integer(0, FRONTEND_MAX_CHANNELS - 1)
+WarningText = text(FRONTEND_MAX_TEXT_CHARS)
+
+
+class FrontendWarning(Schema):
+    rx: Rx
+    cause: Cause
+    value: Finite
+    short: WarningText
+    text: WarningText
+
+
+FrontendWarnings = Annotated[list[FrontendWarning], Meta(max_length=FRONTEND_MAX_WARNINGS, description=(
+    f"must be a list of at most {FRONTEND_MAX_WARNINGS} maps {{rx, cause, value, short, text}}"))]
+
+
+class FrontendHeader(Schema):
+    seq: Seq
+    run: RunId
+    timestamp_s: Finite
+    full_scale: Positive
+    records: Annotated[FrontendRecords, Meta(description="must be a map of per-channel lists")]
+    warnings: FrontendWarnings
+    warnings_total: Count
+
+
+class FrontendHealth(Schema):
+    frames: Count
+    frames_with_warnings: Count
+    warnings: Annotated[dict[Literal[FRONTEND_CAUSES], Count],
+                        Meta(description=f"must map causes ({', '.join(FRONTEND_CAUSES)}) to counts >= 0")]
+    channels: Annotated[FrontendSummaryColumns, Meta(description="must be a map of per-channel lists")]
+
+
+OptionalFrontendHealth = Annotated[FrontendHealth | None, Meta(description="must be nil or a map")]
+
+
 class HealthHeader(Schema):
     frames_received: Count
     frames_processed: Count
@@ -183,17 +268,20 @@ class HealthHeader(Schema):
     latency_p99_ms: NonNegativeOrNil
     rejected: Annotated[dict[Literal[REASONS], Count],
                         Meta(description=f"must map reasons ({', '.join(REASONS)}) to counts >= 0")]
+    frontend: OptionalFrontendHealth = None  # nil when no frame was processed in the interval
 
 
 SCHEMAS: dict[str, type[Schema]] = {"adc": AdcHeader, "points": PointsHeader, "rdmap": RdmapHeader,
-                                    "sensor": SensorHeader, "health": HealthHeader}
+                                    "sensor": SensorHeader, "health": HealthHeader,
+                                    "frontend": FrontendHeader}
 
 
 @dataclass(frozen=True)
 class Message:
     """A decoded, validated message. `data` is a read-only numpy view on the payload: the ADC frame
     (header dtype and shape) for `adc`, RECORD_DTYPE records for `points`, float32 [range, doppler]
-    for `rdmap`, None for `sensor` and `health`."""
+    for `rdmap`, FRONTEND_RECORD_DTYPE records (one per receive channel, nil as NaN) for `frontend`,
+    None for `sensor` and `health`."""
 
     kind: str
     sensor_id: str
@@ -340,6 +428,34 @@ def encode_health(sensor_id: str, fields: dict) -> list:
     return parts
 
 
+def _finite_or_none(value: float) -> float | None:
+    return float(value) if math.isfinite(value) else None
+
+
+def frontend_columns(records: np.ndarray) -> dict:
+    """The `records` map of a `frontend` header from per-channel records with the FRONTEND_WIRE_FIELDS
+    (a structured array [n_rx]): a list per field, integers as ints, numbers that are not finite as nil."""
+    out = {}
+    for name, _, dtype in FRONTEND_WIRE_FIELDS:
+        column = records[name].tolist()
+        out[name] = [int(v) for v in column] if dtype == "<u4" else [_finite_or_none(v) for v in column]
+    return out
+
+
+def encode_frontend(sensor_id: str, seq: int, run: str, timestamp_s: float, records: np.ndarray, full_scale: float,
+                    warnings: Sequence[dict] = ()) -> list:
+    """The front end's monitor of one frame: `records` one per receive channel (the FRONTEND_WIRE_FIELDS),
+    `warnings` maps {rx, cause, value, short, text} (the first FRONTEND_MAX_WARNINGS go on the wire,
+    `warnings_total` counts all). Header only; validated here as a receiver would."""
+    _check_sensor_id(sensor_id)
+    fields = {"seq": int(seq), "run": str(run), "timestamp_s": float(timestamp_s), "full_scale": float(full_scale),
+              "records": frontend_columns(records), "warnings": [dict(w) for w in warnings[:FRONTEND_MAX_WARNINGS]],
+              "warnings_total": len(warnings)}
+    parts = [topic_of(sensor_id, "frontend"), _pack("frontend", sensor_id, fields), b""]
+    decode(parts)
+    return parts
+
+
 # ---- decoding ---------------------------------------------------------------------------------
 
 def _as_view(part: Any, index: int) -> memoryview:
@@ -423,6 +539,39 @@ def _rdmap_data(h: RdmapHeader, payload: memoryview, max_payload_bytes: int) -> 
     return np.frombuffer(payload, "<f4").reshape(n_range, n_doppler)
 
 
+def _frontend_data(h: FrontendHeader, payload: memoryview, max_payload_bytes: int) -> np.ndarray:
+    """The records as FRONTEND_RECORD_DTYPE [n_rx] (nil as NaN), after the rules between the columns."""
+    if payload.nbytes:
+        raise WireError("malformed", f"frontend message has a {payload.nbytes}-byte payload; it must be empty")
+    columns = {name: getattr(h.records, name) for name, _, _ in FRONTEND_WIRE_FIELDS}
+    n = len(columns["samples"])
+    for name, column in columns.items():
+        if len(column) != n:
+            raise WireError("shape", f"frontend header field 'records.{name}' has {len(column)} entries; "
+                                     f"'records.samples' has {n}: one per receive channel in each")
+    for name in ("clipped_samples", "interference_samples"):
+        for rx, (v, total) in enumerate(zip(columns[name], columns["samples"])):
+            if v > total:
+                raise WireError("malformed", f"frontend header field 'records.{name}' = {v} (rx {rx}): must be at "
+                                             f"most that channel's samples ({total})")
+    for rx, (bursts, flagged) in enumerate(zip(columns["interference_bursts"], columns["interference_samples"])):
+        if bursts > flagged:
+            raise WireError("malformed", f"frontend header field 'records.interference_bursts' = {bursts} (rx {rx}): "
+                                         f"must be at most that channel's interference_samples ({flagged})")
+    for i, w in enumerate(h.warnings):
+        if w.rx >= n:
+            raise WireError("malformed", f"frontend header field 'warnings[{i}].rx' = {w.rx}: the message has "
+                                         f"{n} receive channels (0..{n - 1})")
+    if h.warnings_total < len(h.warnings):
+        raise WireError("malformed", f"frontend header field 'warnings_total' = {h.warnings_total}: must be at "
+                                     f"least the {len(h.warnings)} warnings the message holds")
+    data = np.zeros(n, FRONTEND_RECORD_DTYPE)
+    for name, column in columns.items():
+        data[name] = [math.nan if v is None else v for v in column]
+    data.flags.writeable = False
+    return data
+
+
 def _no_payload(kind: str):
     def check(h: Schema, payload: memoryview, max_payload_bytes: int) -> None:
         if payload.nbytes:
@@ -431,7 +580,7 @@ def _no_payload(kind: str):
 
 
 _PAYLOAD_CHECKS = {"adc": _adc_data, "points": _points_data, "rdmap": _rdmap_data,
-                   "sensor": _no_payload("sensor"), "health": _no_payload("health")}
+                   "sensor": _no_payload("sensor"), "health": _no_payload("health"), "frontend": _frontend_data}
 
 
 def decode(parts: Sequence[Any], *, max_payload_bytes: int = DEFAULT_MAX_PAYLOAD_BYTES) -> Message:

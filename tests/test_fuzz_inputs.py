@@ -67,7 +67,7 @@ VALID = valid_messages()
 def check_accepted(msg: wire.Message) -> None:
     """What an accepted message must satisfy (README "Wire format")."""
     h = msg.header
-    assert type(h["wire"]) is int and h["wire"] == 2
+    assert type(h["wire"]) is int and h["wire"] == 3
     assert msg.topic.endswith("/" + h["kind"]) and h["sensor_id"] == msg.sensor_id
     if msg.kind == "adc":
         assert zlib.crc32(msg.payload) == h["crc32"]

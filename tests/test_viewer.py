@@ -62,7 +62,7 @@ def test_decode_rejects_what_breaks_the_contract():
     assert _reason(points_parts("a", 1, pts)[:1] + [b"\xc1", good[2]]) == "malformed"  # not msgpack
     assert _reason([b"a/points", msgpack.packb([1, 2]), b""]) == "malformed"  # header not a map
     h = msgpack.unpackb(good[1])
-    assert _reason([b"a/points", msgpack.packb({**h, "wire": 3}), good[2]]) == "wire_version"
+    assert _reason([b"a/points", msgpack.packb({**h, "wire": 4}), good[2]]) == "wire_version"
     assert _reason([b"a/points", msgpack.packb({**h, "wire": True}), good[2]]) == "wire_version"
     assert _reason([b"b/points", good[1], good[2]]) == "malformed"            # sensor id differs
     assert _reason([b"a/rdmap", good[1], good[2]]) == "malformed"             # kind differs
