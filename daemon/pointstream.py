@@ -110,7 +110,8 @@ class Cloud:
 class StreamMessage(NamedTuple):
     """One message of next_message(): kind 'points' (value a Cloud), 'sensor' (a SensorInfo), 'health'
     (its map) or, with rdmap=True, 'rdmap' (the wire.Message: `data` float32 dB [range, doppler], the
-    header's axes)."""
+    header's axes), with frontend=True, 'frontend' (the wire.Message: `data` the front end's records, one
+    per receive channel, the header's `warnings`)."""
 
     kind: str
     sensor: str
@@ -149,13 +150,15 @@ class PointStream:
     zmq.Context to use (default: one of its own, terminated by close()). rcvhwm: messages ZeroMQ keeps
     while this reader is busy. max_payload_bytes: the largest payload accepted (larger: dropped as
     'oversized'). rdmap: also take the range-Doppler maps (next_message() returns them, `rdmaps` keeps the
-    latest per sensor id). stop: an event that ends the iteration when set (stop() sets it)."""
+    latest per sensor id). frontend: also take the front end's monitors (next_message() returns them,
+    `frontends` keeps the latest per sensor id). stop: an event that ends the iteration when set (stop()
+    sets it)."""
 
     def __init__(self, endpoint: str = DEFAULT_PUB, *, sensor_id: str | None = None, timeout_s: float | None = None,
                  server_key: str | Path | None = None, key: str | Path | None = None,
                  keys: ClientKeys | None = None, context: zmq.Context | None = None,
                  rcvhwm: int = DEFAULT_RCVHWM, max_payload_bytes: int = wire.DEFAULT_MAX_PAYLOAD_BYTES,
-                 rdmap: bool = False, stop: threading.Event | None = None):
+                 rdmap: bool = False, frontend: bool = False, stop: threading.Event | None = None):
         if sensor_id is not None and not wire.valid_sensor_id(sensor_id):
             raise CubecastError(f"sensor_id {sensor_id!r}: must be {wire.SENSOR_ID_RULE}")
         self.endpoint = endpoint
@@ -166,11 +169,12 @@ class PointStream:
             raise CubecastError(f"rcvhwm {rcvhwm!r}: must be a whole number of messages >= 1")
         self._rcvhwm = rcvhwm
         self.max_payload_bytes = int(max_payload_bytes)
-        self.kinds = ("points", "sensor", "health") + (("rdmap",) if rdmap else ())
+        self.kinds = ("points", "sensor", "health") + (("rdmap",) if rdmap else ()) + (("frontend",) if frontend else ())
         # what came in
         self.sensors: dict[str, SensorInfo] = {}      # sensor id -> its latest `sensor` message
         self.health: dict[str, dict] = {}             # sensor id -> its latest health map (header fields)
         self.rdmaps: dict[str, wire.Message] = {}     # sensor id -> its latest range-Doppler map (rdmap=True)
+        self.frontends: dict[str, wire.Message] = {}  # sensor id -> its latest front-end monitor (frontend=True)
         self.clouds = 0                               # point clouds delivered
         self.ignored = 0                              # valid messages of other kinds (rdmap, adc)
         self.dropped: dict[str, int] = {}             # messages the wire refused, by reason (wire.REASONS)
@@ -384,6 +388,9 @@ class PointStream:
         if msg.kind == "rdmap" and "rdmap" in self.kinds:
             self.rdmaps[msg.sensor_id] = msg
             return "rdmap", msg.sensor_id, msg
+        if msg.kind == "frontend" and "frontend" in self.kinds:
+            self.frontends[msg.sensor_id] = msg
+            return "frontend", msg.sensor_id, msg
         self.ignored += 1
         return None
 

@@ -520,6 +520,14 @@ class WorkerPool:
         if session != self.session or w is None or entry is None or entry.state != SENT or entry.worker != key:
             self.results_discarded += 1  # late (the task was counted lost) or from another serve session
             return
+        n_rx = self.config.sensor.n_rx
+        if res.frontend is not None and res.frontend.shape[0] != n_rx:
+            self.results_invalid += 1
+            log.warning("cubecast serve: worker '%s' answered task %d with front-end records of %d channels; sensor "
+                        "'%s' has %d; counted as lost", w.name, res.task_id, res.frontend.shape[0],
+                        self.config.sensor.sensor_id, n_rx)
+            self._lose(entry)
+            return
         if res.seq != entry.seq or res.epoch != entry.epoch:
             self.results_invalid += 1
             log.warning("cubecast serve: worker '%s' answered task %d with seq %d of settings epoch %d; the task was "

@@ -51,6 +51,7 @@ class Outcome:
     rdmap: Callable[[], tuple] | None = None  # the pooled display map of this frame, when asked for
     error: str | None = None  # "frame seq N...: what went wrong"
     lost: bool = False
+    frontend: np.ndarray | None = None  # the chain's FRONTEND_DTYPE records [n_rx] (a copy), with records
 
 
 class Change:
@@ -162,7 +163,7 @@ class LocalProcessor:
             else:
                 points = self.pipeline.process(to_canonical(self.sensor, msg.data, self._canon))
             out = Outcome(seq, run, ts, t_recv, to_records(points, seq, ts),
-                          self.pipeline.display_map if want_rdmap else None)
+                          self.pipeline.display_map if want_rdmap else None, frontend=self.pipeline.frontend.copy())
         except Exception as exc:  # one bad frame must not stop the daemon
             out = Outcome(seq, run, ts, t_recv, error=f"frame seq {seq}: {type(exc).__name__}: {exc}")
         self._done.append(out)
@@ -303,7 +304,7 @@ class PoolProcessor:
             if res.error is not None:
                 o.error = f"frame seq {entry.seq} (worker {res.worker}): {res.error}"
             else:
-                o.records = res.records
+                o.records, o.frontend = res.records, res.frontend
                 if res.rdmap is not None:
                     o.rdmap = (lambda m=res.rdmap: m)
                 self.stage_ms = res.stage_ms

@@ -15,9 +15,11 @@ Two threads:
   netio.Subscriber for what bounds memory);
 - the processing thread (the caller of Service.run) owns the PUB socket (an XPUB, so that a new
   subscriber is noticed and sent the sensor description at once). It hands queued frames to the
-  processor and publishes what comes back: the points, a rate-limited max-pooled range-Doppler map,
-  the sensor description (on start, on every new subscription and every 2 s) and health once a
-  second.
+  processor and publishes what comes back: the points, the front end's monitor of the frame (kind
+  `frontend`, with its warnings, daemon/frontendwarn.py; a warning is also logged, at most once per
+  channel and cause per log interval), a rate-limited max-pooled range-Doppler map, the sensor
+  description (on start, on every new subscription and every 2 s) and health once a second (with
+  the front end's summary over the interval).
 
 The processor (daemon/processors.py) runs the chain in this process (LocalProcessor: the frame
 converted to canonical complex64 into a reused buffer, or the board's format straight into the range
@@ -58,6 +60,7 @@ import numpy as np
 import zmq
 
 from .errors import CubecastError
+from .frontendwarn import FrontendSummary, frontend_warnings
 from .intake import AdcValidator
 from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
 from .logs import RateLimitFilter, log_limited
@@ -69,13 +72,14 @@ from .processors import LocalProcessor, Outcome, PoolProcessor
 from .retune import Tuner
 from .sensor import Sensor, load_sensor
 from .settings import ProcessingSettings, load_settings
-from .wire import REASONS, WireError, decode, encode_health, encode_points, encode_rdmap, encode_sensor
+from .wire import (FRONTEND_MAX_CHANNELS, REASONS, WireError, decode, encode_frontend, encode_health, encode_points,
+                   encode_rdmap, encode_sensor)
 
 log = logging.getLogger(__name__)
 
 REJECTED = "cubecast serve: rejected frame, "  # the prefix of rejection records
 SENSOR_ON_SUBSCRIBE_S = 0.2  # a new subscriber gets the sensor description at most this often
-PUB_EXPOSES = "the point clouds, range-Doppler maps, sensor description and health"
+PUB_EXPOSES = "the point clouds, front-end monitors, range-Doppler maps, sensor description and health"
 WORKERS_EXPOSE = "the ADC frames (by joining as a worker) and the chance to hand serve forged results"
 
 
@@ -157,6 +161,9 @@ class Service:
         self.sndhwm, self.sndbuf_bytes, self.rcvhwm = sndhwm, sndbuf_bytes, rcvhwm
         self._reject_log = RateLimitFilter(log_interval_s)
         self._error_log = RateLimitFilter(log_interval_s)
+        self._frontend_log = RateLimitFilter(log_interval_s)
+        self.frontend = FrontendSummary(sensor.n_rx)  # over the health interval (the processing thread's)
+        self._frontend_on = sensor.n_rx <= FRONTEND_MAX_CHANNELS
         self.validator = AdcValidator(sensor)
         self.ready = threading.Event()
 
@@ -288,6 +295,8 @@ class Service:
         sid = self.sensor.sensor_id
         latency = time.perf_counter() - out.t_recv
         self._send(pub, encode_points(sid, out.seq, out.run, out.timestamp_s, latency, out.records), "points")
+        if out.frontend is not None and self._frontend_on:
+            self._publish_frontend(pub, out)
         if out.rdmap is not None:
             self._send(pub, encode_rdmap(sid, out.seq, out.timestamp_s, *out.rdmap()), "rdmap")
         with self._lock:
@@ -296,6 +305,17 @@ class Service:
             self._points_last = int(out.records.shape[0])
             self._processed += 1
             self._busy -= 1
+
+    def _publish_frontend(self, pub: zmq.Socket, out: Outcome) -> None:
+        """The frame's front-end monitor with its warnings; each warning logged (rate-limited per channel
+        and cause) and counted into the interval's summary."""
+        warnings = frontend_warnings(out.frontend, self.sensor.adc.full_scale)
+        self.frontend.add(out.frontend, warnings)
+        for w in warnings:
+            log_limited(log, self._frontend_log, logging.WARNING, f"rx {w.rx} {w.cause}",
+                        "cubecast serve: front end: frame %d: %s", out.seq, w.text)
+        self._send(pub, encode_frontend(self.sensor.sensor_id, out.seq, out.run, out.timestamp_s, out.frontend,
+                                        self.sensor.adc.full_scale, [w.as_map() for w in warnings]), "frontend")
 
     def _health(self, now: float) -> dict:
         interval = max(now - self._last_health, 1e-9)
@@ -325,7 +345,9 @@ class Service:
             "source_handshakes_failed": s["source_handshakes_failed"],
             "subscriber_handshakes_refused": s["subscriber_handshakes_refused"],
             **{k: s[k] for k in self.processor.health_fields},
+            "frontend": self.frontend.health(),
         }
+        self.frontend.reset()
         if self._tuning:
             fields.update(self._tuner.health_fields())
         if self._control is not None:
@@ -379,6 +401,9 @@ class Service:
         next_sensor, next_health = now, now + self.health_interval_s
         last_sensor = -math.inf
         self.ready.set()
+        if not self._frontend_on:
+            log.warning("cubecast serve: sensor '%s' has %d receive channels; the wire's front-end monitor takes at "
+                        "most %d, so none is published", self.sensor.sensor_id, self.sensor.n_rx, FRONTEND_MAX_CHANNELS)
         log.info("cubecast serve: ready: sensor '%s' (digest %s), sub %s%s, pub %s%s, queue %d%s%s",
                  self.sensor.sensor_id, self.sensor.digest, ", ".join(self.sub_endpoints),
                  " (with keys)" if self.source_keys else "", self.pub_endpoint,
@@ -402,6 +427,7 @@ class Service:
             if now >= next_health:
                 self._send(pub, encode_health(self.sensor.sensor_id, self._health(now)), "health")
                 self._error_log.flush(log, prefix="cubecast serve: ")
+                self._frontend_log.flush(log, prefix="cubecast serve: front end: ")
                 next_health = max(next_health + self.health_interval_s, now)
             if self._control is not None:
                 self._control.poll()
@@ -429,6 +455,7 @@ class Service:
         finally:
             self._rx_stop.set()
             self._error_log.flush(log, force=True, prefix="cubecast serve: ")
+            self._frontend_log.flush(log, force=True, prefix="cubecast serve: front end: ")
             if rx is not None:
                 rx.join(timeout=2.0)
             receiver_stopped = rx is None or not rx.is_alive()

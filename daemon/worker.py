@@ -187,8 +187,9 @@ class Worker:
             if not (isinstance(task_id, int) and isinstance(seq, int)) or isinstance(task_id, bool):
                 return  # nothing to answer to; serve counts it lost after its timeout
         stage = dict(self.pipeline.stage_ms) if error is None else {}
+        frontend = self.pipeline.frontend if error is None else None  # packed into the message at once
         self._send(push, encode_result(self.key, self.session, task_id, seq, records, error, stage,
-                                       time.perf_counter() - t0, rdmap, self.epoch))
+                                       time.perf_counter() - t0, rdmap, self.epoch, frontend))
 
     # ---- live settings changes ----------------------------------------------------------------
     def _prepare(self, parts: list) -> None:

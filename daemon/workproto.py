@@ -21,7 +21,8 @@ with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
                               commit  {session, epoch}                    switch to it (tasks after it)
                               abort   {session, epoch}                    drop it
     worker -> serve (PUSH)    result  {worker, session, task_id, seq, count, error, stage_ms,
-                                       process_s, rdmap, epoch} + point records + pooled map (or empty)
+                                       process_s, rdmap, epoch, frontend} + point records + pooled map
+                                       (or empty) [+ the front end's records, one per RX channel]
 
 Handshake: a worker sends `hello`; serve answers `welcome` with the sensor description (TOML text,
 re-parsed and digest-checked by the worker), the processing settings and the calibration, so every
@@ -58,6 +59,7 @@ import msgpack
 import numpy as np
 from msgspec import Meta
 
+from .chain.frontend import FRONTEND_DTYPE
 from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
 from .schema import (Count, Digest, Finite, Flag, NonNegative, Positive, Schema, integer, optional, text,
@@ -151,6 +153,7 @@ class MapInfo(Schema):
 
 
 OptionalMap = Annotated[MapInfo | None, Meta(description="must be nil or a map")]
+FrontendCount = optional(integer(1, MAX_ENTRIES))
 
 
 class ResultHeader(Schema):
@@ -164,6 +167,7 @@ class ResultHeader(Schema):
     error: ErrorText = None
     rdmap: OptionalMap = None
     epoch: Count = 0
+    frontend: FrontendCount = None  # records in the fifth part (absent from an older worker: no fifth part)
 
 
 class PrepareHeader(Schema):
@@ -399,18 +403,21 @@ class Result:
     process_s: float
     rdmap: tuple | None  # (values_db float32 [r, d], range_start_m, range_step_m, velocity_start_mps, ..._step_mps)
     epoch: int = 0  # the settings epoch of the chain that computed it
+    frontend: np.ndarray | None = None  # FRONTEND_DTYPE [n_rx] (read-only view), None from an older worker
 
 
 RDMAP_AXES = ("range_start_m", "range_step_m", "velocity_start_mps", "velocity_step_mps")
 
 
 def encode_result(worker: str, session: str, task_id: int, seq: int, records: np.ndarray | None,
-                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None, epoch: int = 0) -> list:
+                  error: str | None, stage_ms: dict, process_s: float, rdmap: tuple | None, epoch: int = 0,
+                  frontend: np.ndarray | None = None) -> list:
+    """frontend: the chain's FRONTEND_DTYPE records of the frame (a fifth part), or None."""
     recs = records if records is not None else np.empty(0, RECORD_DTYPE)
     fields = {"worker": worker, "session": session, "task_id": int(task_id), "seq": int(seq),
               "count": int(recs.shape[0]), "error": None if error is None else str(error)[:MAX_ERROR_CHARS],
               "stage_ms": {k: float(v) for k, v in stage_ms.items()}, "process_s": float(process_s),
-              "rdmap": None, "epoch": int(epoch)}
+              "rdmap": None, "epoch": int(epoch), "frontend": None if frontend is None else int(frontend.shape[0])}
     map_payload: Any = b""
     if rdmap is not None:
         values = np.ascontiguousarray(rdmap[0], "<f4")
@@ -418,12 +425,15 @@ def encode_result(worker: str, session: str, task_id: int, seq: int, records: np
                            **{k: float(v) for k, v in zip(RDMAP_AXES, rdmap[1:])}}
         map_payload = memoryview(values.reshape(-1).view(np.uint8))
     rec_payload = memoryview(np.ascontiguousarray(recs).view(np.uint8)) if recs.size else b""
-    return [b"result", _pack(fields), rec_payload, map_payload]
+    if frontend is None:
+        return [b"result", _pack(fields), rec_payload, map_payload]
+    return [b"result", _pack(fields), rec_payload, map_payload,
+            np.ascontiguousarray(frontend, FRONTEND_DTYPE).tobytes()]
 
 
 def decode_result(parts: list) -> tuple[str, str, Result]:
     """(worker key, session, result), every field checked; records must carry the task's seq."""
-    _parts(parts, 4, 4, "result")
+    _parts(parts, 4, 5, "result")
     if bytes(parts[0]) != b"result":
         raise ProtocolError(f"message kind {bytes(parts[0])[:16]!r} on the results socket; expected b'result'")
     h = _unpack(parts[1], "result")
@@ -451,9 +461,24 @@ def decode_result(parts: list) -> tuple[str, str, Result]:
         rdmap = (np.frombuffer(map_view, "<f4").reshape(shape), *axes)
     elif map_view.nbytes:
         raise ProtocolError("result without rdmap has a map payload; it must be empty")
+    frontend = _result_frontend(f.frontend, parts[4] if len(parts) == 5 else None)
     return f.worker, f.session, Result(f.worker, f.task_id, seq, records, f.error,
                                        {k: float(v) for k, v in f.stage_ms.items()}, float(f.process_s), rdmap,
-                                       f.epoch)
+                                       f.epoch, frontend)
+
+
+def _result_frontend(count: int | None, part: Any) -> np.ndarray | None:
+    """The front end's records of a result: `count` FRONTEND_DTYPE records in the fifth part."""
+    if count is None:
+        if part is not None:
+            raise ProtocolError("result with a fifth part but header field 'frontend' = None; give the count")
+        return None
+    view = memoryview(part if part is not None else b"")
+    need = count * FRONTEND_DTYPE.itemsize
+    if view.nbytes != need:
+        raise ProtocolError(f"result front-end part is {view.nbytes} bytes; header field 'frontend' = {count} "
+                            f"records of {FRONTEND_DTYPE.itemsize} bytes needs {need}")
+    return np.frombuffer(view, FRONTEND_DTYPE)
 
 
 # ---- control messages: hello, ready, beat, bye (worker -> serve); refuse, who (serve -> worker) ------
