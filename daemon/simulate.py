@@ -173,8 +173,7 @@ class Simulator:
         s, imp = self.sensor, self.scene.impairments
         rows = values.reshape(len(values), width)
         if len(rows) not in (1, s.n_rx):
-            shown = values.tolist() if width > 1 else values.tolist()
-            raise CubecastError(f"{imp.where} {name} = {shown!r}: has {len(rows)} entries, sensor '{s.sensor_id}' has "
+            raise CubecastError(f"{imp.where} {name} = {values.tolist()!r}: has {len(rows)} entries, sensor '{s.sensor_id}' has "
                                 f"{s.n_rx} RX: give one per RX (or a single one for every RX)")
         return np.broadcast_to(rows, (s.n_rx, width)).astype(np.float64)
 
@@ -187,14 +186,15 @@ class Simulator:
                "gain_db": self._per_rx("iq_gain_db", imp.iq_gain_db, 1),
                "phase_deg": self._per_rx("iq_phase_deg", imp.iq_phase_deg, 1)}
         if out["dc"] is not None and np.any(np.abs(out["dc"]) >= s.adc.full_scale):
-            raise CubecastError(f"{imp.where} dc_offset_counts = {imp.dc_offset_counts.tolist()!r}: every value must be "
-                                f"below the ADC full scale {s.adc.full_scale:g} of sensor '{s.sensor_id}'")
+            raise CubecastError(f"{imp.where} dc_offset_counts = {imp.dc_offset_counts.tolist()!r}: every value "
+                                f"must be below the ADC full scale {s.adc.full_scale:g} of sensor '{s.sensor_id}'")
         if not s.adc.is_complex:
             for name, bad in (("iq_gain_db", out["gain_db"]), ("iq_phase_deg", out["phase_deg"]),
                               ("dc_offset_counts", None if out["dc"] is None else out["dc"][:, 1:])):
                 if bad is not None and np.any(bad != 0):
-                    raise CubecastError(f"{imp.where} {name}: sensor '{s.sensor_id}' samples real (one branch, no "
-                                        f"Q): {'the q offsets must be 0' if name == 'dc_offset_counts' else 'must be 0'}")
+                    rule = "the q offsets must be 0" if name == "dc_offset_counts" else "must be 0"
+                    raise CubecastError(f"{imp.where} {name}: sensor '{s.sensor_id}' samples real (one branch, "
+                                        f"no Q): {rule}")
         return out
 
     def _check_interferers(self) -> list[float]:

@@ -237,12 +237,12 @@ def test_iq_imbalance_follows_the_convention_and_the_image_matches_the_irr_formu
     n = s.samples_per_chirp
     measured_db = 10 * np.log10(spec[:, :, n - k] / spec[:, :, k])
     g1, p1 = 10 ** (np.array(gain_db) / 20), np.radians(phase_deg)
-    irr = (1 + 2 * g1 * np.cos(p1) + g1 ** 2) / (1 - 2 * g1 * np.cos(p1) + g1 ** 2)
+    image_over_tone = (1 - 2 * g1 * np.cos(p1) + g1 ** 2) / (1 + 2 * g1 * np.cos(p1) + g1 ** 2)  # 1 / IRR
     for rx in range(4):
         if gain_db[rx] == 0 and phase_deg[rx] == 0:
-            assert np.all(measured_db[:, rx] < -100)  # no image (float32 rounding only)
+            assert image_over_tone[rx] == 0 and np.all(measured_db[:, rx] < -100)  # float32 rounding only
         else:
-            assert np.allclose(measured_db[:, rx], -10 * np.log10(irr[rx]), atol=0.01)
+            assert np.allclose(measured_db[:, rx], 10 * np.log10(image_over_tone[rx]), atol=0.01)
 
 
 def test_dc_offset_is_the_frame_mean():
@@ -280,3 +280,72 @@ def test_leakage_is_a_static_tone_at_s_tau_l():
     amp = np.abs(np.mean(leak[0, 0] * np.exp(-2j * np.pi * 30.0e12 * tau * t_n)))
     expected = 8191 * 10 ** (level / 20) * 10 ** (butterworth_db(8, 6.0e6, 30.0e12 * tau)[0] / 20)
     assert amp == pytest.approx(expected, rel=1e-5)
+
+
+# ---- scene-file errors ------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("fields,pattern", [
+    (dict(inr_db=None), r"\[\[interferer\]\] #0 \(dock\) needs exactly one of inr_db .* and eirp_dbm"),
+    (dict(eirp_dbm=20.0), r"\[\[interferer\]\] #0 \(dock\) needs exactly one of inr_db"),
+    (dict(chirp_period_s=30.0e-6), r"\[\[interferer\]\] #0 \(dock\) chirp_period_s = 3e-05: must be in \[4e-05, 1\]$"),
+    (dict(frame_period_s=0.1), r"\[\[interferer\]\] #0 \(dock\) frame_period_s = 0.1: has no meaning with chirps = 0 \(a continuous "
+                               r"interferer\): leave it out$"),
+    (dict(chirps=64, frame_period_s=1.0e-3), r"\[\[interferer\]\] #0 \(dock\) frame_period_s = 0.001: must be >= 0.003008$"),
+    (dict(chirps=64), r"\[\[interferer\]\] #0 \(dock\) frame_period_s is missing$"),
+    (dict(chirps=2.5), r"\[\[interferer\]\] #0 \(dock\) chirps = 2.5: must be a whole number$"),
+    (dict(start_frequency_hz=77.0), r"\[\[interferer\]\] #0 \(dock\) start_frequency_hz = 77.0: must be in \[1e\+09, 3e\+11\]$"),
+    (dict(position_m=[1.0, 2.0]), r"\[\[interferer\]\] #0 \(dock\) position_m = \[1.0, 2.0\]: must be a list of 3 finite numbers$"),
+    (dict(inr=3.0), r"\[\[interferer\]\] #0 unknown field inr \(did you mean inr_db\?\)$"),
+])
+def test_interferer_errors_name_file_section_field_value_rule(fields, pattern):
+    with pytest.raises(CubecastError, match=r"^s\.toml: " + pattern):
+        parse_scene(TARGET + interferer(**fields), "s.toml")
+
+
+@pytest.mark.parametrize("body,pattern", [
+    ("leakage_level_dbfs = -20.0", r"\[impairments\] leakage needs both leakage_level_dbfs and leakage_delay_s$"),
+    ("leakage_level_dbfs = -20.0\nleakage_delay_s = -1e-9",
+     r"\[impairments\] leakage_delay_s = -1e-09: must be in \[0, 1e-06\]$"),
+    ("iq_phase_deg = [1.0, 50.0, 0.0, 0.0]",
+     r"\[impairments\] iq_phase_deg = \[1.0, 50.0, 0.0, 0.0\]: every value must be in \[-45, 45\]$"),
+    ("iq_gain_db = 7.0", r"\[impairments\] iq_gain_db = 7.0: must be in \[-6, 6\]$"),
+    ("iq_gain_db = [0.5, 'x']", r"\[impairments\] iq_gain_db = \[0.5, 'x'\]: must be a list of one or more finite"),
+    ("dc_offset_counts = [[1.0, 2.0], [3.0]]",
+     r"\[impairments\] dc_offset_counts\[1\] = \[3.0\]: must be a list of 2 finite numbers$"),
+    ("dc_offset_counts = [1.0, 2.0, 3.0]",
+     r"\[impairments\] dc_offset_counts = \[1.0, 2.0, 3.0\]: must be a list of 2 finite numbers$"),
+    ("dc_ofset_counts = [1.0, 2.0]", r"\[impairments\] unknown field dc_ofset_counts \(did you mean dc_offset_counts\?\)$"),
+])
+def test_impairment_errors_name_file_section_field_value_rule(body, pattern):
+    with pytest.raises(CubecastError, match=r"^s\.toml: " + pattern):
+        parse_scene(TARGET + "[impairments]\n" + body + "\n", "s.toml")
+
+
+@pytest.mark.parametrize("body,pattern", [
+    ("iq_gain_db = [0.5, 0.0, 0.2]", r"iq_gain_db = \[0.5, 0.0, 0.2\]: has 3 entries, sensor 'yard-a' has 4 RX: "
+                                     r"give one per RX \(or a single one for every RX\)$"),
+    ("dc_offset_counts = [[1.0, 2.0], [3.0, 4.0]]", r"dc_offset_counts = \[\[1.0, 2.0\], \[3.0, 4.0\]\]: has 2 entries"),
+    ("iq_phase_deg = [1, 2, 3, 4, 5]", r"iq_phase_deg = \[1.0, 2.0, 3.0, 4.0, 5.0\]: has 5 entries"),
+    ("dc_offset_counts = [9000.0, 0.0]", r"dc_offset_counts = \[\[9000.0, 0.0\]\]: every value must be below the ADC "
+                                         r"full scale 8191 of sensor 'yard-a'$"),
+])
+def test_per_rx_lists_checked_against_the_sensor(body, pattern):
+    s = load_sensor(YARD_SENSOR)
+    scene = parse_scene(TARGET + "[impairments]\n" + body + "\n", "s.toml")
+    with pytest.raises(CubecastError, match=r"^s\.toml: \[impairments\] " + pattern):
+        Simulator(s, scene)
+
+
+def test_a_real_sampling_sensor_refuses_a_q_branch_impairment():
+    real = make_sensor(sampling="real")
+    with pytest.raises(CubecastError, match=r"^s\.toml: \[impairments\] iq_phase_deg: sensor 'test-sensor' samples "
+                                            r"real \(one branch, no Q\): must be 0$"):
+        Simulator(real, parse_scene(TARGET + "[impairments]\niq_phase_deg = 2.0\n", "s.toml"))
+    sim = Simulator(real, parse_scene(TARGET + "[impairments]\ndc_offset_counts = [5.0, 0.0]\n"), seed=1)
+    assert np.all(sim.frame(0).imag == 0)
+
+
+def test_interferer_at_a_receive_antenna_refused():
+    s = load_sensor(YARD_SENSOR)
+    with pytest.raises(CubecastError, match=r"interferer 'dock' at \[0.0, 0.0, 0.0\] is within a wavelength"):
+        Simulator(s, parse_scene(TARGET + interferer(position_m=[0.0, 0.0, 0.0])))
