@@ -6,6 +6,13 @@ one [[channel]] per virtual channel v = tx * n_rx + rx with its measured gain, a
 checks. load_calibration_file reads it back and validates it, and with a sensor checks that it was
 made for that sensor (array digest; files written before the array digest existed: the whole
 description's digest); load_calibration gives the complex64 vector (1 / gain) the Pipeline takes.
+
+The I/Q imbalance of each receive channel (calibiq.py) is the table [[iq_imbalance]], one entry per RX
+with `rx`, `q_gain` (g, linear, > 0) and `q_phase_deg` (phi, within -90..90 deg exclusive), plus figures
+for people (its standard deviations, image rejection, samples, DC). A file without the table (older
+files, a real-sampled ADC, a refused estimate) means no I/Q correction. A file of `calibrate --iq-only`
+has the table and no [[channel]] entries (no array calibration, range bias 0). load_chain_calibration
+gives all three things the Pipeline takes.
 """
 
 from __future__ import annotations
@@ -21,6 +28,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from .calibchecks import MIN_INTEGRATED_SNR_DB, MISFIT_LIMIT_DB, NEAR_RANGE_CELLS, PHASE_ACCURACY_DEG
+from .calibiq import IQ_METHOD, IqResult, check_iq_table
 from .config import Document, Section, parse_toml, read_text
 from .errors import CubecastError
 from .sensor import Sensor
@@ -35,6 +43,8 @@ log = logging.getLogger(__name__)
 
 RANGE_BIAS_NOTE = ("with --calibration, process and serve multiply each channel by 1 / gain and subtract "
                    "range_bias_m from every range")
+IQ_NOTE = ("with --calibration, process and serve correct each receive channel's I/Q imbalance first: "
+           "I = I', Q = (Q' / q_gain + I' sin q_phase) / cos q_phase")
 
 
 # ---- writing ----------------------------------------------------------------------------------
@@ -115,6 +125,7 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
             ("residual_phase_deg", _r(result.residual_phase_deg[v], 4), "rms over frames"),
             ("residual_amplitude_db", _r(result.residual_amplitude_db[v], 4), "rms over frames"),
         ])
+    lines += iq_table_lines(result.iq)
     lines += ["", "[report]"]
     _table(lines, [
         ("cell_snr_db", _r(result.cell_snr_db, 2), "per channel and frame, in the reflector's cell"),
@@ -142,9 +153,93 @@ def format_calibration(result: CalibrationResult, created_utc: str | None = None
         ("clipped_samples", result.clipped_samples, ""),
         ("refused", list(result.refusals), "written with --force despite these" if result.refusals else ""),
         ("warnings", list(result.warnings), ""),
-        ("notes", [RANGE_BIAS_NOTE], ""),
+        ("notes", [RANGE_BIAS_NOTE] + ([IQ_NOTE] if result.iq is not None and result.iq.table is not None else []),
+         ""),
     ])
+    lines += iq_report_rows(result.iq)
     return "\n".join(lines) + "\n"
+
+
+def iq_table_lines(iq: IqResult | None) -> list[str]:
+    """The [[iq_imbalance]] entries (none when there is no estimate or it was refused)."""
+    lines: list[str] = []
+    if iq is None or iq.table is None:
+        return lines
+    for rx in range(len(iq.gain)):
+        sd_db = 20.0 / math.log(10.0) * iq.gain_sd[rx] / iq.gain[rx]
+        lines += ["", "[[iq_imbalance]]"]
+        _table(lines, [
+            ("rx", rx, ""),
+            ("q_gain", _r(iq.gain[rx], 9), f"{iq.gain_db[rx]:+.4f} dB: Q branch amplitude over I"),
+            ("q_phase_deg", _r(math.degrees(iq.phase_rad[rx]), 6), "Q' = q_gain (Q cos phi - I sin phi)"),
+            ("q_gain_sd", _r(iq.gain_sd[rx], 9), f"{sd_db:.4f} dB; g cos phi / sqrt(samples)"),
+            ("q_phase_sd_deg", _r(math.degrees(iq.phase_sd_rad[rx]), 6), "cos phi / sqrt(samples)"),
+            ("image_rejection_db", _r(iq.image_rejection_db[rx], 3), "of this imbalance, uncorrected"),
+            ("dc_offset_counts", _r(iq.dc_offset_counts[rx], 4), "|mean| per frame, removed before the estimate"),
+        ])
+    return lines
+
+
+def iq_report_rows(iq: IqResult | None) -> list[str]:
+    """The I/Q part of [report] (continues the table)."""
+    lines: list[str] = []
+    if iq is None:
+        return lines
+    _table(lines, [
+        ("iq_method", IQ_METHOD, ""),
+        ("iq_samples", iq.samples, "per receive channel: frames x slots x samples x (loops - 1)"),
+        ("iq_corrected_image_rejection_db", _r(iq.corrected_irr_db, 2), "expected after correction: 10 log10(2 x samples)"),
+        ("iq_clipped_samples", [int(c) for c in iq.clipped], "per receive channel"),
+        ("iq_refused", list(iq.refusals), "no [[iq_imbalance]] written" if iq.refusals else ""),
+        ("iq_warnings", list(iq.warnings), ""),
+    ])
+    return lines
+
+
+def format_iq_calibration(sensor: Sensor, iq: IqResult, capture: str = "", created_utc: str | None = None) -> str:
+    """The text of an I/Q-only calibration file (`calibrate --iq-only`): [calibration], [[iq_imbalance]],
+    [report]; no [[channel]] (no array calibration) and range bias 0."""
+    created = created_utc or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    lines = [
+        f"# cubecast calibration of sensor '{sensor.sensor_id}': I/Q imbalance of each receive channel only.",
+        "# The chain corrects it before the range FFT; no array gains, no range bias.",
+        "",
+        "[calibration]",
+    ]
+    _table(lines, [
+        ("format", CALIBRATION_FORMAT, ""),
+        ("version", CALIBRATION_VERSION, ""),
+        ("sensor_id", sensor.sensor_id, ""),
+        ("sensor_digest", sensor.digest, "the sensor description it was made with"),
+        ("array_digest", sensor.array_digest, "valid for sensors with this chirp, array, MIMO code and ADC format"),
+        ("n_tx", sensor.n_tx, ""),
+        ("n_rx", sensor.n_rx, ""),
+        ("created_utc", created, ""),
+        ("capture", capture, ""),
+        ("frames_used", iq.frames, ""),
+        ("range_bias_m", 0.0, "not measured (--iq-only)"),
+    ])
+    lines += iq_table_lines(iq)
+    lines += ["", "[report]"]
+    lines += iq_report_rows(iq)
+    _table(lines, [("notes", [IQ_NOTE], "")])
+    return "\n".join(lines) + "\n"
+
+
+def write_iq_calibration(path: str | Path, sensor: Sensor, iq: IqResult, capture: str = "",
+                         created_utc: str | None = None) -> None:
+    """Write an I/Q-only calibration file; a refused estimate is never written (CubecastError)."""
+    if iq.refusals:
+        raise CubecastError(f"--out {path}: not written, the capture gives no I/Q imbalance estimate: "
+                            + "; ".join(iq.refusals))
+    _write_text(path, format_iq_calibration(sensor, iq, capture, created_utc))
+
+
+def _write_text(path: str | Path, text: str) -> None:
+    try:
+        Path(path).write_text(text, encoding="utf-8")
+    except OSError as exc:
+        raise CubecastError(f"--out {path}: cannot write: {exc.strerror or exc}") from None
 
 
 def write_calibration(path: str | Path, result: CalibrationResult, created_utc: str | None = None, *,
@@ -154,11 +249,7 @@ def write_calibration(path: str | Path, result: CalibrationResult, created_utc: 
     if result.refusals and not force:
         raise CubecastError(f"--out {path}: not written, the capture gives no usable calibration: "
                             + "; ".join(result.refusals) + " (--force writes it anyway)")
-    text = format_calibration(result, created_utc)
-    try:
-        Path(path).write_text(text, encoding="utf-8")
-    except OSError as exc:
-        raise CubecastError(f"--out {path}: cannot write: {exc.strerror or exc}") from None
+    _write_text(path, format_calibration(result, created_utc))
 
 
 # ---- reading ----------------------------------------------------------------------------------
@@ -168,8 +259,8 @@ class CalibrationFile:
     """A calibration file read back (load_calibration_file)."""
 
     path: str
-    vector: np.ndarray  # complex64 [n_virtual]: multiply onto the channels (1 / gain)
-    gain: np.ndarray  # complex128 [n_virtual]
+    vector: np.ndarray | None  # complex64 [n_virtual]: multiply onto the channels (1 / gain); None: --iq-only
+    gain: np.ndarray | None  # complex128 [n_virtual]
     range_bias_m: float
     sensor_id: str
     sensor_digest: str
@@ -181,13 +272,15 @@ class CalibrationFile:
     target: dict
     warnings: tuple[str, ...]
     refused: tuple[str, ...] = ()  # why `calibrate` refused it (the file was written with --force)
+    iq_imbalance: np.ndarray | None = None  # float64 [n_rx, 2] = (g, phi rad) per RX; None: no I/Q correction
 
 
 _NON_EMPTY = r"(?s).+"
-CALIBRATION_SECTIONS = ("calibration", "target", "channel", "report")
+CALIBRATION_SECTIONS = ("calibration", "target", "channel", "iq_imbalance", "report")
 # written for people, not read back: named here so that a misspelt field is still an error
 HEADER_INFO_FIELDS = ("created_utc", "capture", "frames_used", "amplitude_reference", "phase_reference")
 CHANNEL_INFO_FIELDS = ("position_m", "residual_phase_deg", "residual_amplitude_db")
+IQ_INFO_FIELDS = ("q_gain_sd", "q_phase_sd_deg", "image_rejection_db", "dc_offset_counts")
 
 
 def _read_header(doc: Document) -> Section:
@@ -210,11 +303,31 @@ def _read_header(doc: Document) -> Section:
     return head
 
 
+def _read_iq(doc: Document, n_rx: int) -> np.ndarray | None:
+    """The [[iq_imbalance]] entries: float64 [n_rx, 2] = (q_gain, q_phase in rad), each RX given once;
+    None without entries (no I/Q correction)."""
+    entries = doc.tables("iq_imbalance")
+    if not entries:
+        return None
+    if len(entries) != n_rx:
+        raise doc.error(f"has {len(entries)} [[iq_imbalance]] entries; n_rx = {n_rx} needs one per receive channel")
+    table = np.full((n_rx, 2), np.nan)
+    for e in entries:
+        e.check_unknown(("rx", "q_gain", "q_phase_deg") + IQ_INFO_FIELDS)
+        rx = e.integer("rx", ge=0, le=n_rx - 1)
+        if not np.isnan(table[rx, 0]):
+            raise e.fail("rx", rx, "given twice")
+        table[rx, 0] = e.number("q_gain", gt=0)
+        table[rx, 1] = math.radians(e.number("q_phase_deg", gt=-90.0, lt=90.0))
+    return check_iq_table(table, n_rx, f"{doc.origin} [[iq_imbalance]]")
+
+
 def _read_gains(doc: Document, n_tx: int, n_rx: int) -> np.ndarray:
     """The [[channel]] entries: complex128 [n_tx x n_rx] gains, each channel given once at its index."""
     chans = doc.tables("channel")
     if not chans:
-        raise doc.error("no [[channel]] entries")
+        raise doc.error("no [[channel]] entries (and no [[iq_imbalance]] entries: a file of calibrate --iq-only "
+                        "has those instead)")
     n_virt = n_tx * n_rx
     if len(chans) != n_virt:
         raise doc.error(f"has {len(chans)} [[channel]] entries; n_tx x n_rx = {n_tx} x {n_rx} needs {n_virt}")
@@ -264,7 +377,11 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
     head = _read_header(doc)
     n_tx, n_rx = head.table["n_tx"], head.table["n_rx"]
     bias = head.number("range_bias_m")
-    gain = _read_gains(doc, n_tx, n_rx)
+    iq = _read_iq(doc, n_rx)
+    gain = None if iq is not None and not doc.tables("channel") else _read_gains(doc, n_tx, n_rx)
+    if gain is None and bias != 0.0:
+        raise head.fail("range_bias_m", bias, "a file without [[channel]] entries (calibrate --iq-only) measured "
+                                              "no range bias: must be 0")
     if sensor is not None:
         _check_made_for(doc, head, sensor)
     report = doc.data.get("report", {}) if isinstance(doc.data.get("report"), dict) else {}
@@ -273,14 +390,41 @@ def load_calibration_file(path: str | Path, sensor: Sensor | None = None) -> Cal
     frames_used = head.table.get("frames_used", 0)
     target = doc.data.get("target")
     return CalibrationFile(
-        path=str(path), vector=(1.0 / gain).astype(np.complex64), gain=gain, range_bias_m=bias,
+        path=str(path), vector=None if gain is None else (1.0 / gain).astype(np.complex64), gain=gain,
+        range_bias_m=bias, iq_imbalance=iq,
         sensor_id=head.table["sensor_id"], sensor_digest=head.table["sensor_digest"],
         array_digest=head.table.get("array_digest"), n_tx=n_tx, n_rx=n_rx,
         created_utc=str(head.table.get("created_utc", "")),
         frames_used=int(frames_used) if isinstance(frames_used, int) else 0,
         target=dict(target) if isinstance(target, dict) else {},
-        warnings=tuple(str(w) for w in warns) if isinstance(warns, list) else (),
+        warnings=_report_texts(warns) + tuple(f"I/Q: {w}" for w in _report_texts(report.get("iq_warnings", []))),
         refused=tuple(str(w) for w in refused) if isinstance(refused, list) else ())
+
+
+def _report_texts(value) -> tuple[str, ...]:
+    return tuple(str(w) for w in value) if isinstance(value, list) else ()
+
+
+@dataclass(frozen=True)
+class ChainCalibration:
+    """What a Pipeline takes from a calibration file: Pipeline(sensor, settings, vector, range_bias_m,
+    iq_imbalance)."""
+
+    vector: np.ndarray | None = None
+    range_bias_m: float = 0.0
+    iq_imbalance: np.ndarray | None = None
+
+
+def load_chain_calibration(path: str | Path | None, sensor: Sensor) -> ChainCalibration:
+    """The calibration vector, range bias and I/Q table of a calibration file made for `sensor` (all
+    empty without a file). A file written with --force despite a refusal is used, with a warning."""
+    if path is None:
+        return ChainCalibration()
+    f = load_calibration_file(path, sensor)
+    if f.refused:
+        log.warning("cubecast: warning: calibration %s was written with --force although %s", path,
+                    "; ".join(f.refused))
+    return ChainCalibration(f.vector, f.range_bias_m, f.iq_imbalance)
 
 
 def load_calibration(path: str | Path, sensor: Sensor) -> np.ndarray:

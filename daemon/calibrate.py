@@ -28,6 +28,13 @@ place, or one too weak for gain phases to PHASE_ACCURACY_DEG (1 deg rms: an inte
 of 32.2 dB); each says what would make the capture usable. Warnings: too near, not alone, not static,
 clipping, a channel far from the others.
 
+I/Q imbalance (calibiq.py): unless --no-iq, a first pass over the capture estimates each receive
+channel's Q-branch gain and phase error blind, from the second moments of what is left once each
+slot's mean over its loops (DC, leakage, the reflector itself) is removed. The array pass then runs on
+frames with that imbalance corrected, as the chain will correct them: an uncorrected imbalance scales
+every echo of an RX by mu = (1 + g e^{-j phi}) / 2, which would otherwise end up in the channel gains.
+`--iq-only` estimates the I/Q imbalance alone, from any capture (no reflector needed).
+
 The calibration file is TOML in our own layout (see README "Calibration file"), written and read
 back in calibfile.py (its names are also importable from here); `load_calibration` gives the
 complex64 vector the Pipeline takes, checking that the file was made for the sensor.
@@ -50,7 +57,8 @@ from .calibchecks import (CHANNEL_GAIN_LIMIT_DB, MIN_INTEGRATED_SNR_DB, MISFIT_L
                           near_limit, neighbour_misfit, not_static_warnings, other_peak_warnings,
                           reflector_refusals, zero_doppler_echoes)
 from .calibfile import (CALIBRATION_FORMAT, CALIBRATION_VERSION, RANGE_BIAS_NOTE, CalibrationFile, format_calibration,
-                        load_calibration, load_calibration_file, write_calibration)
+                        load_calibration, load_calibration_file, write_calibration, write_iq_calibration)
+from .calibiq import IqResult, correct_iq, estimate_iq_imbalance, format_iq_report
 from .errors import CubecastError
 from .scene import polar_to_cartesian
 from .sensor import SPEED_OF_LIGHT_MPS, Sensor
@@ -161,6 +169,7 @@ class CalibrationResult:
     warnings: list[str] = field(default_factory=list)
     refusals: list[str] = field(default_factory=list)  # why it is no usable calibration (written only by force)
     capture: str = ""
+    iq: IqResult | None = None  # the I/Q imbalance estimate the array pass corrected (None: not estimated)
 
     @property
     def gain_db(self) -> np.ndarray:
@@ -236,14 +245,16 @@ class _FrontEndSums:
 
 
 def _run_front_end(pipe, sensor: Sensor, frames: Iterable[np.ndarray], lo: int, hi: int,
-                   noise_mask: np.ndarray) -> _FrontEndSums:
-    """Every frame through the front end (range and Doppler FFTs); keeps what the estimation needs."""
+                   noise_mask: np.ndarray, iq_imbalance: np.ndarray | None = None) -> _FrontEndSums:
+    """Every frame through the front end (range and Doppler FFTs), its I/Q imbalance corrected first;
+    keeps what the estimation needs."""
     dop = pipe.doppler_fft
     n_loops, n_slots, n_rx, n_samp = sensor.n_loops, sensor.n_slots, sensor.n_rx, sensor.samples_per_chirp
     full_scale = sensor.adc.full_scale
     cells, loop_means, noise, maps = [], [], [], None
     clipped = 0
-    for frame in frames:
+    for raw in frames:
+        frame = correct_iq(raw, iq_imbalance)
         pipe.process(frame)
         # zero-Doppler slot values over the search window and one cell either side: [rx, slot, bins]
         cells.append(dop.spectrum[:, :, lo - 1: hi + 2, 0].astype(np.complex128))
@@ -252,8 +263,8 @@ def _run_front_end(pipe, sensor: Sensor, frames: Iterable[np.ndarray], lo: int, 
         noise.append(float(np.median(dmap[noise_mask])))
         # static reflector: the loop average of each (slot, rx) keeps it and cuts the noise n_loops times
         loop_means.append(frame.reshape(n_loops, n_slots, n_rx, n_samp).mean(axis=0, dtype=np.complex128))
-        clipped += int(np.count_nonzero((np.abs(frame.real) >= full_scale)
-                                        | (np.abs(frame.imag) >= full_scale)))
+        clipped += int(np.count_nonzero((np.abs(raw.real) >= full_scale)
+                                        | (np.abs(raw.imag) >= full_scale)))
     n_frames = len(cells)
     if n_frames == 0:
         raise CubecastError("calibration needs at least one frame; the capture has no readable frames")
@@ -363,10 +374,12 @@ def _fine_range(loop_means: np.ndarray, window: np.ndarray, fft_size: int, rb: i
 
 def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_range_m: float,
                          azimuth_deg: float = 0.0, elevation_deg: float = 0.0, *,
-                         search_cells: int = DEFAULT_SEARCH_CELLS) -> CalibrationResult:
+                         search_cells: int = DEFAULT_SEARCH_CELLS,
+                         iq_imbalance: np.ndarray | None = None) -> CalibrationResult:
     """Measure the virtual channels' gains and the range bias from canonical frames (complex64
     [chirp, rx, sample]) of a static point reflector at (target_range_m, azimuth_deg,
-    elevation_deg). Pure: no I/O. A capture that cannot give a usable calibration (no reflector, too weak)
+    elevation_deg), each frame's I/Q imbalance `iq_imbalance` ([n_rx, 2] = (g, phi rad), or None)
+    corrected first. Pure: no I/O. A capture that cannot give a usable calibration (no reflector, too weak)
     is not an error here: the result says why in `refusals` (write_calibration refuses it unless forced).
     The steps and checks are those of the module docstring, in that order."""
     from .chain.bounds import tone_phase_crb_rad
@@ -379,7 +392,8 @@ def estimate_calibration(sensor: Sensor, frames: Iterable[np.ndarray], target_ra
     bin_m, n_range, n_dop = rng_fft.bin_m, rng_fft.n_bins, dop.fft_size
     lo, hi = _search_window(sensor, r0, search_cells, bin_m, n_range)
     c0 = n_dop // 2  # zero Doppler in the (shifted) detection map; column 0 of the spectrum
-    sums = _run_front_end(pipe, sensor, frames, lo, hi, _noise_cells(sensor, n_range, n_dop, c0, lo, hi))
+    sums = _run_front_end(pipe, sensor, frames, lo, hi, _noise_cells(sensor, n_range, n_dop, c0, lo, hi),
+                          iq_imbalance)
     n_frames, mean_map = sums.n_frames, sums.mean_map
     rb, is_peak = _find_reflector(mean_map[:, c0], lo, hi)
     j = rb - lo + 1  # index of the reflector's bin in the stored window
@@ -453,20 +467,35 @@ def _chain_angles(estimator, snapshots: np.ndarray) -> tuple[np.ndarray, np.ndar
 
 def calibrate_capture(capture: str | Path, target_range_m: float, azimuth_deg: float = 0.0,
                       elevation_deg: float = 0.0, *, search_cells: int = DEFAULT_SEARCH_CELLS,
-                      skip_corrupt: bool = False) -> CalibrationResult:
-    """estimate_calibration over every readable frame of a capture file (its embedded sensor)."""
+                      skip_corrupt: bool = False, iq: bool = True) -> CalibrationResult:
+    """estimate_calibration over every readable frame of a capture file (its embedded sensor); with
+    `iq`, the I/Q imbalance estimated first (a pass of its own) and corrected in the array pass."""
+    from .capture import CaptureReader
+    from .files import capture_sensor, iter_capture_frames
+
+    iq_result = calibrate_iq_capture(capture, skip_corrupt=skip_corrupt)[1] if iq else None
+    with CaptureReader(capture, skip_corrupt=skip_corrupt) as reader:
+        sensor = capture_sensor(reader)
+        frames = (frame for _, _, frame in iter_capture_frames(reader, sensor))
+        result = estimate_calibration(sensor, frames, target_range_m, azimuth_deg, elevation_deg,
+                                      search_cells=search_cells,
+                                      iq_imbalance=None if iq_result is None else iq_result.table)
+        for p in reader.problems:
+            result.warnings.append(f"capture: {p}")
+    result.capture = str(capture)
+    result.iq = iq_result
+    return result
+
+
+def calibrate_iq_capture(capture: str | Path, *, skip_corrupt: bool = False) -> tuple[Sensor, IqResult]:
+    """The blind I/Q imbalance estimate over every readable frame of a capture (any scene)."""
     from .capture import CaptureReader
     from .files import capture_sensor, iter_capture_frames
 
     with CaptureReader(capture, skip_corrupt=skip_corrupt) as reader:
         sensor = capture_sensor(reader)
-        frames = (frame for _, _, frame in iter_capture_frames(reader, sensor))
-        result = estimate_calibration(sensor, frames, target_range_m, azimuth_deg, elevation_deg,
-                                      search_cells=search_cells)
-        for p in reader.problems:
-            result.warnings.append(f"capture: {p}")
-    result.capture = str(capture)
-    return result
+        res = estimate_iq_imbalance(sensor, (frame for _, _, frame in iter_capture_frames(reader, sensor)))
+    return sensor, res
 
 
 # ---- the terminal report ----------------------------------------------------------------------
@@ -496,6 +525,8 @@ def format_report(result: CalibrationResult) -> str:
     for v in range(s.n_virtual):
         out.append(f"  {v:5d}  {v // s.n_rx:2d} {v % s.n_rx:2d}  {result.gain_db[v]:+8.3f}  {result.gain_phase_deg[v]:+10.3f}"
                    f"  {result.residual_phase_deg[v]:10.3f}  {result.residual_amplitude_db[v]:9.3f}")
+    if result.iq is not None:
+        out += format_iq_report(result.iq)
     out.append(f"note          {RANGE_BIAS_NOTE}")
     if result.refusals:
         out.append(f"refused       {len(result.refusals)}: no usable calibration (--force writes it anyway):")
@@ -514,8 +545,12 @@ def run(args) -> int:
     """`cubecast calibrate`: the report and the file written at INFO, each warning at WARNING. A refused
     capture (CalibrationResult.refusals) writes nothing and raises CubecastError (exit 2), unless
     --force: then the file is written and each refusal is logged as a warning too."""
+    if args.iq_only:
+        return _run_iq_only(args)
+    if args.target_range_m is None:
+        raise CubecastError("--target-range-m: required (the reflector's range), unless --iq-only")
     result = calibrate_capture(args.capture, args.target_range_m, args.azimuth_deg, args.elevation_deg,
-                               search_cells=args.search_cells, skip_corrupt=args.skip_corrupt)
+                               search_cells=args.search_cells, skip_corrupt=args.skip_corrupt, iq=not args.no_iq)
     log.info("%s", format_report(result))
     write_calibration(args.out, result, force=args.force)
     log.info("wrote %s", args.out)
@@ -523,6 +558,35 @@ def run(args) -> int:
         log.warning("cubecast calibrate: warning: written with --force: %s", w)
     for w in result.warnings:
         log.warning("cubecast calibrate: warning: %s", w)
+    _log_iq(result.iq, result.sensor)
+    return 0
+
+
+def _log_iq(iq: IqResult | None, sensor: Sensor) -> None:
+    """The I/Q estimate's refusals and warnings (a real-sampled ADC has nothing to estimate: INFO)."""
+    if iq is None:
+        return
+    for w in iq.refusals:
+        if sensor.adc.is_complex:
+            log.warning("cubecast calibrate: warning: no I/Q correction written: %s", w)
+        else:
+            log.info("no I/Q correction written: %s", w)
+    for w in iq.warnings:
+        log.warning("cubecast calibrate: warning: I/Q: %s", w)
+
+
+def _run_iq_only(args) -> int:
+    """`calibrate --iq-only`: the I/Q imbalance alone; a refused estimate writes nothing (exit 2)."""
+    for flag, given in (("--target-range-m", args.target_range_m is not None), ("--no-iq", args.no_iq),
+                        ("--force", args.force)):
+        if given:
+            raise CubecastError(f"{flag}: not with --iq-only")
+    sensor, iq = calibrate_iq_capture(args.capture, skip_corrupt=args.skip_corrupt)
+    log.info("%s", "\n".join(format_iq_report(iq)))
+    write_iq_calibration(args.out, sensor, iq, str(args.capture))
+    log.info("wrote %s", args.out)
+    for w in iq.warnings:
+        log.warning("cubecast calibrate: warning: I/Q: %s", w)
     return 0
 
 
@@ -532,7 +596,8 @@ def add_parser(subparsers):
         "calibrate", help="measure the virtual channels' gains and the range bias from a capture of a "
                           "corner reflector at a known place")
     p.add_argument("capture", help="capture file of a static corner reflector")
-    p.add_argument("--target-range-m", type=float, required=True, help="the reflector's range from the sensor origin")
+    p.add_argument("--target-range-m", type=float, help="the reflector's range from the sensor origin (required "
+                                                        "unless --iq-only)")
     p.add_argument("--azimuth-deg", type=float, default=0.0, help="its azimuth, positive right (default 0)")
     p.add_argument("--elevation-deg", type=float, default=0.0, help="its elevation, positive up (default 0)")
     p.add_argument("--out", required=True, help="calibration file to write (TOML)")
@@ -540,6 +605,11 @@ def add_parser(subparsers):
                    help=f"look for the reflector within this many range cells of the given range "
                         f"(default {DEFAULT_SEARCH_CELLS})")
     p.add_argument("--skip-corrupt", action="store_true", help="skip frames whose CRC fails")
+    p.add_argument("--iq-only", action="store_true",
+                   help="estimate only each receive channel's I/Q imbalance, from any capture (no reflector); "
+                        "the file has no array gains")
+    p.add_argument("--no-iq", action="store_true", help="do not estimate the I/Q imbalance (no [[iq_imbalance]] "
+                                                        "in the file, no correction)")
     p.add_argument("--force", action="store_true",
                    help="write the file even when the capture is refused (no reflector, or too weak for gain "
                         f"phases to {PHASE_ACCURACY_DEG:g} deg); the refusals are still logged as warnings")

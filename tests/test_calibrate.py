@@ -161,8 +161,22 @@ def test_clean_reflector_gives_no_warning(calibration):
     assert calibration["result"].frames_used == CAL_FRAMES
 
 
-def test_measured_gains_match_the_injected_errors(calibration, gains):
-    est = calibration["result"].gain / gains
+def iq_correction_gain(sensor, iq_table):
+    """Per virtual channel, the gain mu that correcting an ideal receiver with the file's I/Q estimate
+    (g, phi) gives an echo: I = I', Q = (Q' / g + I' sin phi) / cos phi maps z = 1 to 1 + j tan phi and
+    z = j to j / (g cos phi), so y = mu z + nu conj(z) with mu = (y(1) - j y(j)) / 2 = (1 + j tan phi +
+    1 / (g cos phi)) / 2 (README "I/Q imbalance"). The array pass measures the gains of the corrected
+    frames, as the chain will see them."""
+    if iq_table is None:
+        return np.ones(sensor.n_virtual)
+    g, phi = iq_table[:, 0], iq_table[:, 1]
+    mu_rx = (1.0 + 1j * np.tan(phi) + 1.0 / (g * np.cos(phi))) / 2.0
+    return np.tile(mu_rx, sensor.n_tx)  # v = tx * n_rx + rx
+
+
+def test_measured_gains_match_the_injected_errors(calibration, gains, sensor):
+    res = calibration["result"]
+    est = res.gain / (gains * iq_correction_gain(sensor, res.iq.table))
     est = est / est[0]
     phase_err_deg = np.degrees(np.angle(est))
     amp_err_db = 20.0 * np.log10(np.abs(est))
