@@ -22,7 +22,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from .capture import RECORD_HEADER_SIZE, CaptureReader
-from .errors import CubecastError
+from .errors import CubecastError, is_integer
 from .sensor import parse_sensor
 
 SENSOR_KEYS = ("sensor_id", "digest", "center_frequency_hz", "wavelength_m", "bandwidth_hz", "mimo_scheme", "n_tx",
@@ -217,6 +217,21 @@ def truth_summary(gt: Any) -> dict:
         if bad is not None:
             out["malformed"] = (f"truth frame {bad} is not {len(targets)} rows of {len(columns)} values "
                                 "(one row per target, one value per column)")
+    out.update(_impairment_truth(gt))
+    return out
+
+
+def _impairment_truth(gt: dict) -> dict:
+    """The simulator's impairment truth, when present: clipped samples summed over frames and RX,
+    interference bursts (runs) counted over frames and RX, and the interferers' names."""
+    out = {}
+    clipped = gt.get("clipped_samples")
+    if isinstance(clipped, list) and all(isinstance(r, list) and all(is_integer(c) for c in r) for r in clipped):
+        out["clipped_samples"] = sum(sum(r) for r in clipped)
+    itf = gt.get("interference")
+    if isinstance(itf, dict) and isinstance(itf.get("frames"), list) and isinstance(itf.get("interferers"), list):
+        out["interference_bursts"] = sum(len(f) for f in itf["frames"] if isinstance(f, list))
+        out["interferers"] = [str(n) for n in itf["interferers"]]
     return out
 
 
@@ -284,8 +299,15 @@ def _truth_text(gt: dict) -> str:
         return f"present, not the simulator's schema (a JSON {gt['json_type']})"
     if gt["malformed"]:
         return f"the simulator's schema, malformed: {gt['malformed']}"
-    return (f"{len(gt['targets'])} targets ({', '.join(gt['targets'])}) over {gt['frames']} frames; columns "
+    text = (f"{len(gt['targets'])} targets ({', '.join(gt['targets'])}) over {gt['frames']} frames; columns "
             f"{', '.join(gt['columns'])}")
+    if "clipped_samples" in gt:
+        n = gt["clipped_samples"]
+        text += f"; {n} clipped samples" if n else "; no sample clipped"
+    if "interference_bursts" in gt:
+        text += (f"; {gt['interference_bursts']} interference bursts (runs per chirp and RX) from "
+                 f"{', '.join(gt['interferers'])}")
+    return text
 
 
 def format_info(d: dict) -> str:

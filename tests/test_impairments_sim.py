@@ -349,3 +349,48 @@ def test_interferer_at_a_receive_antenna_refused():
     s = load_sensor(YARD_SENSOR)
     with pytest.raises(CubecastError, match=r"interferer 'dock' at \[0.0, 0.0, 0.0\] is within a wavelength"):
         Simulator(s, parse_scene(TARGET + interferer(position_m=[0.0, 0.0, 0.0])))
+
+
+# ---- the bundled interfered capture -----------------------------------------------------------------
+
+def test_bundled_interfered_capture_regenerates_byte_for_byte(tmp_path):
+    # simulated with the IF filter (unlike yard.cap and gate.cap); the command is in DEVELOPERS.md
+    cap = SAMPLES / "yard_interfered.cap"
+    with CaptureReader(cap) as r:
+        meta, n, truth = r.metadata, len(r), r.ground_truth
+        assert r.problems == [] and r.sensor_toml == YARD_SENSOR.read_text()
+        sensor = capture_sensor(r)
+        payloads = [f.payload for f in r]
+    scene_text = (SAMPLES / "yard_interfered_scene.toml").read_text()
+    assert meta["scene_toml"] == scene_text and n == 5
+    out = tmp_path / "yard_interfered.cap"
+    simulate_capture(sensor, load_scene(SAMPLES / "yard_interfered_scene.toml"), out, n, seed=meta["seed"])
+    assert filecmp.cmp(out, cap, shallow=False)
+    # the truth holds: every frame has bursts on every RX, none clipped (numpy on the payloads)
+    bursts = truth["interference"]["frames"]
+    assert truth["interference"]["columns"] == ["chirp", "rx", "first_sample", "last_sample"]
+    for frame, raw, clipped in zip(bursts, payloads, truth["clipped_samples"]):
+        rows = np.array(frame)
+        assert all(np.count_nonzero(rows[:, 1] == rx) >= 5 for rx in range(4))
+        assert clipped == np.count_nonzero(np.abs(raw.astype(np.int32)).max(axis=-1) >= 8191, axis=(0, 2)).tolist()
+
+
+def test_bundled_interfered_scene_is_the_yard_plus_one_interferer():
+    yard, interfered = load_scene(SAMPLES / "yard_scene.toml"), load_scene(SAMPLES / "yard_interfered_scene.toml")
+    assert [(t.name, t.position_m.tolist(), t.velocity_mps.tolist(), t.rcs_dbsm) for t in yard.targets] == \
+        [(t.name, t.position_m.tolist(), t.velocity_mps.tolist(), t.rcs_dbsm) for t in interfered.targets]
+    assert len(interfered.interferers) == 1 and interfered.interferers[0].inr_db == 25.0
+
+
+def test_replay_samples_stay_within_8_mib():
+    assert sum(p.stat().st_size for p in SAMPLES.iterdir() if p.is_file()) <= 8 * 1024 * 1024
+
+
+def test_info_names_the_impairment_truth():
+    from cubecast.daemon.info import capture_info, format_info
+    d = capture_info(SAMPLES / "yard_interfered.cap")
+    with CaptureReader(SAMPLES / "yard_interfered.cap") as r:
+        n_bursts = sum(len(f) for f in r.ground_truth["interference"]["frames"])
+    assert d["ground_truth"]["interference_bursts"] == n_bursts and d["ground_truth"]["clipped_samples"] == 0
+    assert f"no sample clipped; {n_bursts} interference bursts (runs per chirp and RX) from dock 5 sensor" \
+        in format_info(d)
