@@ -50,6 +50,8 @@ Optional board impairments (README "Scene description"; the signal models are in
     iq_phase_deg = [3.0, 0.0, -2.0, 1.0] # Q-branch phase error per RX (or one number for all)
     leakage_level_dbfs = -30.0         # TX-to-RX leakage: a static return of this amplitude ...
     leakage_delay_s = 0.5e-9           # ... and this delay (both or neither)
+    phase_noise_dbc_per_hz = -85.0     # the LO's phase noise L(f) at ...
+    phase_noise_offset_hz = 1.0e6      # ... this offset (both or neither)
 
 Per-RX lists are checked against the sensor's RX count by the simulator (Simulator raises a
 CubecastError naming the scene file, [impairments], the field and the count).
@@ -109,11 +111,13 @@ class Impairments:
     leakage_level_dbfs: float | None = None  # amplitude of the leakage tone over the ADC full scale
     leakage_delay_s: float | None = None
     where: str = "[impairments]"  # file and section, for the simulator's messages
+    phase_noise_dbc_per_hz: float | None = None  # the LO's single-sideband phase noise L(f) ...
+    phase_noise_offset_hz: float | None = None  # ... at this offset (a Wiener phase: L falls as 1/f^2)
 
     @property
     def any(self) -> bool:
         return any(v is not None for v in (self.dc_offset_counts, self.iq_gain_db, self.iq_phase_deg,
-                                           self.leakage_level_dbfs))
+                                           self.leakage_level_dbfs, self.phase_noise_dbc_per_hz))
 
 
 SCENE_FRAMES = ("sensor", "platform")
@@ -238,7 +242,8 @@ def _read_interferer(f: Section, index: int) -> Interferer:
     return Interferer(name, pos, start, slope, ramp, period, chirps, frame_period, t0, inr, eirp)
 
 
-IMPAIRMENT_FIELDS = ("dc_offset_counts", "iq_gain_db", "iq_phase_deg", "leakage_level_dbfs", "leakage_delay_s")
+IMPAIRMENT_FIELDS = ("dc_offset_counts", "iq_gain_db", "iq_phase_deg", "leakage_level_dbfs", "leakage_delay_s",
+                     "phase_noise_dbc_per_hz", "phase_noise_offset_hz")
 IQ_GAIN_DB_LIMIT = 6.0  # a Q branch 2x off in amplitude is a broken receiver, not an imbalance
 IQ_PHASE_DEG_LIMIT = 45.0  # the correction divides by cos(phi)
 
@@ -270,9 +275,14 @@ def _read_impairments(f: Section) -> Impairments | None:
     delay = f.number("leakage_delay_s", None, ge=0, le=1e-6)  # on the board or in the radome: well under 1 us
     if (level is None) != (delay is None):
         raise f.error("leakage needs both leakage_level_dbfs and leakage_delay_s")
+    pn_level = f.number("phase_noise_dbc_per_hz", None, ge=-200, le=-20)
+    pn_offset = f.number("phase_noise_offset_hz", None, gt=0, le=1e9)
+    if (pn_level is None) != (pn_offset is None):
+        raise f.error("phase noise needs both phase_noise_dbc_per_hz and phase_noise_offset_hz")
     where = f"{f.origin}: [impairments]" if f.origin else "[impairments]"
     return Impairments(dc, _per_rx_numbers(f, "iq_gain_db", IQ_GAIN_DB_LIMIT),
-                       _per_rx_numbers(f, "iq_phase_deg", IQ_PHASE_DEG_LIMIT), level, delay, where)
+                       _per_rx_numbers(f, "iq_phase_deg", IQ_PHASE_DEG_LIMIT), level, delay, where,
+                       pn_level, pn_offset)
 
 
 def scene_from_document(doc: Document) -> Scene:

@@ -52,6 +52,16 @@ Leakage: a static return of amplitude full_scale 10^(level_dbfs / 20) |H(S tau_L
 exp(j 2 pi (f_c tau_L + S tau_L t_n - S tau_L^2 / 2)), the same every chirp, TX and RX (its phase is
 the coupling path's, taken as zero on every RX).
 
+Phase noise (optional): the LO's phase is a Wiener process (a free-running oscillator's Lorentzian
+line; common practice), E[(phi(t + T) - phi(t))^2] = D |T|, with D = 4 pi^2 f^2 10^(L(f)/10) from the
+given single-sideband level L(f) at offset f (L(f) = D / (4 pi^2 f^2) far from the carrier). An echo
+of delay tau is mixed with the LO that sent it, so only phi(t) - phi(t - tau) remains (the range
+correlation effect), a Gaussian of variance D tau per sample, drawn exactly from independent
+increments (seeded by (seed, frame, 2); the leakage's by (seed, frame, 3)); tau is each target's round
+trip at the frame's first chirp (TX 0 to RX 0), the same for every TX and RX (one LO). The leakage
+gets it at its own delay; the interference, whose
+phases are random already, does not. noise=False leaves the phase noise in (it is the scene's).
+
 I/Q imbalance per RX (gain g = 10^(iq_gain_db / 20), phase error phi): I' = I, Q' = g (Q cos phi -
 I sin phi), i.e. x = mu z + nu conj(z) with mu = (1 + g e^{-j phi}) / 2, nu = (1 - g e^{j phi}) / 2;
 a tone's image at the negative frequency sits |nu|^2 / |mu|^2 below it (the image-rejection ratio,
@@ -307,7 +317,11 @@ class Simulator:
         out = np.zeros((s.chirps_per_frame, s.n_rx, s.samples_per_chirp), np.complex128)
         m_idx = np.arange(s.chirps_per_frame)
         t_n = plan.fast_time_s
+        pn_rng = np.random.Generator(np.random.PCG64([self.seed, index, 2])) \
+            if self._phase_noise_diffusion() is not None else None
         for ti in range(len(self.scene.targets)):
+            if pn_rng is not None:  # one LO for every TX and RX: the round trip at the first chirp, TX 0 / RX 0
+                pn = self.phase_noise_factor(float(d_tx[ti, 0, 0] + d_rx[ti, 0, 0]) / c, pn_rng)
             for j in range(plan.active_tx.shape[0]):
                 w = plan.active_w[j]
                 k = plan.active_tx[j]
@@ -316,8 +330,33 @@ class Simulator:
                 # phase in cycles; the large f_c*tau term is reduced modulo 1 before it meets 2*pi
                 cyc0 = np.mod(s.start_frequency_hz * tau - 0.5 * s.slope_hz_per_s * tau * tau, 1.0)
                 cyc = cyc0[:, :, None] + (s.slope_hz_per_s * tau)[:, :, None] * t_n[None, None, :]
-                out += (amp[ti] * w * front[ti])[:, None, None] * gain[:, :, None] * np.exp(2j * np.pi * cyc)
+                echo = (amp[ti] * w * front[ti])[:, None, None] * gain[:, :, None] * np.exp(2j * np.pi * cyc)
+                if pn_rng is not None:
+                    echo *= pn[:, None, :]
+                out += echo
         return out
+
+    def _phase_noise_diffusion(self) -> float | None:
+        """D in rad^2/s of the LO's Wiener phase (module docstring), or None without phase noise."""
+        imp = self.scene.impairments
+        if imp is None or imp.phase_noise_dbc_per_hz is None:
+            return None
+        return 4.0 * math.pi ** 2 * imp.phase_noise_offset_hz ** 2 * 10.0 ** (imp.phase_noise_dbc_per_hz / 10.0)
+
+    def phase_noise_factor(self, tau_s: float, rng: np.random.Generator) -> np.ndarray:
+        """complex [chirp, sample]: exp(j (phi(t_n) - phi(t_n - tau_s))) of a Wiener phase, drawn from
+        the independent increments between the sorted instants t_n and t_n - tau_s of each chirp."""
+        s, t_n = self.sensor, self._plan.fast_time_s
+        grid = np.concatenate([t_n, t_n - tau_s])
+        order = np.argsort(grid, kind="stable")
+        steps = np.diff(grid[order])
+        walk = np.zeros((s.chirps_per_frame, len(grid)))
+        walk[:, 1:] = np.cumsum(rng.standard_normal((s.chirps_per_frame, len(steps)))
+                                * np.sqrt(self._phase_noise_diffusion() * steps), axis=1)
+        at = np.empty_like(walk)
+        at[:, order] = walk  # the path at each instant, in grid order
+        n = len(t_n)
+        return np.exp(1j * (at[:, :n] - at[:, n:]))
 
     # ---- interference and leakage --------------------------------------------------------------
     def _band_gain(self, beat_hz: np.ndarray) -> np.ndarray:
@@ -406,7 +445,12 @@ class Simulator:
             data += self.interference(index)
         leak = self.leakage()
         if leak is not None:
-            data += leak[None, None, :]
+            if self._phase_noise_diffusion() is None:
+                data += leak[None, None, :]
+            else:
+                rng = np.random.Generator(np.random.PCG64([self.seed, index, 3]))
+                data += leak[None, None, :] * self.phase_noise_factor(self.scene.impairments.leakage_delay_s,
+                                                                       rng)[:, None, :]
         if not s.adc.is_complex:
             data = data.real.astype(np.complex128)
         if self.noise:

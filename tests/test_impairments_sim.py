@@ -394,3 +394,38 @@ def test_info_names_the_impairment_truth():
     assert d["ground_truth"]["interference_bursts"] == n_bursts and d["ground_truth"]["clipped_samples"] == 0
     assert f"no sample clipped; {n_bursts} interference bursts (runs per chirp and RX) from dock 5 sensor" \
         in format_info(d)
+
+
+# ---- phase noise -----------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("range_m", [8.0, 19.0])
+def test_phase_noise_residual_grows_with_the_delay(range_m):
+    # Wiener phase (a free-running oscillator's Lorentzian line, common practice): increments over T have
+    # variance D T, and the single-sideband level far from the carrier is L(f) = D / (4 pi^2 f^2), so
+    # D = 4 pi^2 f^2 10^(L/10). An echo of delay tau keeps phi(t) - phi(t - tau) (range correlation,
+    # common practice): variance D tau per sample, independent from sample to sample while tau < 1 / fs.
+    # The sample variance of n Gaussian values has a relative sd sqrt(2 / n): +-5 sd.
+    s = load_sensor(YARD_SENSOR)
+    level, offset = -80.0, 1.0e6
+    extra = f"[impairments]\nphase_noise_dbc_per_hz = {level}\nphase_noise_offset_hz = {offset}\n"
+    scene = f'[[target]]\nrange_m = {range_m}\nsnr_db = 40.0\n'
+    noisy = Simulator(s, parse_scene(scene + extra), seed=7, noise=False).frame(0).astype(np.complex128)
+    clean = Simulator(s, parse_scene(scene), seed=7, noise=False).frame(0).astype(np.complex128)
+    residual = np.angle(noisy[:, 0, :] * np.conj(clean[:, 0, :])).ravel()
+    tau = 2 * range_m / C
+    assert tau < 1 / s.sample_rate_hz
+    d = 4 * math.pi ** 2 * offset ** 2 * 10 ** (level / 10)
+    n = residual.size
+    assert abs(residual.mean()) < 5 * math.sqrt(d * tau / n)
+    assert np.var(residual) == pytest.approx(d * tau, rel=5 * math.sqrt(2 / n))
+    # one LO: every RX sees the same residual (to float32 rounding)
+    other = np.angle(noisy[:, 3, :] * np.conj(clean[:, 3, :])).ravel()
+    assert np.max(np.abs(other - residual)) < 1e-3
+
+
+def test_phase_noise_fields_come_in_pairs():
+    with pytest.raises(CubecastError, match=r"^s\.toml: \[impairments\] phase noise needs both "
+                                            r"phase_noise_dbc_per_hz and phase_noise_offset_hz$"):
+        parse_scene(TARGET + "[impairments]\nphase_noise_dbc_per_hz = -80.0\n", "s.toml")
+    with pytest.raises(CubecastError, match=r"phase_noise_dbc_per_hz = -10.0: must be in \[-200, -20\]$"):
+        parse_scene(TARGET + "[impairments]\nphase_noise_dbc_per_hz = -10.0\nphase_noise_offset_hz = 1e6\n")
