@@ -429,3 +429,16 @@ def test_phase_noise_fields_come_in_pairs():
         parse_scene(TARGET + "[impairments]\nphase_noise_dbc_per_hz = -80.0\n", "s.toml")
     with pytest.raises(CubecastError, match=r"phase_noise_dbc_per_hz = -10.0: must be in \[-200, -20\]$"):
         parse_scene(TARGET + "[impairments]\nphase_noise_dbc_per_hz = -10.0\nphase_noise_offset_hz = 1e6\n")
+
+
+def test_platform_frame_interferer_seen_through_the_pose():
+    # a platform-frame position p is p_s = R^T (p - t) in the sensor frame (the pose: platform = R sensor + t)
+    s = load_sensor(SAMPLES / "tractor_right_sensor.toml")
+    p = np.array([14.0, 6.0, 1.2])
+    in_sensor = s.pose_rotation.T @ (p - s.pose_position_m)
+    assert in_sensor[1] > 0  # in front of this sensor
+    target = '[[target]]\nposition_m = [3.0, 9.0, 0.0]\nsnr_db = 20.0\n'
+    on_platform = parse_scene('[scene]\nframe = "platform"\n' + target + interferer(position_m=p.tolist()))
+    x = Simulator(s, on_platform, seed=1).interference(0)
+    y = Simulator(s, parse_scene(TARGET + interferer(position_m=in_sensor.tolist())), seed=1).interference(0)
+    assert np.abs(x).max() > 8.0 and np.allclose(x, y, atol=1e-6 * np.abs(x).max())
