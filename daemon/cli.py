@@ -114,7 +114,7 @@ def _process(args) -> int:
     from .process import process_capture
     return process_capture(args.capture, args.out, fmt=args.format, settings_path=args.settings,
                            calibration_path=args.calibration, progress=logs.show_progress(),
-                           skip_corrupt=args.skip_corrupt)
+                           skip_corrupt=args.skip_corrupt, frontend_out=args.frontend_out)
 
 
 def _serve(args) -> int:
@@ -262,6 +262,9 @@ def _add_file_commands(sub) -> None:
     pr.add_argument("--calibration", help="calibration file (TOML)")
     pr.add_argument("--skip-corrupt", action="store_true",
                     help="skip frames whose CRC fails (each is reported); default: stop with an error")
+    pr.add_argument("--frontend-out", metavar="FILE.csv",
+                    help="the front end's monitor (clipping, interference, floor, DC, IRR, warnings), a CSV row per "
+                         "frame and receive channel")
     pr.set_defaults(func=_process)
 
 
@@ -483,7 +486,7 @@ def build_parser() -> argparse.ArgumentParser:
 # flags naming a file a command writes (FOLDER_FLAGS: a folder), and the ZeroMQ endpoint flags each
 # command binds (True) or connects (False): checked before the command runs, so that a typo costs no
 # processing and ZeroMQ never sees a port it would wrap
-OUTPUT_FLAGS = ("--out", "--points-out", "--png", "--save-datagrams", "--snapshot")
+OUTPUT_FLAGS = ("--out", "--points-out", "--png", "--save-datagrams", "--snapshot", "--frontend-out")
 FOLDER_FLAGS = ("--dir",)
 POINT_FILE_FLAGS = {("process", "--out"): "format", ("record", "--points-out"): "points_format"}  # exports.py
 ENDPOINT_FLAGS = {

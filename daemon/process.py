@@ -13,6 +13,7 @@ from .capture import CaptureReader
 from .chain.pipeline import Pipeline
 from .chain.points import to_records
 from .files import capture_sensor, iter_capture_frames
+from .frontendout import FrontendRun
 from .settings import load_settings
 
 log = logging.getLogger(__name__)
@@ -51,22 +52,30 @@ def process_frames(reader: CaptureReader, pipeline: Pipeline, progress: bool = F
 
 
 def process_capture(capture: str | Path, out: str | Path, fmt: str | None = None, settings_path=None,
-                    calibration_path=None, progress: bool = True, skip_corrupt: bool = False) -> int:
+                    calibration_path=None, progress: bool = True, skip_corrupt: bool = False,
+                    frontend_out: str | Path | None = None) -> int:
     """`cubecast process`: every frame's points into `out` in `fmt` (or the format its name says),
-    written as they come under a temporary name and renamed into place at the end."""
+    written as they come under a temporary name and renamed into place at the end; the front end's
+    monitor summed up in the log at the end (frontendout.py), and per frame and channel into the CSV
+    `frontend_out` when given."""
     fmt = exports.check_target("--out", out, fmt)  # before the processing, not after it
     settings = load_settings(settings_path)
     # a copy of an earlier record (the reader's `repeated`) holds no new frame: it is not processed
     with CaptureReader(capture, skip_corrupt=skip_corrupt, skip_repeated=True) as reader:
         sensor = capture_sensor(reader)
         pipeline = make_pipeline(sensor, settings, calibration_path)
-        with exports.WRITERS[fmt](out, "--out") as writer:
+        with exports.WRITERS[fmt](out, "--out") as writer, \
+                FrontendRun(sensor.n_rx, sensor.adc.full_scale, frontend_out) as monitor:
             for seq, ts, records in iter_processed(reader, pipeline, progress):
                 writer.write_frame(seq, ts, records, sensor.sensor_id)
+                monitor.add(seq, ts, pipeline.frontend)
         problems = reader.problems
         repeated = reader.counts["repeated"]
     for p in problems:
         log.warning("cubecast process: warning: %s: %s", capture, p)
     skipped = f" ({repeated} repeated record{'s' if repeated != 1 else ''} skipped)" if repeated else ""
     log.info("%d frames, %d points -> %s%s", writer.frames, writer.points, out, skipped)
+    monitor.log_summary(log)
+    if frontend_out is not None:
+        log.info("front end: %d frames x %d channels -> %s", monitor.summary.frames, sensor.n_rx, frontend_out)
     return 0

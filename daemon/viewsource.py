@@ -2,8 +2,8 @@
 reads, and the `view` subcommand's registration.
 
 This is the one module that imports both `daemon` and `viewer`. It runs frames 0..N of a capture
-through the Pipeline, packs each result as README "Wire format" describes (points, rdmap, sensor and a health-like
-status) and decodes them again with the viewer's own decoder, so a snapshot from a capture passes the
+through the Pipeline, packs each result as README "Wire format" describes (points, rdmap, the front end's monitor, sensor
+and a health-like status) and decodes them again with the viewer's own decoder, so a snapshot from a capture passes the
 same validation as live data.
 """
 
@@ -26,7 +26,8 @@ def register_view(subparsers) -> None:
 def capture_messages(capture_path: str, frame: int | None = None, settings_path: str | None = None,
                      history: int = 8) -> list[dict]:
     """Process frames 0..frame of a capture; the wire messages of the last `history` frames (points),
-    the last frame's rdmap, the sensor description and a health-like status, decoded by the viewer.
+    the last frame's rdmap and front-end monitor (with serve's warnings), the sensor description and a
+    health-like status with the front end's summary, decoded by the viewer.
     `frame` None means the capture's last frame."""
     from ..viewer.feed import POINT_FIELDS, decode_parts
 
@@ -35,6 +36,7 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
     from .chain.pipeline import Pipeline
     from .chain.points import RECORD_DTYPE, to_records
     from .files import capture_sensor, iter_capture_frames
+    from .frontendwarn import FrontendSummary, frontend_warnings
     from .settings import load_settings
 
     if RECORD_DTYPE.descr != [(n, d) for n, _, d in POINT_FIELDS]:
@@ -53,7 +55,9 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
         run = f"capture-{zlib.crc32(str(capture_path).encode()) & 0xFFFFFFFF:08x}"
         raw: list[list[bytes]] = []
         latencies, stamps = [], []
-        rd = None
+        rd = fe = None
+        fs = sensor.adc.full_scale
+        summary = FrontendSummary(sensor.n_rx)
         for k, (seq, ts, canon) in enumerate(iter_capture_frames(reader, sensor)):
             if k > last:
                 break
@@ -63,10 +67,14 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
             latency = time.perf_counter() - t0
             latencies.append(latency)
             stamps.append(ts)
+            warnings = frontend_warnings(pipe.frontend, fs)
+            summary.add(pipe.frontend, warnings)
             if k >= last - history + 1:
                 raw.append(wire.encode_points(sid, int(seq), run, float(ts), float(latency), rec))
             if k == last:
                 rd = wire.encode_rdmap(sid, int(seq), float(ts), *pipe.display_map())
+                fe = wire.encode_frontend(sid, int(seq), run, float(ts), pipe.frontend, fs,
+                                          [w.as_map() for w in warnings])
         processed = len(latencies)
         lat_ms = np.array(latencies[1:] or latencies) * 1e3  # the first frame includes compilation
         span_s = stamps[-1] - stamps[0] if len(stamps) > 1 else 0.0
@@ -75,10 +83,11 @@ def capture_messages(capture_path: str, frame: int | None = None, settings_path:
             "frames_dropped": 0, "frames_rejected": 0, "rejected": {}, "sequence_gaps": 0,
             "source_restarts": 0, "latency_p50_ms": float(np.percentile(lat_ms, 50)),
             "latency_p99_ms": float(np.percentile(lat_ms, 99)), "queue_depth": 0, "cpu_share": 0.0,
-            "points_last": int(len(rec)), "fps": float((processed - 1) / span_s) if span_s > 0 else 0.0})
+            "points_last": int(len(rec)), "fps": float((processed - 1) / span_s) if span_s > 0 else 0.0,
+            "frontend": summary.health()})
         sensor_msg = wire.encode_sensor(sensor, pipe.settings.velocity_unfolding)
     now = time.monotonic()
-    ordered = [sensor_msg] + raw + [rd, health]
+    ordered = [sensor_msg] + raw + [rd, fe, health]
     return [decode_parts([bytes(part) for part in p], now) for p in ordered]
 
 

@@ -99,9 +99,12 @@ def test_process_cli_csv_columns_and_content(tmp_path, capsys):
     assert data["range_m"].shape[0] == len(rows) - 1
     out, err = capsys.readouterr()
     docs = [json.loads(line) for line in err.splitlines()]  # JSON lines only: no progress bar
-    assert out == "" and [d["level"] for d in docs] == ["info"]
-    assert docs[0]["logger"] == "cubecast.daemon.process"
+    # the points line, then the front end's summary: a line per receive channel and the warnings line
+    assert out == "" and [d["level"] for d in docs] == ["info"] * (2 + sensor.n_rx)
+    assert {d["logger"] for d in docs} == {"cubecast.daemon.process"}
     assert docs[0]["message"] == f"{len(records)} frames, {len(rows) - 1} points -> {npz}"
+    assert [d["message"].split(":")[0] for d in docs[1:]] == [f"front end rx {k}" for k in range(sensor.n_rx)] + [
+        "front end"]
 
 
 def test_process_cli_reports_corrupt_frame(tmp_path, capsys):
@@ -136,6 +139,7 @@ def test_process_skips_a_repeated_record_and_reports_it(tmp_path, capsys):
     a, b = np.load(tmp_path / "clean.npz"), np.load(tmp_path / "dup.npz")
     assert a.files == b.files and all(np.array_equal(a[c], b[c]) for c in a.files)
     assert sorted(set(a["frame"])) == [f.sequence for f in frames]
+    docs = [d for d in docs if not d["message"].startswith("front end")]  # the front end's summary after these
     assert [d["level"] for d in docs] == ["warning", "info"]
     assert "frame index 3" in docs[0]["message"] and "repeats frame index 1" in docs[0]["message"]
     assert docs[1]["message"].endswith("(1 repeated record skipped)")

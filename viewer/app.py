@@ -30,13 +30,13 @@ class ViewerApp:
                  persist_frames: int = V.DEFAULT_PERSIST_FRAMES, color_by: str = "velocity",
                  velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS,
                  sensor_height_m: float | None = None, stall_after_s: float = 3.0, dpi=None,
-                 canvas=None, view_frame: str = "sensor", tuning=None):
+                 canvas=None, view_frame: str = "sensor", tuning=None, frontend_panel: bool = False):
         from .canvas import ViewerCanvas
         self.feed = feed
         self.tuning = tuning  # a tuning.TuningClient (view --control), or None
         self.stall_after_s = stall_after_s
         self.options = dict(persist_frames=persist_frames, color_by=color_by, velocity_span_mps=velocity_span_mps,
-                            sensor_height_m=sensor_height_m, view_frame=view_frame)
+                            sensor_height_m=sensor_height_m, view_frame=view_frame, frontend_panel=frontend_panel)
         self.fixed_sensor = (sensor or "").rstrip("/") or None
         self.vc = canvas or ViewerCanvas(size=size, show=show, title=f"cubecast view · {feed.endpoint}", dpi=dpi)
         self.state = self._new_state(self.fixed_sensor)
@@ -59,7 +59,7 @@ class ViewerApp:
         st = V.ViewerState(endpoint=self.feed.endpoint, sensor_id=sensor_id,
                            persist=V.Persistence(o["persist_frames"]), color_by=o["color_by"],
                            velocity_span_mps=o["velocity_span_mps"], sensor_height_m=o["sensor_height_m"],
-                           stall_after_s=self.stall_after_s, frame=o["view_frame"])
+                           stall_after_s=self.stall_after_s, frame=o["view_frame"], show_frontend=o["frontend_panel"])
         return st
 
     # ---- the timer ----
@@ -80,11 +80,11 @@ class ViewerApp:
         changed = False
         latest = snap.latest.get(st.sensor_id, {}) if st.sensor_id else {}
         counts = snap.counts.get(st.sensor_id, {}) if st.sensor_id else {}
-        for kind in ("sensor", "health", "rdmap", "points"):
+        for kind in ("sensor", "health", "frontend", "rdmap", "points"):
             msg, n = latest.get(kind), counts.get(kind, 0)
             if msg is None or self._seen.get((st.sensor_id, kind)) == n:
                 continue
-            if kind in ("points", "rdmap") and st.paused and not self._step_pending:
+            if kind in ("points", "rdmap", "frontend") and st.paused and not self._step_pending:
                 continue    # frozen: the slot keeps only the newest, taken on resume or step
             if kind == "points" and st.paused:
                 st.last_seq = None  # a step is not a gap
@@ -156,6 +156,9 @@ class ViewerApp:
         elif k in ("p", "P"):
             self.toggle_platform()
             return
+        elif k in ("m", "M"):
+            st.show_frontend = not st.show_frontend
+            self.options["frontend_panel"] = st.show_frontend
         elif k in ("r", "R"):
             self.vc.reset_cameras(st)
         elif k in ("s", "S"):

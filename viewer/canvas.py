@@ -13,6 +13,8 @@ from vispy.visuals.text.text import FontManager
 from vispy.visuals.transforms import STTransform
 
 from . import views as V
+from .frontendbox import FrontendBox
+from .frontendpanel import panel_text
 
 FONT = "OpenSans"   # shipped with vispy: the same glyphs on every machine
 HEADER_H, FOOTER_H, TITLE_H, XAXIS_H, YAXIS_W, MARGIN = 34, 24, 34, 42, 60, 8
@@ -283,6 +285,12 @@ class ViewerCanvas:
         self.info_lines = self._text("", parent=self.overlay, color=V.TEXT, font_size=9, face=FONT,
                                      anchor_x="left", anchor_y="center")
         self.show_selection(None)
+        self._build_frontend()
+
+    def _build_frontend(self) -> None:
+        """The front end's per-channel panel (key m), in the upper right of the range-Doppler panel."""
+        self.frontend_box = FrontendBox(self.overlay, self._text)
+        self._frontend_key = self._frontend_state = None
 
     # ---- construction helpers ----
     def _text(self, *args, **kwargs):
@@ -323,6 +331,7 @@ class ViewerCanvas:
         self._column_w = (w - 2 * MARGIN - right_w, right_w)
         if getattr(self, "_selection", None):
             self.show_selection(self._selection)
+        self._frontend_key = None  # placed again at the next show_frontend
 
     def set_help(self, visible: bool) -> None:
         for v in (self.help_box, self.help_title, self.help_keys, self.help_desc):
@@ -349,6 +358,16 @@ class ViewerCanvas:
     @property
     def selection(self) -> list[str] | None:
         return self._selection
+
+    def show_frontend(self, state: V.ViewerState) -> None:
+        """The per-channel panel from the latest `frontend` message, when state.show_frontend."""
+        self._frontend_state = state
+        pt = panel_text(state.frontend_msg) if state.show_frontend else None
+        x0, y0, x1, _ = self.panel_rect("rd")
+        key = (pt, x0, y0, x1)
+        if key != self._frontend_key:
+            self._frontend_key = key
+            self.frontend_box.show(pt, x1 - 8, y0 + 26)
 
     def pick(self, state: V.ViewerState, px) -> list[str] | None:
         """The lines a click at canvas pixel `px` (physical pixels, as data_to_pixel) shows: the nearest
@@ -550,8 +569,9 @@ class ViewerCanvas:
         self.footer_right.text = right
 
     def show_data(self, state: V.ViewerState) -> None:
-        """Points, legends, the range-Doppler image and the panel geometry."""
+        """Points, legends, the range-Doppler image, the front end's panel and the panel geometry."""
         self._apply_geometry(state)
+        self.show_frontend(state)
 
         styled, edge = state.styled()
         if len(styled.sizes):
@@ -637,6 +657,8 @@ class ViewerCanvas:
         moves the cameras, which the linked axes follow only on the next draw: draw twice."""
         self.canvas.render(alpha=False)
         self.refresh_axes()
+        if self._frontend_state is not None:
+            self.show_frontend(self._frontend_state)  # placed again now that the panels have their size
         return self.canvas.render(alpha=False)
 
     def refresh_axes(self) -> bool:

@@ -92,6 +92,8 @@ def register(subparsers, capture_snapshot=None) -> argparse.ArgumentParser:
                         "sensor description's mount_height_m, else 1.0 m)")
     v.add_argument("--stall-s", type=_positive_float, default=3.0,
                    help="seconds without messages before the status shows a stall (default 3)")
+    v.add_argument("--frontend", action="store_true",
+                   help="show the front end's per-channel panel from the start (key m toggles it)")
     v.add_argument("--settings", help="with --capture: processing settings (TOML)")
     v.add_argument("--control", metavar="ENDPOINT", help="serve's --control endpoint: keys f/F, k/K, g/G, t/T tune "
                                                          "its CFAR live (viewer/tuning.py; the same --server-key/--key)")
@@ -124,7 +126,8 @@ def run(args, capture_snapshot=None) -> int:
     if args.color == "sensor" and not args.platform:
         return _err("--color sensor applies to --platform only")
     options = dict(persist_frames=persist, color_by=args.color, velocity_span_mps=args.velocity_span_mps,
-                   sensor_height_m=args.sensor_height_m, view_frame="platform" if args.platform else "sensor")
+                   sensor_height_m=args.sensor_height_m, view_frame="platform" if args.platform else "sensor",
+                   frontend_panel=bool(getattr(args, "frontend", False)))
     server_key, key = getattr(args, "server_key", None), getattr(args, "key", None)
     if args.capture and (server_key or key):
         return _err("--server-key and --key apply to --sub only")

@@ -6,7 +6,8 @@
      "received_s": float (time.monotonic() at receipt)}
 
 with `data` the payload as a read-only numpy array: POINT_DTYPE records for `points`, float32
-[range, doppler] dB for `rdmap`, None for `sensor` and `health`. The decoding and every rule are the
+[range, doppler] dB for `rdmap`, the front end's records (wire.FRONTEND_RECORD_DTYPE, one per receive
+channel) for `frontend`, None for `sensor` and `health`. The decoding and every rule are the
 wire module's (cubecast.daemon.wire, the contract the daemon and the workers use too), with this
 viewer's payload bound; anything that breaks the contract raises its WireError, whose `reason` is one
 of the wire's rejection reasons.
@@ -41,7 +42,7 @@ from ..daemon.wire import WireError
 from .keyfiles import FeedKeys
 
 KINDS = wire.KINDS
-VIEW_KINDS = ("points", "rdmap", "sensor", "health")
+VIEW_KINDS = ("points", "rdmap", "sensor", "health", "frontend")
 
 HEADER_MAX_BYTES = wire.MAX_HEADER_BYTES
 SENSOR_HEADER_MAX_BYTES = wire.MAX_SENSOR_HEADER_BYTES

@@ -91,10 +91,11 @@ def write_png(path: str | Path, rgba: np.ndarray) -> None:
 def make_state(messages, endpoint: str = "", sensor_id: str | None = None, color_by: str = "velocity",
                persist_frames: int = V.DEFAULT_PERSIST_FRAMES, sensor_height_m: float | None = None,
                velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, bad_by_reason: dict | None = None,
-               idle_s: float = 0.0, connected: bool | None = None, view_frame: str = "sensor") -> V.ViewerState:
+               idle_s: float = 0.0, connected: bool | None = None, view_frame: str = "sensor",
+               frontend_panel: bool = False) -> V.ViewerState:
     state = V.ViewerState(endpoint=endpoint, sensor_id=sensor_id, persist=V.Persistence(persist_frames),
                           color_by=color_by, sensor_height_m=sensor_height_m, velocity_span_mps=velocity_span_mps,
-                          frame=view_frame)
+                          frame=view_frame, show_frontend=frontend_panel)
     for m in messages:
         state.ingest(m)
     if bad_by_reason:
@@ -121,11 +122,11 @@ def render_snapshot(messages, out_png: str | Path, size=(1280, 800), *, endpoint
                     persist_frames: int = V.DEFAULT_PERSIST_FRAMES,
                     sensor_height_m: float | None = None,
                     velocity_span_mps: float = V.DEFAULT_VELOCITY_SPAN_MPS, footer: str = "",
-                    help_overlay: bool = False, view_frame: str = "sensor") -> np.ndarray:
+                    help_overlay: bool = False, view_frame: str = "sensor", frontend_panel: bool = False) -> np.ndarray:
     """Render decoded wire messages to a PNG file; returns the RGBA pixels written."""
     state = make_state(messages, endpoint=endpoint, sensor_id=sensor_id, color_by=color_by,
                        persist_frames=persist_frames, sensor_height_m=sensor_height_m,
-                       velocity_span_mps=velocity_span_mps, view_frame=view_frame)
+                       velocity_span_mps=velocity_span_mps, view_frame=view_frame, frontend_panel=frontend_panel)
     img, vc = render_state(state, size, footer=footer, help_overlay=help_overlay)
     vc.canvas.close()
     write_png(out_png, img[..., :3])

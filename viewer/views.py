@@ -29,6 +29,7 @@ import numpy as np
 from .grids import *  # noqa: F401,F403 (the panels' geometry and legends, re-exported for canvas.py)
 from .grids import _fmt_num  # noqa: F401
 from .palette import *  # noqa: F401,F403 (the colours, re-exported)
+from .frontendpanel import flag_text
 from .grids import SensorPlace, pose_of, sensor_place
 from .palette import (DEFAULT_PERSIST_FRAMES, DEFAULT_SENSOR_HEIGHT_M, DEFAULT_SNR_RANGE_DB,
                       DEFAULT_VELOCITY_SPAN_MPS, FRAMES, RECENT_FRAMES, SENSOR_COLORS, STATUS_OK, STATUS_STALL,
@@ -213,6 +214,7 @@ KEYS: tuple[tuple[str, str], ...] = (
     ("-  +", "persistence: fewer / more frames"),
     ("n", "next sensor on the bus (its map and health)"),
     ("p", "platform frame: every sensor in one picture / one sensor"),
+    ("m", "front end per receive channel: clipping, interference, floor, DC, IRR"),
     ("f / F", "with --control: CFAR Pfa / 10, x 10"),
     ("k / K", "with --control: CFAR kind next, previous"),
     ("g / G", "with --control: CFAR guard cells -1, +1"),
@@ -230,6 +232,7 @@ STATUS_WORDS: tuple[tuple[str, str], ...] = (
     ("dropped N", "frames serve dropped (its queue was full)"),
     ("rejected N", "frames serve refused as invalid"),
     ("gaps N", "frames that never reached serve"),
+    ("rx N clipping ...", "serve's front-end warning of the last frame (key m: every channel)"),
 )
 HELP_ROWS: tuple[tuple[str, str], ...] = KEYS + (("", ""), ("status line", "")) + STATUS_WORDS
 
@@ -341,6 +344,8 @@ class ViewerState:
     points_msg: dict | None = None
     rdmap_msg: dict | None = None
     health_msg: dict | None = None
+    frontend_msg: dict | None = None     # the front end's latest monitor (kind `frontend`)
+    show_frontend: bool = False          # the per-channel panel (key m)
     run: str | None = None
     last_seq: int | None = None
     frames_shown: int = 0
@@ -386,6 +391,8 @@ class ViewerState:
             self.sensor_msg = msg
         elif kind == "health":
             self.health_msg = msg
+        elif kind == "frontend":
+            self.frontend_msg = msg
         else:
             return False
         return True
@@ -501,7 +508,8 @@ class ViewerState:
 
 
 def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple[str, str]:
-    """(text, level) with level 'wait', 'ok', 'stall' or 'paused'."""
+    """(text, level) with level 'wait', 'ok', 'warn' (a front-end warning: its flag at the end), 'stall'
+    or 'paused'."""
     stall_after_s = state.stall_after_s if stall_after_s is None else stall_after_s
     if not state.any_message:
         conn = "" if state.connected is None else ("  (connected, no messages yet)" if state.connected
@@ -530,6 +538,9 @@ def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple
             parts.append(f"gaps {h['sequence_gaps']}")
     if state.frames_skipped:
         parts.append(f"skipped {state.frames_skipped}")
+    flag = flag_text(state.frontend_msg)
+    if flag:
+        parts.append(flag)
     if state.bad:
         why = ", ".join(f"{k} {v}" for k, v in sorted(state.bad_by_reason.items()))
         parts.append(f"bad messages {state.bad} ({why})")
@@ -539,7 +550,8 @@ def status_line(state: ViewerState, stall_after_s: float | None = None) -> tuple
         return f"STALLED: nothing for {state.idle_s:.1f} s on {state.endpoint}{link}  ·  " + text, "stall"
     if state.paused:
         return "PAUSED  ·  " + text, "paused"
-    return text, "ok"
+    return text, "warn" if flag else "ok"
 
 
-STATUS_COLORS = {"wait": STATUS_WAIT, "ok": STATUS_OK, "stall": STATUS_STALL, "paused": STATUS_WAIT}
+STATUS_COLORS = {"wait": STATUS_WAIT, "ok": STATUS_OK, "stall": STATUS_STALL, "paused": STATUS_WAIT,
+                 "warn": STATUS_WAIT}
