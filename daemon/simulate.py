@@ -37,12 +37,15 @@ mixer output carries the difference of our LO and the received chirp (the same s
 
 while the interferer is in its ramp; theta is a random phase per pair (our chirp, its chirp), seeded
 by (seed, frame, interferer), since the two synthesisers' phases are unrelated. The IF filter is
-applied quasi-statically, |H| at the instantaneous beat frequency: an approximation that holds when
-the sweep stays in one filter bandwidth B longer than the filter's response time, |S - S_i| << B^2
-(for the bundled sensor B ~ 6 MHz: a few 1e13 Hz/s); a faster sweep would show the filter's delay
-and ringing, which are not modelled. Without the filter (if_filter=False) the band is a brick wall,
-|f_b| <= the IF band edge (fs complex, fs / 2 real). The chirps cross where f_b = 0; the burst lasts
-while |f_b| is in the band, 2 B_IF / |S - S_i| for a band of half-width B_IF. Amplitude
+applied as a filter, not a weight: the mixed chirp is made on a fine grid (IfGrid: every ADC instant
+and `factor` - 1 between, 2 us beyond each end of the ADC window for the filter's response), tapered
+to zero where |f_b| passes from 3 to 4 cutoffs (|H| < -76 dB there), its spectrum multiplied by |H(f)|
+(zero phase, as the echoes' |H| weight: the filter's delay is not modelled) and sampled at the ADC
+instants, so a fast sweep's ringing and the ramp's abrupt start and stop are in. For a slow sweep,
+|S - S_i| << B^2 (the bundled sensor: B ~ 6 MHz, B^2 ~ 3.6e13 Hz/s), this is |H| at the instantaneous
+beat frequency. Without the filter (if_filter=False) the band is a brick wall in time, |f_b| <= the IF
+band edge (fs complex, fs / 2 real). The chirps cross where f_b = 0; the burst lasts while |f_b| is in
+the band, 2 B_IF / |S - S_i| for a band of half-width B_IF. Amplitude
 A = noise_rms_counts sqrt(INR) with the scene's inr_db, or from eirp_dbm by the one-way Friis link
 (Friis, "A note on a simple transmission formula", 1946): Pr = EIRP + G_r + 20 log10(lambda_i /
 (4 pi R)) over the noise k T0 F fs (system losses not counted), lambda_i = c / f_i, R from our
@@ -68,7 +71,7 @@ a tone's image at the negative frequency sits |nu|^2 / |mu|^2 below it (the imag
 common practice; e.g. Razavi, RF Microelectronics, 2nd ed., 2011). Then DC: i + j q counts per RX.
 
 Truth: interference_bursts(index) lists [chirp, rx, first, last] sample runs where the interference's
-amplitude at the ADC (its envelope, after the IF filter weight) exceeds noise_rms_counts;
+amplitude at the ADC (its complex envelope, through the IF filter) exceeds noise_rms_counts;
 clipped_samples(index) counts per RX the complex samples whose I or Q is at or beyond full scale after
 quantisation (count_clipped).
 """
@@ -142,6 +145,33 @@ def friis_inr_db(sensor: Sensor, eirp_dbm: float, range_m: float, wavelength_m: 
 
 
 @dataclass(frozen=True)
+class IfGrid:
+    """The fine time grid on which interference is filtered: `factor` points per ADC sample, so that
+    the grid holds every ADC instant and its rate exceeds twice the taper's end (4 cutoffs: content
+    beyond is tapered away); `margin` grid points (IF_SETTLE_S) on each side of the ADC window, so the
+    filter's response to a chirp just outside the window reaches into it."""
+
+    factor: int
+    rate_hz: float
+    margin: int
+    margin_s: float
+    taper_hz: tuple[float, float]
+    t_s: np.ndarray  # [(N - 1) factor + 2 margin + 1] from our chirp's start
+
+    @classmethod
+    def for_sensor(cls, s: Sensor) -> "IfGrid":
+        taper = (3.0 * s.if_cutoff_hz, 4.0 * s.if_cutoff_hz)
+        factor = max(2, math.ceil(2.5 * taper[1] / s.sample_rate_hz))
+        rate = factor * s.sample_rate_hz
+        margin = factor * math.ceil(IF_SETTLE_S * rate / factor)  # whole ADC samples
+        t = s.adc_start_delay_s + np.arange(-margin, (s.samples_per_chirp - 1) * factor + margin + 1) / rate
+        return cls(factor, rate, margin, margin / rate, taper, t)
+
+
+IF_SETTLE_S = 2.0e-6  # the IF filter's response time allowed for (8th-order Butterworth at a few MHz: ~1 us)
+
+
+@dataclass(frozen=True)
 class _Plan:
     """Chirp timing and the active (chirp, TX, weight) triples, computed once per simulator."""
 
@@ -175,6 +205,7 @@ class Simulator:
         self._rx_impairments = self._check_impairments()
         self._interferer_amplitudes = self._check_interferers()
         self._interference_of: tuple[int, np.ndarray] | None = None  # the last frame's, made once for frame and truth
+        self._if_grid = IfGrid.for_sensor(s)
 
     # ---- impairments: checked once ------------------------------------------------------------
     def _per_rx(self, name: str, values: np.ndarray | None, width: int) -> np.ndarray | None:
@@ -360,13 +391,6 @@ class Simulator:
         return np.exp(1j * (at[:, :n] - at[:, n:]))
 
     # ---- interference and leakage --------------------------------------------------------------
-    def _band_gain(self, beat_hz: np.ndarray) -> np.ndarray:
-        """The IF filter's |H| at an interferer's instantaneous beat frequency (quasi-static); without
-        the filter a brick wall at the IF band edge."""
-        if self.if_filter:
-            return self.sensor.if_filter_gain(beat_hz)
-        return (np.abs(beat_hz) <= self.sensor.if_bandwidth_hz).astype(np.float64)
-
     def _interferer_chirps(self, itf, t0_s: float, t1_s: float) -> np.ndarray:
         """Start times of the interferer's chirps whose ramp overlaps [t0_s, t1_s) (transmit times)."""
         p_c = itf.chirp_period_s
@@ -381,15 +405,13 @@ class Simulator:
         return starts[(starts + itf.ramp_time_s > t0_s) & (starts < t1_s)]
 
     def interference(self, index: int) -> np.ndarray:
-        """complex128 [chirp, rx, sample]: every interferer's signal at the ADC in frame `index` (after
-        the IF filter's weight, before the receiver's imbalance and noise); zeros without interferers."""
+        """complex128 [chirp, rx, sample]: every interferer's signal at the ADC in frame `index` (through
+        the IF filter, before the receiver's imbalance and noise); zeros without interferers."""
         if self._interference_of is not None and self._interference_of[0] == index:
             return self._interference_of[1].copy()
         s, plan = self.sensor, self._plan
         out = np.zeros((s.chirps_per_frame, s.n_rx, s.samples_per_chirp), np.complex128)
         t_n = plan.fast_time_s
-        lo_cyc = s.start_frequency_hz * t_n + 0.5 * s.slope_hz_per_s * t_n * t_n  # our LO's phase, cycles
-        lo_hz = s.start_frequency_hz + s.slope_hz_per_s * t_n
         t_m = self.frame_time_s(index) + plan.chirp_offsets_s
         for k, (itf, amp) in enumerate(zip(self.scene.interferers, self._interferer_amplitudes)):
             if amp == 0.0:
@@ -397,19 +419,57 @@ class Simulator:
             d = np.linalg.norm(itf.position_m[None, :] - s.rx_positions_m, axis=1) / SPEED_OF_LIGHT_MPS  # [L]
             rng = np.random.Generator(np.random.PCG64([self.seed, index, 1, k]))
             for m in range(s.chirps_per_frame):
-                starts = self._interferer_chirps(itf, t_m[m] + t_n[0] - d.max(), t_m[m] + t_n[-1] - d.min() + 1e-12)
+                starts = self._interferer_chirps(itf, t_m[m] + t_n[0] - d.max() - self._if_grid.margin_s,
+                                                 t_m[m] + t_n[-1] - d.min() + self._if_grid.margin_s)
                 for start in starts:
                     theta = rng.uniform(0.0, 1.0)  # cycles: unrelated synthesiser phases
-                    u = (t_m[m] - start) + t_n[None, :] - d[:, None]  # [L, N] time into its ramp, at reception
-                    on = (u >= 0.0) & (u < itf.ramp_time_s)
-                    if not on.any():
-                        continue
-                    beat = lo_hz[None, :] - (itf.start_frequency_hz + itf.slope_hz_per_s * u)
-                    w = amp * self._band_gain(beat) * on
-                    cyc = lo_cyc[None, :] - itf.start_frequency_hz * u - 0.5 * itf.slope_hz_per_s * u * u + theta
-                    out[m] += w * np.exp(2j * np.pi * np.mod(cyc, 1.0))
+                    if self.if_filter:
+                        self._add_filtered(out[m], itf, amp, t_m[m] - start, d, theta)
+                    else:
+                        x, beat = self._mixed(itf, t_m[m] - start, d, theta, t_n)
+                        out[m] += amp * x * (np.abs(beat) <= s.if_bandwidth_hz)
         self._interference_of = (index, out.copy())
         return out
+
+    def _mixed(self, itf, offset_s: float, d_s: np.ndarray, theta: float, t_s: np.ndarray):
+        """Our LO times the conjugate of the interferer's received chirp, at fast times t_s (from our
+        chirp's start; its chirp started offset_s before ours): (exp(j phase) where its ramp is on, else
+        0, [L, T]; the instantaneous beat frequency [L, T])."""
+        s = self.sensor
+        u = offset_s + t_s[None, :] - d_s[:, None]  # [L, T] time into its ramp, at reception
+        on = (u >= 0.0) & (u < itf.ramp_time_s)
+        beat = (s.start_frequency_hz + s.slope_hz_per_s * t_s)[None, :] - (itf.start_frequency_hz + itf.slope_hz_per_s * u)
+        cyc = (s.start_frequency_hz * t_s + 0.5 * s.slope_hz_per_s * t_s * t_s)[None, :] \
+            - itf.start_frequency_hz * u - 0.5 * itf.slope_hz_per_s * u * u + theta
+        return on * np.exp(2j * np.pi * np.mod(cyc, 1.0)), beat
+
+    def _add_filtered(self, out_m: np.ndarray, itf, amp: float, offset_s: float, d_s: np.ndarray,
+                      theta: float) -> None:
+        """One interferer chirp through the IF filter into out_m [rx, sample]: the mixed chirp on a
+        fine grid (IfGrid), tapered to zero between 3 and 4 cutoffs (beyond, |H| < -76 dB), its
+        spectrum times |H(f)| (zero phase, as for echoes), sampled at the ADC instants."""
+        g, s = self._if_grid, self.sensor
+        # where any RX can see it: in its ramp and within the taper (the RX differ by picoseconds)
+        u = offset_s + g.t_s - d_s.mean()
+        slack = float(np.ptp(d_s)) + 1.0 / g.rate_hz
+        beat = s.start_frequency_hz + s.slope_hz_per_s * g.t_s - itf.start_frequency_hz - itf.slope_hz_per_s * u
+        live = np.flatnonzero((u >= -slack) & (u < itf.ramp_time_s + slack)
+                              & (np.abs(beat) <= g.taper_hz[1] + abs(itf.slope_hz_per_s) * slack))
+        if not live.size:
+            return
+        a = max(0, int(live[0]) - g.margin)
+        a -= (a - g.margin) % g.factor  # start on an ADC instant
+        b = min(len(g.t_s), int(live[-1]) + g.margin + 1)
+        x, beat = self._mixed(itf, offset_s, d_s, theta, g.t_s[a:b])
+        f = np.abs(beat)
+        x *= np.where(f <= g.taper_hz[0], 1.0, np.where(
+            f >= g.taper_hz[1], 0.0, 0.5 + 0.5 * np.cos(np.pi * (f - g.taper_hz[0]) / (g.taper_hz[1] - g.taper_hz[0]))))
+        n_fft = 1 << int(math.ceil(math.log2(b - a + 2 * g.margin)))
+        h = s.if_filter_gain(np.fft.fftfreq(n_fft, 1.0 / g.rate_hz))
+        y = np.fft.ifft(np.fft.fft(x, n_fft, axis=1) * h[None, :], axis=1)[:, : b - a : g.factor]
+        n0 = (a - g.margin) // g.factor
+        n1 = min(n0 + y.shape[1], out_m.shape[1])
+        out_m[:, max(n0, 0):n1] += amp * y[:, max(0, -n0): n1 - n0]
 
     def interference_bursts(self, index: int, interference: np.ndarray | None = None) -> np.ndarray:
         """int64 [n, 4] (BURST_COLUMNS: chirp, rx, first, last; inclusive) of frame `index`: the runs of
