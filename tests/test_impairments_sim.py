@@ -472,3 +472,15 @@ def test_platform_frame_interferer_seen_through_the_pose():
     x = Simulator(s, on_platform, seed=1).interference(0)
     y = Simulator(s, parse_scene(TARGET + interferer(position_m=in_sensor.tolist())), seed=1).interference(0)
     assert np.abs(x).max() > 8.0 and np.allclose(x, y, atol=1e-6 * np.abs(x).max())
+
+
+def test_simulate_command_names_a_bad_impairment_and_writes_nothing(tmp_path, capsys):
+    from cubecast.daemon.cli import main
+    scene = tmp_path / "scene.toml"
+    scene.write_text(TARGET + "[impairments]\niq_gain_db = [0.5, 0.0]\n")
+    out = tmp_path / "x.cap"
+    assert main(["simulate", str(scene), "--sensor", str(YARD_SENSOR), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"cubecast simulate: error: {scene}: [impairments] iq_gain_db = [0.5, 0.0]: has 2 entries, sensor "
+                   "'yard-a' has 4 RX: give one per RX (or a single one for every RX)"]
+    assert not out.exists()
