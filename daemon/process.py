@@ -19,18 +19,16 @@ from .settings import load_settings
 log = logging.getLogger(__name__)
 
 
-def load_calibration_for(path, sensor) -> tuple[np.ndarray | None, float]:
-    """(per-channel calibration vector, range bias in metres) from a calibration file, or (None, 0)."""
-    if path is None:
-        return None, 0.0
-    from .calibfile import load_calibration_file
-    cal = load_calibration_file(path, sensor)
-    return cal.vector, cal.range_bias_m
+def load_calibration_for(path, sensor):
+    """What a Pipeline takes from a calibration file (calibfile.ChainCalibration: the per-channel
+    vector, the range bias in metres, the I/Q table), all empty without a file."""
+    from .calibfile import load_chain_calibration
+    return load_chain_calibration(path, sensor)
 
 
 def make_pipeline(sensor, settings, calibration_path=None) -> Pipeline:
-    vector, bias = load_calibration_for(calibration_path, sensor)
-    return Pipeline(sensor, settings, vector, bias)
+    cal = load_calibration_for(calibration_path, sensor)
+    return Pipeline(sensor, settings, cal.vector, cal.range_bias_m, cal.iq_imbalance)
 
 
 def iter_processed(reader: CaptureReader, pipeline: Pipeline,

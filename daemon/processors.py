@@ -107,10 +107,10 @@ class LocalProcessor:
     busy_field = "in_progress"  # the health counter of frames submitted and not yet published
 
     def __init__(self, sensor: Sensor, settings: ProcessingSettings, calibration: np.ndarray | None,
-                 range_bias_m: float):
+                 range_bias_m: float, iq_imbalance: np.ndarray | None = None):
         self.sensor = sensor
-        self._calibration, self._range_bias_m = calibration, range_bias_m
-        self.pipeline = Pipeline(sensor, settings, calibration, range_bias_m)
+        self._calibration, self._range_bias_m, self._iq = calibration, range_bias_m, iq_imbalance
+        self.pipeline = Pipeline(sensor, settings, calibration, range_bias_m, iq_imbalance)
         self._canon = np.zeros(self.pipeline.frame_shape, np.complex64)
         self._raw_dtype = sensor.adc.raw_dtype()
         self._done: list[Outcome] = []
@@ -130,7 +130,7 @@ class LocalProcessor:
     def build(self, settings: ProcessingSettings) -> Pipeline:
         """A warmed-up chain for other settings (any thread; raises CubecastError for settings the
         sensor cannot take); use() swaps it in."""
-        pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m)
+        pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m, self._iq)
         pipe.warm_up()
         return pipe
 
@@ -222,12 +222,16 @@ class PoolProcessor:
 
     def __init__(self, sensor: Sensor, settings: ProcessingSettings, calibration: np.ndarray | None,
                  range_bias_m: float, tasks_endpoint: str, results_endpoint: str, *, local_workers: int = 0,
-                 task_timeout_s: float | None = None, keys: ServerKeys | None = None, log_interval_s: float = 5.0):
-        self._pipeline: Pipeline | None = Pipeline(sensor, settings, calibration, range_bias_m)  # checks them
+                 task_timeout_s: float | None = None, keys: ServerKeys | None = None, log_interval_s: float = 5.0,
+                 iq_imbalance: np.ndarray | None = None):
+        self._pipeline: Pipeline | None = Pipeline(sensor, settings, calibration, range_bias_m,
+                                                   iq_imbalance)  # checks them
         self.sensor, self._calibration, self._range_bias_m = sensor, calibration, range_bias_m
+        self._iq = iq_imbalance
         self.change_timeout_s = CHANGE_TIMEOUT_S
         self.pool = WorkerPool(
-            WorkerConfig(sensor, settings, calibration, float(range_bias_m)), tasks_endpoint, results_endpoint,
+            WorkerConfig(sensor, settings, calibration, float(range_bias_m), iq_imbalance=iq_imbalance),
+            tasks_endpoint, results_endpoint,
             local_workers=local_workers, task_timeout_s=DEFAULT_TASK_TIMEOUT_S if task_timeout_s is None
             else task_timeout_s, keys=keys, log_interval_s=log_interval_s)
         self.stage_ms: dict = {}
@@ -278,7 +282,7 @@ class PoolProcessor:
                 "its start-up settings); restart serve with these settings")
 
         def build() -> None:
-            pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m)
+            pipe = Pipeline(self.sensor, settings, self._calibration, self._range_bias_m, self._iq)
             pipe.warm_up()
             return None  # serve keeps no chain: the workers run it
 

@@ -101,7 +101,8 @@ class Service:
                  task_timeout_s: float | None = None, worker_keys: ServerKeys | None = None,
                  pub_keys: ServerKeys | None = None, source_keys: list[ClientKeys] | None = None,
                  insecure: bool = False, max_part_bytes: int = MAX_PART_BYTES, watch_settings: str | None = None,
-                 control_endpoint: str | None = None, control_keys: ServerKeys | None = None):
+                 control_endpoint: str | None = None, control_keys: ServerKeys | None = None,
+                 iq_imbalance: np.ndarray | None = None):
         """workers: local worker processes to start; tasks_endpoint / results_endpoint: where to bind
         for workers (both or neither; default tcp://127.0.0.1:* when workers > 0). With either, frames
         are processed by workers (daemon/pool.py), else in this process. worker_keys: a
@@ -110,7 +111,8 @@ class Service:
         insecure: allow binding an endpoint other hosts can reach without keys. max_part_bytes: the
         subscriber's hard limit on one message part (netio.Subscriber). watch_settings: a settings
         file to watch and apply live (settingswatch.py). control_endpoint: where to bind the control
-        endpoint (control.py); control_keys: a keys.ServerKeys to require keys of its clients."""
+        endpoint (control.py); control_keys: a keys.ServerKeys to require keys of its clients.
+        calibration, range_bias_m, iq_imbalance: as the Pipeline takes them (calibfile.load_chain_calibration)."""
         if isinstance(queue_depth, bool) or not isinstance(queue_depth, int) or queue_depth < 1:
             raise CubecastError(f"queue depth {queue_depth!r}: must be a whole number of at least 1")
         if not (rdmap_max_hz >= 0 and math.isfinite(rdmap_max_hz)):
@@ -145,9 +147,9 @@ class Service:
             self.processor = PoolProcessor(
                 sensor, self.settings, calibration, range_bias_m, tasks_endpoint or "tcp://127.0.0.1:*",
                 results_endpoint or "tcp://127.0.0.1:*", local_workers=workers, task_timeout_s=task_timeout_s,
-                keys=worker_keys, log_interval_s=log_interval_s)
+                keys=worker_keys, log_interval_s=log_interval_s, iq_imbalance=iq_imbalance)
         else:
-            self.processor = LocalProcessor(sensor, self.settings, calibration, range_bias_m)
+            self.processor = LocalProcessor(sensor, self.settings, calibration, range_bias_m, iq_imbalance)
         self._tuner = Tuner(self.settings, self.processor, watch_settings)
         self._tuning = watch_settings is not None or control_endpoint is not None
         self._control = ControlEndpoint(control_endpoint, self._tuner, control_keys) if control_endpoint else None
@@ -483,7 +485,7 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
         raise CubecastError("--watch-settings: give the file to watch with --settings")
     sensor = load_sensor(sensor_path)
     settings = load_settings(settings_path)
-    calibration, range_bias_m = load_calibration_for(calibration_path, sensor)
+    cal = load_calibration_for(calibration_path, sensor)
     subs = [sub] if isinstance(sub, str) else list(sub)
     if control_keys is not None and control is None:
         raise CubecastError("--control-keys: only with --control ENDPOINT")
@@ -508,11 +510,11 @@ def serve(sensor_path: str, sub: str | list[str], pub: str, settings_path: str |
                                             server_role="--source-key", key_role="--server-key", endpoint_role="--sub")
     stop = threading.Event()
     with stop_on_signals(stop):
-        svc = Service(sensor, subs, pub, settings, calibration, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
-                      range_bias_m=range_bias_m, workers=workers, tasks_endpoint=tasks, results_endpoint=results,
+        svc = Service(sensor, subs, pub, settings, cal.vector, queue_depth=queue_depth, rdmap_max_hz=rdmap_max_hz,
+                      range_bias_m=cal.range_bias_m, workers=workers, tasks_endpoint=tasks, results_endpoint=results,
                       task_timeout_s=task_timeout_s, worker_keys=keys, pub_keys=pub_keys, source_keys=sub_keys,
                       insecure=insecure, watch_settings=settings_path if watch_settings else None,
-                      control_endpoint=control, control_keys=ctl_keys)
+                      control_endpoint=control, control_keys=ctl_keys, iq_imbalance=cal.iq_imbalance)
         if not stop.is_set():
             svc.run(stop)
     s = svc.stats()

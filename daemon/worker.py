@@ -137,7 +137,8 @@ class Worker:
 
     def build_pipeline(self, config: WorkerConfig) -> Pipeline:
         """The warmed-up chain of a configuration (raises CubecastError for settings it cannot take)."""
-        pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m)
+        pipeline = Pipeline(config.sensor, config.settings, config.calibration, config.range_bias_m,
+                            config.iq_imbalance)
         pipeline.warm_up()
         return pipeline
 

@@ -12,7 +12,8 @@ with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
                               bye   {worker}                              on a clean exit
                               prepared {worker, session, epoch, error, warm_up_s}  answer to prepare
     serve -> worker (ROUTER)  welcome {session, sensor_toml, digest, settings, range_bias_m,
-                                       calibration, epoch} + calibration bytes   the whole configuration
+                                       calibration, epoch, iq_imbalance} + calibration bytes
+                                       [+ I/Q table bytes]                 the whole configuration
                               refuse  {reason, message}                   e.g. a sensor digest mismatch
                               who     {session}                           "introduce yourself again"
                               task    {session, task_id, seq, run, timestamp_s, received_unix_s,
@@ -25,7 +26,9 @@ with the same field types as the public wire (daemon/schema.py, daemon/wire.py):
                                        (or empty) [+ the front end's records, one per RX channel]
 
 Handshake: a worker sends `hello`; serve answers `welcome` with the sensor description (TOML text,
-re-parsed and digest-checked by the worker), the processing settings and the calibration, so every
+re-parsed and digest-checked by the worker), the processing settings and the calibration (the
+complex64 vector in the third part; with an I/Q table, its float64 (g, phi rad) pairs per RX in a
+fourth part, which a cubecast without I/Q correction refuses rather than ignores), so every
 worker computes exactly what serve would. A worker started with a sensor description states that
 description's digest in its hello; serve refuses a mismatch and the worker exits with an error
 naming both. A task carries the ADC payload exactly as received from the source (zero-copy); the
@@ -119,6 +122,14 @@ class CalibrationInfo(Schema):
 OptionalCalibration = Annotated[CalibrationInfo | None, Meta(description="must be nil or {dtype: '<c8', count: n}")]
 
 
+class IqInfo(Schema):
+    dtype: Annotated[Literal["<f8"], Meta(description="must be '<f8'")]
+    count: Annotated[int, Meta(ge=1, le=MAX_ENTRIES, description=f"must be an integer in 1..{MAX_ENTRIES}")]
+
+
+OptionalIq = Annotated[IqInfo | None, Meta(description="must be nil or {dtype: '<f8', count: n_rx}")]
+
+
 class WelcomeHeader(Schema):
     session: Name
     digest: Digest
@@ -126,6 +137,7 @@ class WelcomeHeader(Schema):
     range_bias_m: Finite
     calibration: OptionalCalibration = None
     epoch: Count = 0
+    iq_imbalance: OptionalIq = None
 
 
 class TaskHeader(Schema):
@@ -264,35 +276,43 @@ class WorkerConfig:
     calibration: np.ndarray | None
     range_bias_m: float
     epoch: int = 0  # the settings epoch (live tuning); not part of same_as
+    iq_imbalance: np.ndarray | None = None  # float64 [n_rx, 2] = (g, phi rad), or None
 
     def same_as(self, other: "WorkerConfig | None") -> bool:
         if other is None:
             return False
-        a, b = self.calibration, other.calibration
         return (self.sensor.digest == other.sensor.digest and self.sensor.source_text == other.sensor.source_text
                 and self.settings == other.settings and self.range_bias_m == other.range_bias_m
-                and (a is None) == (b is None) and (a is None or a.tobytes() == b.tobytes()))
+                and _same_array(self.calibration, other.calibration)
+                and _same_array(self.iq_imbalance, other.iq_imbalance))
+
+
+def _same_array(a: np.ndarray | None, b: np.ndarray | None) -> bool:
+    return (a is None) == (b is None) and (a is None or (a.shape == b.shape and a.tobytes() == b.tobytes()))
 
 
 def encode_welcome(session: str, config: WorkerConfig) -> list:
-    cal = config.calibration
+    cal, iq = config.calibration, config.iq_imbalance
     header = _pack({
         "session": session, "sensor_id": config.sensor.sensor_id, "digest": config.sensor.digest,
         "sensor_toml": config.sensor.source_text, "settings": settings_to_map(config.settings),
         "range_bias_m": float(config.range_bias_m),
         "calibration": None if cal is None else {"dtype": "<c8", "count": int(cal.shape[0])},
-        "heartbeat_s": HEARTBEAT_S, "epoch": int(config.epoch)})
+        "heartbeat_s": HEARTBEAT_S, "epoch": int(config.epoch),
+        "iq_imbalance": None if iq is None else {"dtype": "<f8", "count": int(iq.shape[0])}})
     payload = b"" if cal is None else np.ascontiguousarray(cal, "<c8").tobytes()
     if len(header) > MAX_WELCOME_BYTES:
         raise CubecastError(f"the sensor description is too large for a worker welcome ({len(header)} bytes; "
                             f"at most {MAX_WELCOME_BYTES})")
-    return [b"welcome", header, payload]
+    if iq is None:
+        return [b"welcome", header, payload]
+    return [b"welcome", header, payload, np.ascontiguousarray(iq, "<f8").tobytes()]
 
 
 def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerConfig]:
     """(session, configuration) from a `welcome`; the description is re-parsed and its digest checked,
     and must match `expect_digest` (the worker's own --sensor) when given."""
-    _parts(parts, 3, 3, "welcome")
+    _parts(parts, 3, 4, "welcome")
     h = _unpack(parts[1], "welcome", MAX_WELCOME_BYTES)
     f = _fields(h, WelcomeHeader, "welcome")
     digest = f.digest
@@ -326,7 +346,29 @@ def decode_welcome(parts: list, expect_digest: str | None) -> tuple[str, WorkerC
             raise ProtocolError("welcome calibration holds values that are not finite")
     elif payload.nbytes:
         raise ProtocolError(f"welcome without calibration has a {payload.nbytes}-byte payload; it must be empty")
-    return f.session, WorkerConfig(sensor, settings, calibration, float(f.range_bias_m), f.epoch)
+    iq = _welcome_iq(f.iq_imbalance, parts[3] if len(parts) == 4 else None, sensor)
+    return f.session, WorkerConfig(sensor, settings, calibration, float(f.range_bias_m), f.epoch, iq)
+
+
+def _welcome_iq(info: "IqInfo | None", part: Any, sensor: Sensor) -> np.ndarray | None:
+    """The I/Q table of a `welcome`: info.count (g, phi rad) float64 pairs in the fourth part, one per RX."""
+    from .calibiq import check_iq_table
+    if info is None:
+        if part is not None:
+            raise ProtocolError("welcome with a fourth part but header field 'iq_imbalance' = None; give its count")
+        return None
+    if info.count != sensor.n_rx:
+        raise ProtocolError(f"welcome iq_imbalance count = {info.count}: sensor '{sensor.sensor_id}' has "
+                            f"{sensor.n_rx} receive channels")
+    view = memoryview(part if part is not None else b"")
+    if view.nbytes != 16 * info.count:
+        raise ProtocolError(f"welcome I/Q table part is {view.nbytes} bytes; {info.count} (g, phi) float64 pairs "
+                            f"need {16 * info.count}")
+    try:
+        return check_iq_table(np.frombuffer(view, "<f8").reshape(info.count, 2).copy(), sensor.n_rx,
+                              "welcome I/Q table")
+    except CubecastError as exc:
+        raise ProtocolError(str(exc)) from None
 
 
 @dataclass(frozen=True)
