@@ -401,7 +401,12 @@ class Simulator:
         burst_s = (itf.chirps - 1) * p_c + itf.ramp_time_s
         p = np.arange(max(0, math.ceil((t0_s - burst_s - itf.start_time_s) / itf.frame_period_s)),
                       max(0, math.floor((t1_s - itf.start_time_s) / itf.frame_period_s) + 1))
-        starts = (itf.start_time_s + p[:, None] * itf.frame_period_s + np.arange(itf.chirps)[None, :] * p_c).ravel()
+        out = []
+        for burst_start in itf.start_time_s + p * itf.frame_period_s:
+            q = np.arange(max(0, math.ceil((t0_s - itf.ramp_time_s - burst_start) / p_c)),
+                          min(itf.chirps, max(0, math.floor((t1_s - burst_start) / p_c) + 1)))
+            out.append(burst_start + q * p_c)
+        starts = np.concatenate(out) if out else np.zeros(0)
         return starts[(starts + itf.ramp_time_s > t0_s) & (starts < t1_s)]
 
     def interference(self, index: int) -> np.ndarray:
