@@ -32,8 +32,8 @@ Interference (another FMCW sensor, scene.Interferer). Its chirp starting at T sw
 f_i + S_i u (0 <= u < ramp) and reaches our RX l after the one-way delay d_l = |p - rx_l| / c. The
 mixer output carries the difference of our LO and the received chirp (the same sign as an echo's):
 
-    i[m, l, n] = A |H(f_b)| exp(j (2 pi (f_c t_n + S t_n^2 / 2 - f_i u - S_i u^2 / 2) + theta))
-    u = t_m + t_n - d_l - T,   f_b = f_c + S t_n - f_i - S_i u   (the instantaneous beat frequency)
+    x(t) = A exp(j (2 pi (f_c t + S t^2 / 2 - f_i u - S_i u^2 / 2) + theta)),  t from our chirp's start
+    u = t_m + t - d_l - T,   f_b = f_c + S t - f_i - S_i u   (the instantaneous beat frequency)
 
 while the interferer is in its ramp; theta is a random phase per pair (our chirp, its chirp), seeded
 by (seed, frame, interferer), since the two synthesisers' phases are unrelated. The IF filter is
@@ -62,8 +62,8 @@ of delay tau is mixed with the LO that sent it, so only phi(t) - phi(t - tau) re
 correlation effect), a Gaussian of variance D tau per sample, drawn exactly from independent
 increments (seeded by (seed, frame, 2); the leakage's by (seed, frame, 3)); tau is each target's round
 trip at the frame's first chirp (TX 0 to RX 0), the same for every TX and RX (one LO). The leakage
-gets it at its own delay; the interference, whose
-phases are random already, does not. noise=False leaves the phase noise in (it is the scene's).
+gets it at its own delay; the interference, whose phases are random already, does not. noise=False
+leaves the phase noise in (it is the scene's).
 
 I/Q imbalance per RX (gain g = 10^(iq_gain_db / 20), phase error phi): I' = I, Q' = g (Q cos phi -
 I sin phi), i.e. x = mu z + nu conj(z) with mu = (1 + g e^{-j phi}) / 2, nu = (1 - g e^{j phi}) / 2;
