@@ -485,3 +485,29 @@ def test_worker_welcome_carries_the_table(sensor):
     # an older serve's welcome (three parts) means no correction
     plain = [bytes(memoryview(p)) for p in encode_welcome("S1", WorkerConfig(sensor, ProcessingSettings(), None, 0.0))]
     assert len(plain) == 3 and decode_welcome(plain, None)[1].iq_imbalance is None
+
+
+def test_a_live_settings_change_keeps_the_table_with_workers_and_alone():
+    # serve's control endpoint changes the settings: the new chain (serve's own, and the worker's) is
+    # built with the same I/Q table; every cloud after the switch is Pipeline(new settings, iq_imbalance)
+    from tests.test_control import NEW, Feeder, ask, matches, points_from, serve_with_control
+    from tests.test_service import running_service
+    from tests.test_workers import YARD, serving
+    with CaptureReader(YARD) as r:
+        yard = capture_sensor(r)
+        raw = [r.read(i).payload for i in range(len(r))]
+    table = np.column_stack([TRUE_G, TRUE_PHI])
+
+    def refs(iq, **fields):
+        p = Pipeline(yard, ProcessingSettings(**fields), iq_imbalance=iq)
+        return [p.process(yard.raw_to_canonical(f)).copy() for f in raw]
+    new_iq, new_plain = refs(table, **NEW), refs(None, **NEW)
+    assert any(a.tobytes() != b.tobytes() for a, b in zip(new_iq, new_plain))
+    for runner, kw in ((serving, {"workers": 1}), (running_service, {})):
+        with serve_with_control(yard, runner=runner, iq_imbalance=table, **kw) as (svc, pub, col):
+            with Feeder(pub, raw) as feed:
+                points_from(col, 0, 3)
+                reply = ask(svc.control_endpoint, {"op": "set", "settings": NEW}, timeout_s=60.0)
+                assert reply is not None and reply["ok"], reply
+                after = points_from(col, feed.seq, 6)
+        assert after and all(matches(m, new_iq) for m in after), runner
