@@ -33,7 +33,10 @@ practice). With 1 - rho^2 = cos^2 phi:
 
     sd(phi) = cos phi / sqrt(N) rad,   sd(g) = g cos phi / sqrt(N)
 
-uncorrelated (swapping the roles of I and Q flips log g and leaves the correlation). Corrected with
+uncorrelated (swapping the roles of I and Q flips log g and leaves the correlation). These are for
+receiver noise alone: a moving echo of power P per sample over noise s2 (circular, deterministic)
+lowers the error to sqrt((s2^2 + 2 P s2) / (P + s2)^2) of them (the cross terms s n have variance
+P s2 / 2 per sample against (P + s2)^2 / 4), so the reported sigmas are an upper bound then. Corrected with
 estimates off by e = dg / g and d = dphi, the residual imbalance is, to first order, (-e + d tan phi,
 -e tan phi - d), so the residual image ratio is (e^2 + d^2) / (4 cos^2 phi): exponentially distributed
 with mean 1 / (2 N) whatever (g, phi) are. The expected image rejection after correction is therefore
