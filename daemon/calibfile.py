@@ -188,7 +188,8 @@ def iq_report_rows(iq: IqResult | None) -> list[str]:
     _table(lines, [
         ("iq_method", IQ_METHOD, ""),
         ("iq_samples", iq.samples, "per receive channel: frames x slots x samples x (loops - 1)"),
-        ("iq_corrected_image_rejection_db", _r(iq.corrected_irr_db, 2), "expected after correction: 10 log10(2 x samples)"),
+        ("iq_corrected_image_rejection_db", _r(iq.corrected_irr_db, 2),
+         "expected after correction: 10 log10(2 x samples)"),
         ("iq_clipped_samples", [int(c) for c in iq.clipped], "per receive channel"),
         ("iq_refused", list(iq.refusals), "no [[iq_imbalance]] written" if iq.refusals else ""),
         ("iq_warnings", list(iq.warnings), ""),
