@@ -337,7 +337,33 @@ def test_reflector_calibration_writes_the_table_too(tmp_path, sensor):
     out2 = tmp_path / "noiq.toml"
     assert cli_main(["calibrate", str(cap), "--target-range-m", str(REFLECTOR_M), "--out", str(out2),
                      "--quiet", "--no-iq"]) == 0
-    assert load_calibration_file(out2, sensor).iq_imbalance is None and "[[iq_imbalance]]" not in out2.read_text()
+    f2 = load_calibration_file(out2, sensor)
+    assert f2.iq_imbalance is None and "[[iq_imbalance]]" not in out2.read_text()
+    # The reflector's cell holds mu a (its mirror is far off in range). Without the I/Q pass the channel
+    # gains absorb each RX's mu = (1 + g e^{-j phi}) / 2 (Razavi 2011); with it, the array pass sees the
+    # corrected frames, so they hold only the residual mu_r of the correction (composition above). Phases
+    # relative to channel 0 (the file's phase reference), within +-5 sd of a difference of two channel
+    # phases, each 1 / sqrt(2 F rho) (Rife and Boorstyn, IEEE Trans. IT, 1974), rho = the per-sample SNR
+    # times the Hann range and Doppler coherent gains (tests/test_calibrate.py's cell_gain_db, Harris 1978)
+    from tests.test_calibrate import cell_gain_db
+    rho = 10.0 ** ((20.0 + cell_gain_db(sensor, REFLECTOR_M)) / 10.0)
+    tol_deg = 5.0 * math.sqrt(2.0) * math.degrees(1.0 / math.sqrt(2.0 * 8 * rho))
+    rx_of = np.arange(sensor.n_virtual) % sensor.n_rx
+    mu = (1.0 + TRUE_G * np.exp(-1j * TRUE_PHI)) / 2.0
+    g_hat, phi_hat = f.iq_imbalance[:, 0], f.iq_imbalance[:, 1]
+
+    def mu_residual(rx):
+        def corrected(z):
+            i, q = np.real(z), np.imag(z)
+            qp = TRUE_G[rx] * (q * np.cos(TRUE_PHI[rx]) - i * np.sin(TRUE_PHI[rx]))
+            return i + 1j * (qp / g_hat[rx] + i * np.sin(phi_hat[rx])) / np.cos(phi_hat[rx])
+        return (corrected(1.0 + 0j) - 1j * corrected(1j)) / 2.0
+    mu_r = np.array([mu_residual(rx) for rx in range(sensor.n_rx)])
+    for gains, expect in ((f2.gain, mu[rx_of]), (f.gain, mu_r[rx_of])):
+        rel = np.degrees(np.angle(gains / gains[0] / (expect / expect[0])))
+        assert np.all(np.abs(rel) <= tol_deg), (rel, tol_deg)
+    # the two differ by far more than that: the I/Q pass matters to the array gains
+    assert np.max(np.abs(np.degrees(np.angle(f.gain / f2.gain)))) > 10 * tol_deg
 
 
 def test_a_file_without_the_table_means_no_correction(iq_file, sensor, tmp_path):
