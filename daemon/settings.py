@@ -13,6 +13,7 @@ from .config import Document, parse_toml, read_toml
 from .errors import CubecastError
 
 CFAR_KINDS = ("ca", "os", "go", "so")
+INTERFERENCE_MITIGATIONS = ("off", "zero", "interpolate")   # chain/frontend.py: off = detect and count only
 WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # chain/windows.py makes each
 
 
@@ -23,6 +24,12 @@ class ProcessingSettings:
     range_kaiser_beta: float = 6.0
     range_fft_size: int = 0  # 0 = samples per chirp; else a size >= samples (zero padding)
     remove_static: bool = False  # subtract each channel's mean over the loops (static returns)
+    # front end, before the range FFT (chain/frontend.py)
+    dc_removal: bool = True  # subtract each RX channel's complex mean over the frame
+    interference_mitigation: str = "interpolate"  # flagged bursts: off (count only), zero, interpolate (slow time)
+    interference_threshold_db: float = 10.0  # difference power to the next loop over the channel's robust level
+    interference_guard_samples: int = 3  # flagged runs widened by this many samples on each side
+    leakage_max_range_m: float = 0.0  # static component removed in the range bins below this (0 = off)
     # Doppler FFT
     doppler_window: str = "hann"
     doppler_kaiser_beta: float = 6.0
@@ -59,6 +66,14 @@ class ProcessingSettings:
         for name in ("range_window", "doppler_window"):
             if getattr(self, name) not in WINDOW_NAMES:
                 raise fail(name, f"must be one of {', '.join(WINDOW_NAMES)}")
+        if self.interference_mitigation not in INTERFERENCE_MITIGATIONS:
+            raise fail("interference_mitigation", f"must be one of {', '.join(INTERFERENCE_MITIGATIONS)}")
+        if not 3.0 <= self.interference_threshold_db <= 40.0:
+            raise fail("interference_threshold_db", "must be within 3..40 dB")
+        if not 0 <= self.interference_guard_samples <= 64:
+            raise fail("interference_guard_samples", "must be within 0..64")
+        if self.leakage_max_range_m < 0:
+            raise fail("leakage_max_range_m", "must be at least 0 (0 = off)")
         if self.cfar_kind not in CFAR_KINDS:
             raise fail("cfar_kind", f"must be one of {', '.join(CFAR_KINDS)}")
         for name in ("range_fft_size", "doppler_fft_size"):

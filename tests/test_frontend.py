@@ -3,6 +3,8 @@ computation with scipy.fft, for every input path, I/Q convention, padding and op
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 import scipy.fft
@@ -29,12 +31,19 @@ rcs_dbsm = 10.0
 
 def reference_spectrum(sensor, frame, settings, pipe):
     """Window over samples and loops (separable), optional removal of each sample's mean over the
-    loops of its slot, zero padding, FFT over samples then loops (scipy.fft): [rx, slot, range,
-    doppler], and the map: sum of |X|^2 over channels, Doppler fft-shifted (common practice)."""
+    loops of its slot (else, by default, of each channel's complex mean over the frame, its DC, when
+    significant), zero
+    padding, FFT over samples then loops (scipy.fft): [rx, slot, range, doppler], and the map: sum of
+    |X|^2 over channels, Doppler fft-shifted (common practice)."""
     n_slots, n_loops = sensor.n_slots, sensor.n_loops
     x = frame.astype(np.complex128).reshape(n_loops, n_slots, sensor.n_rx, -1)  # [loop, slot, rx, sample]
     if settings.remove_static:
         x = x - x.mean(axis=0, keepdims=True)
+    elif settings.dc_removal:  # only a DC beyond five standard errors of the mean, sqrt(var / N)
+        mean = x.mean(axis=(0, 1, 3), keepdims=True)
+        var = x.var(axis=(0, 1, 3), keepdims=True)
+        n = n_loops * n_slots * x.shape[3]
+        x = x - np.where(np.abs(mean) ** 2 * n > 25.0 * var, mean, 0.0)
     w_r = pipe.range_fft.window.astype(np.float64)
     w_d = pipe.doppler_fft.window.astype(np.float64)
     x = x * w_r[None, None, None, :] * w_d[:, None, None, None]
@@ -46,6 +55,9 @@ def reference_spectrum(sensor, frame, settings, pipe):
 
 
 def check(sensor, settings, raw_path: bool):
+    # interference mitigation (which may repair a sample of these scenes) is checked on its own in
+    # tests/test_frontend_mitigation.py; here the loading and the FFTs, against scipy
+    settings = dataclasses.replace(settings, interference_mitigation="off")
     sim = Simulator(sensor, parse_scene(SCENE), seed=4)
     pipe = Pipeline(sensor, settings)
     for i in range(2):  # twice: buffers reused from one frame to the next must not leak
@@ -146,10 +158,11 @@ def test_warm_up_leaves_nothing_to_compile_for_received_frames():
     import numba
     import zmq
 
-    from cubecast.daemon.chain import angle, cfar, doppler, mimo, pipeline, points, rangefft
+    from cubecast.daemon.chain import angle, cfar, doppler, frontend, mimo, pipeline, points, rangefft
 
     def signatures():
-        return {f"{m.__name__}.{k}": len(v.signatures) for m in (angle, cfar, doppler, mimo, pipeline, points, rangefft)
+        return {f"{m.__name__}.{k}": len(v.signatures)
+                for m in (angle, cfar, doppler, frontend, mimo, pipeline, points, rangefft)
                 for k, v in vars(m).items() if isinstance(v, numba.core.registry.CPUDispatcher)}
 
     s = make_sensor()

@@ -29,7 +29,7 @@ from ..settings import ProcessingSettings
 from .angle import AngleEstimator, AngleSettings, VirtualGrid, crb_unit_covariance
 from .cfar import Cfar, CfarSettings
 from .doppler import DopplerFft
-from .frontend import FRONTEND_DTYPE
+from .frontend import FrontEnd
 from .mimo import MimoDecoder
 from .points import POINT_DTYPE, POINT_FIELDS, fill_points
 from .rangefft import RangeFft
@@ -67,6 +67,23 @@ def _start_offsets(power, range_bin, doppler_col, range_frac, doppler_frac):
         else:
             range_frac[i] = log_parabola_offset(power[r - 1, d], p, power[r + 1, d])
         doppler_frac[i] = log_parabola_offset(power[r, (d - 1) % n_dop], p, power[r, (d + 1) % n_dop])
+
+
+def _checked_iq_imbalance(sensor: Sensor, iq_imbalance) -> np.ndarray | None:
+    """The I/Q correction as float64 [n_rx, 2] (g, phi_rad), checked: g > 0, |phi| < 90 degrees, finite;
+    a real-sampled sensor has no Q branch to correct."""
+    if iq_imbalance is None:
+        return None
+    a = np.array(iq_imbalance, np.float64)
+    if a.shape != (sensor.n_rx, 2):
+        raise CubecastError(f"I/Q imbalance has shape {a.shape}: sensor '{sensor.sensor_id}' needs [{sensor.n_rx}, 2] "
+                            f"(gain, phase in radians per RX)")
+    if not np.all(np.isfinite(a)) or np.any(a[:, 0] <= 0) or np.any(np.abs(a[:, 1]) >= np.pi / 2):
+        raise CubecastError(f"I/Q imbalance {a.tolist()}: every gain must be > 0 and every phase within "
+                            f"(-pi/2, pi/2) radians")
+    if not sensor.adc.is_complex and np.any(a != [1.0, 0.0]):
+        raise CubecastError(f"I/Q imbalance {a.tolist()}: sensor '{sensor.sensor_id}' samples real (no Q branch)")
+    return a
 
 
 def _next_pow2(n: int) -> int:
@@ -151,10 +168,11 @@ class Pipeline:
         self._canonical = None
         self.range_bias_m = float(range_bias_m)
         self.last_detections = 0
-        # the front end's monitors of the last frame, one record per receive channel
-        self.frontend = np.zeros(sensor.n_rx, FRONTEND_DTYPE)
-        self.frontend["samples"] = sensor.chirps_per_frame * sensor.samples_per_chirp
-        self.iq_imbalance = None if iq_imbalance is None else np.array(iq_imbalance, np.float64)
+        self.iq_imbalance = _checked_iq_imbalance(sensor, iq_imbalance)
+        self.front_end = FrontEnd(sensor, settings, self.range_fft.window, self.doppler_fft.window, n_range,
+                                  self.range_fft.bin_m, n_dop, self.iq_imbalance)
+        # the front end's monitors of the last frame, one FRONTEND_DTYPE record per receive channel
+        self.frontend = self.front_end.record
 
     @property
     def detection_map(self) -> np.ndarray:
@@ -212,12 +230,14 @@ class Pipeline:
         dop.begin()
         window_d = dop.window
         source = rng.source(data, raw)
+        front = self.front_end
         for rx, block, range_out, doppler_rows in self._blocks:
             ta = time.perf_counter()
-            rng.load(source, rx, window_d)  # counted with the range stage
+            rng.load(source, rx, window_d, front)  # counted with the range stage
             rng.transform(range_out)
             t_range += time.perf_counter() - ta
             dop.transform(doppler_rows)
+            front.after_doppler(doppler_rows, rx)  # leakage region, noise floor
             dop.accumulate(block)
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()

@@ -18,49 +18,14 @@ linearity this equals subtracting the mean over chirps of every range bin and ch
 
 from __future__ import annotations
 
-import numba
 import numpy as np
 
 from ..errors import CubecastError
 from ..sensor import SPEED_OF_LIGHT_MPS, Sensor
 from ..settings import ProcessingSettings
 from .fft import fft_into
+from .frontend import FrontEnd
 from .windows import make_window
-
-
-@numba.njit(cache=True, nogil=True)
-def _load(src, rx, n_slots, w2, w_doppler, swap, remove_static, mean, stage):
-    """stage[s, p, 2k + c] = w2[2k + c] w_doppler[p] (x[p n_slots + s, rx, 2k + c'] - mean) where
-    `src` is [chirp, rx, 2 * samples] interleaved I/Q (int16 or float32), c' = c or, with `swap`,
-    1 - c, `w2` is the range window repeated for I and Q with the Q sign folded in, and the mean is
-    over the loops of slot s when `remove_static`. Samples past the data (zero padding) are left as
-    they are: zero since the buffer was made."""
-    n2 = w2.shape[0]
-    n_loops = w_doppler.shape[0]
-    for s in range(n_slots):
-        if remove_static:
-            for k in range(n2):
-                mean[k] = 0.0
-            for p in range(n_loops):
-                row = src[p * n_slots + s, rx]
-                for k in range(n2):
-                    mean[k] += row[k]
-            for k in range(n2):
-                mean[k] /= n_loops
-        for p in range(n_loops):
-            row = src[p * n_slots + s, rx]
-            out = stage[s, p]
-            wd = w_doppler[p]
-            if swap:
-                for k in range(0, n2, 2):
-                    out[k] = np.float32(row[k + 1] - mean[k + 1]) * (w2[k] * wd)
-                    out[k + 1] = np.float32(row[k] - mean[k]) * (w2[k + 1] * wd)
-            elif remove_static:
-                for k in range(n2):
-                    out[k] = np.float32(row[k] - mean[k]) * (w2[k] * wd)
-            else:
-                for k in range(n2):
-                    out[k] = np.float32(row[k]) * (w2[k] * wd)
 
 
 class RangeFft:
@@ -85,24 +50,25 @@ class RangeFft:
         self._w2_raw = self._w2.copy()
         if sensor.adc.conjugate:
             self._w2_raw[1::2] *= np.float32(-1.0)
-        self._mean = np.zeros(2 * n, np.float64)
         # staging block of one receive channel, [slot, loop, range_fft_size]; the padding stays zero
         self.stage = np.zeros((self.n_slots, self.n_loops, self.fft_size), np.complex64)
         self._stage_f = self.stage.view(np.float32)
 
-    def source(self, data: np.ndarray, raw: bool) -> tuple[np.ndarray, np.ndarray, bool]:
+    def source(self, data: np.ndarray, raw: bool) -> tuple[np.ndarray, np.ndarray, bool, float]:
         """What `load` reads for one frame: the interleaved I/Q view [chirp, rx, 2 * samples] of a
         canonical frame (raw=False) or of the board's int16 I/Q [chirp, rx, sample, 2] (raw=True),
-        with its window and I/Q swap."""
+        with its window, I/Q swap and the sign of its Q against the canonical Q."""
         if raw:
             return (np.ascontiguousarray(data).reshape(data.shape[0], data.shape[1], -1), self._w2_raw,
-                    self.adc.swap_iq)
-        return np.ascontiguousarray(data).view(np.float32), self._w2, False
+                    self.adc.swap_iq, -1.0 if self.adc.conjugate else 1.0)
+        return np.ascontiguousarray(data).view(np.float32), self._w2, False, 1.0
 
-    def load(self, source: tuple[np.ndarray, np.ndarray, bool], rx: int, doppler_window: np.ndarray) -> None:
-        """Windowed samples of receive channel `rx` into the staging block."""
-        src, w2, swap = source
-        _load(src, rx, self.n_slots, w2, doppler_window, swap, self.remove_static, self._mean, self._stage_f)
+    def load(self, source: tuple[np.ndarray, np.ndarray, bool, float], rx: int, doppler_window: np.ndarray,
+             frontend: FrontEnd) -> None:
+        """Windowed samples of receive channel `rx` into the staging block, through the front end
+        (frontend.py: its monitors, DC or static mean removed, I/Q corrected, bursts repaired)."""
+        src, w2, swap, qsign = source
+        frontend.load(src, rx, self.n_slots, w2, doppler_window, swap, qsign, self._stage_f)
 
     def output_view(self, block: np.ndarray) -> np.ndarray:
         """The view of `block` [slot, range_fft_size, doppler_fft_size] the range FFT writes: its
