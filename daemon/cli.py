@@ -160,7 +160,7 @@ def _record(args) -> int:
     from .sources import record
     return record(args.sub, args.out, args.points_out, points_format=args.points_format, frames=args.frames,
                   duration_s=args.duration, sensor_path=args.sensor, server_keys=args.server_key, key=args.key,
-                  progress=logs.show_progress())
+                  progress=logs.show_progress(), frontend_out=args.frontend_out)
 
 
 def _with_publisher_security(func):
@@ -412,6 +412,8 @@ def _add_stream_commands(sub) -> None:
                     help="stop after N ADC frames (N point clouds without --out); default: no limit")
     rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
     rc.add_argument("--sensor", help="sensor description (TOML), if no daemon's description is received")
+    rc.add_argument("--frontend-out", metavar="FILE.csv",
+                    help="serve's front-end monitors, a CSV row per frame and receive channel (as process writes it)")
     _add_client_key_options(rc, "the endpoint's bound side (a source's or serve's)", repeatable=True)
     rc.set_defaults(func=_record)
 

@@ -275,8 +275,9 @@ class PointStream:
         return self._pump("health", sensor_id or self.sensor_id, timeout)
 
     def next_message(self, timeout_s: float | None = ...) -> StreamMessage | None:
-        """The next message of any kind taken (points, sensor, health; rdmap with rdmap=True), counted as
-        the iteration counts it; None once stopped. PointStreamTimeout when none comes within timeout_s."""
+        """The next message of any kind taken (points, sensor, health; rdmap with rdmap=True, frontend
+        with frontend=True), counted as the iteration counts it; None once stopped. PointStreamTimeout
+        when none comes within timeout_s."""
         timeout = self.timeout_s if timeout_s is ... else _check_timeout(timeout_s, "timeout_s")
         return self._pump(None, None, timeout)
 

@@ -38,6 +38,7 @@ from .chain.points import RECORD_DTYPE
 from .errors import CubecastError
 from .exports import CsvWriter, PointWriter, WRITERS, check_target
 from .files import capture_sensor
+from .frontendout import FrontendRun
 from .intake import AdcValidator
 from .logs import RateLimitFilter
 from .keys import ClientKeys, ServerKeys, client_keys_per_endpoint
@@ -384,11 +385,14 @@ class Recorder:
                  points_format: str | None = None, frames: int = 0, duration_s: float = 0.0,
                  sensor: Sensor | None = None,
                  context: zmq.Context | None = None, keys: list[ClientKeys] | None = None,
-                 max_part_bytes: int | None = None, progress: bool | None = None):
+                 max_part_bytes: int | None = None, progress: bool | None = None,
+                 frontend_out: str | Path | None = None):
+        """frontend_out: a CSV of the `frontend` messages received (frontendout.py), a row per frame and
+        receive channel; the run's front-end summary is in `frontend` either way."""
         if not subs:
             raise CubecastError("record: give at least one --sub ENDPOINT")
-        if out is None and points_out is None:
-            raise CubecastError("record: give --out CAPTURE and/or --points-out FILE")
+        if out is None and points_out is None and frontend_out is None:
+            raise CubecastError("record: give --out CAPTURE, --points-out FILE and/or --frontend-out FILE.csv")
         if isinstance(frames, bool) or not isinstance(frames, int) or frames < 0:
             raise CubecastError(f"--frames {frames!r}: must be a whole number >= 0 (0 = no limit)")
         if not (duration_s >= 0 and math.isfinite(duration_s)):
@@ -418,6 +422,8 @@ class Recorder:
         self.frames_written = 0
         self.clouds_written = 0
         self.rejected: collections.Counter = collections.Counter()
+        self.frontend_out = frontend_out
+        self.frontend: FrontendRun | None = None  # from the first `frontend` message on
         self.runs: list[str] = []
         self._last_frame: tuple[str, int] | None = None
 
@@ -509,6 +515,15 @@ class Recorder:
             self.sensor_known.set()
         elif msg.kind == "adc":
             self._on_adc(msg)
+        elif msg.kind == "frontend":
+            if self.frontend is None:
+                self.frontend = FrontendRun(len(msg.data), msg.header["full_scale"], self.frontend_out)
+            if len(msg.data) == self.frontend.summary.n_rx:
+                self.frontend.add(msg.header["seq"], msg.header["timestamp_s"], msg.data)
+            else:
+                self.rejected["shape"] += 1
+                self._reject_log("shape", f"a frontend message of {len(msg.data)} receive channels after one of "
+                                          f"{self.frontend.summary.n_rx}")
         elif msg.kind == "points" and self.points_writer is not None:
             if self.out is None and self._limit_reached():
                 return False
@@ -569,6 +584,8 @@ class Recorder:
             try:
                 if self.points_writer is not None:
                     self.points_writer.close()  # the point file under its final name
+                if self.frontend is not None:
+                    self.frontend.close()
             finally:
                 self._flush_rejects(force=True)
                 self._reject_logger.removeFilter(self._reject_limit)
@@ -604,7 +621,8 @@ class Recorder:
 
 def record(subs: list[str], out: str | None, points_out: str | None = None, points_format: str | None = None,
            frames: int = 0, duration_s: float = 0.0, sensor_path: str | None = None,
-           server_keys: list[str] | None = None, key: str | None = None, progress: bool = False) -> int:
+           server_keys: list[str] | None = None, key: str | None = None, progress: bool = False,
+           frontend_out: str | None = None) -> int:
     """`cubecast record`: until --frames / --duration, SIGINT or SIGTERM. server_keys: the public keys
     of the endpoints (one for all, or one per --sub); key: this recorder's secret key. Progress (frames
     and points written, and their rates) goes to standard error once a second as a log line, or, with
@@ -620,7 +638,7 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, poin
     with stop_on_signals(stop):
         rec = Recorder(subs, out, points_out, points_format=points_format, frames=frames, duration_s=duration_s,
                        sensor=sensor, keys=keys,
-                       progress=bool(progress and sys.stderr.isatty()))
+                       progress=bool(progress and sys.stderr.isatty()), frontend_out=frontend_out)
         s = rec.run(stop)
     parts = []
     if out is not None:
@@ -634,4 +652,9 @@ def record(subs: list[str], out: str | None, points_out: str | None = None, poin
         if s[name]:
             parts.append(f"{name.replace('_', ' ')} {s[name]}")
     log.info("cubecast record: %s", "; ".join(parts))
+    if rec.frontend is not None:
+        rec.frontend.log_summary(log, "cubecast record: ")
+    elif frontend_out is not None:
+        log.warning("cubecast record: no front-end monitor received, nothing written to %s (subscribe to serve's "
+                    "endpoint)", frontend_out)
     return 0

@@ -10,7 +10,7 @@ from vispy import scene
 from . import views as V
 
 FONT = "OpenSans"
-COLUMNS_PX = (10, 112, 162, 220, 282, 328, 384)  # from the box's left: the rx names' left edge, the cells' right
+COLUMNS_PX = (10, 104, 150, 204, 262, 304, 356)  # from the box's left: the rx names' left edge, the cells' right
 ROW_PX = 17
 NOTE_PX = 14
 
@@ -37,9 +37,11 @@ class FrontendBox:
 
     def show(self, pt, right: float, top: float) -> tuple[float, float, float, float] | None:
         """Draw `pt` (a frontendpanel.PanelText; None hides the box) with its upper right corner at
-        (right, top) in canvas pixels; returns the box as (left, top, width, height)."""
+        (right, top) in canvas pixels; returns the box as (left, top, width, height), also kept in
+        `rect` (None while hidden)."""
         for v in self.visuals:
             v.visible = pt is not None
+        self.rect = None
         if pt is None:
             return None
         w = COLUMNS_PX[-1] + 14
@@ -70,4 +72,5 @@ class FrontendBox:
         y0 = ys[-1] + ROW_PX + 4
         self.notes.pos = np.array([[left + 10, y0 + NOTE_PX * k] for k in range(len(notes))], np.float32)
         self.notes.visible = bool(pt.notes)
-        return left, top, w, h
+        self.rect = (left, top, w, h)
+        return self.rect

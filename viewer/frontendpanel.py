@@ -53,7 +53,7 @@ def flag_text(msg: dict | None) -> str | None:
 @dataclass(frozen=True)
 class PanelText:
     """The panel: a title line, the column heads, a row of cells per receive channel and, per cell,
-    whether a warning names it; the warnings' sentences below."""
+    whether a warning names it; below, the sentence of the first warning of each cause."""
 
     title: str
     rows: list[list[str]]
@@ -61,7 +61,7 @@ class PanelText:
     notes: list[str]
 
 
-def panel_text(msg: dict | None, max_notes: int = 3, wrap_chars: int = 68) -> PanelText:
+def panel_text(msg: dict | None, max_notes: int = 3, wrap_chars: int = 64) -> PanelText:
     """What the per-channel panel shows for the latest `frontend` message (or that none came yet)."""
     if msg is None:
         return PanelText("FRONT END · no monitor yet (serve sends one per frame)", [list(COLUMNS)],
@@ -87,8 +87,11 @@ def panel_text(msg: dict | None, max_notes: int = 3, wrap_chars: int = 68) -> Pa
     total = h["warnings_total"]
     title = f"FRONT END · frame {h['seq']} · " + (f"{total} warning{'s' if total != 1 else ''}" if total
                                                     else "no warnings")
-    notes = [line for w in warnings[:max_notes] for line in textwrap.wrap(w["text"], wrap_chars,
-                                                                          subsequent_indent="  ")]
-    if total > min(len(warnings), max_notes):
-        notes.append(f"... and {total - min(len(warnings), max_notes)} more")
+    shown = []  # the first warning of each cause, so that one cause on every channel takes one line
+    for w in warnings:
+        if w["cause"] not in {x["cause"] for x in shown} and len(shown) < max_notes:
+            shown.append(w)
+    notes = [line for w in shown for line in textwrap.wrap(w["text"], wrap_chars, subsequent_indent="  ")]
+    if total > len(shown):
+        notes.append(f"... and {total - len(shown)} more (the cells in colour)")
     return PanelText(title, rows, warn, notes)
