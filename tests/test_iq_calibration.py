@@ -86,10 +86,7 @@ def dof(sensor, frames):
 def chain_settings():
     """Default settings; fast-time interference repair off, so that the measured cells hold the echo
     and its mirror only (the repair is tested on its own)."""
-    s = ProcessingSettings()
-    if hasattr(s, "interference_mitigation"):
-        s = dataclasses.replace(s, interference_mitigation="off")
-    return s.validate()
+    return dataclasses.replace(ProcessingSettings(), interference_mitigation="off").validate()
 
 
 @pytest.fixture(scope="module")
