@@ -290,6 +290,28 @@ def test_a_dc_level_changing_from_chirp_to_chirp_warns(sensor):
     assert not [w for w in res.warnings if not w.startswith("rx 1")]
 
 
+def test_a_fault_sized_imbalance_warns_and_a_dead_branch_is_refused(sensor):
+    frames = frames_of(sensor, scene_text(impaired=False), 8)
+    # Q four times too large on rx 1 (12 dB: IRR = (1 + 8 + 16) / (1 - 8 + 16) = 4.4 dB, Razavi 2011)
+    big = [f.real + 1j * f.imag * np.where(np.arange(sensor.n_rx) == 1, 4.0, 1.0)[None, :, None] for f in frames]
+    res = estimate_iq_imbalance(sensor, [f.astype(np.complex64) for f in big])
+    assert res.table is not None and [w for w in res.warnings if w.startswith("rx 1: estimated Q gain +12.0")]
+    assert len(res.warnings) == 1
+    # no Q at all on rx 2
+    dead = [f.copy() for f in frames]
+    for f in dead:
+        f[:, 2, :] = f[:, 2, :].real
+    res = estimate_iq_imbalance(sensor, dead)
+    assert res.table is None and res.refusals == [res.refusals[0]] and res.refusals[0].startswith("rx 2: no power in its Q")
+
+
+def test_one_loop_per_frame_is_refused(sensor):
+    one = parse_sensor(sensor.source_text.replace("chirps_per_frame = 96", "chirps_per_frame = 3"))
+    assert one.n_loops == 1
+    res = estimate_iq_imbalance(one, iter([]))
+    assert res.table is None and "1 loop per frame" in res.refusals[0]
+
+
 # ---- the file ---------------------------------------------------------------------------------------
 
 def write_capture(path, sensor, text, n, seed):
