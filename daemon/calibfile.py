@@ -191,7 +191,7 @@ def iq_report_rows(iq: IqResult | None) -> list[str]:
         ("iq_corrected_image_rejection_db", _r(iq.corrected_irr_db, 2),
          "expected after correction: 10 log10(2 x samples)"),
         ("iq_clipped_samples", [int(c) for c in iq.clipped], "per receive channel"),
-        ("iq_refused", list(iq.refusals), "no [[iq_imbalance]] written" if iq.refusals else ""),
+        ("iq_refused", list(iq.refusals), "so no I/Q table written" if iq.refusals else ""),
         ("iq_warnings", list(iq.warnings), ""),
     ])
     return lines

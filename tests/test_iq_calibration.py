@@ -43,6 +43,7 @@ from cubecast.daemon.sensor import load_sensor, parse_sensor
 from cubecast.daemon.settings import ProcessingSettings
 from cubecast.daemon.simulate import Simulator
 from tests.helpers import YARD_SENSOR
+from tests.test_calibrate import calibrate_log  # noqa: F401
 
 GAIN_DB = np.array([1.0, -0.8, 0.5, 0.0])
 PHASE_DEG = np.array([4.0, -3.0, 6.0, -2.0])
@@ -441,14 +442,20 @@ def test_phase_of_90_degrees_is_rejected(iq_file, sensor, tmp_path):
         load_calibration_file(p, sensor)
 
 
-def test_iq_only_refuses_reflector_flags_and_a_short_capture(tmp_path, sensor, caplog):
+def test_iq_only_refuses_reflector_flags_and_a_short_capture(tmp_path, sensor, calibrate_log):
     cap = write_capture(tmp_path / "short.cap", sensor, scene_text(), 2, seed=13)
     out = tmp_path / "x.toml"
-    with caplog.at_level(logging.ERROR):
-        assert cli_main(["calibrate", str(cap), "--iq-only", "--out", str(out)]) == 2
-        assert cli_main(["calibrate", str(cap), "--iq-only", "--target-range-m", "5", "--out", str(out)]) == 2
-        assert cli_main(["calibrate", str(cap), "--out", str(out)]) == 2
+    assert cli_main(["calibrate", str(cap), "--iq-only", "--out", str(out)]) == 2
+    assert cli_main(["calibrate", str(cap), "--iq-only", "--target-range-m", "5", "--out", str(out)]) == 2
+    assert cli_main(["calibrate", str(cap), "--out", str(out)]) == 2
     assert not out.exists()
+    # the reflector calibration of the same short capture is written, without the table, and says why
+    assert cli_main(["calibrate", str(cap), "--target-range-m", str(REFLECTOR_M), "--out", str(out), "--quiet"]) == 0
+    f = load_calibration_file(out, sensor)
+    assert f.vector is not None and f.iq_imbalance is None and "[[iq_imbalance]]" not in out.read_text()
+    assert "iq_refused = [\"too few samples: 23808" in out.read_text()
+    warned = [r.getMessage() for r in calibrate_log.records if r.levelno == logging.WARNING]
+    assert any(w.startswith("cubecast calibrate: warning: no I/Q correction written: too few samples") for w in warned)
 
 
 # ---- plumbing: process and serve build the same chain as Pipeline(..., iq_imbalance) -----------------
