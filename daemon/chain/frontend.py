@@ -12,11 +12,12 @@ FRONTEND_DTYPE is one record per RX channel (little-endian):
 
 One compiled call per RX channel (`front_load`, called by rangefft.py) reads the channel's chirps
 in three passes. The first, over every chirp in the board's own numbers (int16 or float32, any I/Q
-convention), sums I and Q (the DC: the complex mean over the frame), finds each chirp's largest and
-smallest number (a chirp that reaches the full scale is counted exactly, sample by sample) and the
-largest difference, in either component, between the chirp and the same slot's chirp in the next
-loop. The second, over every MOMENT_STRIDE-th chirp, sums the second moments of I and Q (the blind
-image-rejection estimate, from that subsample) and the mean difference power to the next loop. The
+convention), finds each chirp's largest and smallest number (a chirp that reaches the full scale is
+counted exactly, sample by sample) and the largest difference, in either component, between the
+chirp and the same slot's chirp in the next loop. The second, over every MOMENT_STRIDE-th chirp, sums
+the first and second moments of I and Q (the DC, i.e. the complex mean over the frame, and the blind
+image-rejection estimate, both estimated from that subsample: the DC to within its standard error
+sqrt(var / N) of the subsample's N samples) and the mean difference power to the next loop. The
 third is the load the range FFT needs anyway (both windows applied, in frame order) with the DC (or
 the static mean) subtracted and the I/Q correction applied (the DC only when it stands out of its
 standard error by DC_SIGNIFICANCE: removing a mean that is only noise, or a part of the echoes, would
@@ -90,15 +91,10 @@ NARROW_LIMIT = 16383  # int16 samples within +-this have int16 differences
 
 @numba.njit(cache=True, nogil=True)
 def _row_scan(row, other, n, narrow):
-    """One chirp's row (interleaved, 2n numbers), every chirp: the sums of its two components, its
-    largest and smallest number, and the largest |row[k] - other[k]| (other: the same slot's chirp
-    in the next loop), in int16 lanes when `narrow` (int16 data whose differences cannot overflow)."""
+    """One chirp's row (interleaved, 2n numbers), every chirp: its largest and smallest number and the
+    largest |row[k] - other[k]| (other: the same slot's chirp in the next loop), in int16 lanes when
+    `narrow` (int16 data whose differences cannot overflow)."""
     n2 = 2 * n
-    s0 = row[0] - row[0]
-    s1 = row[0] - row[0]
-    for k in range(n):
-        s0 += row[2 * k]
-        s1 += row[2 * k + 1]
     hi = row[0]
     lo = row[0]
     for k in range(n2):
@@ -119,7 +115,35 @@ def _row_scan(row, other, n, narrow):
             d = row[k] - other[k]
             dh = max(dh, d)
             dl = min(dl, d)
-    return np.float64(s0), np.float64(s1), np.float64(hi), np.float64(lo), np.float64(max(dh, -dl))
+    return np.float64(hi), np.float64(lo), np.float64(max(dh, -dl))
+
+
+@numba.njit(cache=True, nogil=True)
+def _row_moments_int(row, other, n, mom):
+    """_row_moments for int16 rows, in exact integer sums."""
+    s0 = np.int64(0)
+    s1 = np.int64(0)
+    s00 = np.int64(0)
+    s11 = np.int64(0)
+    s01 = np.int64(0)
+    for k in range(n):
+        a = np.int32(row[2 * k])
+        b = np.int32(row[2 * k + 1])
+        s0 += a
+        s1 += b
+        s00 += a * a
+        s11 += b * b
+        s01 += a * b
+    acc = np.int64(0)
+    for k in range(2 * n):
+        d = np.int32(row[k]) - np.int32(other[k])
+        acc += d * d
+    mom[1] += s0
+    mom[2] += s1
+    mom[3] += s00
+    mom[4] += s11
+    mom[5] += s01
+    return acc / n
 
 
 @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz"})
@@ -280,28 +304,26 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
     ci = 1 if swap else 0
     for j in range(MOMENTS):
         mom[j] = 0.0
-    s0 = 0.0
-    s1 = 0.0
     last = n_chirps - n_slots  # chirps of the last loop compare with the loop before
     for c in range(n_chirps):
-        a, b, hi, lo, dmax = _row_scan(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, narrow)
-        s0 += a
-        s1 += b
+        hi, lo, dmax = _row_scan(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, narrow)
         scan[c, 0] = dmax * dmax
         scan[c, 1] = 1.0 if (hi >= full_scale or lo <= -full_scale) else 0.0
         if narrow and (hi > NARROW_LIMIT or lo < -NARROW_LIMIT):
             scan[c, 0] = np.inf  # the int16 differences may have wrapped: look at this chirp exactly
     n_sub = 0
     for c in range(0, n_chirps, MOMENT_STRIDE):
-        level[n_sub] = _row_moments(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, mom)
+        other = src[c + n_slots if c < last else c - n_slots, rx]
+        if narrow:
+            level[n_sub] = _row_moments_int(src[c, rx], other, n, mom)
+        else:
+            level[n_sub] = _row_moments(src[c, rx], other, n, mom)
         n_sub += 1
-    m_count = np.float64(n_chirps * n)
-    m0, m1 = s0 / m_count, s1 / m_count
-    sub_count = np.float64(n_sub * n)
-    u0, u1 = mom[1] / sub_count, mom[2] / sub_count
-    v00 = mom[3] / sub_count - u0 * u0
-    v11 = mom[4] / sub_count - u1 * u1
-    v01 = mom[5] / sub_count - u0 * u1
+    m_count = np.float64(n_sub * n)  # the DC and the moments: from the subsampled chirps
+    m0, m1 = mom[1] / m_count, mom[2] / m_count
+    v00 = mom[3] / m_count - m0 * m0
+    v11 = mom[4] / m_count - m1 * m1
+    v01 = mom[5] / m_count - m0 * m1
     r = rec[rx]
     r.samples = np.uint32(n_chirps * n)
     r.dc_offset_counts = np.float32(math.sqrt(m0 * m0 + m1 * m1))
