@@ -39,7 +39,8 @@ def csv_rows(seq: int, timestamp_s: float, records: np.ndarray, warnings: list[F
     lines = []
     for rx in range(records.shape[0]):
         r = records[rx]
-        values = [str(int(r[name])) if dtype == "<u4" else _g(float(r[name])) for name, _, dtype in FRONTEND_WIRE_FIELDS]
+        values = [str(int(r[name])) if dtype == "<u4" else _g(float(r[name]))
+                  for name, _, dtype in FRONTEND_WIRE_FIELDS]
         lines.append(",".join([str(int(seq)), "%.6f" % timestamp_s, str(rx), *values, ";".join(causes.get(rx, []))]))
     return "".join(line + "\n" for line in lines)
 

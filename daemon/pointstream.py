@@ -169,7 +169,8 @@ class PointStream:
             raise CubecastError(f"rcvhwm {rcvhwm!r}: must be a whole number of messages >= 1")
         self._rcvhwm = rcvhwm
         self.max_payload_bytes = int(max_payload_bytes)
-        self.kinds = ("points", "sensor", "health") + (("rdmap",) if rdmap else ()) + (("frontend",) if frontend else ())
+        self.kinds = (("points", "sensor", "health") + (("rdmap",) if rdmap else ())
+                      + (("frontend",) if frontend else ()))
         # what came in
         self.sensors: dict[str, SensorInfo] = {}      # sensor id -> its latest `sensor` message
         self.health: dict[str, dict] = {}             # sensor id -> its latest health map (header fields)

@@ -2,9 +2,9 @@
 reads, and the `view` subcommand's registration.
 
 This is the one module that imports both `daemon` and `viewer`. It runs frames 0..N of a capture
-through the Pipeline, packs each result as README "Wire format" describes (points, rdmap, the front end's monitor, sensor
-and a health-like status) and decodes them again with the viewer's own decoder, so a snapshot from a capture passes the
-same validation as live data.
+through the Pipeline, packs each result as README "Wire format" describes (points, rdmap, the front
+end's monitor, sensor and a health-like status) and decodes them again with the viewer's own
+decoder, so a snapshot from a capture passes the same validation as live data.
 """
 
 from __future__ import annotations

@@ -212,7 +212,8 @@ def test_a_channel_whose_floor_stands_out():
     assert not frontend_warnings(records(noise_floor_db=[18.0, 18.0, 18.0, 23.9]), FULL_SCALE)
     w = frontend_warnings(records(noise_floor_db=[18.0, 5.0, 18.5, 17.5]), FULL_SCALE)  # median 17.75
     assert causes(w) == [(1, "noise_floor_low")] and w[0].value == pytest.approx(5.0 - 17.75)
-    assert w[0].text == "rx 1: noise floor 12.8 dB below the channels' median (a dead, disconnected or unpowered channel)"
+    assert w[0].text == ("rx 1: noise floor 12.8 dB below the channels' median (a dead, disconnected or unpowered "
+                         "channel)")
     # a channel with no noise at all; the other three keep their median
     w = frontend_warnings(records(noise_floor_db=[18.0, 18.0, -np.inf, 18.0]), FULL_SCALE)
     assert causes(w) == [(2, "no_signal")] and w[0].short == "rx 2 no signal"

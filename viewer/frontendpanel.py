@@ -61,7 +61,7 @@ class PanelText:
     notes: list[str]
 
 
-def panel_text(msg: dict | None, max_notes: int = 3, wrap_chars: int = 64) -> PanelText:
+def panel_text(msg: dict | None, max_notes: int = 3, wrap_chars: int = 70) -> PanelText:
     """What the per-channel panel shows for the latest `frontend` message (or that none came yet)."""
     if msg is None:
         return PanelText("FRONT END · no monitor yet (serve sends one per frame)", [list(COLUMNS)],
