@@ -527,3 +527,25 @@ def test_pointstream_keeps_the_latest_monitor():
         assert (kind, sensor_id, msg.seq) == ("frontend", "yard-a", 9)
         assert stream.frontends["yard-a"] is msg and msg.data["clipped_samples"].tolist() == [0, 0, 160, 0]
         assert msg.header["warnings"][0]["short"] == "rx 2 clipping 1.3 %"
+
+
+def test_process_warns_of_the_bundled_interferer(tmp_path):
+    """The bundled interfered capture (SIM's yard with the dock's sensor): its ground truth lists the
+    interference bursts per chirp and channel; every frame's share on every channel is over the 0.1 %
+    threshold, so every frame and channel must warn of interference, and nothing else may."""
+    cap = SAMPLES / "yard_interfered.cap"
+    with CaptureReader(cap) as r:
+        truth = r.ground_truth["interference"]["frames"]
+    share = [[sum(b[3] - b[2] + 1 for b in bursts if b[1] == rx) / SAMPLES_PER_FRAME for rx in range(4)]
+             for bursts in truth]
+    assert min(min(s) for s in share) >= INTERFERENCE_WARN_SHARE
+    fe_csv = tmp_path / "fe.csv"
+    with log_records("cubecast.daemon.process") as logged:
+        assert process_capture(cap, tmp_path / "p.npz", frontend_out=fe_csv, progress=False) == 0
+    with open(fe_csv, newline="") as f:
+        rows = list(csv.DictReader(f))
+    assert [(int(r["frame"]), int(r["rx"])) for r in rows] == [(k, rx) for k in range(len(truth)) for rx in range(4)]
+    assert all(r["warnings"] == "interference" for r in rows)
+    assert all(int(r["interference_bursts"]) > 0 for r in rows)
+    assert logged[-2].getMessage() == f"front end: {len(truth)} of {len(truth)} frames with warnings (interference " \
+                                      f"{len(truth)})"
