@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .wire import FRONTEND_CAUSES, FRONTEND_SUMMARY_COUNTS, FRONTEND_SUMMARY_FIELDS, FRONTEND_WIRE_FIELDS
+from .wire import FRONTEND_CAUSES, FRONTEND_SUMMARY_COUNTS, FRONTEND_SUMMARY_FIELDS
 
 CLIPPED_WARN_FRACTION = 1e-3          # 0.1 % of the samples with I or Q at full scale
 INTERFERENCE_WARN_SHARE = 1e-3        # 0.1 % of the samples flagged as interference
@@ -85,7 +85,7 @@ def _floor_median(floors: np.ndarray) -> float | None:
 
 
 def channel_warnings(rx: int, rec, full_scale: float, floor_median: float | None) -> list[FrontendWarning]:
-    """The warnings of one channel's record (`rec` a record of the FRONTEND fields)."""
+    """The warnings of one channel's record (`rec` a record, or a map, of the FRONTEND fields)."""
     out: list[FrontendWarning] = []
     name = f"rx {rx}"
     samples = float(rec["samples"])
@@ -139,8 +139,9 @@ def frontend_warnings(records: np.ndarray, full_scale: float) -> list[FrontendWa
     full_scale: the ADC's, in counts, as the sensor's [adc] full_scale)."""
     median = _floor_median(np.asarray(records["noise_floor_db"], np.float64))
     out: list[FrontendWarning] = []
-    for rx in range(records.shape[0]):
-        out.extend(channel_warnings(rx, records[rx], full_scale, median))
+    names = records.dtype.names
+    for rx, values in enumerate(records.tolist()):  # plain Python numbers: cheaper than numpy scalars here
+        out.extend(channel_warnings(rx, dict(zip(names, values)), full_scale, median))
     return out
 
 
@@ -223,5 +224,3 @@ class FrontendSummary:
         return {"frames": self.frames, "frames_with_warnings": self.frames_with_warnings,
                 "warnings": {k: v for k, v in self.by_cause.items() if v}, "channels": self.channels()}
 
-
-FIELD_NAMES = tuple(name for name, _, _ in FRONTEND_WIRE_FIELDS)
