@@ -10,7 +10,7 @@ import math
 import numpy as np
 import pytest
 
-from cubecast.daemon.chain.frontend import MOMENT_STRIDE, NOISE_CELLS
+from cubecast.daemon.chain.frontend import NOISE_CELLS, moment_stride
 from cubecast.daemon.chain.pipeline import Pipeline
 from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.scene import parse_scene
@@ -53,7 +53,7 @@ def test_clipped_samples_equal_a_numpy_count(swap_iq, conjugate, raw_path):
 
 
 def test_dc_offset_measured_and_removed():
-    """dc_offset_counts is |mean| of the channel over the frame, estimated from every MOMENT_STRIDE-th
+    """dc_offset_counts is |mean| of the channel over the frame, estimated from every moment_stride-th
     chirp (numpy on those chirps); a significant DC is removed before the FFTs (the spectrum equals
     scipy.fft of the frame minus that mean), one within five standard errors of the mean, sqrt(var /
     N), is left (the spectrum of the frame as it is)."""
@@ -64,7 +64,7 @@ def test_dc_offset_measured_and_removed():
     settings = ProcessingSettings(interference_mitigation="off")
     pipe = Pipeline(s, settings)
     pipe.process(frame)
-    sub = frame[::MOMENT_STRIDE].astype(np.complex128)
+    sub = frame[::moment_stride(*frame.shape[::2])].astype(np.complex128)
     mean = sub.mean(axis=(0, 2))
     np.testing.assert_allclose(pipe.frontend["dc_offset_counts"], np.abs(mean), rtol=1e-4, atol=1e-4)
     whole = frame.astype(np.complex128).mean(axis=(0, 2))  # the frame's own mean, within the estimate's error
@@ -138,18 +138,20 @@ def test_iq_imbalance_argument_checked():
 
 
 def test_blind_image_rejection_follows_the_formula():
-    """image_rejection_db from the moments of every MOMENT_STRIDE-th chirp (DC removed), written out
+    """image_rejection_db from the moments of every moment_stride-th chirp (DC removed), written out
     here from the blind estimates g = sqrt(E[Q^2] / E[I^2]), sin phi = -E[IQ] / sqrt(E[I^2] E[Q^2])
     and IRR = (1 + 2 g cos phi + g^2) / (1 - 2 g cos phi + g^2) (Razavi 2011); and near the true IRR of
     (g, phi): the image amplitude estimated from N samples has a standard deviation of about
     1 / sqrt(2 N) (delta method on the sample mean of x^2, E|z|^4 = 2 for circular Gaussian z;
-    derived for this test), a few tenths of a dB at N = 24576 and an IRR of 15-23 dB."""
+    derived for this test), a few tenths of a dB at N = 16384 and an IRR of 15-23 dB."""
     s = make_sensor(loops=128, samples=256, sample_rate_hz=10.0e6)
     noise_only = Simulator(s, parse_scene(QUIET), seed=8).frame(0)
     frame = imbalance(noise_only, G, PHI)
     pipe = Pipeline(s)
     pipe.process(frame)
-    sub = frame[::MOMENT_STRIDE].astype(np.complex128)
+    stride = moment_stride(*frame.shape[::2])
+    assert stride > 1  # a subsample: the estimate is of those chirps
+    sub = frame[::stride].astype(np.complex128)
     i = sub.real - sub.real.mean(axis=(0, 2), keepdims=True)
     q = sub.imag - sub.imag.mean(axis=(0, 2), keepdims=True)
     e_ii, e_qq, e_iq = (i * i).mean(axis=(0, 2)), (q * q).mean(axis=(0, 2)), (i * q).mean(axis=(0, 2))

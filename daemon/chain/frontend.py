@@ -14,7 +14,8 @@ One compiled call per RX channel (`front_load`, called by rangefft.py) reads the
 in three passes. The first, over every chirp in the board's own numbers (int16 or float32, any I/Q
 convention), finds each chirp's largest and smallest number (a chirp that reaches the full scale is
 counted exactly, sample by sample) and the largest difference, in either component, between the
-chirp and the same slot's chirp in the next loop. The second, over every MOMENT_STRIDE-th chirp, sums
+chirp and the same slot's chirp in the next loop. The second, over every stride-th chirp (the stride
+moment_stride() chooses: about MOMENT_SAMPLES samples, every chirp of a small frame), sums
 the first and second moments of I and Q (the DC, i.e. the complex mean over the frame, and the blind
 image-rejection estimate, both estimated from that subsample: the DC to within its standard error
 sqrt(var / N) of the subsample's N samples) and the mean difference power to the next loop. The
@@ -84,7 +85,7 @@ N_BLOCKS = 8  # blocks per chirp of the difference power's robust level
 NOISE_CELLS = 2048  # range-Doppler cells per channel in the noise floor's median
 IRR_MAX_DB = 120.0  # a perfectly balanced frame (or one without Q) reads at most this
 MOMENTS = 8  # per channel: (unused), s0, s1, s00, s11, s01 of the subsampled chirps, (unused), (unused)
-MOMENT_STRIDE = 4  # the image-rejection moments and the difference power's level: every 4th chirp
+MOMENT_SAMPLES = 16384  # samples (at least) behind the DC, image-rejection and level estimates
 DC_SIGNIFICANCE = 25.0  # DC removed when |mean|^2 > 25 var / N: five standard errors of the mean
 NARROW_LIMIT = 16383  # int16 samples within +-this have int16 differences
 
@@ -290,7 +291,7 @@ def _image_rejection_db(e_ii, e_qq, e_iq):
 
 @numba.njit(cache=True, nogil=True)
 def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow, remove_static, dc_removal, iq_a,
-               iq_b, mode, threshold_factor, guard, mom, block, scan, level, off, mean, flags, stage, rec):
+               iq_b, mode, threshold_factor, guard, stride, mom, block, scan, level, off, mean, flags, stage, rec):
     """Receive channel `rx` of the frame `src` [chirp, rx, 2 n] (interleaved I/Q, int16 or float32; I at
     position 1 with `swap`, the canonical Q = qsign x the row's) into the staging block
     stage[s, p, 2k + c] = w2[2k + c] w_doppler[p] y[p n_slots + s, k, c]: y the row with its offsets
@@ -312,7 +313,7 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
         if narrow and (hi > NARROW_LIMIT or lo < -NARROW_LIMIT):
             scan[c, 0] = np.inf  # the int16 differences may have wrapped: look at this chirp exactly
     n_sub = 0
-    for c in range(0, n_chirps, MOMENT_STRIDE):
+    for c in range(0, n_chirps, stride):
         other = src[c + n_slots if c < last else c - n_slots, rx]
         if narrow:
             level[n_sub] = _row_moments_int(src[c, rx], other, n, mom)
@@ -335,13 +336,13 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
     threshold = threshold_factor * np.median(level[:n_sub])
     # a chirp trips when either component's largest difference could make |d|^2 pass (|d|^2 <= 2 max^2)
     tripped = 0
-    for c in range(0, n_chirps, MOMENT_STRIDE):
+    for c in range(0, n_chirps, stride):
         tripped += 2.0 * scan[c, 0] > threshold
     if n_loops < 2:
         threshold = np.inf  # nothing to compare a chirp with
     if 4 * tripped > n_sub:  # bursts in many chirps: the robust per-chirp level instead of the mean
         n_sub = 0
-        for c in range(0, n_chirps, MOMENT_STRIDE):
+        for c in range(0, n_chirps, stride):
             level[n_sub] = _block_level(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, block)
             n_sub += 1
         threshold = threshold_factor * np.median(level[:n_sub])
@@ -433,6 +434,12 @@ def after_doppler(rows, leak_bins, wd_spec, cell_s, cell_r, cell_d, power, noise
         rec[rx].noise_floor_db = np.float32(-np.inf)
 
 
+def moment_stride(n_chirps: int, samples_per_chirp: int) -> int:
+    """Every how many chirps the DC, image-rejection and level estimates look at: as many as keep at
+    least MOMENT_SAMPLES samples (every chirp of a frame smaller than that)."""
+    return max(1, (n_chirps * samples_per_chirp) // MOMENT_SAMPLES)
+
+
 class FrontEnd:
     """The front end's settings, tables and buffers for one sensor (everything computed once)."""
 
@@ -448,6 +455,7 @@ class FrontEnd:
         self.guard = int(settings.interference_guard_samples)
         self.record = np.zeros(sensor.n_rx, FRONTEND_DTYPE)
         self.record["samples"] = n_chirps * n
+        self.stride = moment_stride(n_chirps, n)
         self.iq_a = np.ones(sensor.n_rx, np.float64)
         self.iq_b = np.zeros(sensor.n_rx, np.float64)
         if iq_imbalance is not None:
@@ -487,7 +495,8 @@ class FrontEnd:
              qsign: float, stage_f: np.ndarray) -> None:
         front_load(src, rx, n_slots, w2, doppler_window, swap, qsign, self.full_scale,
                    self.narrow and src.dtype == np.int16, self.remove_static, self.dc_removal, self.iq_a[rx],
-                   qsign * self.iq_b[rx], self.mode, self.threshold_factor, self.guard, self._mom, self._block, self._scan,
+                   qsign * self.iq_b[rx], self.mode, self.threshold_factor, self.guard, self.stride, self._mom,
+                   self._block, self._scan,
                    self._level, self._off, self._mean, self._flags, stage_f, self.record)
         if not self.complex_sampling:  # one branch: no image to reject
             self.record["image_rejection_db"][rx] = np.nan
