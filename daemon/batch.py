@@ -68,8 +68,12 @@ def cluster_client(scheduler: str | None, local_workers: int | None, timeout_s: 
         return
     n = local_workers or len(os.sched_getaffinity(0))
     with dask.config.set({"distributed.scheduler.allowed-failures": ALLOWED_FAILURES}):
-        cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                           dashboard_address=None)
+        try:
+            cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
+                                               dashboard_address=None)
+        except Exception as exc:  # the engine's own errors (a worker process that cannot start)
+            raise CubecastError(f"cannot start the local cluster of {n} worker processes: "
+                                f"{type(exc).__name__}: {exc}") from None
         try:
             client = distributed.Client(cluster, timeout=timeout_s)
             try:
@@ -126,7 +130,8 @@ class Batch:
         self.code_sha256 = batchplan.code_inputs(fmt)  # the digest rule's "code"
         self.runs = [CaptureRun(i, p, out_dir / batchplan.output_name(p, fmt)) for i, p in enumerate(captures)]
         self.workers: Counter = Counter()
-        self.wall_s = 0.0
+        self.wall_s = 0.0    # from the first task submitted to the last output written
+        self.cluster_s = 0.0  # connecting to the cluster (or starting the local one)
         self._progress = None
         self._frames_done = 0
 
@@ -178,7 +183,7 @@ class Batch:
         log.info("batch: %d captures to process (%d frames), %d up to date, %d failed", len(todo),
                  sum(r.frames_total for r in todo), sum(r.status == "up to date" for r in self.runs),
                  sum(r.status == "failed" for r in self.runs))
-        self._progress = Progress("batch", ("frames", "captures"), logger=log, bar=progress,
+        self._progress = Progress(f"batch of {len(todo)}", ("frames", "captures"), logger=log, bar=progress,
                                   total=sum(r.frames_total for r in todo))
         redirect = contextlib.nullcontext()
         if progress:  # log lines above the bar, not through it
@@ -255,6 +260,7 @@ class Batch:
                 run.next_chunk += 1
             if run.next_chunk == len(run.chunks):
                 self._writer(run)
+                run.placement.commit()
                 run.writer.close()
                 run.placement.done()
                 run.frames, run.points = run.writer.frames, run.writer.points
@@ -266,7 +272,7 @@ class Batch:
 
     def _writer(self, run: CaptureRun) -> None:
         if run.writer is None:
-            run.placement.prepare()
+            run.placement.clean()
             run.writer = exports.WRITERS[self.fmt](run.out, "--out").open()
 
     def _finish(self, run: CaptureRun) -> None:
@@ -303,7 +309,7 @@ class Batch:
                 "failed": sum(r.status == "failed" for r in self.runs),
                 "frames_processed": frames, "points_written": sum(r.points for r in done),
                 "corrupt_skipped": sum(r.corrupt for r in done), "tasks": sum(r.tasks for r in self.runs),
-                "workers": dict(self.workers), "wall_s": round(self.wall_s, 3),
+                "workers": dict(self.workers), "cluster_s": round(self.cluster_s, 3), "wall_s": round(self.wall_s, 3),
                 "frames_per_s": round(frames / self.wall_s, 2) if self.wall_s > 0 and frames else 0.0}
 
 
@@ -323,7 +329,8 @@ def format_report(rows: list[dict], totals: dict) -> str:
     lines.append(f"total: {t['captures']} captures: {t['done']} done, {t['up_to_date']} up to date, {t['failed']} "
                  f"failed; {t['frames_processed']} frames processed, {t['points_written']} points written, "
                  f"{t['corrupt_skipped']} corrupt frames skipped, {t['tasks']} tasks on {len(t['workers'])} "
-                 f"workers, {t['wall_s']:.2f} s, {t['frames_per_s']:.1f} frames/s")
+                 f"workers, {t['wall_s']:.2f} s ({t['frames_per_s']:.1f} frames/s) after {t['cluster_s']:.2f} s "
+                 "to reach the cluster")
     return "\n".join(lines)
 
 
@@ -364,7 +371,9 @@ def run_batch(args) -> int:
         log.info("batch: nothing to process (%d up to date, %d failed)",
                  sum(r.status == "up to date" for r in batch.runs), sum(r.status == "failed" for r in batch.runs))
     else:
+        t0 = time.perf_counter()
         with cluster_client(args.scheduler, args.local_workers) as client:
+            batch.cluster_s = time.perf_counter() - t0
             batch.run(client, progress=show_progress())
     rows, totals = batch.rows(), batch.totals()
     print(json.dumps({"captures": rows, "totals": totals}, allow_nan=False) if args.json

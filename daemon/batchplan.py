@@ -158,21 +158,27 @@ def sensor_figures(sensor) -> dict:
 
 @dataclass
 class Placement:
-    """Replacing an output: its record goes first (so a stopped run leaves no record that vouches for
-    an old output); a folder output moves aside under .NAME.batch-old until the new one is in place
-    (PointWriter renames a file over the old one itself); a failed run puts it back."""
+    """Replacing an output, at the end of its capture (so a capture that fails leaves the folder as it
+    was): its record goes first (a stopped run leaves no record vouching for an old output), then
+    PointWriter renames a file over the old one; a folder output moves aside under .NAME.batch-old until
+    the new one is in place, and comes back if that fails."""
     out: Path
     folder: bool
     aside: Path | None = field(default=None)
 
-    def prepare(self) -> None:
-        record_path(self.out).unlink(missing_ok=True)
-        for left in self.out.parent.glob(f".{glob.escape(self.out.name)}.*.part"):  # of a batch stopped while writing
+    def clean(self) -> None:
+        """Remove what a batch stopped while writing this output left (its temporary names)."""
+        for left in self.out.parent.glob(f".{glob.escape(self.out.name)}.*.part"):
             shutil.rmtree(left, ignore_errors=True) if left.is_dir() else left.unlink(missing_ok=True)
+        old = self.out.with_name(f".{self.out.name}{OLD_SUFFIX}")
+        if old.exists():
+            shutil.rmtree(old) if (self.out.exists() or self.out.is_symlink()) else os.replace(old, self.out)
+
+    def commit(self) -> None:
+        """Just before the writer renames the new output into place."""
+        record_path(self.out).unlink(missing_ok=True)
         if self.folder and (self.out.exists() or self.out.is_symlink()):
             self.aside = self.out.with_name(f".{self.out.name}{OLD_SUFFIX}")
-            if self.aside.exists():
-                shutil.rmtree(self.aside)
             os.replace(self.out, self.aside)
 
     def done(self) -> None:
@@ -181,6 +187,6 @@ class Placement:
             self.aside = None
 
     def failed(self) -> None:
-        if self.aside is not None and not self.out.exists():
+        if self.aside is not None and not (self.out.exists() or self.out.is_symlink()):
             os.replace(self.aside, self.out)
         self.aside = None

@@ -334,3 +334,28 @@ def test_without_the_extra_batch_names_it(tmp_path, capsys, monkeypatch):
     assert err[0].startswith("cubecast batch: error: cubecast batch needs dask and distributed")
     assert "pip install 'cubecast[batch]'" in err[0]
     assert not (tmp_path / "run").exists()
+
+
+def test_a_folder_output_is_replaced_when_complete_and_kept_when_its_capture_fails(cluster, tmp_path, capsys):
+    address, _ = cluster
+    folder = tmp_path / "campaign"
+    folder.mkdir()
+    cap = folder / "yard.cap"
+    shutil.copy(YARD, cap)
+    out = tmp_path / "run"
+    code, _, err = batch(capsys, folder, "--out", out, "--format", "pcd", "--scheduler", address)
+    assert code == 0, err
+    other = tmp_path / "other.toml"
+    other.write_text("[processing]\ncfar_pfa = 1e-4\n")
+    code, report, err = batch(capsys, folder, "--out", out, "--format", "pcd", "--scheduler", address,
+                              "--settings", other)
+    assert code == 0 and report["captures"][0]["reason"] == "settings changed", err
+    assert tree_bytes(out / "yard_pcd") == tree_bytes(reference(tmp_path, cap, "pcd", settings=other))
+    assert sorted(p.name for p in out.iterdir()) == ["yard_pcd", "yard_pcd.batch.json"]
+    kept = tree_bytes(out / "yard_pcd"), (out / "yard_pcd.batch.json").read_bytes()
+
+    flip_byte(YARD, record_offsets(YARD)[5] + 56 + 10, cap)  # now a corrupt frame: this capture fails
+    code, report, err = batch(capsys, folder, "--out", out, "--format", "pcd", "--scheduler", address)
+    assert code == 2 and report["captures"][0]["status"] == "failed"
+    assert (tree_bytes(out / "yard_pcd"), (out / "yard_pcd.batch.json").read_bytes()) == kept
+    assert sorted(p.name for p in out.iterdir()) == ["yard_pcd", "yard_pcd.batch.json"]
