@@ -69,8 +69,9 @@ def cluster_client(scheduler: str | None, local_workers: int | None, timeout_s: 
     n = local_workers or len(os.sched_getaffinity(0))
     with dask.config.set({"distributed.scheduler.allowed-failures": ALLOWED_FAILURES}):
         try:
+            # death_timeout bounds each worker process's start (and its wait for a lost scheduler)
             cluster = distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                               dashboard_address=None)
+                                               dashboard_address=None, death_timeout=timeout_s)
         except Exception as exc:  # the engine's own errors (a worker process that cannot start)
             raise CubecastError(f"cannot start the local cluster of {n} worker processes: "
                                 f"{type(exc).__name__}: {exc}") from None
@@ -126,7 +127,10 @@ class Batch:
                  skip_corrupt: bool = False, frames_per_task: int = DEFAULT_FRAMES_PER_TASK):
         self.out_dir, self.fmt, self.settings = out_dir, fmt, settings
         self.calibration_path, self.skip_corrupt, self.frames_per_task = calibration_path, skip_corrupt, frames_per_task
-        self.calibration_sha256 = batchplan.file_sha256(calibration_path) if calibration_path else None
+        try:
+            self.calibration_sha256 = batchplan.file_sha256(calibration_path) if calibration_path else None
+        except OSError as exc:
+            raise CubecastError(f"--calibration {calibration_path}: cannot read: {exc.strerror or exc}") from None
         self.code_sha256 = batchplan.code_inputs(fmt)  # the digest rule's "code"
         self.runs = [CaptureRun(i, p, out_dir / batchplan.output_name(p, fmt)) for i, p in enumerate(captures)]
         self.workers: Counter = Counter()
@@ -231,9 +235,9 @@ class Batch:
         if run.status != "pending":
             return  # a range of a capture that failed meanwhile
         if fut.status != "finished":
-            exc = fut.exception()
-            self._fail(run, f"task {k} (frame indexes {run.chunks[k][0]}..{run.chunks[k][1] - 1}) failed: "
-                            f"{type(exc).__name__}: {exc}")
+            exc = fut.exception() if fut.status == "error" else f"the task was {fut.status}"
+            why = f"{type(exc).__name__}: {exc}" if isinstance(exc, BaseException) else exc
+            self._fail(run, f"task {k} (frame indexes {run.chunks[k][0]}..{run.chunks[k][1] - 1}) failed: {why}")
             return
         res = fut.result()
         run.tasks += 1
@@ -353,7 +357,7 @@ def run(args) -> int:
 def run_batch(args) -> int:
     from .logs import show_progress
     from .settings import load_settings
-    fmt = exports.resolve_format("--format", args.out, args.format)
+    fmt = exports.resolve_format("--format", args.format, args.format)
     exports.require_extra("--format", args.format, fmt)
     if not is_integer(args.frames_per_task) or args.frames_per_task < 1:
         raise CubecastError(f"--frames-per-task {args.frames_per_task}: must be at least 1")

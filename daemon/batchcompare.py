@@ -87,7 +87,7 @@ def match_frame(a: np.ndarray, b: np.ndarray, floors: tuple[float, ...], gate: f
     for (value, sigma, _), floor in zip(COORDS, floors):
         va, vb = a[value].astype(np.float64), b[value].astype(np.float64)
         sa, sb = a[sigma].astype(np.float64), b[sigma].astype(np.float64)
-        scale = np.maximum(np.sqrt(sa[:, None] ** 2 + sb[None, :] ** 2), floor / 2.0)
+        scale = np.fmax(np.sqrt(sa[:, None] ** 2 + sb[None, :] ** 2), floor / 2.0)  # a NaN sigma: the floor
         d2 += ((vb[None, :] - va[:, None]) / scale) ** 2
     ia, ib = np.nonzero(d2 <= gate * gate)  # a NaN distance is never a candidate
     order = np.lexsort((ib, ia, d2[ia, ib]))

@@ -40,7 +40,7 @@ def cluster():
     with dask.config.set({"distributed.scheduler.allowed-failures": 3,
                           "distributed.comm.timeouts.connect": f"{START_TIMEOUT_S}s"}):
         lc = LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                          dashboard_address=None)
+                          dashboard_address=None, death_timeout=START_TIMEOUT_S)  # bounds each worker's start
     client = Client(lc, timeout=START_TIMEOUT_S)
     try:
         client.wait_for_workers(2, timeout=START_TIMEOUT_S)
@@ -359,3 +359,40 @@ def test_a_folder_output_is_replaced_when_complete_and_kept_when_its_capture_fai
     assert code == 2 and report["captures"][0]["status"] == "failed"
     assert (tree_bytes(out / "yard_pcd"), (out / "yard_pcd.batch.json").read_bytes()) == kept
     assert sorted(p.name for p in out.iterdir()) == ["yard_pcd", "yard_pcd.batch.json"]
+
+
+def bias_calibration(path: Path, capture: Path, range_bias_m: float) -> None:
+    """A calibration file (README "Calibration file") with unit gains and a range bias, for the
+    capture's sensor."""
+    from cubecast.daemon.calibfile import CALIBRATION_FORMAT, CALIBRATION_VERSION
+    from cubecast.daemon.files import capture_sensor
+    with CaptureReader(capture) as r:
+        s = capture_sensor(r)
+    lines = ["[calibration]", f'format = "{CALIBRATION_FORMAT}"', f"version = {CALIBRATION_VERSION}",
+             f'sensor_id = "{s.sensor_id}"', f'sensor_digest = "{s.digest}"', f'array_digest = "{s.array_digest}"',
+             f"n_tx = {s.n_tx}", f"n_rx = {s.n_rx}", f"range_bias_m = {range_bias_m}"]
+    for v in range(s.n_tx * s.n_rx):
+        lines += ["[[channel]]", f"index = {v}", f"tx = {v // s.n_rx}", f"rx = {v % s.n_rx}",
+                  "gain_amplitude = 1.0", "gain_phase_deg = 0.0"]
+    path.write_text("\n".join(lines) + "\n")
+
+
+def test_a_calibration_is_applied_as_process_applies_it_and_compare_sees_its_range_bias(cluster, tmp_path, capsys):
+    address, _ = cluster
+    cal = tmp_path / "bias.toml"
+    bias_calibration(cal, YARD, 0.05)
+    plain, biased = tmp_path / "plain", tmp_path / "biased"
+    for run, extra in ((plain, []), (biased, ["--calibration", cal])):
+        code, _, err = batch(capsys, YARD, "--out", run, "--format", "npz", "--scheduler", address, *extra)
+        assert code == 0, err
+    ref = tmp_path / "process.npz"
+    process_capture(YARD, ref, settings_path=None, calibration_path=cal, progress=False)
+    assert (biased / "yard.npz").read_bytes() == ref.read_bytes()
+    capsys.readouterr()
+    assert main(["batch", "--compare", str(plain), str(biased), "--json"]) == 0
+    total = json.loads(capsys.readouterr().out)["total"]
+    assert total["gained"] == 0 and total["lost"] == 0 and total["matched"] == total["points_a"] > 0
+    # the bias is measured minus true range: subtracted from every range (README "Calibration file");
+    # float32 ranges near 10 m are exact to about 1e-6 m
+    assert total["shift"]["range_m"]["mean"] == pytest.approx(-0.05, abs=2e-6)
+    assert total["shift"]["range_m"]["max_abs"] == pytest.approx(0.05, abs=2e-6)
