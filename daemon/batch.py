@@ -18,6 +18,7 @@ import json
 import logging
 import os
 import secrets
+import sys
 import time
 from collections import Counter, deque
 from dataclasses import dataclass, field
@@ -26,6 +27,7 @@ from pathlib import Path
 from . import batchplan, exports
 from .batchwork import ChunkJob, code_digest, process_chunk
 from .errors import CubecastError, is_integer
+from .progress import Progress
 
 log = logging.getLogger(__name__)
 
@@ -83,6 +85,25 @@ def cluster_client(scheduler: str | None, local_workers: int | None, timeout_s: 
                 client.close()
         finally:
             cluster.close(timeout=timeout_s)
+
+
+class BatchProgress(Progress):
+    """The batch's progress: on a terminal a tqdm bar over the frames (rate and time left are tqdm's);
+    otherwise a log line a second with the frames and captures done out of their totals, the rate
+    since the last line and the time left at that rate (frames left / rate, common practice)."""
+
+    def __init__(self, frames_total: int, captures_total: int, bar: bool = False, **kw):
+        super().__init__(f"batch of {captures_total}", ("frames", "captures"), logger=log, bar=bar,
+                         total=frames_total, **kw)
+        self.frames_total, self.captures_total = frames_total, captures_total
+
+    def _line(self, seconds: float, since: dict[str, int]) -> None:
+        rate = self.rates(seconds, since)["frames"]
+        done, captures = self.counts["frames"], self.counts["captures"]
+        left = f"{(self.frames_total - done) / rate:.0f} s left" if rate > 0 else "time left unknown"
+        self.log.info("batch: %d of %d frames (%.1f/s), %d of %d captures, %s", done, self.frames_total, rate,
+                      captures, self.captures_total, left,
+                      extra={"progress": True, "frames": done, "captures": captures})
 
 
 @dataclass
@@ -181,14 +202,12 @@ class Batch:
 
     # ---- running ----------------------------------------------------------------------------
     def run(self, client, progress: bool = False) -> None:
-        from .progress import Progress
         todo = [r for r in self.runs if r.status == "pending"]
         t0 = time.perf_counter()
         log.info("batch: %d captures to process (%d frames), %d up to date, %d failed", len(todo),
                  sum(r.frames_total for r in todo), sum(r.status == "up to date" for r in self.runs),
                  sum(r.status == "failed" for r in self.runs))
-        self._progress = Progress(f"batch of {len(todo)}", ("frames", "captures"), logger=log, bar=progress,
-                                  total=sum(r.frames_total for r in todo))
+        self._progress = BatchProgress(sum(r.frames_total for r in todo), len(todo), bar=progress)
         redirect = contextlib.nullcontext()
         if progress:  # log lines above the bar, not through it
             from tqdm.contrib.logging import logging_redirect_tqdm
@@ -378,7 +397,7 @@ def run_batch(args) -> int:
         t0 = time.perf_counter()
         with cluster_client(args.scheduler, args.local_workers) as client:
             batch.cluster_s = time.perf_counter() - t0
-            batch.run(client, progress=show_progress())
+            batch.run(client, progress=show_progress() and sys.stderr.isatty())  # else log lines
     rows, totals = batch.rows(), batch.totals()
     print(json.dumps({"captures": rows, "totals": totals}, allow_nan=False) if args.json
           else format_report(rows, totals), flush=True)

@@ -10,6 +10,7 @@ built by hand with known shifts (the rule as README "Batch" writes it).
 from __future__ import annotations
 
 import json
+import logging
 import os
 import shutil
 import sys
@@ -396,3 +397,26 @@ def test_a_calibration_is_applied_as_process_applies_it_and_compare_sees_its_ran
     # float32 ranges near 10 m are exact to about 1e-6 m
     assert total["shift"]["range_m"]["mean"] == pytest.approx(-0.05, abs=2e-6)
     assert total["shift"]["range_m"]["max_abs"] == pytest.approx(0.05, abs=2e-6)
+
+
+class FakeClock:
+    def __init__(self):
+        self.t = 100.0
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_progress_lines_give_the_totals_the_rate_and_the_time_left(caplog):
+    from cubecast.daemon.batch import BatchProgress
+    clock = FakeClock()
+    p = BatchProgress(300, 3, clock=clock)
+    with caplog.at_level(logging.INFO, logger="cubecast.daemon.batch"):
+        for t, frames, captures in ((100.5, 20, 0), (101.0, 50, 0), (103.0, 150, 1), (103.5, 300, 3)):
+            clock.t = t
+            p.update(frames=frames, captures=captures)
+    # due at 101.0 (50 frames in 1 s: 250 left at 50/s) and 103.0 (100 frames in 2 s: 150 left at 50/s)
+    assert [r.getMessage() for r in caplog.records] == [
+        "batch: 50 of 300 frames (50.0/s), 0 of 3 captures, 5 s left",
+        "batch: 150 of 300 frames (50.0/s), 1 of 3 captures, 3 s left"]
+    assert [(r.frames, r.captures) for r in caplog.records] == [(50, 0), (150, 1)]
