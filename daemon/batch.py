@@ -135,8 +135,11 @@ class CaptureRun:
     wall_s: float | None = None
 
     def row(self) -> dict:
-        return {"capture": str(self.path), "output": str(self.out), "status": self.status, "reason": self.reason,
-                "frames": self.frames, "points": self.points, "corrupt_skipped": self.corrupt,
+        """The report's row; a failed capture has no output, so its counts are null."""
+        failed = self.status == "failed"
+        return {"capture": str(self.path), "output": None if failed else str(self.out), "status": self.status,
+                "reason": self.reason, "frames": None if failed else self.frames,
+                "points": None if failed else self.points, "corrupt_skipped": None if failed else self.corrupt,
                 "repeated_skipped": self.repeated, "tasks": self.tasks, "task_s": round(self.task_s, 3),
                 "wall_s": None if self.wall_s is None else round(self.wall_s, 3)}
 
