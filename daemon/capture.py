@@ -567,7 +567,11 @@ class CaptureReader:
         """Frames in file order, one read at a time.  With skip_corrupt=True frames whose payload CRC
         fails are skipped and listed in `problems`; otherwise the first such frame raises.  With
         skip_repeated=True copies of earlier frames (`repeat_of`) are passed over."""
-        for j in range(len(self._entries)):
+        return self.frames()
+
+    def frames(self, start: int = 0, stop: int | None = None) -> Iterator[CaptureFrame]:
+        """As iteration, over the frame indexes start..stop-1 only (a part of the file: `cubecast batch`)."""
+        for j in range(*slice(start, stop).indices(len(self._entries))):
             if self._skip_repeated and j in self._repeat_of:
                 continue
             try:

@@ -467,6 +467,8 @@ def build_parser() -> argparse.ArgumentParser:
     add_bridge(sub)
     from .tune import add_parser as add_tune
     add_tune(sub)
+    from .batch import add_parser as add_batch
+    add_batch(sub)
     from .adapter import add_parser as add_adapter
     ap = add_adapter(sub)
     _add_publisher_key_options(ap, "the adapter")
@@ -490,6 +492,7 @@ def build_parser() -> argparse.ArgumentParser:
 # processing and ZeroMQ never sees a port it would wrap
 OUTPUT_FLAGS = ("--out", "--points-out", "--png", "--save-datagrams", "--snapshot", "--frontend-out")
 FOLDER_FLAGS = ("--dir",)
+FOLDER_OUTPUTS = {("batch", "--out")}  # a command's output flag that names a folder
 POINT_FILE_FLAGS = {("process", "--out"): "format", ("record", "--points-out"): "points_format"}  # exports.py
 ENDPOINT_FLAGS = {
     "simulate": {"--pub": True}, "replay": {"--pub": True}, "adapter": {"--pub": True},
@@ -522,7 +525,8 @@ def check_flags(parser: argparse.ArgumentParser, args: argparse.Namespace) -> di
                 check_target(flag, str(v), getattr(args, POINT_FILE_FLAGS[args.command, flag]))
                 outputs[str(v)] = flag
             elif flag in OUTPUT_FLAGS or flag in FOLDER_FLAGS:
-                cliout.check_output_path(flag, str(v), folder=flag in FOLDER_FLAGS)
+                cliout.check_output_path(flag, str(v), folder=flag in FOLDER_FLAGS
+                                         or (args.command, flag) in FOLDER_OUTPUTS)
                 outputs[str(v)] = flag
             if flag in endpoints:
                 check_endpoint(v, flag, bind=endpoints[flag])

@@ -31,11 +31,12 @@ def make_pipeline(sensor, settings, calibration_path=None) -> Pipeline:
     return Pipeline(sensor, settings, cal.vector, cal.range_bias_m, cal.iq_imbalance)
 
 
-def iter_processed(reader: CaptureReader, pipeline: Pipeline,
-                   progress: bool = False) -> Iterator[tuple[int, float, np.ndarray]]:
-    """(sequence, timestamp_s, records) for every readable frame of a capture, in order; frames without
-    points give an empty record array."""
-    frames = iter_capture_frames(reader, pipeline.sensor)
+def iter_processed(reader: CaptureReader, pipeline: Pipeline, progress: bool = False, start: int = 0,
+                   stop: int | None = None) -> Iterator[tuple[int, float, np.ndarray]]:
+    """(sequence, timestamp_s, records) for every readable frame of a capture (of the frame indexes
+    start..stop-1 only, if given: `cubecast batch`), in order; frames without points give an empty
+    record array."""
+    frames = iter_capture_frames(reader, pipeline.sensor, start, stop)
     if progress:
         from tqdm import tqdm
         total = len(reader) - (reader.counts["repeated"] if reader.skip_repeated else 0)
