@@ -185,7 +185,7 @@ class Batch:
             n, run.repeated = len(reader), reader.counts["repeated"]
             run.problems = reader.problems
         run.sensor_id, run.figures = sensor.sensor_id, batchplan.sensor_figures(sensor)
-        vector, bias = load_calibration_for(self.calibration_path, sensor)
+        cal = load_calibration_for(self.calibration_path, sensor)
         run.inputs = batchplan.input_digests(capture_sha256, self.settings, self.calibration_sha256, self.fmt,
                                              self.skip_corrupt, self.code_sha256)
         stale = batchplan.why_stale(run.out, run.inputs)
@@ -196,8 +196,8 @@ class Batch:
             run.corrupt = int(old.get("corrupt_skipped", 0))
             return
         run.reason = stale
-        run.job = ChunkJob(str(run.path.resolve()), st.st_size, st.st_mtime_ns, self.settings, vector, bias,
-                           self.calibration_sha256, self.skip_corrupt, code_digest())
+        run.job = ChunkJob(str(run.path.resolve()), st.st_size, st.st_mtime_ns, self.settings, cal.vector,
+                           cal.range_bias_m, cal.iq_imbalance, self.calibration_sha256, self.skip_corrupt, code_digest())
         k = self.frames_per_task
         run.chunks = [(a, min(n, a + k)) for a in range(0, n, k)]
         run.frames_total = n - run.repeated

@@ -46,14 +46,15 @@ def code_digest() -> str:
 @dataclass(frozen=True)
 class ChunkJob:
     """What every task of one capture shares: the capture (path as the workers see it, and its size
-    and modification time when the batch planned it), the validated settings, the calibration (vector
-    and range bias, read and checked against the capture's sensor by the driver) and the code digest."""
+    and modification time when the batch planned it), the validated settings, the calibration (vector,
+    range bias and I/Q table, read and checked against the capture's sensor by the driver) and the code digest."""
     capture: str
     size_bytes: int
     mtime_ns: int
     settings: ProcessingSettings
     calibration_vector: np.ndarray | None
     range_bias_m: float
+    iq_imbalance: np.ndarray | None  # [n_rx, 2] (g, phi_rad) of the calibration's I/Q table, or None
     calibration_sha256: str | None
     skip_corrupt: bool
     code_sha256: str
@@ -67,7 +68,7 @@ def _pipeline(sensor, job: ChunkJob):
     key = (sensor.digest, job.settings, job.calibration_sha256, job.range_bias_m)
     pipe = _pipelines.pop(key, None)
     if pipe is None:
-        pipe = Pipeline(sensor, job.settings, job.calibration_vector, job.range_bias_m)
+        pipe = Pipeline(sensor, job.settings, job.calibration_vector, job.range_bias_m, job.iq_imbalance)
     _pipelines[key] = pipe  # most recently used last
     while len(_pipelines) > PIPELINES_KEPT:
         del _pipelines[next(iter(_pipelines))]

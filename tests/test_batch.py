@@ -362,9 +362,9 @@ def test_a_folder_output_is_replaced_when_complete_and_kept_when_its_capture_fai
     assert sorted(p.name for p in out.iterdir()) == ["yard_pcd", "yard_pcd.batch.json"]
 
 
-def bias_calibration(path: Path, capture: Path, range_bias_m: float) -> None:
+def bias_calibration(path: Path, capture: Path, range_bias_m: float, iq: bool = False) -> None:
     """A calibration file (README "Calibration file") with unit gains and a range bias, for the
-    capture's sensor."""
+    capture's sensor; with `iq`, an [[iq_imbalance]] table too (README "I/Q imbalance")."""
     from cubecast.daemon.calibfile import CALIBRATION_FORMAT, CALIBRATION_VERSION
     from cubecast.daemon.files import capture_sensor
     with CaptureReader(capture) as r:
@@ -375,6 +375,8 @@ def bias_calibration(path: Path, capture: Path, range_bias_m: float) -> None:
     for v in range(s.n_tx * s.n_rx):
         lines += ["[[channel]]", f"index = {v}", f"tx = {v // s.n_rx}", f"rx = {v % s.n_rx}",
                   "gain_amplitude = 1.0", "gain_phase_deg = 0.0"]
+    for rx in range(s.n_rx) if iq else ():
+        lines += ["[[iq_imbalance]]", f"rx = {rx}", f"q_gain = {1.0 + 0.02 * rx}", f"q_phase_deg = {1.5 - rx}"]
     path.write_text("\n".join(lines) + "\n")
 
 
@@ -389,6 +391,14 @@ def test_a_calibration_is_applied_as_process_applies_it_and_compare_sees_its_ran
     ref = tmp_path / "process.npz"
     process_capture(YARD, ref, settings_path=None, calibration_path=cal, progress=False)
     assert (biased / "yard.npz").read_bytes() == ref.read_bytes()
+    # a calibration with an I/Q table: applied by the workers as process applies it (and it matters)
+    iq_cal, iq_run, iq_ref = tmp_path / "iq.toml", tmp_path / "iq_run", tmp_path / "process_iq.npz"
+    bias_calibration(iq_cal, YARD, 0.05, iq=True)
+    code, _, err = batch(capsys, YARD, "--out", iq_run, "--format", "npz", "--scheduler", address,
+                         "--calibration", iq_cal)
+    assert code == 0, err
+    process_capture(YARD, iq_ref, settings_path=None, calibration_path=iq_cal, progress=False)
+    assert (iq_run / "yard.npz").read_bytes() == iq_ref.read_bytes() != ref.read_bytes()
     capsys.readouterr()
     assert main(["batch", "--compare", str(plain), str(biased), "--json"]) == 0
     total = json.loads(capsys.readouterr().out)["total"]
