@@ -119,6 +119,29 @@ def test_clipping_counts_equal_the_simulators_report_and_numpy(sensor):
         np.testing.assert_array_equal(pipe.frontend["clipped_samples"], by_numpy)
 
 
+def test_a_moving_saturating_echo_is_clipping_not_interference(sensor):
+    """A near reflector approaching fast enough that its clipped samples change from loop to loop: the
+    clipped samples are counted (against numpy, as above) and the interference detector, which compares
+    each chirp with the same slot's chirps one loop away, does not mistake them for bursts; the only
+    warning cause is clipping (README "Front-end monitor")."""
+    from cubecast.daemon.frontendwarn import frontend_warnings
+    text = (SAMPLES / "yard_scene.toml").read_text(encoding="utf-8")
+    text += ("\n[[target]]\nname = \"fork tine\"\nposition_m = [0.4, 2.4, 0.0]\nvelocity_mps = [0.0, -3.0, 0.0]\n"
+             "snr_db = 61.0\n")
+    sim = Simulator(sensor, parse_scene(text), seed=5)
+    pipe = Pipeline(sensor)
+    fs = sensor.adc.full_scale
+    for i in range(3):
+        raw, _ = sim.raw_frame_report(i)
+        pipe.process_raw(raw)
+        by_numpy = np.count_nonzero((np.abs(raw.astype(np.int32)) >= fs).any(axis=-1), axis=(0, 2))
+        assert by_numpy.min() > 0
+        np.testing.assert_array_equal(pipe.frontend["clipped_samples"], by_numpy)
+        np.testing.assert_array_equal(pipe.frontend["interference_bursts"], 0)
+        causes = {w.cause for w in frontend_warnings(pipe.frontend, fs)}
+        assert causes == {"clipping"}, causes
+
+
 NOISE_ONLY = "[[target]]\nrange_m = 9.0\nsnr_db = -40.0\n"  # a scene needs a target: far under the noise
 IMPAIRMENTS = """
 [impairments]

@@ -226,14 +226,25 @@ def _diff2(row, other, k):
 
 
 @numba.njit(cache=True, nogil=True)
-def _repair(row, prev, nxt, has_prev, has_next, out, n, ci, off, iq_a, iq_b, w2, wd, threshold, guard, mode, flags):
+def _clipped_at(row, k, full_scale):
+    return (abs(np.float64(row[2 * k])) >= full_scale) | (abs(np.float64(row[2 * k + 1])) >= full_scale)
+
+
+@numba.njit(cache=True, nogil=True)
+def _repair(row, prev, nxt, has_prev, has_next, out, n, ci, off, iq_a, iq_b, w2, wd, threshold, guard, mode, flags,
+            full_scale):
     """Flag the samples of one chirp whose difference power against the same slot's chirps in the
     previous and next loop passes the threshold on every side there is (widened by `guard`), repair
     them in `out` (mode 1 zero, 2 the mean of those neighbours' samples; 0 leaves them) and return
-    (bursts, flagged samples)."""
+    (bursts, flagged samples). A sample clipped in this chirp or in a chirp it is compared with never
+    triggers: a saturating echo differs from loop to loop too, but it is clipping (counted as such),
+    not interference; a burst's unclipped edges still trigger and the guard covers its clipped core."""
     for k in range(n):
         flags[k] = 0
     for k in range(n):
+        if _clipped_at(row, k, full_scale) or (has_prev and _clipped_at(prev, k, full_scale)) \
+                or (has_next and _clipped_at(nxt, k, full_scale)):
+            continue
         hit = True
         if has_prev:
             hit = _diff2(row, prev, k) > threshold
@@ -397,7 +408,7 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
                 prev = src[pa * n_slots + s, rx] if two or p > 0 else row
                 nxt = src[pb * n_slots + s, rx] if two or p < n_loops - 1 else row
                 b, f = _repair(row, prev, nxt, two or p > 0, two or p < n_loops - 1, out, n, ci, off, iq_a, iq_b,
-                               w2, wd, threshold, guard, mode, flags)
+                               w2, wd, threshold, guard, mode, flags, full_scale)
                 bursts += b
                 flagged += f
     r.clipped_samples = np.uint32(clipped)
