@@ -86,12 +86,12 @@ def to_canonical(sensor: Sensor, payload: np.ndarray, out: np.ndarray | None = N
     return sensor.raw_to_canonical(payload, out)
 
 
-def iter_capture_frames(reader: CaptureReader, sensor: Sensor, start: int = 0,
+def iter_capture_frames(reader: CaptureReader, sensor: Sensor, first: int = 0,
                         stop: int | None = None) -> Iterator[tuple[int, float, np.ndarray]]:
     """(sequence, timestamp_s, canonical frame) for each readable frame, in order (of the frame indexes
-    start..stop-1 only, if given). The frame buffer is reused: copy it to keep it."""
+    first..stop-1 only, if given). The frame buffer is reused: copy it to keep it."""
     buf = np.empty((sensor.chirps_per_frame, sensor.n_rx, sensor.samples_per_chirp), np.complex64)
-    for f in reader.frames(start, stop):
+    for f in reader.frames(first, stop):
         try:
             yield f.sequence, f.timestamp_s, to_canonical(sensor, f.payload, buf)
         except CubecastError as exc:

@@ -36,7 +36,7 @@ def iter_processed(reader: CaptureReader, pipeline: Pipeline, progress: bool = F
     """(sequence, timestamp_s, records) for every readable frame of a capture (of the frame indexes
     start..stop-1 only, if given: `cubecast batch`), in order; frames without points give an empty
     record array."""
-    frames = iter_capture_frames(reader, pipeline.sensor, start, stop)
+    frames = iter_capture_frames(reader, pipeline.sensor, first=start, stop=stop)
     if progress:
         from tqdm import tqdm
         total = len(reader) - (reader.counts["repeated"] if reader.skip_repeated else 0)
