@@ -848,8 +848,10 @@ def test_single_source_false_split_rate_agrees_with_design(snr_db):
     res = est.estimate(x)
     lo, hi = binomial_band(n, est.settings.split_false_alarm)
     assert lo <= np.sum(np.bincount(res.det_index, minlength=n) >= 2) <= hi
+    # an unsplit source's point stays on it (a false split's two points straddle the source)
+    counts = np.bincount(res.det_index, minlength=n)
     first = strongest_per_det(res, n)
-    assert np.max(np.abs(res.u[first] - u)) < 0.05
+    assert np.max(np.abs(res.u[first] - u)[counts == 1]) < 0.05
 
 
 def test_a_third_source_needs_its_own_test():

@@ -75,7 +75,8 @@ from ..settings import ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
-from .angle_residual import fit_residuals, residual_peaks
+from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
+from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
 from .bounds import crb_unit_covariance
 from .fft import ifft_unnormalised_inplace
@@ -308,11 +309,15 @@ class AngleEstimator:
         # the split test (angle_split.py): critical value of the P-th source at index P
         self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
                                                     self._do_w, settings.max_peaks, settings.split_false_alarm)
-        self._q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, settings.max_peaks)])
 
         kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
         self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
         self._power = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.float64)
+        # step 7: a_i^H a_j = pattern[i - j] for grid directions i, j (the cell counts' transform)
+        fz = np.exp(2j * np.pi * np.outer(np.arange(self.n_fft_z), np.arange(grid.n_z)) / self.n_fft_z)
+        fxm = np.exp(2j * np.pi * np.outer(np.arange(grid.n_x), np.arange(self.n_fft_x)) / self.n_fft_x)
+        self._pattern = fz @ grid.counts.astype(np.complex128) @ fxm
+        self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
 
@@ -333,8 +338,11 @@ class AngleEstimator:
         self._pk_p = np.empty(capacity * mp, dtype=np.float64)
         self._resid = np.empty((capacity, g.n_virt), dtype=np.complex64)
         self._open = np.empty(capacity, dtype=np.bool_)
-        self._new_iz = np.empty(capacity, dtype=np.int64)
-        self._new_ix = np.empty(capacity, dtype=np.int64)
+        self._new_n = np.empty(capacity, dtype=np.int64)
+        self._new_u = np.empty((capacity, mp), dtype=np.float64)
+        self._new_w = np.empty((capacity, mp), dtype=np.float64)
+        self._res_iz = np.empty(capacity, dtype=np.int64)
+        self._res_ix = np.empty(capacity, dtype=np.int64)
 
     def _check(self, snapshots) -> np.ndarray:
         x = np.asarray(snapshots)
@@ -399,41 +407,83 @@ class AngleEstimator:
                     self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, keep, u, w, p)
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
-        """Step 7 (angle_residual.py): a target the FFT stage did not separate shows in the residual of
-        the fit. For the snapshots with a strong single-tone residual, the residual's peak joins
-        their kept peaks and step 6 runs again on them. Returns the peak arrays (new ones when
-        any snapshot gained a peak, with its old rows left unkept)."""
+        """Step 7 (angle_residual.py): a source the FFT stage did not separate. For every snapshot with
+        fewer than max_peaks kept peaks, alternating projection on the grid proposes one more source
+        (moving the kept ones too); where the proposal's grid fit could pass the split test, all are
+        refined jointly (step 6) from it, and the larger set replaces the kept one when it passes
+        the split test against the kept set's own misfit. Repeated while snapshots gain, up to
+        max_peaks. Returns the peak arrays (new ones when any snapshot gained, the old rows of
+        a gaining snapshot left unkept)."""
         n = x.shape[0]
-        resid, open_slot = self._resid[:n], self._open[:n]
-        fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, self.settings.max_peaks,
-                      resid, open_slot)
-        fx = self._row_spectra(resid, self._w_window)
-        new_iz, new_ix = self._new_iz[:n], self._new_ix[:n]
-        n_new = residual_peaks(fx, self._dft_z, n, self._visible_f, open_slot, self.grid.n_cells, self._q_min,
-                               self._power, self._acc_re, self._acc_im, new_iz, new_ix)
-        if n_new == 0:
-            return n_found, det, keep, u, w, p
-        # the gaining snapshots' kept peaks plus the new one (rank 0: in a pair the array cannot
-        # separate, the new peak is the one that goes), refined jointly as a sub-batch
-        keep, det = keep[:n_found].copy(), det[:n_found]
-        gain = np.flatnonzero(new_iz >= 0)
-        rows = np.flatnonzero(keep & (new_iz >= 0)[det])  # grouped by snapshot, ascending like gain
-        count = np.bincount(det[rows], minlength=n)[gain] + 1
+        mp = self.settings.max_peaks
+        cand = np.ones(n, np.bool_)
+        y_energy = np.sum(np.abs(x.astype(np.complex128) * self._cal128) ** 2, axis=1)
+        for _round in range(mp - 1):
+            resid, open_slot = self._resid[:n], self._open[:n]
+            fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, resid, open_slot)
+            open_slot &= cand
+            if not open_slot.any():
+                break
+            r_energy = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+            res_iz, res_ix = self._res_iz[:n], self._res_ix[:n]
+            q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, mp)])
+            residual_peaks(self._row_spectra(resid, self._w_window), self._dft_z, n, self._visible_f, open_slot,
+                           self.grid.n_cells, q_min, self._power, self._acc_re, self._acc_im, res_iz, res_ix)
+            fx = self._row_spectra(x, self._w_sum)  # the same buffer as the residual's rows above
+            new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
+            n_new = further_sources(fx, self._dft_z, self._pattern, self._visible_f, n, open_slot, n_found, det,
+                                    keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, self.split_critical,
+                                    _RESIDUAL_SCREEN, self.grid.n_virt / _MAX_INFLATION, res_iz, res_ix, self._img,
+                                    new_n, new_u, new_w)
+            if n_new == 0:
+                break
+            n_found, det, keep, u, w, p, cand = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
+                                                                r_energy)
+            if not cand.any():
+                break
+        return n_found, det, keep, u, w, p
+
+    def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy):
+        """The proposed sets (further_sources) refined jointly as a sub-batch (step 6); a snapshot takes
+        its refined set when all of it survived and it passes the split test against the misfit the
+        kept set left (r_energy). Returns the peak arrays and which snapshots gained."""
+        n = x.shape[0]
+        gain = np.flatnonzero(new_n > 0)
+        count = new_n[gain]
         sub_det = np.repeat(np.arange(gain.size), count)
-        new_at = np.cumsum(count) - 1  # each snapshot's new peak comes last
-        old_at = np.ones(sub_det.size, np.bool_)
-        old_at[new_at] = False
-        sub_u, sub_w, sub_p = (np.empty(sub_det.size) for _ in range(3))
-        sub_u[old_at], sub_w[old_at], sub_p[old_at] = u[rows], w[rows], p[rows]
-        sub_u[new_at], sub_w[new_at], sub_p[new_at] = self.u_grid[new_ix[gain]], self.w_grid[new_iz[gain]], 0.0
+        slot = np.arange(sub_det.size) - np.repeat(np.cumsum(count) - count, count)
+        sub_u = new_u[gain[sub_det], slot].copy()
+        sub_w = new_w[gain[sub_det], slot].copy()
+        # rank (which of an inseparable pair stays): the kept peaks' powers in order, the new one last
+        keep, det = keep[:n_found].copy(), det[:n_found]
+        rows = np.flatnonzero(keep & (new_n > 0)[det])  # grouped by snapshot, ascending like gain
+        last = slot == np.repeat(count - 1, count)
+        sub_p = np.zeros(sub_det.size)
+        sub_p[~last] = p[rows]
         sub_keep = np.ones(sub_det.size, np.bool_)
-        self._relax(np.ascontiguousarray(x[gain]), sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
-        keep[rows] = False
-        det_all = np.concatenate([det, gain[sub_det]])
+        xs = np.ascontiguousarray(x[gain])
+        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        resid = np.empty((gain.size, self.grid.n_virt), np.complex64)
+        open_slot = np.empty(gain.size, np.bool_)
+        fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
+                      self.settings.max_peaks + 1, resid, open_slot)
+        e_more = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+        e_fewer = r_energy[gain]
+        n_kept = np.bincount(sub_det[sub_keep], minlength=gain.size)
+        crit = self.split_critical[np.minimum(count, self.split_critical.size - 1)]
+        floor = _MISFIT_FLOOR * np.sum(np.abs(xs.astype(np.complex128) * self._cal128) ** 2, axis=1)
+        won = (n_kept == count) & (e_fewer - e_more >= crit * np.maximum(e_fewer, floor))
+        cand = np.zeros(n, np.bool_)
+        if not won.any():
+            return n_found, det, keep, u, w, p, cand
+        cand[gain[won]] = True
+        keep[np.flatnonzero(keep & cand[det])] = False
+        take = won[sub_det]
+        det_all = np.concatenate([det, gain[sub_det[take]]])
         order = np.argsort(det_all, kind="stable")  # each snapshot's rows together, the new ones last
-        return (det_all.size, det_all[order], np.concatenate([keep, sub_keep])[order],
-                np.concatenate([u[:n_found], sub_u])[order], np.concatenate([w[:n_found], sub_w])[order],
-                np.concatenate([p[:n_found], sub_p])[order])
+        return (det_all.size, det_all[order], np.concatenate([keep, sub_keep[take]])[order],
+                np.concatenate([u[:n_found], sub_u[take]])[order], np.concatenate([w[:n_found], sub_w[take]])[order],
+                np.concatenate([p[:n_found], sub_p[take]])[order], cand)
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).

@@ -23,7 +23,9 @@ from .angle_joint import group_end, joint_amplitudes, largest_group
 from .angle_peaks import power_image
 from .angle_refine import phasors
 
-__all__ = ["fit_residuals", "residual_peaks"]
+__all__ = ["fit_residuals", "residual_peaks", "beam_image", "further_sources"]
+
+_MAX_SWEEPS = 6  # alternating-projection sweeps over the sources on the grid
 
 @njit(cache=True)
 def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot):
@@ -104,5 +106,206 @@ def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, n_cells, q_min, power
             continue
         out_iz[d] = biz
         out_ix[d] = bix
+        count += 1
+    return count
+
+
+@njit(cache=True)
+def beam_image(fx, dft_z, d, out):
+    """out[kz, kx] = sum_iz dft_z[kz, iz] fx[iz, d, kx]: the complex beam a^H y of snapshot d at every
+    grid direction (fx: its grid rows transformed along x, the cells holding channel sums)."""
+    nz, nx = out.shape
+    for iz in range(nz):
+        for ix in range(nx):
+            out[iz, ix] = 0j
+        for r in range(fx.shape[0]):
+            c = complex(dft_z[iz, r])
+            row = fx[r, d]
+            for ix in range(nx):
+                out[iz, ix] += c * complex(row[ix])
+
+
+@njit(cache=True)
+def _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp):
+    """gi = inverse of the Gram matrix G_ab = a_a^H a_b = pattern[iz_a - iz_b, ix_a - ix_b] of the grid
+    sources 0..n_src-1 but `skip` (Gauss-Jordan on at most a few sources). Returns the count m, or
+    -1 when G is singular."""
+    nz, nx = pattern.shape
+    m = 0
+    for a in range(n_src):
+        if a == skip:
+            continue
+        b2 = 0
+        for b in range(n_src):
+            if b == skip:
+                continue
+            tmp[m, b2] = pattern[(iz[a] - iz[b]) % nz, (ix[a] - ix[b]) % nx]
+            b2 += 1
+        m += 1
+    for a in range(m):
+        for b in range(m):
+            gi[a, b] = 1.0 + 0j if a == b else 0j
+    for c in range(m):
+        piv = tmp[c, c]
+        if abs(piv) <= 1e-9 * abs(pattern[0, 0]):
+            return -1
+        for b in range(m):
+            tmp[c, b] /= piv
+            gi[c, b] /= piv
+        for a in range(m):
+            if a != c:
+                f = tmp[a, c]
+                for b in range(m):
+                    tmp[a, b] -= f * tmp[c, b]
+                    gi[a, b] -= f * gi[c, b]
+    return m
+
+
+@njit(cache=True)
+def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, h, d_min):
+    """Alternating-projection step: with the grid sources 0..n_src-1 but `skip` held, the grid direction
+    theta (visible, n / D(theta) at most the variance-inflation limit) maximising the energy a source
+    there adds to the held ones' projection, |a^H r|^2 / D with r = y - A beta the residual of their
+    least-squares fit and D = n - g^H G^-1 g, g_b = a_b^H a (theta) (the part of a(theta) they do not
+    explain). Returns (that energy, iz, ix); (-1, -1, -1) when none qualifies."""
+    nz, nx = img.shape
+    m = _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp)
+    if m < 0:
+        return -1.0, -1, -1
+    # beta = G^-1 A^H y, A^H y the beam at the held sources
+    held = 0
+    for a in range(n_src):
+        if a != skip:
+            h[held] = img[iz[a], ix[a]]
+            held += 1
+    for a in range(m):
+        acc = 0j
+        for b in range(m):
+            acc += gi[a, b] * h[b]
+        beta[a] = acc
+    n = pattern[0, 0].real
+    best, bz, bx = -1.0, -1, -1
+    for jz in range(nz):
+        for jx in range(nx):
+            if visible_f[jz, jx] == 0.0:
+                continue
+            # g_b = a_b^H a(theta) = pattern[b - theta]; a(theta)^H A beta = sum_b conj(g_b) beta_b
+            held = 0
+            r = img[jz, jx]
+            for a in range(n_src):
+                if a != skip:
+                    h[held] = pattern[(iz[a] - jz) % nz, (ix[a] - jx) % nx]
+                    r -= h[held].conjugate() * beta[held]
+                    held += 1
+            quad = 0.0
+            for a in range(m):
+                acc = 0j
+                for b in range(m):
+                    acc += gi[a, b] * h[b]
+                quad += (h[a].conjugate() * acc).real
+            den = n - quad
+            if den < d_min:
+                continue
+            e = (r.real * r.real + r.imag * r.imag) / den
+            if e > best:
+                best, bz, bx = e, jz, jx
+    return best, bz, bx
+
+
+@njit(cache=True)
+def _explained(img, pattern, iz, ix, n_src, gi, tmp, h):
+    """||P_A y||^2 = b^H G^-1 b of the grid sources 0..n_src-1 (b their beams): the energy their joint
+    least-squares fit explains; -1 when G is singular."""
+    m = _gram_inverse(pattern, iz, ix, n_src, -1, gi, tmp)
+    if m < 0:
+        return -1.0
+    for a in range(m):
+        h[a] = img[iz[a], ix[a]]
+    acc = 0.0
+    for a in range(m):
+        s = 0j
+        for b in range(m):
+            s += gi[a, b] * h[b]
+        acc += (h[a].conjugate() * s).real
+    return acc
+
+
+@njit(cache=True)
+def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, det, keep, u, w, u_grid, w_grid,
+                    energy, resid_energy, crit, screen, d_min, res_iz, res_ix, img, out_n, out_u, out_w):
+    """Step 7, second half: alternating projection on the grid (module doc) for every open snapshot.
+
+    fx: the calibrated snapshots' grid rows (cell sums) transformed along x; pattern[dz, dx] = sum of
+    the cell counts times exp(+j 2 pi (dz iz / n_fft_z + dx ix / n_fft_x)), so that a_i^H a_j =
+    pattern[i - j] for grid directions i, j; energy[d] = ||y_d||^2, resid_energy[d] = the misfit of
+    its kept peaks' joint fit (fit_residuals); crit[P] the split test's critical value of the P-th
+    source; d_min = n_virt / (the variance-inflation limit). The kept peaks start at their nearest
+    grid directions, the further one where it explains most with them held; then each source in
+    turn moves to its best grid direction with the others held, until a sweep moves none (at most
+    _MAX_SWEEPS). The set is a candidate when its grid misfit leaves g = (resid_energy - misfit) /
+    resid_energy >= screen * crit[P + 1]: out_n[d] = P + 1 and out_iz[d, :P + 1], out_ix[d, :P + 1]
+    its grid directions, the kept peaks first in their order; else out_n[d] = 0. Returns the number
+    of candidates."""
+    nz, nx = pattern.shape
+    mp = out_u.shape[1]
+    bin_u = u_grid[1] - u_grid[0] if nx > 1 else 1.0
+    bin_w = w_grid[1] - w_grid[0] if nz > 1 else 1.0
+    iz = np.empty(mp, np.int64)
+    ix = np.empty(mp, np.int64)
+    gi = np.empty((mp, mp), np.complex128)
+    tmp = np.empty((mp, mp), np.complex128)
+    beta = np.empty(mp, np.complex128)
+    h = np.empty(mp, np.complex128)
+    for d in range(n_det):
+        out_n[d] = 0
+    count = 0
+    k0 = 0
+    while k0 < n_found:
+        k1 = group_end(det, n_found, k0)
+        d = det[k0]
+        n_src = 0
+        for k in range(k0, k1):
+            if keep[k] and n_src < mp - 1:
+                iz[n_src] = int(round(w[k] / bin_w)) % nz if nz > 1 else 0
+                ix[n_src] = int(round(u[k] / bin_u)) % nx if nx > 1 else 0
+                out_u[d, n_src] = u[k]
+                out_w[d, n_src] = w[k]
+                n_src += 1
+        k0 = k1
+        if not open_slot[d] or n_src == 0 or not resid_energy[d] > 0.0:
+            continue
+        if res_iz[d] >= 0:  # the residual's own peak passed its screen: the kept peaks stay as they are
+            out_u[d, n_src] = u_grid[res_ix[d]]
+            out_w[d, n_src] = w_grid[res_iz[d]]
+            out_n[d] = n_src + 1
+            count += 1
+            continue
+        beam_image(fx, dft_z, d, img)
+        e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min)
+        if bz < 0:
+            continue
+        iz[n_src] = bz
+        ix[n_src] = bx
+        n_src += 1
+        for _ in range(_MAX_SWEEPS):
+            moved = False
+            for a in range(n_src):
+                e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, a, gi, tmp, beta, h, d_min)
+                if bz >= 0 and (bz != iz[a] or bx != ix[a]):
+                    iz[a] = bz
+                    ix[a] = bx
+                    moved = True
+            if not moved:
+                break
+        explained = _explained(img, pattern, iz, ix, n_src, gi, tmp, h)
+        if explained < 0.0:
+            continue
+        g = (resid_energy[d] - max(energy[d] - explained, 0.0)) / resid_energy[d]
+        if g < screen * crit[min(n_src, crit.size - 1)]:
+            continue
+        out_n[d] = n_src
+        for a in range(n_src):
+            out_u[d, a] = u_grid[ix[a]]
+            out_w[d, a] = w_grid[iz[a]]
         count += 1
     return count
