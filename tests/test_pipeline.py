@@ -418,13 +418,17 @@ def test_point_kernel_matches_the_bound_functions(layout):
     from scipy.spatial.transform import Rotation
     pose_r = Rotation.from_euler("ZXY", [-30.0, 10.0, -5.0], degrees=True).as_matrix()
     pose_t = np.array([1.5, -0.4, 2.25])
-    fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl_det, cell_snr, element_snr,
-                sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), pose_r, pose_t, np.empty(n_det),
-                out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
-
+    # each source's share of its cell's signal energy, and its bound at 2 SNR = 1 (for a lone source the
+    # single-source one; AngleResult gives each source of a pair its own, see test_angle)
     first = np.zeros(n_det)
     np.maximum.at(first, det_index, peak)
     share = peak / first[det_index]
+    var_u1, var_w1, cov1, has_x, has_z = crb_unit_covariance(pos, lam)
+    unit = np.tile([var_u1, var_w1, cov1], (n_pts, 1))
+    fill_points(range_bin, bin_m, bias, det_index, az, el, share.astype(np.float32), doppler_hz, half_wl_det,
+                cell_snr, element_snr, sigma_r, sigma_v, centre, unit, has_x, has_z, pose_r, pose_t,
+                out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
+    share = share.astype(np.float32).astype(np.float64)
     snr_pt = element_snr[det_index] * share
     a, e = np.radians(az.astype(np.float64)), np.radians(el.astype(np.float64))
     # sensor frame (project convention): x right, y boresight, z up; u the point's direction

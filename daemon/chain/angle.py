@@ -78,7 +78,7 @@ from .angle_refine import refine_peaks
 from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
 from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
-from .bounds import crb_unit_covariance
+from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
 
@@ -175,6 +175,12 @@ class AngleResult:
                             |a_i|^2 * n_virt with a_i the joint least-squares amplitude (equal
                             to the above for a lone target; a noiseless unit-amplitude target
                             again gives n_virt whatever the others do).
+    snr_share      float32  the source's share of the snapshot's signal energy, n_virt |a_k|^2 / ||A a||^2
+                            (joint least-squares amplitudes a; 1 for a lone source): its SNR per element
+                            is this times the snapshot's (bounds.source_bounds)
+    crb_unit       float64  [n, 3]: (var_u, var_w, cov_uw) of the source's deterministic Cramer-Rao bound
+                            given the others in its snapshot, at 2 |a_k|^2 / sigma^2 = 1 (divide by twice
+                            its SNR); a lone source's is crb_unit_covariance's (bounds.source_bounds)
     """
 
     det_index: np.ndarray
@@ -183,6 +189,8 @@ class AngleResult:
     u: np.ndarray
     w: np.ndarray
     peak_power: np.ndarray
+    snr_share: np.ndarray
+    crb_unit: np.ndarray
 
     def __len__(self) -> int:
         return int(self.det_index.size)
@@ -306,6 +314,8 @@ class AngleEstimator:
         pos = grid.positions_m
         self._kx = k0 * (pos[:, 0] - pos[:, 0].mean())
         self._kz = k0 * (pos[:, 2] - pos[:, 2].mean())
+        # a lone source's bound at 2 SNR = 1 (pairs: bounds.source_bounds)
+        self._crb_one = np.array(crb_unit_covariance(grid.positions_m, lam)[:3])
         # the split test (angle_split.py): critical value of the P-th source at index P
         self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
                                                     self._do_w, settings.max_peaks, settings.split_false_alarm)
@@ -397,9 +407,13 @@ class AngleEstimator:
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
         n_kept = _kept_peaks(n_found, keep, det, u, w, p, self._power_norm, det_index, values)
-        return AngleResult(det_index=det_index[:n_kept], azimuth_deg=values[0, :n_kept],
+        det_index = det_index[:n_kept]
+        share, crb = np.empty(n_kept, np.float32), np.empty((n_kept, 3), np.float64)
+        source_bounds(x, self._cal128, self._kx, self._kz, det_index, values[2, :n_kept].astype(np.float64),
+                      values[3, :n_kept].astype(np.float64), self._do_u, self._do_w, self._crb_one, share, crb)
+        return AngleResult(det_index=det_index, azimuth_deg=values[0, :n_kept],
                            elevation_deg=values[1, :n_kept], u=values[2, :n_kept], w=values[3, :n_kept],
-                           peak_power=values[4, :n_kept])
+                           peak_power=values[4, :n_kept], snr_share=share, crb_unit=crb)
 
     def _relax(self, x, n_found, det, keep, u, w, p):
         """Step 6 (angle_joint.py) on the peak arrays, in place."""
@@ -507,4 +521,5 @@ class AngleEstimator:
 
 def _empty_result() -> AngleResult:
     f = np.empty(0, dtype=np.float32)
-    return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy())
+    return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy(), f.copy(),
+                       np.empty((0, 3), np.float64))
