@@ -45,7 +45,7 @@ class ProcessingSettings:
     angle_fft_size_azimuth: int = 0  # 0 = automatic: max(64, next power of two >= 2 x the columns)
     angle_fft_size_elevation: int = 0  # 0 = automatic: max(16, next power of two >= 4 x the rows)
     angle_peak_threshold_db: float = -9.0
-    angle_max_peaks: int = 2
+    angle_max_peaks: int = 3  # sources per range-Doppler cell at most (one, two or three)
     angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
     # output
     max_points: int = 1024

@@ -351,6 +351,9 @@ class AngleEstimator:
         self._new_n = np.empty(capacity, dtype=np.int64)
         self._new_u = np.empty((capacity, mp), dtype=np.float64)
         self._new_w = np.empty((capacity, mp), dtype=np.float64)
+        self._first_n = np.empty(capacity, dtype=np.int64)
+        self._first_u = np.empty((capacity, mp), dtype=np.float64)
+        self._first_w = np.empty((capacity, mp), dtype=np.float64)
         self._res_iz = np.empty(capacity, dtype=np.int64)
         self._res_ix = np.empty(capacity, dtype=np.int64)
 
@@ -445,22 +448,30 @@ class AngleEstimator:
                            self.grid.n_cells, q_min, self._power, self._acc_re, self._acc_im, res_iz, res_ix)
             fx = self._row_spectra(x, self._w_sum)  # the same buffer as the residual's rows above
             new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
+            first_n, first_u, first_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
             n_new = further_sources(fx, self._dft_z, self._pattern, self._visible_f, n, open_slot, n_found, det,
                                     keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, self.split_critical,
                                     _RESIDUAL_SCREEN, self.grid.n_virt / _MAX_INFLATION, res_iz, res_ix, self._img,
-                                    new_n, new_u, new_w)
+                                    new_n, new_u, new_w, first_n, first_u, first_w)
             if n_new == 0:
                 break
+            # the largest proposed set first; where it did not win, the smallest
             n_found, det, keep, u, w, p, cand = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
                                                                 r_energy)
+            retry = np.where(~cand & (first_n < new_n), first_n, 0)
+            if retry.any():
+                n_found, det, keep, u, w, p, more = self._try_sets(x, n_found, det, keep, u, w, p, retry, first_u,
+                                                                    first_w, r_energy)
+                cand |= more
             if not cand.any():
                 break
         return n_found, det, keep, u, w, p
 
     def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy):
-        """The proposed sets (further_sources) refined jointly as a sub-batch (step 6); a snapshot takes
-        its refined set when all of it survived and it passes the split test against the misfit the
-        kept set left (r_energy). Returns the peak arrays and which snapshots gained."""
+        """The proposed sets (further_sources) refined jointly as a sub-batch (step 6, which tests them
+        from the most sources down); a snapshot takes its refined set when it kept more sources than
+        before and passes the split test of one more source against the misfit the kept set left
+        (r_energy). Returns the peak arrays and which snapshots gained."""
         n = x.shape[0]
         gain = np.flatnonzero(new_n > 0)
         count = new_n[gain]
@@ -471,22 +482,26 @@ class AngleEstimator:
         # rank (which of an inseparable pair stays): the kept peaks' powers in order, the new one last
         keep, det = keep[:n_found].copy(), det[:n_found]
         rows = np.flatnonzero(keep & (new_n > 0)[det])  # grouped by snapshot, ascending like gain
-        last = slot == np.repeat(count - 1, count)
+        before = np.bincount(det[rows], minlength=n)[gain]  # kept peaks of each gaining snapshot
         sub_p = np.zeros(sub_det.size)
-        sub_p[~last] = p[rows]
-        sub_keep = np.ones(sub_det.size, np.bool_)
+        sub_p[slot < before[sub_det]] = p[rows]
         xs = np.ascontiguousarray(x[gain])
-        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
-        resid = np.empty((gain.size, self.grid.n_virt), np.complex64)
-        open_slot = np.empty(gain.size, np.bool_)
-        fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
-                      self.settings.max_peaks + 1, resid, open_slot)
-        e_more = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+        sub_keep, e_more, n_kept = self._refine_sets(xs, sub_det, sub_u, sub_w, sub_p)
         e_fewer = r_energy[gain]
-        n_kept = np.bincount(sub_det[sub_keep], minlength=gain.size)
-        crit = self.split_critical[np.minimum(count, self.split_critical.size - 1)]
         floor = _MISFIT_FLOOR * np.sum(np.abs(xs.astype(np.complex128) * self._cal128) ** 2, axis=1)
-        won = (n_kept == count) & (e_fewer - e_more >= crit * np.maximum(e_fewer, floor))
+        won = (n_kept == before + 1) & self._passes(e_fewer, e_more, before + 1, floor)
+        jump = np.flatnonzero(n_kept == before + 2)
+        if jump.size:
+            # two more at once: the middle set (all but the weakest, step 6 writes them strongest first)
+            # must pass against the kept set, and the full set against the middle one
+            is_jump = np.isin(sub_det, jump)
+            rank_in = np.arange(sub_det.size) - np.repeat(np.cumsum(count) - count, count)
+            mid = np.flatnonzero(is_jump & sub_keep & (rank_in < n_kept[sub_det] - 1))
+            mid_det = np.searchsorted(jump, sub_det[mid])
+            mid_keep, e_mid, mid_kept = self._refine_sets(np.ascontiguousarray(xs[jump]), mid_det, sub_u[mid].copy(),
+                                                          sub_w[mid].copy(), sub_p[mid].copy())
+            won[jump] = ((mid_kept == before[jump] + 1) & self._passes(e_fewer[jump], e_mid, before[jump] + 1, floor[jump])
+                         & self._passes(e_mid, e_more[jump], before[jump] + 2, floor[jump]))
         cand = np.zeros(n, np.bool_)
         if not won.any():
             return n_found, det, keep, u, w, p, cand
@@ -498,6 +513,24 @@ class AngleEstimator:
         return (det_all.size, det_all[order], np.concatenate([keep, sub_keep[take]])[order],
                 np.concatenate([u[:n_found], sub_u[take]])[order], np.concatenate([w[:n_found], sub_w[take]])[order],
                 np.concatenate([p[:n_found], sub_p[take]])[order], cand)
+
+    def _refine_sets(self, xs, sub_det, sub_u, sub_w, sub_p):
+        """Step 6 on the sets of sub_det (snapshot rows of xs), in place on sub_u, sub_w, sub_p; returns
+        (keep, the kept set's misfit per snapshot, its size)."""
+        sub_keep = np.ones(sub_det.size, np.bool_)
+        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        resid = np.empty((xs.shape[0], self.grid.n_virt), np.complex64)
+        open_slot = np.empty(xs.shape[0], np.bool_)
+        fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
+                      self.settings.max_peaks + 1, resid, open_slot)
+        misfit = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+        return sub_keep, misfit, np.bincount(sub_det[sub_keep], minlength=xs.shape[0])
+
+    def _passes(self, e_fewer, e_more, n_sources, floor):
+        """The split test (angle_split.py) of the n_sources-th source per snapshot: it explains at least
+        the fraction g_crit of the misfit left without it (a misfit counting at least `floor`)."""
+        crit = self.split_critical[np.minimum(n_sources, self.split_critical.size - 1)]
+        return e_fewer - e_more >= crit * np.maximum(e_fewer, floor)
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).

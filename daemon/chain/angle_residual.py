@@ -213,6 +213,22 @@ def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, 
 
 
 @njit(cache=True)
+def _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min):
+    """Alternating projection: each grid source in turn to its best direction with the others held
+    (_best_position), until a sweep moves none (at most _MAX_SWEEPS)."""
+    for _ in range(_MAX_SWEEPS):
+        moved = False
+        for a in range(n_src):
+            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, a, gi, tmp, beta, h, d_min)
+            if bz >= 0 and (bz != iz[a] or bx != ix[a]):
+                iz[a] = bz
+                ix[a] = bx
+                moved = True
+        if not moved:
+            break
+
+
+@njit(cache=True)
 def _explained(img, pattern, iz, ix, n_src, gi, tmp, h):
     """||P_A y||^2 = b^H G^-1 b of the grid sources 0..n_src-1 (b their beams): the energy their joint
     least-squares fit explains; -1 when G is singular."""
@@ -232,7 +248,8 @@ def _explained(img, pattern, iz, ix, n_src, gi, tmp, h):
 
 @njit(cache=True)
 def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, det, keep, u, w, u_grid, w_grid,
-                    energy, resid_energy, crit, screen, d_min, res_iz, res_ix, img, out_n, out_u, out_w):
+                    energy, resid_energy, crit, screen, d_min, res_iz, res_ix, img, out_n, out_u, out_w, first_n,
+                    first_u, first_w):
     """Step 7, second half: alternating projection on the grid (module doc) for every open snapshot.
 
     fx: the calibrated snapshots' grid rows (cell sums) transformed along x; pattern[dz, dx] = sum of
@@ -258,54 +275,66 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
     h = np.empty(mp, np.complex128)
     for d in range(n_det):
         out_n[d] = 0
+        first_n[d] = 0
     count = 0
     k0 = 0
     while k0 < n_found:
         k1 = group_end(det, n_found, k0)
         d = det[k0]
+        k_first = k0
         n_src = 0
         for k in range(k0, k1):
             if keep[k] and n_src < mp - 1:
                 iz[n_src] = int(round(w[k] / bin_w)) % nz if nz > 1 else 0
                 ix[n_src] = int(round(u[k] / bin_u)) % nx if nx > 1 else 0
-                out_u[d, n_src] = u[k]
-                out_w[d, n_src] = w[k]
                 n_src += 1
         k0 = k1
+        n_kept = n_src
         if not open_slot[d] or n_src == 0 or not resid_energy[d] > 0.0:
             continue
-        if res_iz[d] >= 0:  # the residual's own peak passed its screen: the kept peaks stay as they are
-            out_u[d, n_src] = u_grid[res_ix[d]]
-            out_w[d, n_src] = w_grid[res_iz[d]]
-            out_n[d] = n_src + 1
-            count += 1
-            continue
         beam_image(fx, dft_z, d, img)
-        e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min)
-        if bz < 0:
-            continue
-        iz[n_src] = bz
-        ix[n_src] = bx
-        n_src += 1
-        for _ in range(_MAX_SWEEPS):
-            moved = False
-            for a in range(n_src):
-                e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, a, gi, tmp, beta, h, d_min)
-                if bz >= 0 and (bz != iz[a] or bx != ix[a]):
-                    iz[a] = bz
-                    ix[a] = bx
-                    moved = True
-            if not moved:
+        n_out = 0
+        e_prev = resid_energy[d]
+        while n_src < mp:
+            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min)
+            if bz < 0:
                 break
-        explained = _explained(img, pattern, iz, ix, n_src, gi, tmp, h)
-        if explained < 0.0:
-            continue
-        g = (resid_energy[d] - max(energy[d] - explained, 0.0)) / resid_energy[d]
-        if g < screen * crit[min(n_src, crit.size - 1)]:
-            continue
-        out_n[d] = n_src
-        for a in range(n_src):
-            out_u[d, a] = u_grid[ix[a]]
-            out_w[d, a] = w_grid[iz[a]]
-        count += 1
+            iz[n_src] = bz
+            ix[n_src] = bx
+            n_src += 1
+            _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min)
+            explained = _explained(img, pattern, iz, ix, n_src, gi, tmp, h)
+            if explained < 0.0:
+                break
+            e_now = max(energy[d] - explained, 0.0)
+            if e_prev - e_now >= screen * crit[min(n_src, crit.size - 1)] * e_prev:
+                # this many could pass: the largest such set is proposed, and the smallest
+                if n_out == 0:
+                    first_n[d] = n_src
+                    for a in range(n_src):
+                        first_u[d, a] = u_grid[ix[a]]
+                        first_w[d, a] = w_grid[iz[a]]
+                n_out = n_src
+                for a in range(n_src):
+                    out_u[d, a] = u_grid[ix[a]]
+                    out_w[d, a] = w_grid[iz[a]]
+            e_prev = e_now
+        if n_out == 0 and res_iz[d] >= 0:
+            # the residual's own peak passed its screen: the kept peaks as they are, and it
+            a = 0
+            for k in range(k_first, k0):
+                if keep[k] and a < n_kept:
+                    out_u[d, a] = u[k]
+                    out_w[d, a] = w[k]
+                    a += 1
+            n_out = n_kept + 1
+            out_u[d, n_kept] = u_grid[res_ix[d]]
+            out_w[d, n_kept] = w_grid[res_iz[d]]
+            first_n[d] = n_out
+            for a in range(n_out):
+                first_u[d, a] = out_u[d, a]
+                first_w[d, a] = out_w[d, a]
+        if n_out > 0:
+            out_n[d] = n_out
+            count += 1
     return count
