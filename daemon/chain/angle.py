@@ -326,7 +326,10 @@ class AngleEstimator:
         # step 7: a_i^H a_j = pattern[i - j] for grid directions i, j (the cell counts' transform)
         fz = np.exp(2j * np.pi * np.outer(np.arange(self.n_fft_z), np.arange(grid.n_z)) / self.n_fft_z)
         fxm = np.exp(2j * np.pi * np.outer(np.arange(grid.n_x), np.arange(self.n_fft_x)) / self.n_fft_x)
-        self._pattern = fz @ grid.counts.astype(np.complex128) @ fxm
+        self._pattern = np.tile(fz @ grid.counts.astype(np.complex128) @ fxm, (2, 2))  # tiled: no modulo
+        # the grid search moves a source at most half a Rayleigh spacing (n_fft / n cells) per step
+        self._reach_z = max(1, self.n_fft_z // (2 * grid.n_z)) if grid.n_z > 1 else 0
+        self._reach_x = max(1, self.n_fft_x // (2 * grid.n_x)) if grid.n_x > 1 else 0
         self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
@@ -451,7 +454,8 @@ class AngleEstimator:
             first_n, first_u, first_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
             n_new = further_sources(fx, self._dft_z, self._pattern, self._visible_f, n, open_slot, n_found, det,
                                     keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, self.split_critical,
-                                    _RESIDUAL_SCREEN, self.grid.n_virt / _MAX_INFLATION, res_iz, res_ix, self._img,
+                                    _RESIDUAL_SCREEN, self.grid.n_virt / _MAX_INFLATION, self._reach_z,
+                                    self._reach_x, res_iz, res_ix, self._img,
                                     new_n, new_u, new_w, first_n, first_u, first_w)
             if n_new == 0:
                 break

@@ -130,7 +130,7 @@ def _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp):
     """gi = inverse of the Gram matrix G_ab = a_a^H a_b = pattern[iz_a - iz_b, ix_a - ix_b] of the grid
     sources 0..n_src-1 but `skip` (Gauss-Jordan on at most a few sources). Returns the count m, or
     -1 when G is singular."""
-    nz, nx = pattern.shape
+    nz, nx = pattern.shape[0] // 2, pattern.shape[1] // 2  # the pattern tiled 2 x 2
     m = 0
     for a in range(n_src):
         if a == skip:
@@ -139,7 +139,7 @@ def _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp):
         for b in range(n_src):
             if b == skip:
                 continue
-            tmp[m, b2] = pattern[(iz[a] - iz[b]) % nz, (ix[a] - ix[b]) % nx]
+            tmp[m, b2] = pattern[iz[a] - iz[b] + nz, ix[a] - ix[b] + nx]
             b2 += 1
         m += 1
     for a in range(m):
@@ -162,14 +162,31 @@ def _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp):
 
 
 @njit(cache=True)
-def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, h, d_min):
+def _scan(centre, reach, n, out):
+    """The indices centre - reach .. centre + reach modulo n (all of 0..n-1 when reach < 0 or the span
+    covers them) into out; returns their count."""
+    if reach < 0 or 2 * reach + 1 >= n:
+        for j in range(n):
+            out[j] = j
+        return n
+    for k in range(2 * reach + 1):
+        out[k] = (centre - reach + k) % n
+    return 2 * reach + 1
+
+
+@njit(cache=True)
+def _best_position(img, pattern2, visible_f, iz, ix, n_src, skip, gi, tmp, beta, h, d_min, reach_z, reach_x,
+                   rows, cols):
     """Alternating-projection step: with the grid sources 0..n_src-1 but `skip` held, the grid direction
     theta (visible, n / D(theta) at most the variance-inflation limit) maximising the energy a source
     there adds to the held ones' projection, |a^H r|^2 / D with r = y - A beta the residual of their
     least-squares fit and D = n - g^H G^-1 g, g_b = a_b^H a (theta) (the part of a(theta) they do not
-    explain). Returns (that energy, iz, ix); (-1, -1, -1) when none qualifies."""
+    explain). pattern2 is the pattern tiled 2 x 2 (no modulo in the loop). Searched: within reach_z
+    rows and reach_x columns of the moving source; for a new one (skip < 0) within twice that of any
+    held source (a source farther out is the residual search's: residual_peaks). rows, cols: scratch.
+    Returns (that energy, iz, ix); (-1, -1, -1) when none qualifies."""
     nz, nx = img.shape
-    m = _gram_inverse(pattern, iz, ix, n_src, skip, gi, tmp)
+    m = _gram_inverse(pattern2, iz, ix, n_src, skip, gi, tmp)
     if m < 0:
         return -1.0, -1, -1
     # beta = G^-1 A^H y, A^H y the beam at the held sources
@@ -183,10 +200,29 @@ def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, 
         for b in range(m):
             acc += gi[a, b] * h[b]
         beta[a] = acc
-    n = pattern[0, 0].real
+    n = pattern2[0, 0].real
     best, bz, bx = -1.0, -1, -1
-    for jz in range(nz):
-        for jx in range(nx):
+    if skip >= 0:
+        n_rows, n_cols = _scan(iz[skip], reach_z, nz, rows), _scan(ix[skip], reach_x, nx, cols)
+        return _scan_best(img, pattern2, visible_f, iz, ix, n_src, skip, gi, h, beta, m, n, d_min, rows, n_rows,
+                          cols, n_cols, best, bz, bx)
+    for c in range(n_src):  # a new source: near any held one
+        n_rows, n_cols = _scan(iz[c], 2 * reach_z, nz, rows), _scan(ix[c], 2 * reach_x, nx, cols)
+        best, bz, bx = _scan_best(img, pattern2, visible_f, iz, ix, n_src, skip, gi, h, beta, m, n, d_min, rows,
+                                  n_rows, cols, n_cols, best, bz, bx)
+    return best, bz, bx
+
+
+@njit(cache=True)
+def _scan_best(img, pattern2, visible_f, iz, ix, n_src, skip, gi, h, beta, m, n, d_min, rows, n_rows, cols, n_cols,
+               best, bz, bx):
+    """The scan of _best_position over the grid points rows x cols; returns the best (energy, iz, ix)
+    of these and the one passed in."""
+    nz, nx = img.shape
+    for r_k in range(n_rows):
+        jz = rows[r_k]
+        for c_k in range(n_cols):
+            jx = cols[c_k]
             if visible_f[jz, jx] == 0.0:
                 continue
             # g_b = a_b^H a(theta) = pattern[b - theta]; a(theta)^H A beta = sum_b conj(g_b) beta_b
@@ -194,15 +230,18 @@ def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, 
             r = img[jz, jx]
             for a in range(n_src):
                 if a != skip:
-                    h[held] = pattern[(iz[a] - jz) % nz, (ix[a] - jx) % nx]
+                    h[held] = pattern2[iz[a] - jz + nz, ix[a] - jx + nx]
                     r -= h[held].conjugate() * beta[held]
                     held += 1
-            quad = 0.0
-            for a in range(m):
-                acc = 0j
-                for b in range(m):
-                    acc += gi[a, b] * h[b]
-                quad += (h[a].conjugate() * acc).real
+            if m == 1:
+                quad = gi[0, 0].real * (h[0].real * h[0].real + h[0].imag * h[0].imag)
+            else:
+                quad = 0.0
+                for a in range(m):
+                    acc = 0j
+                    for b in range(m):
+                        acc += gi[a, b] * h[b]
+                    quad += (h[a].conjugate() * acc).real
             den = n - quad
             if den < d_min:
                 continue
@@ -213,13 +252,14 @@ def _best_position(img, pattern, visible_f, iz, ix, n_src, skip, gi, tmp, beta, 
 
 
 @njit(cache=True)
-def _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min):
+def _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min, reach_z, reach_x, rows, cols):
     """Alternating projection: each grid source in turn to its best direction with the others held
     (_best_position), until a sweep moves none (at most _MAX_SWEEPS)."""
     for _ in range(_MAX_SWEEPS):
         moved = False
         for a in range(n_src):
-            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, a, gi, tmp, beta, h, d_min)
+            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, a, gi, tmp, beta, h, d_min, reach_z,
+                                       reach_x, rows, cols)
             if bz >= 0 and (bz != iz[a] or bx != ix[a]):
                 iz[a] = bz
                 ix[a] = bx
@@ -248,8 +288,8 @@ def _explained(img, pattern, iz, ix, n_src, gi, tmp, h):
 
 @njit(cache=True)
 def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, det, keep, u, w, u_grid, w_grid,
-                    energy, resid_energy, crit, screen, d_min, res_iz, res_ix, img, out_n, out_u, out_w, first_n,
-                    first_u, first_w):
+                    energy, resid_energy, crit, screen, d_min, reach_z, reach_x, res_iz, res_ix, img, out_n, out_u,
+                    out_w, first_n, first_u, first_w):
     """Step 7, second half: alternating projection on the grid (module doc) for every open snapshot.
 
     fx: the calibrated snapshots' grid rows (cell sums) transformed along x; pattern[dz, dx] = sum of
@@ -263,8 +303,10 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
     resid_energy >= screen * crit[P + 1]: out_n[d] = P + 1 and out_iz[d, :P + 1], out_ix[d, :P + 1]
     its grid directions, the kept peaks first in their order; else out_n[d] = 0. Returns the number
     of candidates."""
-    nz, nx = pattern.shape
+    nz, nx = pattern.shape[0] // 2, pattern.shape[1] // 2  # the pattern tiled 2 x 2
     mp = out_u.shape[1]
+    rows = np.empty(nz, np.int64)
+    cols = np.empty(nx, np.int64)
     bin_u = u_grid[1] - u_grid[0] if nx > 1 else 1.0
     bin_w = w_grid[1] - w_grid[0] if nz > 1 else 1.0
     iz = np.empty(mp, np.int64)
@@ -296,13 +338,14 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
         n_out = 0
         e_prev = resid_energy[d]
         while n_src < mp:
-            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min)
+            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min, -1, -1,
+                                       rows, cols)
             if bz < 0:
                 break
             iz[n_src] = bz
             ix[n_src] = bx
             n_src += 1
-            _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min)
+            _sweeps(img, pattern, visible_f, iz, ix, n_src, gi, tmp, beta, h, d_min, reach_z, reach_x, rows, cols)
             explained = _explained(img, pattern, iz, ix, n_src, gi, tmp, h)
             if explained < 0.0:
                 break
@@ -318,6 +361,8 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
                 for a in range(n_src):
                     out_u[d, a] = u_grid[ix[a]]
                     out_w[d, a] = w_grid[iz[a]]
+            else:
+                break  # one more only after this one (at high SNR the grid's own misfit would pass it)
             e_prev = e_now
         if n_out == 0 and res_iz[d] >= 0:
             # the residual's own peak passed its screen: the kept peaks as they are, and it
