@@ -67,13 +67,13 @@ VALID = valid_messages()
 def check_accepted(msg: wire.Message) -> None:
     """What an accepted message must satisfy (README "Wire format")."""
     h = msg.header
-    assert type(h["wire"]) is int and h["wire"] == 2
+    assert type(h["wire"]) is int and h["wire"] == 3
     assert msg.topic.endswith("/" + h["kind"]) and h["sensor_id"] == msg.sensor_id
     if msg.kind == "adc":
         assert zlib.crc32(msg.payload) == h["crc32"]
         assert msg.data.nbytes == msg.payload.nbytes == math.prod(h["shape"]) * np.dtype(h["dtype"]).itemsize
     elif msg.kind == "points":
-        assert msg.data.dtype == RECORD_DTYPE and msg.payload.nbytes == 76 * h["count"]
+        assert msg.data.dtype == RECORD_DTYPE and msg.payload.nbytes == 80 * h["count"]
     elif msg.kind == "rdmap":
         assert list(msg.data.shape) == h["shape"] and h["range_step_m"] > 0 and h["velocity_step_mps"] > 0
     else:

@@ -35,7 +35,7 @@ BIG_PARTS = (4 * MIB, 64 * MIB)
 def _big_adc(sensor, seq: int, nbytes: int) -> list:
     """A well-formed adc message whose payload (complex64, consistent shape and CRC) is `nbytes` long."""
     payload = np.zeros(nbytes // 8, np.complex64).tobytes()
-    h = {"wire": 2, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": seq, "run": "big", "timestamp_s": 0.0,
+    h = {"wire": 3, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": seq, "run": "big", "timestamp_s": 0.0,
          "dtype": "<c8", "shape": [nbytes // 8 // 1024, 1, 1024], "digest": sensor.digest,
          "crc32": zlib.crc32(payload)}
     return [f"{sensor.sensor_id}/adc".encode(), msgpack.packb(h, use_bin_type=True), payload]

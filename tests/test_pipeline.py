@@ -444,6 +444,8 @@ def test_point_kernel_matches_the_bound_functions(layout):
     np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl_det[det_index], rtol=1e-6)
     np.testing.assert_allclose(out["snr_db"], 10 * np.log10(cell_snr[det_index] * share), rtol=1e-5)
     np.testing.assert_allclose(out["sigma_range_m"], sigma_r[det_index], rtol=1e-6)
+    # the sources the angle stage found in each point's cell: its detection's count of points
+    np.testing.assert_array_equal(out["cell_sources"], np.bincount(det_index, minlength=n_det)[det_index])
     np.testing.assert_allclose(out["sigma_velocity_mps"], sigma_v[det_index], rtol=1e-6)
     # Direction bound written out (Stoica and Nehorai, "MUSIC, maximum likelihood and Cramer-Rao bound",
     # IEEE Trans. ASSP, 1989; one snapshot, unknown amplitude): F = 2 eta k0^2 sum_i (q_i - q_mean)(q_i - q_mean)^T

@@ -211,7 +211,7 @@ def records(n: int, first: float = 1.0) -> np.ndarray:
 
 def points_message(sensor_id: str, seq: int, rec: np.ndarray, *, run: str = "hand-run", **override) -> list:
     """A points message as README "Wire format" describes it, packed with msgpack directly."""
-    header = {"wire": 2, "kind": "points", "sensor_id": sensor_id, "seq": seq, "run": run, "timestamp_s": 0.5 * seq,
+    header = {"wire": 3, "kind": "points", "sensor_id": sensor_id, "seq": seq, "run": run, "timestamp_s": 0.5 * seq,
               "latency_s": 0.002, "count": len(rec), "fields": [list(f) for f in POINT_WIRE_FIELDS]}
     header.update(override)
     return [f"{sensor_id}/points".encode(), msgpack.packb(header), rec.tobytes()]
@@ -223,11 +223,11 @@ def test_malformed_messages_are_counted_by_reason_and_the_stream_goes_on():
         good = records(3)
         bad = [
             [b"yard-a/points", b"\x80"],                                          # two parts: malformed
-            [b"yard-a/nothing", msgpack.packb({"wire": 2}), b""],                 # unknown kind: malformed
+            [b"yard-a/nothing", msgpack.packb({"wire": 3}), b""],                 # unknown kind: malformed
             points_message("yard-a", 0, good, wire=1),                            # version 1: wire_version
             points_message("yard-a", 0, good, count=4),                           # 3 records for 4: shape
             points_message("yard-a", 0, good, fields=[["x_m", "m", "<f4"]]),      # another layout: dtype
-            [b"yard-a/points", msgpack.packb({"wire": 2, "pad": "x" * 70000}), b""],  # header > 64 KiB: oversized
+            [b"yard-a/points", msgpack.packb({"wire": 3, "pad": "x" * 70000}), b""],  # header > 64 KiB: oversized
             points_message("yard-a", 0, good)[:2] + [good.tobytes()[:-1]],        # one byte short: shape
         ]
         for parts in bad:

@@ -453,7 +453,7 @@ def test_malformed_and_oversized_rejected_and_counted(sensor, offline, cubecast_
             connected(col)
 
             def adc(seq, **over):
-                h = {"wire": 2, "kind": "adc", "sensor_id": "yard-a", "seq": seq, "run": "R", "timestamp_s": seq * 0.1,
+                h = {"wire": 3, "kind": "adc", "sensor_id": "yard-a", "seq": seq, "run": "R", "timestamp_s": seq * 0.1,
                      "dtype": "<i2", "shape": [96, 4, 128, 2], "digest": sensor.digest,
                      "crc32": zlib.crc32(frame.tobytes())}
                 h.update(over)

@@ -37,7 +37,7 @@ def raw(topic: str, header: dict, payload: bytes = b"") -> list:
 
 
 def adc_header(sensor, payload: np.ndarray, **over) -> dict:
-    h = {"wire": 2, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": 5, "run": "abc", "timestamp_s": 0.5,
+    h = {"wire": 3, "kind": "adc", "sensor_id": sensor.sensor_id, "seq": 5, "run": "abc", "timestamp_s": 0.5,
          "dtype": payload.dtype.str, "shape": list(payload.shape), "digest": sensor.digest,
          "crc32": zlib.crc32(payload.tobytes())}
     h.update(over)
@@ -95,8 +95,8 @@ def test_points_round_trip_is_byte_exact():
     assert msg.header["count"] == 5 and msg.header["latency_s"] == 0.004
     assert msg.header["fields"] == [list(f) for f in POINT_WIRE_FIELDS]
     assert msg.data.dtype == RECORD_DTYPE and msg.data.tobytes() == rec.tobytes()
-    # the record layout of README "Wire format": 8 + 8 + 15 * 4 = 76 bytes, no padding
-    assert RECORD_DTYPE.itemsize == 76 and len(POINT_WIRE_FIELDS) == 17
+    # the record layout of README "Wire format": 8 + 8 + 16 * 4 = 80 bytes, no padding
+    assert RECORD_DTYPE.itemsize == 80 and len(POINT_WIRE_FIELDS) == 18
     empty = decode(encode_points("yard-a", 13, "r9", 1.35, 0.001, np.empty(0, RECORD_DTYPE)))
     assert empty.header["count"] == 0 and empty.data.shape == (0,) and empty.payload.nbytes == 0
 
@@ -156,7 +156,7 @@ def test_malformed_structure(sensor, yard_frame):
     rejected([b"yard-a/video", good[1], good[2]], "malformed", "topic")
     rejected([b"yard-a/adc", b"\xc1", good[2]], "malformed", "msgpack")
     rejected([b"yard-a/adc", msgpack.packb([1, 2]), good[2]], "malformed", "not a map")
-    rejected([b"yard-a/adc", msgpack.packb({"wire": 2}) + b"\x00", good[2]], "malformed", "msgpack")
+    rejected([b"yard-a/adc", msgpack.packb({"wire": 3}) + b"\x00", good[2]], "malformed", "msgpack")
     rejected([b"yard-a/adc", msgpack.packb({1: 2}), good[2]], "malformed", "msgpack")
     # ext types (and with them any object hook) are refused: nothing is ever unpickled or evaluated
     rejected([b"yard-a/adc", msgpack.packb({"wire": msgpack.ExtType(5, b"x")}), good[2]], "malformed", "msgpack")
@@ -179,18 +179,18 @@ def test_malformed_fields(sensor, yard_frame):
     h = adc_header(sensor, yard_frame)
     del h["run"]
     rejected(raw("yard-a/adc", h, p), "malformed", "'run' is missing")
-    rejected(raw("yard-a/health", {"wire": 2, "kind": "health", "sensor_id": "yard-a"} | health_fields(), b"x"),
+    rejected(raw("yard-a/health", {"wire": 3, "kind": "health", "sensor_id": "yard-a"} | health_fields(), b"x"),
              "malformed", "payload")
 
 
 def test_wire_version(sensor, yard_frame):
     # msgpack keeps integers and floats apart (msgpack specification, Furuhashi, 2013: int and float
-    # families); README "Wire format" makes the version the integer 2, so 2.0 and true are no version;
-    # version 1 (the 64-byte records without the platform frame) is refused, not misread
-    for v in (1, 3, 0, "2", None, 2.0, True, 1.5):
+    # families); README "Wire format" makes the version the integer 3, so 3.0 and true are no version;
+    # versions 1 and 2 (the 64- and 76-byte records) are refused, not misread
+    for v in (1, 2, 4, 0, "3", None, 3.0, True, 1.5):
         err = rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, wire=v), yard_frame.tobytes()),
                        "wire_version", "'wire'")
-        assert f"'wire' = {v!r}: must be the integer 2" in str(err)
+        assert f"'wire' = {v!r}: must be the integer 3" in str(err)
 
 
 def test_strided_buffers_are_read_as_their_bytes(sensor, yard_frame):
@@ -244,7 +244,7 @@ def test_dtype(sensor, yard_frame):
     rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, dtype=">i2"), yard_frame.tobytes()), "dtype", "'dtype'")
     fields = [list(f) for f in POINT_WIRE_FIELDS]
     fields[2][2] = "<f8"
-    h = {"wire": 2, "kind": "points", "sensor_id": "yard-a", "seq": 0, "run": "r", "timestamp_s": 0.0,
+    h = {"wire": 3, "kind": "points", "sensor_id": "yard-a", "seq": 0, "run": "r", "timestamp_s": 0.0,
          "latency_s": 0.0, "count": 0, "fields": fields}
     rejected(raw("yard-a/points", h), "dtype", "'fields'")
     with pytest.raises(WireError) as info:
@@ -256,10 +256,10 @@ def test_shape_payload_length(sensor, yard_frame):
     p = yard_frame.tobytes()
     rejected(raw("yard-a/adc", adc_header(sensor, yard_frame), p[:-2]), "shape", "196606 bytes", "196608")
     rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, shape=[96, 4, 64, 2]), p), "shape", "shape")
-    h = {"wire": 2, "kind": "points", "sensor_id": "yard-a", "seq": 0, "run": "r", "timestamp_s": 0.0,
+    h = {"wire": 3, "kind": "points", "sensor_id": "yard-a", "seq": 0, "run": "r", "timestamp_s": 0.0,
          "latency_s": 0.0, "count": 2, "fields": [list(f) for f in POINT_WIRE_FIELDS]}
     rejected(raw("yard-a/points", h, bytes(64)), "shape", "count 2")
-    h = {"wire": 2, "kind": "rdmap", "sensor_id": "yard-a", "seq": 0, "timestamp_s": 0.0, "shape": [256, 64],
+    h = {"wire": 3, "kind": "rdmap", "sensor_id": "yard-a", "seq": 0, "timestamp_s": 0.0, "shape": [256, 64],
          "dtype": "<f4", "range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0,
          "velocity_step_mps": 0.1, "unit": "dB"}
     rejected(raw("yard-a/rdmap", h, bytes(256 * 64 * 4)), "shape", "'shape'")
@@ -281,7 +281,7 @@ def test_oversized(sensor, yard_frame):
     h = adc_header(sensor, yard_frame, note=list(range(5000)))  # array longer than the unpacker allows
     rejected(raw("yard-a/adc", h, p), "oversized", "max_array_len")
     # a sensor description may be larger (1 MiB) than other headers (64 KiB)
-    s = {"wire": 2, "kind": "sensor", "sensor_id": "yard-a", "digest": sensor.digest,
+    s = {"wire": 3, "kind": "sensor", "sensor_id": "yard-a", "digest": sensor.digest,
          "sensor_toml": sensor.source_text + "#" * 100_000, "summary": decode(encode_sensor(sensor)).header["summary"]}
     assert decode(raw("yard-a/sensor", s)).kind == "sensor"
     s["sensor_toml"] = "#" * (1 << 20)
@@ -307,24 +307,24 @@ def test_encoded_headers_are_the_documented_msgpack_maps(sensor, yard_frame):
     rec = np.zeros(2, RECORD_DTYPE)
     cases = [
         (encode_adc("yard-a", 7, "r1", 0.7, yard_frame, sensor.digest),
-         {"wire": 2, "kind": "adc", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
+         {"wire": 3, "kind": "adc", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
           "dtype": "<i2", "shape": [96, 4, 128, 2], "digest": sensor.digest,
           "crc32": zlib.crc32(yard_frame.tobytes())}, yard_frame.tobytes()),
         (encode_points("yard-a", 7, "r1", 0.7, 0.004, rec),
-         {"wire": 2, "kind": "points", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
+         {"wire": 3, "kind": "points", "sensor_id": "yard-a", "seq": 7, "run": "r1", "timestamp_s": 0.7,
           "latency_s": 0.004, "count": 2, "fields": fields}, rec.tobytes()),
         (encode_rdmap("yard-a", 3, 0.3, np.ones((2, 3), np.float32), 0.0, 0.2, -1.0, 0.5),
-         {"wire": 2, "kind": "rdmap", "sensor_id": "yard-a", "seq": 3, "timestamp_s": 0.3, "shape": [2, 3],
+         {"wire": 3, "kind": "rdmap", "sensor_id": "yard-a", "seq": 3, "timestamp_s": 0.3, "shape": [2, 3],
           "dtype": "<f4", "range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0,
           "velocity_step_mps": 0.5, "unit": "dB"}, np.ones((2, 3), "<f4").tobytes()),
         (encode_health("yard-a", health_fields()),
-         {"wire": 2, "kind": "health", "sensor_id": "yard-a"} | health_fields(), b""),
+         {"wire": 3, "kind": "health", "sensor_id": "yard-a"} | health_fields(), b""),
     ]
     for parts, header, payload in cases:
         assert bytes(parts[1]) == msgpack.packb(header, use_bin_type=True), header["kind"]
         assert bytes(parts[0]) == f"yard-a/{header['kind']}".encode() and bytes(parts[2]) == payload
     # the point record: 8 + 8 + 12 * 4 bytes, little-endian, no padding, the chain's record exactly
-    assert wire.RECORD_DTYPE == RECORD_DTYPE and wire.RECORD_DTYPE.itemsize == 76
+    assert wire.RECORD_DTYPE == RECORD_DTYPE and wire.RECORD_DTYPE.itemsize == 80
 
 
 # ---- the rules the daemon, the workers and the viewer share --------------------------------------
@@ -333,9 +333,9 @@ def test_idle_health_with_nil_latencies_is_valid():
     # serve's health when no frame was processed in the interval: both latencies are nil (README "Wire format")
     msg = decode(encode_health("yard-a", health_fields(latency_p50_ms=None, latency_p99_ms=None, fps=0.0)))
     assert msg.header["latency_p50_ms"] is None and msg.header["latency_p99_ms"] is None
-    h = {"wire": 2, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p50_ms=-1.0)
+    h = {"wire": 3, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p50_ms=-1.0)
     rejected(raw("yard-a/health", h), "malformed", "'latency_p50_ms'", "or nil")
-    h = {"wire": 2, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p99_ms="n/a")
+    h = {"wire": 3, "kind": "health", "sensor_id": "yard-a"} | health_fields(latency_p99_ms="n/a")
     rejected(raw("yard-a/health", h), "malformed", "'latency_p99_ms'")
 
 
@@ -381,7 +381,7 @@ def test_errors_name_the_kind_the_field_and_the_rule(sensor):
     summary = dict(s["summary"])
     del summary["max_range_m"]
     rejected(raw("yard-a/sensor", s | {"summary": summary}), "malformed", "'summary.max_range_m' is missing")
-    h = {"wire": 2, "kind": "rdmap", "sensor_id": "yard-a", "seq": 0, "timestamp_s": 0.0, "shape": [2, 2],
+    h = {"wire": 3, "kind": "rdmap", "sensor_id": "yard-a", "seq": 0, "timestamp_s": 0.0, "shape": [2, 2],
          "dtype": "<f4", "range_start_m": 0.0, "range_step_m": 0.2, "velocity_start_mps": -1.0,
          "velocity_step_mps": 0.1, "unit": "dB"}
     assert decode(raw("yard-a/rdmap", h, bytes(16))).data.shape == (2, 2)

@@ -17,7 +17,7 @@ SUMMARY = {"max_range_m": 20.0, "max_velocity_mps": 8.0, "fov_half_azimuth_deg":
            "pose": {"position_m": [0.0, 0.0, 0.0], "yaw_deg": 0.0, "pitch_deg": 0.0, "roll_deg": 0.0}}
 
 
-def enc(sensor_id: str, kind: str, header: dict, payload: bytes = b"", wire=2) -> list[bytes]:
+def enc(sensor_id: str, kind: str, header: dict, payload: bytes = b"", wire=3) -> list[bytes]:
     h = {"wire": wire, "kind": kind, "sensor_id": sensor_id}
     h.update(header)
     return [f"{sensor_id}/{kind}".encode(), msgpack.packb(h, use_bin_type=True), payload]

@@ -27,6 +27,7 @@ POINT_FIELDS: tuple[tuple[str, str], ...] = (
     ("sigma_range_m", "m"), ("sigma_azimuth_deg", "deg"), ("sigma_elevation_deg", "deg"),
     ("sigma_velocity_mps", "m/s"),
     ("platform_x_m", "m"), ("platform_y_m", "m"), ("platform_z_m", "m"),
+    ("cell_sources", ""),
 )
 POINT_DTYPE = np.dtype([(name, "<f4") for name, _ in POINT_FIELDS])
 
@@ -49,7 +50,7 @@ def to_records(points: np.ndarray, frame: int, timestamp_s: float) -> np.ndarray
 def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, snr_share, doppler_hz,
                 half_wavelength_m, cell_snr, element_snr, sigma_range_m, sigma_velocity_mps, phase_centre_m,
                 crb_unit, has_x, has_z, pose_rotation, pose_position_m, out):
-    """The point records of one frame as float32 [n_points, 15] in POINT_FIELDS order.
+    """The point records of one frame as float32 [n_points, 16] in POINT_FIELDS order.
 
     Point k is angle peak k of detection i = det_index[k]; range_bin[i] is its refined range in FFT
     bins. That range is the mean over the virtual channels of the two-way path / 2, i.e. the range
@@ -66,9 +67,13 @@ def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevatio
     ANGLE_FLOOR_DEG in quadrature. The platform-frame point is pose_rotation @ (x, y, z) +
     pose_position_m (sensor.Sensor's pose). has_x is not used (the bound is inf along an axis
     without extent). half_wavelength_m[i]: half the wavelength of detection i's echo over the sampled
-    sweep (velocity = Doppler frequency x that)."""
+    sweep (velocity = Doppler frequency x that). cell_sources: how many points detection i gave (the
+    sources the angle stage found in the cell)."""
     n = det_index.shape[0]
     floor2 = ANGLE_FLOOR_DEG * ANGLE_FLOOR_DEG
+    sources = np.zeros(range_bin.shape[0], np.int64)
+    for k in range(n):
+        sources[det_index[k]] += 1
     for k in range(n):
         i = det_index[k]
         share = np.float64(snr_share[k])
@@ -96,3 +101,4 @@ def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevatio
                                           np.float64(element_snr[i]) * share, az, el)
         out[k, 9] = np.sqrt(s_az * s_az + floor2)
         out[k, 10] = np.sqrt(s_el * s_el + floor2)
+        out[k, 15] = sources[i]
