@@ -69,7 +69,8 @@ def _estimator(pos: np.ndarray, lam: float):
     return AngleEstimator(grid, AngleSettings(fft_size_azimuth=n_az, fft_size_elevation=n_el,
                                               peak_threshold_db=s.angle_peak_threshold_db,
                                               max_peaks=s.angle_max_peaks,
-                                              split_false_alarm=s.angle_split_false_alarm))
+                                              split_false_alarm=s.angle_split_false_alarm,
+                                              refine=s.angle_method == "dml"))
 
 
 class _Scene:

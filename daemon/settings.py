@@ -14,6 +14,7 @@ from .errors import CubecastError
 
 CFAR_KINDS = ("ca", "os", "go", "so")
 WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # chain/windows.py makes each
+ANGLE_METHODS = ("dml", "fft")  # README "Several sources in one cell"
 
 
 @dataclass(frozen=True)
@@ -47,6 +48,7 @@ class ProcessingSettings:
     angle_peak_threshold_db: float = -9.0
     angle_max_peaks: int = 3  # sources per range-Doppler cell at most (one, two or three)
     angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
+    angle_method: str = "dml"  # "dml": maximum likelihood over the true elements; "fft": the FFT peaks only
     # output
     max_points: int = 1024
 
@@ -59,6 +61,8 @@ class ProcessingSettings:
         for name in ("range_window", "doppler_window"):
             if getattr(self, name) not in WINDOW_NAMES:
                 raise fail(name, f"must be one of {', '.join(WINDOW_NAMES)}")
+        if self.angle_method not in ANGLE_METHODS:
+            raise fail("angle_method", f"must be one of {', '.join(ANGLE_METHODS)}")
         if self.cfar_kind not in CFAR_KINDS:
             raise fail("cfar_kind", f"must be one of {', '.join(CFAR_KINDS)}")
         for name in ("range_fft_size", "doppler_fft_size"):

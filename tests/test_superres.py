@@ -254,3 +254,23 @@ def test_three_sources_are_counted():
         x, _ = snapshots(name, u, w, amp, rng, noise=False)
         ok, _ = resolved(estimator(name).estimate(x), u, w, 1e-4)
         assert ok.all(), (name, ok.mean())
+
+
+def test_angle_method_setting():
+    # "dml" (default) refines on the true element positions and fits several sources jointly; "fft"
+    # reports the FFT peaks as they are (on the FFT grid); anything else is refused naming the field
+    from cubecast.daemon.chain.pipeline import Pipeline
+    from cubecast.daemon.errors import CubecastError
+    from cubecast.daemon.settings import ProcessingSettings, parse_settings
+    assert ProcessingSettings().angle_method == "dml"
+    with pytest.raises(CubecastError, match=r"\[processing\] angle_method = 'music': must be one of dml, fft"):
+        parse_settings('[processing]\nangle_method = "music"\n')
+    assert Pipeline(YARD, ProcessingSettings()).angle.settings.refine
+    fft = Pipeline(YARD, parse_settings('[processing]\nangle_method = "fft"\n')).angle
+    assert not fft.settings.refine
+    rng = np.random.default_rng(17)
+    u, w = rng.uniform(-0.5, 0.5, (20, 1)), rng.uniform(-0.2, 0.2, (20, 1))
+    x, _ = snapshots("yard", u, w, 10.0 * np.ones((20, 1)), rng)
+    res = fft.estimate(x)
+    on_grid = np.isin(res.u.astype(np.float64), fft.u_grid.astype(np.float32).astype(np.float64))
+    assert on_grid.all()

@@ -131,7 +131,8 @@ class Pipeline:
             AngleSettings(fft_size_azimuth=n_az, fft_size_elevation=n_el,
                           peak_threshold_db=settings.angle_peak_threshold_db,
                           max_peaks=settings.angle_max_peaks,
-                          split_false_alarm=settings.angle_split_false_alarm),
+                          split_false_alarm=settings.angle_split_false_alarm,
+                          refine=settings.angle_method == "dml"),
             calibration)
         self.n_virtual = sensor.n_virtual
         self.range_resolution_m = sensor.range_resolution_m
