@@ -37,8 +37,16 @@ Processing per call of AngleEstimator.estimate() (each module's docstring gives 
    when the split test (angle_split.py: a likelihood ratio test of P against P - 1 sources in
    white noise, needing no noise power) says it is there, at the design false-split probability
    `split_false_alarm` for a single source.
-7. Residual search (angle_residual.py): the residual of the fit may add one candidate per
-   snapshot (a screen by Fisher's g statistic); step 6, with its split test, runs again on it.
+7. Further sources (angle_residual.py), for a snapshot with fewer than max_peaks kept: alternating
+   projection on the FFT grid (Ziskind and Wax, "Maximum likelihood localization of multiple
+   sources by alternating projection", IEEE Trans. ASSP, 1988) proposes one more source near the
+   kept ones, moving them too (two sources under one FFT peak), and another while each passes a
+   screen; or the strongest peak of the fit's residual (a screen by Fisher's statistic) proposes
+   one elsewhere. Step 6 refines the proposal jointly, and it replaces the kept set when it passes
+   the split test against the kept set's own misfit (two more at once only when the middle set
+   passes too). Repeated while snapshots gain, up to max_peaks.
+8. Bounds (bounds.source_bounds): each reported source's share of the snapshot's signal energy and
+   its deterministic Cramer-Rao bound given the others (snr_share, crb_unit).
 
 Limits (by design, documented rather than hidden):
 - An array with no elevation extent (one grid row) measures only u; the estimator then
@@ -49,8 +57,9 @@ Limits (by design, documented rather than hidden):
 - A target whose beam maximum lies at an invisible FFT grid point (only possible within about
   one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
 - Two targets closer than the array can separate (variance inflation above 10, step 6) stay
-  one peak. Step 7 adds at most one peak per snapshot, so of two weak targets hidden under a
-  strong one neither may be found.
+  one peak. Sources are added in order, each tested against the fit without it: of three
+  close sources, where one plane wave fitted to three leaves too much unexplained for a second to
+  pass, fewer are reported.
 - The split test assumes white noise and a calibrated array: channel errors leave a structured
   misfit that, on a strong target, the test can take for a second source (rms phase errors of
   phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees).
@@ -76,7 +85,7 @@ from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
 from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
-from .angle_residual import fit_residuals, further_sources, residual_peaks
+from .angle_residual import energies, fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
 from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
@@ -331,6 +340,7 @@ class AngleEstimator:
         self._reach_z = max(1, self.n_fft_z // (2 * grid.n_z)) if grid.n_z > 1 else 0
         self._reach_x = max(1, self.n_fft_x // (2 * grid.n_x)) if grid.n_x > 1 else 0
         self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
+        self._ones = np.ones(n_virt, np.complex128)
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
 
@@ -437,14 +447,16 @@ class AngleEstimator:
         n = x.shape[0]
         mp = self.settings.max_peaks
         cand = np.ones(n, np.bool_)
-        y_energy = np.sum(np.abs(x.astype(np.complex128) * self._cal128) ** 2, axis=1)
+        y_energy = np.empty(n)
+        energies(x, self._cal128, y_energy)
         for _round in range(mp - 1):
             resid, open_slot = self._resid[:n], self._open[:n]
             fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, resid, open_slot)
             open_slot &= cand
             if not open_slot.any():
                 break
-            r_energy = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+            r_energy = np.empty(n)
+            energies(resid, self._ones, r_energy)
             res_iz, res_ix = self._res_iz[:n], self._res_ix[:n]
             q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, mp)])
             residual_peaks(self._row_spectra(resid, self._w_window), self._dft_z, n, self._visible_f, open_slot,
@@ -461,17 +473,17 @@ class AngleEstimator:
                 break
             # the largest proposed set first; where it did not win, the smallest
             n_found, det, keep, u, w, p, cand = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
-                                                                r_energy)
+                                                                r_energy, y_energy)
             retry = np.where(~cand & (first_n < new_n), first_n, 0)
             if retry.any():
                 n_found, det, keep, u, w, p, more = self._try_sets(x, n_found, det, keep, u, w, p, retry, first_u,
-                                                                    first_w, r_energy)
+                                                                    first_w, r_energy, y_energy)
                 cand |= more
             if not cand.any():
                 break
         return n_found, det, keep, u, w, p
 
-    def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy):
+    def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy, y_energy):
         """The proposed sets (further_sources) refined jointly as a sub-batch (step 6, which tests them
         from the most sources down); a snapshot takes its refined set when it kept more sources than
         before and passes the split test of one more source against the misfit the kept set left
@@ -492,7 +504,7 @@ class AngleEstimator:
         xs = np.ascontiguousarray(x[gain])
         sub_keep, e_more, n_kept = self._refine_sets(xs, sub_det, sub_u, sub_w, sub_p)
         e_fewer = r_energy[gain]
-        floor = _MISFIT_FLOOR * np.sum(np.abs(xs.astype(np.complex128) * self._cal128) ** 2, axis=1)
+        floor = _MISFIT_FLOOR * y_energy[gain]
         won = (n_kept == before + 1) & self._passes(e_fewer, e_more, before + 1, floor)
         jump = np.flatnonzero(n_kept == before + 2)
         if jump.size:
@@ -527,7 +539,8 @@ class AngleEstimator:
         open_slot = np.empty(xs.shape[0], np.bool_)
         fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
                       self.settings.max_peaks + 1, resid, open_slot)
-        misfit = np.sum(np.abs(resid.astype(np.complex128)) ** 2, axis=1)
+        misfit = np.empty(xs.shape[0])
+        energies(resid, self._ones, misfit)
         return sub_keep, misfit, np.bincount(sub_det[sub_keep], minlength=xs.shape[0])
 
     def _passes(self, e_fewer, e_more, n_sources, floor):

@@ -1,17 +1,27 @@
-"""Residual search (step 7 of the angle module doc), as in CLEAN (Hogbom, "Aperture synthesis with
-a non-regular distribution of interferometer baselines", Astron. Astrophys. Suppl., 1974).
+"""Further sources for a snapshot with fewer than max_peaks kept (step 7 of the angle module doc).
 
-A snapshot left with fewer than max_peaks peaks may hold a target the FFT stage did not separate
-(a weak one under a strong one's beam or sidelobe, or two in-phase targets closer than the beam
-width, which the FFT shows as one peak). The calibrated snapshot minus the joint least-squares fit
-of its peaks (fit_residuals) is transformed as in steps 2-3 (same window); its strongest visible
-grid point becomes a candidate (residual_peaks) when Fisher's statistic q = maximum beam power /
-(n_cells * residual cell energy) (1 for a lone tone) reaches a fraction of the split test's
-critical value: for the same candidate the test's g is at least q, so the screen passes what the
-test could keep (angle_split.py) and saves the joint refinement of the rest. The estimator then
-runs step 6 again on that snapshot, the candidate ranked last (in a pair the array cannot
-separate, it is the one that goes), and the split test decides. One pass: at most one peak is added
-per snapshot.
+fit_residuals: the calibrated snapshot minus the joint least-squares fit of its kept peaks.
+
+residual_peaks, as in CLEAN (Hogbom, "Aperture synthesis with a non-regular distribution of
+interferometer baselines", Astron. Astrophys. Suppl., 1974): the residual transformed as in steps
+2-3 (same window); its strongest visible grid point is a candidate when Fisher's statistic q =
+maximum beam power / (n_cells * residual cell energy) (1 for a lone tone) reaches a fraction of the
+split test's critical value (for the same candidate the test's g is at least q). It finds a source
+away from the kept ones (a weak one under a strong one's sidelobe).
+
+further_sources, alternating projection (Ziskind and Wax, "Maximum likelihood localization of
+multiple sources by alternating projection", IEEE Trans. ASSP, 1988) on the FFT grid: two sources
+under one beam give one FFT peak between them, whose single-source fit leaves a residual no single
+further direction explains well while the pair is held there. With B(theta) = a(theta)^H y the beam
+of the snapshot on the grid (cell sums, no window) and a_i^H a_j = pattern[i - j] for grid
+directions, the energy a source at theta adds to the projection of held sources A is
+|B(theta) - g^H beta|^2 / (n - g^H G^-1 g), g = A^H a(theta), G = A^H A, beta = G^-1 A^H y, an O(P^2)
+expression per grid point. The kept peaks start at their nearest grid directions; a new source goes
+where it adds most (near a held one), then each source in turn moves (within half a Rayleigh
+spacing) to where it adds most with the others held, until a sweep moves none. A set is proposed
+when its grid misfit could pass the split test (a fraction of the critical value, as above); then
+one more is tried, and the largest and the smallest passing sets are proposed. The estimator
+refines them jointly (step 6) and the split test decides.
 """
 
 from __future__ import annotations
@@ -23,9 +33,20 @@ from .angle_joint import group_end, joint_amplitudes, largest_group
 from .angle_peaks import power_image
 from .angle_refine import phasors
 
-__all__ = ["fit_residuals", "residual_peaks", "beam_image", "further_sources"]
+__all__ = ["energies", "fit_residuals", "residual_peaks", "beam_image", "further_sources"]
 
 _MAX_SWEEPS = 6  # alternating-projection sweeps over the sources on the grid
+
+@njit(cache=True)
+def energies(x, cal, out):
+    """out[d] = sum_i |x[d, i] cal[i]|^2 (float64), for the first out.size rows."""
+    for d in range(out.size):
+        acc = 0.0
+        for i in range(x.shape[1]):
+            v = complex(x[d, i]) * cal[i]
+            acc += v.real * v.real + v.imag * v.imag
+        out[d] = acc
+
 
 @njit(cache=True)
 def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot):
@@ -338,8 +359,8 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
         n_out = 0
         e_prev = resid_energy[d]
         while n_src < mp:
-            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min, -1, -1,
-                                       rows, cols)
+            e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min, reach_z,
+                                       reach_x, rows, cols)
             if bz < 0:
                 break
             iz[n_src] = bz
