@@ -70,6 +70,7 @@ def _estimator(pos: np.ndarray, lam: float):
                                               peak_threshold_db=s.angle_peak_threshold_db,
                                               max_peaks=s.angle_max_peaks,
                                               split_false_alarm=s.angle_split_false_alarm,
+                                              model_error_db=s.angle_model_error_db,
                                               refine=s.angle_method == "dml"))
 
 

@@ -48,6 +48,7 @@ class ProcessingSettings:
     angle_peak_threshold_db: float = -9.0
     angle_max_peaks: int = 3  # sources per range-Doppler cell at most (one, two or three)
     angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
+    angle_model_error_db: float = -25.0  # split test's floor: the array's relative model error (README)
     angle_method: str = "dml"  # "dml": maximum likelihood over the true elements; "fft": the FFT peaks only
     # output
     max_points: int = 1024
@@ -91,6 +92,8 @@ class ProcessingSettings:
             raise fail("angle_max_peaks", "must be at least 1")
         if not 0 < self.angle_split_false_alarm < 1:
             raise fail("angle_split_false_alarm", "must be a probability between 0 and 1 (exclusive)")
+        if not self.angle_model_error_db <= 0:
+            raise fail("angle_model_error_db", "is relative to the cell's energy and must be <= 0")
         if self.angle_peak_threshold_db > 0:
             raise fail("angle_peak_threshold_db", "is relative to the strongest peak and must be <= 0")
         if self.max_points < 1:

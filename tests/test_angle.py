@@ -839,17 +839,21 @@ def test_single_source_false_split_rate_agrees_with_design(snr_db):
     # field of view: the count of snapshots reported as two sources must lie within +-5 sigma of
     # the design n alpha (binomial, common practice). The design is the tube formula's leading
     # term (test above), which counts the fitted source's own neighbourhood and so overstates a
-    # little: measured about 0.75 alpha on this array. The first point stays on the source.
+    # little: measured about 0.75 alpha on this array. The first point stays on the source. The
+    # white-noise test alone is checked here (model-error floor at the rounding level); with the
+    # default floor (-25 dB re the cell, angle_split.py) the floor only removes splits: at most the
+    # band's upper end.
     rng = np.random.default_rng(int(snr_db) + 50)
     n = 5000
     az, el = rng.uniform(-60.0, 60.0, n), rng.uniform(-15.0, 15.0, n)
     u, w = np.sin(np.radians(az)) * np.cos(np.radians(el)), np.sin(np.radians(el))
     amp = 10.0 ** (snr_db / 20.0) * np.exp(2j * np.pi * rng.random(n))
     x = (yard_waves(u, w, amp) + circular_noise((n, YARD.n_virtual), rng)).astype(np.complex64)
-    est = yard_estimator()
+    est = yard_estimator(model_error_db=-300.0)
     res = est.estimate(x)
     lo, hi = binomial_band(n, est.settings.split_false_alarm)
     assert lo <= np.sum(np.bincount(res.det_index, minlength=n) >= 2) <= hi
+    assert np.sum(np.bincount(yard_estimator().estimate(x).det_index, minlength=n) >= 2) <= hi
     # an unsplit source's point stays on it (a false split's two points straddle the source)
     counts = np.bincount(res.det_index, minlength=n)
     first = strongest_per_det(res, n)

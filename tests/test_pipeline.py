@@ -481,3 +481,10 @@ def test_point_kernel_matches_the_bound_functions(layout):
         assert np.all(np.isinf(out["sigma_elevation_deg"])) and np.all(np.isfinite(out["sigma_azimuth_deg"]))
     if layout == "elevation_only":
         assert np.all(np.isinf(out["sigma_azimuth_deg"])) and np.all(np.isfinite(out["sigma_elevation_deg"]))
+
+
+def test_model_error_floor_is_a_processing_setting(sensor):
+    settings = parse_settings('[processing]\nangle_model_error_db = -30\n')
+    assert Pipeline(sensor, settings).angle.settings.model_error_db == -30
+    with pytest.raises(CubecastError, match=r"angle_model_error_db = 3.0: is relative to the cell's energy"):
+        parse_settings('[processing]\nangle_model_error_db = 3.0\n')

@@ -209,18 +209,21 @@ def test_bundled_array_resolves_pairs_at_0p7_rayleigh():
 
 @pytest.mark.parametrize("name", ["ula8", "ula16"])
 def test_single_sources_split_at_the_design_rate(name):
-    # One source at 20 dB per element, random direction |u| < 0.6: the count of snapshots reported as
-    # two or more sources must lie within n alpha +- 5 sigma (binomial, common practice), alpha the
-    # split test's design (angle_split_false_alarm, 1 %). Measured 0.9-1.0 %.
+    # One source at 20 dB per element, random direction |u| < 0.6. With the model-error floor off
+    # (model_error_db at the rounding level) the white-noise test alone decides: the count of snapshots
+    # reported as two or more sources must lie within n alpha +- 5 sigma (binomial, common practice),
+    # alpha the split test's design (angle_split_false_alarm, 1 %); measured 0.7-0.8 %. With the
+    # default floor (-25 dB) the floor only removes splits: at most the band's upper end (measured
+    # 0-0.1 % at 20 dB; 1.1-1.3 % at 0 dB, where the floor does not bind).
     rng = np.random.default_rng(14)
     n = 5000
     u = rng.uniform(-0.6, 0.6, (n, 1))
     amp = 10.0 * np.exp(2j * np.pi * rng.random((n, 1)))
     x, _ = snapshots(name, u, np.zeros((n, 1)), amp, rng)
-    est = estimator(name)
-    res = est.estimate(x)
+    est = estimator(name, model_error_db=-300.0)
     lo, hi = binomial_band(n, est.settings.split_false_alarm)
-    assert lo <= np.sum(np.bincount(res.det_index, minlength=n) >= 2) <= hi
+    assert lo <= np.sum(np.bincount(est.estimate(x).det_index, minlength=n) >= 2) <= hi
+    assert np.sum(np.bincount(estimator(name).estimate(x).det_index, minlength=n) >= 2) <= hi
 
 
 def test_unequal_pair_is_resolved():

@@ -60,9 +60,11 @@ Limits (by design, documented rather than hidden):
   one peak. Sources are added in order, each tested against the fit without it: of three
   close sources, where one plane wave fitted to three leaves too much unexplained for a second to
   pass, fewer are reported.
-- The split test assumes white noise and a calibrated array: channel errors leave a structured
-  misfit that, on a strong target, the test can take for a second source (rms phase errors of
-  phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees).
+- The split test assumes white noise and a calibrated array: channel errors (rms phase errors of
+  phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees) and the range
+  and Doppler sidelobes of neighbouring echoes leave a structured misfit that, on a strong target,
+  the white-noise test takes for a second source; the model-error floor (model_error_db,
+  angle_split.py) takes that much of the cell's energy off the misfit before the test.
 - refine = False skips steps 5 to 7 (peaks stay on the FFT grid with their grid power).
 
 The compiled kernels of steps 2-7 call each other across these modules. numba's cache checks only
@@ -85,7 +87,7 @@ from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
 from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
-from .angle_residual import energies, fit_residuals, further_sources, residual_peaks
+from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
 from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
@@ -133,6 +135,12 @@ class AngleSettings:
                         two (the split test's size, angle_split.py); default 0.01. On noise
                         alone the test splits less often (its first fit takes the largest
                         component).
+    model_error_db      the split test's model-error floor (angle_split.py): a further source must
+                        explain, beyond what the test needs in white noise, this fraction of the
+                        snapshot's energy (dB re it), the relative residual the array's model
+                        error (calibration, coupling, leakage) leaves; default -25 dB
+                        (angle_model_error_db); must be <= 0, below -90 dB it acts as -90 dB
+                        (float32 rounding).
     refine              Newton refinement on the actual element positions; default True.
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
@@ -146,6 +154,7 @@ class AngleSettings:
     refine: bool = True
     window: str = "rect"
     split_false_alarm: float = _DEFAULTS.angle_split_false_alarm
+    model_error_db: float = _DEFAULTS.angle_model_error_db
 
     def __post_init__(self) -> None:
         for name in ("fft_size_azimuth", "fft_size_elevation"):
@@ -162,6 +171,9 @@ class AngleSettings:
         v = self.split_false_alarm
         if not is_real(v) or not 0.0 < v < 1.0:
             raise CubecastError(f"split_false_alarm must be a probability in (0, 1), got {v!r}")
+        v = self.model_error_db
+        if not is_real(v) or not math.isfinite(v) or v > 0:
+            raise CubecastError(f"model_error_db must be a finite number <= 0 dB, got {v!r}")
         if self.window not in GRID_WINDOW_NAMES:
             raise CubecastError(
                 f"window must be one of {', '.join(GRID_WINDOW_NAMES)}, got {self.window!r}"
@@ -328,6 +340,7 @@ class AngleEstimator:
         # the split test (angle_split.py): critical value of the P-th source at index P
         self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
                                                     self._do_w, settings.max_peaks, settings.split_false_alarm)
+        self._floor_fraction = max(10.0 ** (settings.model_error_db / 10.0), _MISFIT_FLOOR)  # angle_split.py
 
         kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
         self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
@@ -369,6 +382,10 @@ class AngleEstimator:
         self._first_w = np.empty((capacity, mp), dtype=np.float64)
         self._res_iz = np.empty(capacity, dtype=np.int64)
         self._res_ix = np.empty(capacity, dtype=np.int64)
+        self._y_energy = np.empty(capacity, dtype=np.float64)
+        self._r_energy = np.empty(capacity, dtype=np.float64)
+        self._q_need = np.empty(capacity, dtype=np.float64)
+        self._cand = np.empty(capacity, dtype=np.bool_)
 
     def _check(self, snapshots) -> np.ndarray:
         x = np.asarray(snapshots)
@@ -434,53 +451,55 @@ class AngleEstimator:
     def _relax(self, x, n_found, det, keep, u, w, p):
         """Step 6 (angle_joint.py) on the peak arrays, in place."""
         relax_peaks(x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det, self._do_u, self._do_w,
-                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, keep, u, w, p)
+                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
+                    keep, u, w, p)
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
         """Step 7 (angle_residual.py): a source the FFT stage did not separate. For every snapshot with
-        fewer than max_peaks kept peaks, alternating projection on the grid proposes one more source
-        (moving the kept ones too); where the proposal's grid fit could pass the split test, all are
-        refined jointly (step 6) from it, and the larger set replaces the kept one when it passes
-        the split test against the kept set's own misfit. Repeated while snapshots gain, up to
-        max_peaks. Returns the peak arrays (new ones when any snapshot gained, the old rows of
-        a gaining snapshot left unkept)."""
+        fewer than max_peaks kept peaks whose misfit leaves room for one more to pass the split test
+        (fit_residuals: else nothing more is computed for it), alternating projection on the grid
+        proposes one more source (moving the kept ones too); where the proposal's grid fit could pass
+        the split test, all are refined jointly (step 6) from it, and the larger set replaces the kept
+        one when it passes the split test against the kept set's own misfit. Repeated while snapshots
+        gain, up to max_peaks. Returns the peak arrays (new ones when any snapshot gained, the old rows
+        of a gaining snapshot left unkept)."""
         n = x.shape[0]
         mp = self.settings.max_peaks
-        cand = np.ones(n, np.bool_)
-        y_energy = np.empty(n)
-        energies(x, self._cal128, y_energy)
-        for _round in range(mp - 1):
-            resid, open_slot = self._resid[:n], self._open[:n]
-            fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, resid, open_slot)
-            open_slot &= cand
-            if not open_slot.any():
+        crit, frac = self.split_critical, self._floor_fraction
+        resid, open_slot, cand = self._resid[:n], self._open[:n], self._cand[:n]
+        y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
+        for round_ in range(mp - 1):
+            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
+                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
+            if round_ > 0:
+                open_slot &= cand
+                n_open = int(open_slot.sum())
+            if n_open == 0:
                 break
-            r_energy = np.empty(n)
-            energies(resid, self._ones, r_energy)
             res_iz, res_ix = self._res_iz[:n], self._res_ix[:n]
-            q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, mp)])
             residual_peaks(self._row_spectra(resid, self._w_window), self._dft_z, n, self._visible_f, open_slot,
-                           self.grid.n_cells, q_min, self._power, self._acc_re, self._acc_im, res_iz, res_ix)
+                           self.grid.n_cells, q_need, self._power, self._acc_re, self._acc_im, res_iz, res_ix)
             fx = self._row_spectra(x, self._w_sum)  # the same buffer as the residual's rows above
             new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
             first_n, first_u, first_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
             n_new = further_sources(fx, self._dft_z, self._pattern, self._visible_f, n, open_slot, n_found, det,
-                                    keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, self.split_critical,
-                                    _RESIDUAL_SCREEN, self.grid.n_virt / _MAX_INFLATION, self._reach_z,
+                                    keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, crit,
+                                    _RESIDUAL_SCREEN, frac, self.grid.n_virt / _MAX_INFLATION, self._reach_z,
                                     self._reach_x, res_iz, res_ix, self._img,
                                     new_n, new_u, new_w, first_n, first_u, first_w)
             if n_new == 0:
                 break
             # the largest proposed set first; where it did not win, the smallest
-            n_found, det, keep, u, w, p, cand = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
-                                                                r_energy, y_energy)
-            retry = np.where(~cand & (first_n < new_n), first_n, 0)
+            n_found, det, keep, u, w, p, won = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
+                                                               r_energy, y_energy)
+            retry = np.where(~won & (first_n < new_n), first_n, 0)
             if retry.any():
                 n_found, det, keep, u, w, p, more = self._try_sets(x, n_found, det, keep, u, w, p, retry, first_u,
                                                                     first_w, r_energy, y_energy)
-                cand |= more
-            if not cand.any():
+                won |= more
+            if not won.any():
                 break
+            cand[:] = won
         return n_found, det, keep, u, w, p
 
     def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy, y_energy):
@@ -504,7 +523,7 @@ class AngleEstimator:
         xs = np.ascontiguousarray(x[gain])
         sub_keep, e_more, n_kept = self._refine_sets(xs, sub_det, sub_u, sub_w, sub_p)
         e_fewer = r_energy[gain]
-        floor = _MISFIT_FLOOR * y_energy[gain]
+        floor = self._floor_fraction * y_energy[gain]
         won = (n_kept == before + 1) & self._passes(e_fewer, e_more, before + 1, floor)
         jump = np.flatnonzero(n_kept == before + 2)
         if jump.size:
@@ -533,21 +552,21 @@ class AngleEstimator:
     def _refine_sets(self, xs, sub_det, sub_u, sub_w, sub_p):
         """Step 6 on the sets of sub_det (snapshot rows of xs), in place on sub_u, sub_w, sub_p; returns
         (keep, the kept set's misfit per snapshot, its size)."""
+        m = xs.shape[0]
         sub_keep = np.ones(sub_det.size, np.bool_)
         self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
-        resid = np.empty((xs.shape[0], self.grid.n_virt), np.complex64)
-        open_slot = np.empty(xs.shape[0], np.bool_)
+        resid = np.empty((m, self.grid.n_virt), np.complex64)
+        open_slot, energy, misfit, q_need = np.empty(m, np.bool_), np.empty(m), np.empty(m), np.empty(m)
         fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
-                      self.settings.max_peaks + 1, resid, open_slot)
-        misfit = np.empty(xs.shape[0])
-        energies(resid, self._ones, misfit)
-        return sub_keep, misfit, np.bincount(sub_det[sub_keep], minlength=xs.shape[0])
+                      self.settings.max_peaks + 1, self.split_critical, self._floor_fraction, _RESIDUAL_SCREEN,
+                      resid, energy, misfit, q_need, open_slot)
+        return sub_keep, misfit, np.bincount(sub_det[sub_keep], minlength=m)
 
     def _passes(self, e_fewer, e_more, n_sources, floor):
-        """The split test (angle_split.py) of the n_sources-th source per snapshot: it explains at least
-        the fraction g_crit of the misfit left without it (a misfit counting at least `floor`)."""
+        """The split test (angle_joint.split_passes) of the n_sources-th source per snapshot, with the
+        model-error floor `floor` taken off the misfit left without it."""
         crit = self.split_critical[np.minimum(n_sources, self.split_critical.size - 1)]
-        return e_fewer - e_more >= crit * np.maximum(e_fewer, floor)
+        return (e_fewer > floor) & (e_fewer - floor - e_more >= crit * (e_fewer - floor))
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).

@@ -29,30 +29,29 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from .angle_joint import group_end, joint_amplitudes, largest_group
+from .angle_joint import _MISFIT_FLOOR, group_end, joint_amplitudes, largest_group
 from .angle_peaks import power_image
 from .angle_refine import phasors
 
-__all__ = ["energies", "fit_residuals", "residual_peaks", "beam_image", "further_sources"]
+__all__ = ["fit_residuals", "residual_peaks", "beam_image", "further_sources"]
 
 _MAX_SWEEPS = 6  # alternating-projection sweeps over the sources on the grid
 
 @njit(cache=True)
-def energies(x, cal, out):
-    """out[d] = sum_i |x[d, i] cal[i]|^2 (float64), for the first out.size rows."""
-    for d in range(out.size):
-        acc = 0.0
-        for i in range(x.shape[1]):
-            v = complex(x[d, i]) * cal[i]
-            acc += v.real * v.real + v.imag * v.imag
-        out[d] = acc
+def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, crit, floor_fraction, screen, resid,
+                  y_energy, r_energy, q_need, open_slot):
+    """Step 7 (module doc), first half, one pass over the snapshots. For every snapshot d: y_energy[d] =
+    ||y_d||^2 of the calibrated snapshot; for one with at least one and fewer than max_peaks kept peaks,
+    resid[d] = y_d minus the joint least-squares fit of its kept peaks and r_energy[d] = ||resid[d]||^2
+    (else resid[d] = 0, r_energy[d] = 0).
 
-
-@njit(cache=True)
-def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, resid, open_slot):
-    """Step 7 (module doc), first half. For each snapshot with at least one and fewer than max_peaks
-    kept peaks (open_slot[d] = True): resid[d] = the calibrated snapshot minus the joint
-    least-squares fit of its kept peaks. Other snapshots: resid[d] = 0, open_slot[d] = False."""
+    open_slot[d] (returned: their count) says whether one more source could pass the split test
+    (angle_joint.split_passes, P = kept + 1): it needs E_{P-1} > F and E_{P-1} - F - E_P >= crit[P]
+    (E_{P-1} - F), F = floor_fraction ||y||^2 (at least _MISFIT_FLOOR of it), so it cannot pass when
+    E_{P-1} <= F or crit[P] >= 1 (E_P >= 0): such a snapshot (a strong lone source whose misfit is
+    model error and noise below the floor, or no room for another source) is closed without a search.
+    q_need[d] = screen (crit[P] + (1 - crit[P]) F / E_{P-1}): the fraction of the misfit a further
+    source's proposal must explain to be tried (the test's, times the screen)."""
     n_det, n_virt = snapshots.shape
     mp = largest_group(det, n_found)
     y = np.empty(n_virt, np.complex128)
@@ -63,10 +62,18 @@ def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, r
     rhs = np.empty(mp, np.complex128)
     work = np.empty(mp, np.complex128)
     vif = np.empty(mp, np.float64)
+    frac = max(floor_fraction, _MISFIT_FLOOR)
     for d in range(n_det):
         open_slot[d] = False
+        r_energy[d] = 0.0
+        q_need[d] = np.inf
+        acc = 0.0
         for i in range(n_virt):
             resid[d, i] = 0
+            v = complex(snapshots[d, i]) * cal[i]
+            acc += v.real * v.real + v.imag * v.imag
+        y_energy[d] = acc
+    n_open = 0
     k0 = 0
     while k0 < n_found:
         k1 = group_end(det, n_found, k0)
@@ -87,19 +94,29 @@ def fit_residuals(snapshots, cal, kx, kz, n_found, det, keep, u, w, max_peaks, r
         for a in range(n_act):
             for i in range(n_virt):
                 y[i] -= amp[a] * ph[a, i].conjugate()
+        e = 0.0
         for i in range(n_virt):
             resid[d, i] = y[i]
-        open_slot[d] = True
+            e += y[i].real * y[i].real + y[i].imag * y[i].imag
+        r_energy[d] = e
+        c = crit[min(n_act + 1, crit.size - 1)]
+        floor = frac * y_energy[d]
+        if e > floor and c < 1.0:
+            open_slot[d] = True
+            q_need[d] = screen * (c + (1.0 - c) * floor / e)
+            n_open += 1
+    return n_open
 
 
 @njit(cache=True)
-def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, n_cells, q_min, power, acc_re, acc_im, out_iz, out_ix):
+def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, n_cells, q_need, power, acc_re, acc_im, out_iz, out_ix):
     """Step 7, second half: for each open snapshot, the strongest visible point of its residual's
     beam image (fx: the residual's grid rows transformed along x), kept (out_iz, out_ix; -1 when
-    not) when Fisher's statistic q = max beam power / (n_cells * residual energy) is at least q_min
-    (Fisher, "Tests of significance in harmonic analysis", Proc. R. Soc. A, 1929; a lone tone gives
-    1). The split test of the refit (angle_split.py) decides: g >= q for the same candidate, so q_min
-    below the test's critical value lets through what the test could keep. Returns the number kept."""
+    not) when Fisher's statistic q = max beam power / (n_cells * residual energy) is at least
+    q_need[d] (Fisher, "Tests of significance in harmonic analysis", Proc. R. Soc. A, 1929; a lone
+    tone gives 1). The split test of the refit (angle_split.py) decides: g >= q for the same
+    candidate, so q_need below what the test needs (fit_residuals) lets through what the test could
+    keep. Returns the number kept."""
     nz, nx = power.shape
     n_rows = fx.shape[0]
     count = 0
@@ -123,7 +140,7 @@ def residual_peaks(fx, dft_z, n_det, visible_f, open_slot, n_cells, q_min, power
                 p = power[iz, ix] * visible_f[iz, ix]
                 if p > best:
                     best, biz, bix = p, iz, ix
-        if biz < 0 or best < q_min * n_cells * energy:
+        if biz < 0 or best < q_need[d] * n_cells * energy:
             continue
         out_iz[d] = biz
         out_ix[d] = bix
@@ -309,19 +326,20 @@ def _explained(img, pattern, iz, ix, n_src, gi, tmp, h):
 
 @njit(cache=True)
 def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, det, keep, u, w, u_grid, w_grid,
-                    energy, resid_energy, crit, screen, d_min, reach_z, reach_x, res_iz, res_ix, img, out_n, out_u,
-                    out_w, first_n, first_u, first_w):
+                    energy, resid_energy, crit, screen, floor_fraction, d_min, reach_z, reach_x, res_iz, res_ix, img,
+                    out_n, out_u, out_w, first_n, first_u, first_w):
     """Step 7, second half: alternating projection on the grid (module doc) for every open snapshot.
 
     fx: the calibrated snapshots' grid rows (cell sums) transformed along x; pattern[dz, dx] = sum of
     the cell counts times exp(+j 2 pi (dz iz / n_fft_z + dx ix / n_fft_x)), so that a_i^H a_j =
     pattern[i - j] for grid directions i, j; energy[d] = ||y_d||^2, resid_energy[d] = the misfit of
     its kept peaks' joint fit (fit_residuals); crit[P] the split test's critical value of the P-th
-    source; d_min = n_virt / (the variance-inflation limit). The kept peaks start at their nearest
+    source and floor_fraction its model-error floor F = floor_fraction energy[d] (split_passes);
+    d_min = n_virt / (the variance-inflation limit). The kept peaks start at their nearest
     grid directions, the further one where it explains most with them held; then each source in
     turn moves to its best grid direction with the others held, until a sweep moves none (at most
-    _MAX_SWEEPS). The set is a candidate when its grid misfit leaves g = (resid_energy - misfit) /
-    resid_energy >= screen * crit[P + 1]: out_n[d] = P + 1 and out_iz[d, :P + 1], out_ix[d, :P + 1]
+    _MAX_SWEEPS). The set is a candidate when its grid misfit E_P leaves resid_energy - E_P >= screen *
+    (c resid_energy + (1 - c) F), c = crit[P + 1] (a fraction of what the test needs): out_n[d] = P + 1 and out_iz[d, :P + 1], out_ix[d, :P + 1]
     its grid directions, the kept peaks first in their order; else out_n[d] = 0. Returns the number
     of candidates."""
     nz, nx = pattern.shape[0] // 2, pattern.shape[1] // 2  # the pattern tiled 2 x 2
@@ -358,6 +376,7 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
         beam_image(fx, dft_z, d, img)
         n_out = 0
         e_prev = resid_energy[d]
+        floor = max(floor_fraction, _MISFIT_FLOOR) * energy[d]
         while n_src < mp:
             e, bz, bx = _best_position(img, pattern, visible_f, iz, ix, n_src, -1, gi, tmp, beta, h, d_min, reach_z,
                                        reach_x, rows, cols)
@@ -371,7 +390,8 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
             if explained < 0.0:
                 break
             e_now = max(energy[d] - explained, 0.0)
-            if e_prev - e_now >= screen * crit[min(n_src, crit.size - 1)] * e_prev:
+            c = crit[min(n_src, crit.size - 1)]
+            if e_prev - e_now >= screen * (c * e_prev + (1.0 - c) * floor):
                 # this many could pass: the largest such set is proposed, and the smallest
                 if n_out == 0:
                     first_n[d] = n_src
@@ -385,6 +405,8 @@ def further_sources(fx, dft_z, pattern, visible_f, n_det, open_slot, n_found, de
             else:
                 break  # one more only after this one (at high SNR the grid's own misfit would pass it)
             e_prev = e_now
+            if e_prev <= floor or crit[min(n_src + 1, crit.size - 1)] >= 1.0:
+                break  # the next one could not pass (fit_residuals; the refined misfit is at most e_prev)
         if n_out == 0 and res_iz[d] >= 0:
             # the residual's own peak passed its screen: the kept peaks as they are, and it
             a = 0

@@ -132,6 +132,7 @@ class Pipeline:
                           peak_threshold_db=settings.angle_peak_threshold_db,
                           max_peaks=settings.angle_max_peaks,
                           split_false_alarm=settings.angle_split_false_alarm,
+                          model_error_db=settings.angle_model_error_db,
                           refine=settings.angle_method == "dml"),
             calibration)
         self.n_virtual = sensor.n_virtual
