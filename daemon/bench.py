@@ -13,7 +13,8 @@ Speed targets live here, never as timed assertions in tests.
 
 `bench --accuracy` (run_accuracy) measures instead what the points are worth: the Monte Carlo of
 accuracy.py on the reference sensor and the bundled yard sensor, RMSE against the Cramér-Rao
-bounds and against the reported sigmas per integrated SNR, in this process.
+bounds and against the reported sigmas per integrated SNR, in this process. `bench --resolution`
+(resolution.py) measures how often the angle stage resolves sources sharing a cell.
 """
 
 from __future__ import annotations

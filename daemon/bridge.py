@@ -6,7 +6,7 @@ It subscribes to serve like any tracker (PointStream: every message decoded and 
 module, keys as `view` and `record` take them) and republishes, through the foxglove-sdk's WebSocket
 server (the `bridge` extra), per sensor id SID:
 
-    /SID/points        foxglove.PointCloud: the wire records as they are (76-byte stride), every field by
+    /SID/points        foxglove.PointCloud: the wire records as they are (80-byte stride), every field by
                        its name and type; `frame` (u64, which the schema has no type for) as the two
                        uint32 halves frame_lo and frame_hi; x, y, z also under the viewer's names x, y, z
                        (the sensor frame); frame id SID, stamp the ADC frame's timestamp

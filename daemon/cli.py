@@ -208,7 +208,16 @@ def _demo(args) -> int:
 
 def _bench(args) -> int:
     from . import bench
-    if args.accuracy:
+    if args.resolution:
+        from . import resolution
+        for flag, value in (("--frames", args.frames), ("--sensor", args.sensor), ("--workers", args.workers),
+                            ("--accuracy", args.accuracy or None)):
+            if value is not None:
+                raise CubecastError(f"{flag}: not with --resolution, which runs the angle stage alone")
+        trials = resolution.TRIALS if args.trials is None else args.trials
+        result = resolution.run_resolution(trials, 0 if args.seed is None else args.seed)
+        printer = resolution.print_resolution_table
+    elif args.accuracy:
         for flag, value in (("--frames", args.frames), ("--sensor", args.sensor), ("--workers", args.workers)):
             if value is not None:
                 raise CubecastError(f"{flag}: not with --accuracy, which runs the reference sensor and the bundled "
@@ -219,7 +228,7 @@ def _bench(args) -> int:
     else:
         for flag, value in (("--trials", args.trials), ("--seed", args.seed)):
             if value is not None:
-                raise CubecastError(f"{flag}: only with --accuracy")
+                raise CubecastError(f"{flag}: only with --accuracy or --resolution")
         frames = 60 if args.frames is None else args.frames
         if frames < 50:
             raise CubecastError(f"--frames {frames}: the medians need at least 50 frames")
@@ -437,8 +446,13 @@ def _add_bench(sub) -> None:
     b.add_argument("--accuracy", action="store_true",
                    help="instead of speed: Monte Carlo RMSE against the Cramer-Rao bounds and the reported sigmas "
                         "at integrated SNR 10 to 50 dB (reference and bundled yard sensor)")
-    b.add_argument("--trials", type=int, help="with --accuracy: random targets per SNR and sensor (default 400)")
-    b.add_argument("--seed", type=int, help="with --accuracy: seed of the targets and the noise (default 0)")
+    b.add_argument("--resolution", action="store_true",
+                   help="instead of speed: how often the angle stage resolves two or three sources in one cell, "
+                        "against separation and SNR (8- and 16-element arrays and the bundled one)")
+    b.add_argument("--trials", type=int, help="with --accuracy: random targets per SNR and sensor (default 400); "
+                                              "with --resolution: trials per cell of the table (default 200)")
+    b.add_argument("--seed", type=int, help="with --accuracy or --resolution: seed of the targets and the noise "
+                                            "(default 0)")
     b.set_defaults(func=_bench)
 
 

@@ -15,6 +15,7 @@ from .errors import CubecastError
 CFAR_KINDS = ("ca", "os", "go", "so")
 INTERFERENCE_MITIGATIONS = ("off", "zero", "interpolate")   # chain/frontend.py: off = detect and count only
 WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # chain/windows.py makes each
+ANGLE_METHODS = ("dml", "fft")  # README "Several sources in one cell"
 
 
 @dataclass(frozen=True)
@@ -52,8 +53,10 @@ class ProcessingSettings:
     angle_fft_size_azimuth: int = 0  # 0 = automatic: max(64, next power of two >= 2 x the columns)
     angle_fft_size_elevation: int = 0  # 0 = automatic: max(16, next power of two >= 4 x the rows)
     angle_peak_threshold_db: float = -9.0
-    angle_max_peaks: int = 2
+    angle_max_peaks: int = 3  # sources per range-Doppler cell at most (one, two or three)
     angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
+    angle_model_error_db: float = -25.0  # split test's floor: the array's relative model error (README)
+    angle_method: str = "dml"  # "dml": maximum likelihood over the true elements; "fft": the FFT peaks only
     # output
     max_points: int = 1024
 
@@ -74,6 +77,8 @@ class ProcessingSettings:
             raise fail("interference_guard_samples", "must be within 0..64")
         if self.leakage_max_range_m < 0:
             raise fail("leakage_max_range_m", "must be at least 0 (0 = off)")
+        if self.angle_method not in ANGLE_METHODS:
+            raise fail("angle_method", f"must be one of {', '.join(ANGLE_METHODS)}")
         if self.cfar_kind not in CFAR_KINDS:
             raise fail("cfar_kind", f"must be one of {', '.join(CFAR_KINDS)}")
         for name in ("range_fft_size", "doppler_fft_size"):
@@ -102,6 +107,8 @@ class ProcessingSettings:
             raise fail("angle_max_peaks", "must be at least 1")
         if not 0 < self.angle_split_false_alarm < 1:
             raise fail("angle_split_false_alarm", "must be a probability between 0 and 1 (exclusive)")
+        if not self.angle_model_error_db <= 0:
+            raise fail("angle_model_error_db", "is relative to the cell's energy and must be <= 0")
         if self.angle_peak_threshold_db > 0:
             raise fail("angle_peak_threshold_db", "is relative to the strongest peak and must be <= 0")
         if self.max_points < 1:

@@ -37,7 +37,7 @@ from .schema import (MAX_ENTRIES, MAX_FLOAT, Count, Digest, Finite, NonNegative,
 if TYPE_CHECKING:
     from .sensor import Sensor
 
-WIRE_VERSION = 3  # 3: the `frontend` kind (a version-2 receiver refuses its topic); 2: the platform fields
+WIRE_VERSION = 3  # 3: the `frontend` kind and the `cell_sources` field (80-byte records); 2: the platform fields
 KINDS = ("adc", "points", "rdmap", "sensor", "health", "frontend")
 REASONS = ("malformed", "wire_version", "unknown_sensor", "digest", "shape", "dtype", "crc", "repeated",
            "oversized")
@@ -61,7 +61,7 @@ SENSOR_ID_RULE = f"1..{MAX_SENSOR_ID_CHARS} letters, digits, '-', '_' or '.'"
 SENSOR_ID_PATTERN = r"[\w.-]{1,%d}" % MAX_SENSOR_ID_CHARS   # the sensor file's [sensor] id follows it too
 _SENSOR_ID_RE = re.compile(SENSOR_ID_PATTERN)
 
-# [name, unit, dtype] of each record field, in order: 76 bytes, no padding (README "Wire format").
+# [name, unit, dtype] of each record field, in order: 80 bytes, no padding (README "Wire format").
 # The chain's point records (chain/points.RECORD_DTYPE) have exactly this layout (tests check it).
 POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
     ("frame", "", "<u8"), ("timestamp_s", "s", "<f8"),
@@ -71,12 +71,13 @@ POINT_WIRE_FIELDS: tuple[tuple[str, str, str], ...] = (
     ("sigma_range_m", "m", "<f4"), ("sigma_azimuth_deg", "deg", "<f4"),
     ("sigma_elevation_deg", "deg", "<f4"), ("sigma_velocity_mps", "m/s", "<f4"),
     ("platform_x_m", "m", "<f4"), ("platform_y_m", "m", "<f4"), ("platform_z_m", "m", "<f4"),
+    ("cell_sources", "", "<f4"),
 )
 RECORD_DTYPE = np.dtype([(name, dtype) for name, _, dtype in POINT_WIRE_FIELDS])
-assert RECORD_DTYPE.itemsize == 76
+assert RECORD_DTYPE.itemsize == 80
 _FIELDS_LIST = [list(f) for f in POINT_WIRE_FIELDS]
-FIELDS_RULE = ("must be exactly the record layout of README's wire format (76-byte records, frame <u8, timestamp_s <f8, "
-               "then 15 <f4 fields)")
+FIELDS_RULE = ("must be exactly the record layout of README's wire format (80-byte records, frame <u8, timestamp_s <f8, "
+               "then 16 <f4 fields)")
 
 SENSOR_SUMMARY_KEYS = ("pose", "max_range_m", "max_velocity_mps", "fov_half_azimuth_deg", "fov_half_elevation_deg",
                        "range_resolution_m", "velocity_resolution_mps")

@@ -587,11 +587,13 @@ def test_ground_and_overhead_targets_keep_their_order_in_z(az_ground, az_overhea
     by_az = np.argsort(az_pair)
     az_sorted, el_sorted = np.array(az_pair)[by_az], np.array(el_pair)[by_az]
     x, _ = two_target_snapshots(TWO_ROW, az_pair, el_pair, 32, rng)
-    az, el, _ = two_peaks_by_azimuth(AngleEstimator(grid).estimate(x), 32)
+    # two sources known to be there: at most two points (a third comes at the split test's rate)
+    pair = AngleSettings(max_peaks=2)
+    az, el, _ = two_peaks_by_azimuth(AngleEstimator(grid, pair).estimate(x), 32)
     assert np.max(np.abs(az - az_sorted)) < 1e-3 and np.max(np.abs(el - el_sorted)) < 1e-3
     n = 300
     x, amps = two_target_snapshots(TWO_ROW, az_pair, el_pair, n, rng, SNR_DB)
-    az, el, _ = two_peaks_by_azimuth(AngleEstimator(grid).estimate(x), n)
+    az, el, _ = two_peaks_by_azimuth(AngleEstimator(grid, pair).estimate(x), n)
     ground = int(np.flatnonzero(az_sorted == az_ground)[0])
     assert np.all(el[:, ground] < el[:, 1 - ground])
     var_az, var_el = crb_az_el_per_trial(TWO_ROW, az_sorted, el_sorted, amps[:, by_az], SNR_DB)
@@ -612,7 +614,7 @@ def test_two_separated_targets_on_ula_attain_the_two_source_crb(window):
     n = 300
     rng = np.random.default_rng(24)
     x, amps = two_target_snapshots(pos, az_pair, (0.0, 0.0), n, rng, SNR_DB)
-    res = AngleEstimator(VirtualGrid.from_positions(pos, LAM_M), AngleSettings(window=window)).estimate(x)
+    res = AngleEstimator(VirtualGrid.from_positions(pos, LAM_M), AngleSettings(window=window, max_peaks=2)).estimate(x)
     az, _, _ = two_peaks_by_azimuth(res, n)
     var_az, _ = crb_az_el_per_trial(pos, az_pair, (0.0, 0.0), amps, SNR_DB, with_w=False)
     for k in range(2):
@@ -837,19 +839,25 @@ def test_single_source_false_split_rate_agrees_with_design(snr_db):
     # field of view: the count of snapshots reported as two sources must lie within +-5 sigma of
     # the design n alpha (binomial, common practice). The design is the tube formula's leading
     # term (test above), which counts the fitted source's own neighbourhood and so overstates a
-    # little: measured about 0.75 alpha on this array. The first point stays on the source.
+    # little: measured about 0.75 alpha on this array. The first point stays on the source. The
+    # white-noise test alone is checked here (model-error floor at the rounding level); with the
+    # default floor (-25 dB re the cell, angle_split.py) the floor only removes splits: at most the
+    # band's upper end.
     rng = np.random.default_rng(int(snr_db) + 50)
     n = 5000
     az, el = rng.uniform(-60.0, 60.0, n), rng.uniform(-15.0, 15.0, n)
     u, w = np.sin(np.radians(az)) * np.cos(np.radians(el)), np.sin(np.radians(el))
     amp = 10.0 ** (snr_db / 20.0) * np.exp(2j * np.pi * rng.random(n))
     x = (yard_waves(u, w, amp) + circular_noise((n, YARD.n_virtual), rng)).astype(np.complex64)
-    est = yard_estimator()
+    est = yard_estimator(model_error_db=-300.0)
     res = est.estimate(x)
     lo, hi = binomial_band(n, est.settings.split_false_alarm)
     assert lo <= np.sum(np.bincount(res.det_index, minlength=n) >= 2) <= hi
+    assert np.sum(np.bincount(yard_estimator().estimate(x).det_index, minlength=n) >= 2) <= hi
+    # an unsplit source's point stays on it (a false split's two points straddle the source)
+    counts = np.bincount(res.det_index, minlength=n)
     first = strongest_per_det(res, n)
-    assert np.max(np.abs(res.u[first] - u)) < 0.05
+    assert np.max(np.abs(res.u[first] - u)[counts == 1]) < 0.05
 
 
 def test_a_third_source_needs_its_own_test():
@@ -886,7 +894,7 @@ def test_equal_pairs_at_1p4_rayleigh_are_resolved(phase_deg):
     common = np.exp(2j * np.pi * rng.random(n))
     x = (yard_waves(centre - du / 2, w, common) + yard_waves(centre + du / 2, w, common * np.exp(1j * np.radians(phase_deg)))
          + circular_noise((n, YARD.n_virtual), rng, 0.01)).astype(np.complex64)
-    res = yard_estimator().estimate(x)
+    res = yard_estimator(max_peaks=2).estimate(x)  # a third would come at the split test's rate
     assert np.array_equal(np.bincount(res.det_index, minlength=n), np.full(n, 2))
     u = np.sort(res.u.reshape(n, 2), axis=1)
     assert np.all(np.abs(u[:, 0] - (centre - du / 2)) < du / 4)

@@ -85,3 +85,26 @@ def test_bench_accuracy_flags_belong_to_their_mode():
         out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", *argv], capture_output=True,
                              text=True, timeout=60)
         assert out.returncode == 2 and message in out.stderr, (argv, out.stderr)
+
+
+def test_bench_resolution_json_report():
+    # the table's layout (rates are the angle tests' business, tests/test_superres.py): every case,
+    # separation and SNR of the sweep for each array, rates in [0, 1], the single-source split rate
+    out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", "--resolution", "--trials", "20",
+                          "--json"], capture_output=True, text=True, timeout=600)
+    assert out.returncode == 0, out.stderr
+    result = json.loads(out.stdout)
+    assert result["trials"] == 20 and result["design_split"] == 0.01
+    assert [a["name"] for a in result["arrays"]] == ["ula8", "ula16", "yard"]
+    for arr in result["arrays"]:
+        assert arr["rayleigh_u"] == 2.0 / arr["columns"]
+        cells = {(r["case"], r["separation_rayleigh"], r["snr_db"]) for r in arr["rows"]}
+        assert cells == {(c, s, n) for c in result["cases"] for s in result["separations_rayleigh"]
+                         for n in result["snr_db"]}
+        assert all(0.0 <= r["resolved"] <= 1.0 for r in arr["rows"])
+        assert [s["snr_db"] for s in arr["single"]] == result["snr_db"]
+    for argv, message in ((["--resolution", "--frames", "60"], "--frames: not with --resolution"),
+                          (["--resolution", "--trials", "5"], "at least 20 trials")):
+        out = subprocess.run([sys.executable, "-m", "cubecast.daemon.cli", "bench", *argv], capture_output=True,
+                             text=True, timeout=60)
+        assert out.returncode == 2 and message in out.stderr, (argv, out.stderr)

@@ -224,7 +224,7 @@ def test_points_map_health_and_pose_reach_a_websocket_client():
     assert channel["schemaName"] == "foxglove.PointCloud"
     msg = protobuf(channel, payload)
     assert msg.frame_id == sid and (msg.timestamp.seconds, msg.timestamp.nanos) == (1_700_000_000, 250_000_000)
-    assert msg.point_stride == RECORD_DTYPE.itemsize == 76
+    assert msg.point_stride == RECORD_DTYPE.itemsize == 80
     check_cloud_fields(cloud_array(msg), rec)
 
     # the pose: the child frame's points reach the platform frame as the sensor file's pose takes them

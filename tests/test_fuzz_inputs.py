@@ -73,7 +73,7 @@ def check_accepted(msg: wire.Message) -> None:
         assert zlib.crc32(msg.payload) == h["crc32"]
         assert msg.data.nbytes == msg.payload.nbytes == math.prod(h["shape"]) * np.dtype(h["dtype"]).itemsize
     elif msg.kind == "points":
-        assert msg.data.dtype == RECORD_DTYPE and msg.payload.nbytes == 76 * h["count"]
+        assert msg.data.dtype == RECORD_DTYPE and msg.payload.nbytes == 80 * h["count"]
     elif msg.kind == "rdmap":
         assert list(msg.data.shape) == h["shape"] and h["range_step_m"] > 0 and h["velocity_step_mps"] > 0
     else:

@@ -418,13 +418,17 @@ def test_point_kernel_matches_the_bound_functions(layout):
     from scipy.spatial.transform import Rotation
     pose_r = Rotation.from_euler("ZXY", [-30.0, 10.0, -5.0], degrees=True).as_matrix()
     pose_t = np.array([1.5, -0.4, 2.25])
-    fill_points(range_bin, bin_m, bias, det_index, az, el, peak, doppler_hz, half_wl_det, cell_snr, element_snr,
-                sigma_r, sigma_v, centre, *crb_unit_covariance(pos, lam), pose_r, pose_t, np.empty(n_det),
-                out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
-
+    # each source's share of its cell's signal energy, and its bound at 2 SNR = 1 (for a lone source the
+    # single-source one; AngleResult gives each source of a pair its own, see test_angle)
     first = np.zeros(n_det)
     np.maximum.at(first, det_index, peak)
     share = peak / first[det_index]
+    var_u1, var_w1, cov1, has_x, has_z = crb_unit_covariance(pos, lam)
+    unit = np.tile([var_u1, var_w1, cov1], (n_pts, 1))
+    fill_points(range_bin, bin_m, bias, det_index, az, el, share.astype(np.float32), doppler_hz, half_wl_det,
+                cell_snr, element_snr, sigma_r, sigma_v, centre, unit, has_x, has_z, pose_r, pose_t,
+                out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
+    share = share.astype(np.float32).astype(np.float64)
     snr_pt = element_snr[det_index] * share
     a, e = np.radians(az.astype(np.float64)), np.radians(el.astype(np.float64))
     # sensor frame (project convention): x right, y boresight, z up; u the point's direction
@@ -440,6 +444,8 @@ def test_point_kernel_matches_the_bound_functions(layout):
     np.testing.assert_allclose(out["velocity_mps"], doppler_hz[det_index] * half_wl_det[det_index], rtol=1e-6)
     np.testing.assert_allclose(out["snr_db"], 10 * np.log10(cell_snr[det_index] * share), rtol=1e-5)
     np.testing.assert_allclose(out["sigma_range_m"], sigma_r[det_index], rtol=1e-6)
+    # the sources the angle stage found in each point's cell: its detection's count of points
+    np.testing.assert_array_equal(out["cell_sources"], np.bincount(det_index, minlength=n_det)[det_index])
     np.testing.assert_allclose(out["sigma_velocity_mps"], sigma_v[det_index], rtol=1e-6)
     # Direction bound written out (Stoica and Nehorai, "MUSIC, maximum likelihood and Cramer-Rao bound",
     # IEEE Trans. ASSP, 1989; one snapshot, unknown amplitude): F = 2 eta k0^2 sum_i (q_i - q_mean)(q_i - q_mean)^T
@@ -475,3 +481,10 @@ def test_point_kernel_matches_the_bound_functions(layout):
         assert np.all(np.isinf(out["sigma_elevation_deg"])) and np.all(np.isfinite(out["sigma_azimuth_deg"]))
     if layout == "elevation_only":
         assert np.all(np.isinf(out["sigma_azimuth_deg"])) and np.all(np.isfinite(out["sigma_elevation_deg"]))
+
+
+def test_model_error_floor_is_a_processing_setting(sensor):
+    settings = parse_settings('[processing]\nangle_model_error_db = -30\n')
+    assert Pipeline(sensor, settings).angle.settings.model_error_db == -30
+    with pytest.raises(CubecastError, match=r"angle_model_error_db = 3.0: is relative to the cell's energy"):
+        parse_settings('[processing]\nangle_model_error_db = 3.0\n')

@@ -18,7 +18,7 @@ from tests.helpers import SAMPLES
 
 CSV_COLUMNS = ["frame", "timestamp_s", "x_m", "y_m", "z_m", "range_m", "azimuth_deg", "elevation_deg",
                "velocity_mps", "snr_db", "sigma_range_m", "sigma_azimuth_deg", "sigma_elevation_deg",
-               "sigma_velocity_mps", "platform_x_m", "platform_y_m", "platform_z_m"]
+               "sigma_velocity_mps", "platform_x_m", "platform_y_m", "platform_z_m", "cell_sources"]
 HANN_ENBW = 1.5  # Harris, Proc. IEEE, 1978
 
 

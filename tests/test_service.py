@@ -465,7 +465,7 @@ def test_malformed_and_oversized_rejected_and_counted(sensor, offline, cubecast_
             bad = [
                 ([b"yard-a/adc", b"only two parts"], "malformed"),
                 ([b"yard-a/adc", b"\xc1\xc1", frame.tobytes()], "malformed"),
-                (adc(0, wire=4), "wire_version"),
+                (adc(0, wire=2), "wire_version"),
                 (adc(0, sensor_id="gate-b"), "unknown_sensor"),
                 (adc(0, digest="0123456789abcdef"), "digest"),
                 (adc(0, dtype="<f4", shape=[96, 4, 128]), "dtype"),

@@ -35,7 +35,7 @@ YARD_CAP = ROOT / "replay_samples" / "yard.cap"
 def test_point_layout_is_the_wires_and_the_chains():
     # README "Wire format": 8 + 8 + 12 * 4 = 64 bytes per record, fields in this order
     from cubecast.daemon.chain.points import RECORD_DTYPE
-    assert POINT_DTYPE.itemsize == 76
+    assert POINT_DTYPE.itemsize == 80
     assert POINT_DTYPE == RECORD_DTYPE
 
 
@@ -62,7 +62,7 @@ def test_decode_rejects_what_breaks_the_contract():
     assert _reason(points_parts("a", 1, pts)[:1] + [b"\xc1", good[2]]) == "malformed"  # not msgpack
     assert _reason([b"a/points", msgpack.packb([1, 2]), b""]) == "malformed"  # header not a map
     h = msgpack.unpackb(good[1])
-    assert _reason([b"a/points", msgpack.packb({**h, "wire": 4}), good[2]]) == "wire_version"
+    assert _reason([b"a/points", msgpack.packb({**h, "wire": 2}), good[2]]) == "wire_version"
     assert _reason([b"a/points", msgpack.packb({**h, "wire": True}), good[2]]) == "wire_version"
     assert _reason([b"b/points", good[1], good[2]]) == "malformed"            # sensor id differs
     assert _reason([b"a/rdmap", good[1], good[2]]) == "malformed"             # kind differs

@@ -95,8 +95,8 @@ def test_points_round_trip_is_byte_exact():
     assert msg.header["count"] == 5 and msg.header["latency_s"] == 0.004
     assert msg.header["fields"] == [list(f) for f in POINT_WIRE_FIELDS]
     assert msg.data.dtype == RECORD_DTYPE and msg.data.tobytes() == rec.tobytes()
-    # the record layout of README "Wire format": 8 + 8 + 15 * 4 = 76 bytes, no padding
-    assert RECORD_DTYPE.itemsize == 76 and len(POINT_WIRE_FIELDS) == 17
+    # the record layout of README "Wire format": 8 + 8 + 16 * 4 = 80 bytes, no padding
+    assert RECORD_DTYPE.itemsize == 80 and len(POINT_WIRE_FIELDS) == 18
     empty = decode(encode_points("yard-a", 13, "r9", 1.35, 0.001, np.empty(0, RECORD_DTYPE)))
     assert empty.header["count"] == 0 and empty.data.shape == (0,) and empty.payload.nbytes == 0
 
@@ -186,8 +186,7 @@ def test_malformed_fields(sensor, yard_frame):
 def test_wire_version(sensor, yard_frame):
     # msgpack keeps integers and floats apart (msgpack specification, Furuhashi, 2013: int and float
     # families); README "Wire format" makes the version the integer 3, so 3.0 and true are no version;
-    # version 1 (the 64-byte records without the platform frame) and 2 (before the frontend kind) are
-    # refused, not misread
+    # versions 1 and 2 (the 64- and 76-byte records, before the frontend kind) are refused, not misread
     for v in (1, 2, 4, 0, "3", None, 3.0, True, 1.5):
         err = rejected(raw("yard-a/adc", adc_header(sensor, yard_frame, wire=v), yard_frame.tobytes()),
                        "wire_version", "'wire'")
@@ -325,7 +324,7 @@ def test_encoded_headers_are_the_documented_msgpack_maps(sensor, yard_frame):
         assert bytes(parts[1]) == msgpack.packb(header, use_bin_type=True), header["kind"]
         assert bytes(parts[0]) == f"yard-a/{header['kind']}".encode() and bytes(parts[2]) == payload
     # the point record: 8 + 8 + 12 * 4 bytes, little-endian, no padding, the chain's record exactly
-    assert wire.RECORD_DTYPE == RECORD_DTYPE and wire.RECORD_DTYPE.itemsize == 76
+    assert wire.RECORD_DTYPE == RECORD_DTYPE and wire.RECORD_DTYPE.itemsize == 80
 
 
 # ---- the rules the daemon, the workers and the viewer share --------------------------------------

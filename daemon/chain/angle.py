@@ -37,8 +37,16 @@ Processing per call of AngleEstimator.estimate() (each module's docstring gives 
    when the split test (angle_split.py: a likelihood ratio test of P against P - 1 sources in
    white noise, needing no noise power) says it is there, at the design false-split probability
    `split_false_alarm` for a single source.
-7. Residual search (angle_residual.py): the residual of the fit may add one candidate per
-   snapshot (a screen by Fisher's g statistic); step 6, with its split test, runs again on it.
+7. Further sources (angle_residual.py), for a snapshot with fewer than max_peaks kept: alternating
+   projection on the FFT grid (Ziskind and Wax, "Maximum likelihood localization of multiple
+   sources by alternating projection", IEEE Trans. ASSP, 1988) proposes one more source near the
+   kept ones, moving them too (two sources under one FFT peak), and another while each passes a
+   screen; or the strongest peak of the fit's residual (a screen by Fisher's statistic) proposes
+   one elsewhere. Step 6 refines the proposal jointly, and it replaces the kept set when it passes
+   the split test against the kept set's own misfit (two more at once only when the middle set
+   passes too). Repeated while snapshots gain, up to max_peaks.
+8. Bounds (bounds.source_bounds): each reported source's share of the snapshot's signal energy and
+   its deterministic Cramer-Rao bound given the others (snr_share, crb_unit).
 
 Limits (by design, documented rather than hidden):
 - An array with no elevation extent (one grid row) measures only u; the estimator then
@@ -49,11 +57,14 @@ Limits (by design, documented rather than hidden):
 - A target whose beam maximum lies at an invisible FFT grid point (only possible within about
   one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
 - Two targets closer than the array can separate (variance inflation above 10, step 6) stay
-  one peak. Step 7 adds at most one peak per snapshot, so of two weak targets hidden under a
-  strong one neither may be found.
-- The split test assumes white noise and a calibrated array: channel errors leave a structured
-  misfit that, on a strong target, the test can take for a second source (rms phase errors of
-  phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees).
+  one peak. Sources are added in order, each tested against the fit without it: of three
+  close sources, where one plane wave fitted to three leaves too much unexplained for a second to
+  pass, fewer are reported.
+- The split test assumes white noise and a calibrated array: channel errors (rms phase errors of
+  phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees) and the range
+  and Doppler sidelobes of neighbouring echoes leave a structured misfit that, on a strong target,
+  the white-noise test takes for a second source; the model-error floor (model_error_db,
+  angle_split.py) takes that much of the cell's energy off the misfit before the test.
 - refine = False skips steps 5 to 7 (peaks stay on the FFT grid with their grid power).
 
 The compiled kernels of steps 2-7 call each other across these modules. numba's cache checks only
@@ -75,9 +86,10 @@ from ..settings import ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
-from .angle_residual import fit_residuals, residual_peaks
+from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
+from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
-from .bounds import crb_unit_covariance
+from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
 
@@ -123,6 +135,12 @@ class AngleSettings:
                         two (the split test's size, angle_split.py); default 0.01. On noise
                         alone the test splits less often (its first fit takes the largest
                         component).
+    model_error_db      the split test's model-error floor (angle_split.py): a further source must
+                        explain, beyond what the test needs in white noise, this fraction of the
+                        snapshot's energy (dB re it), the relative residual the array's model
+                        error (calibration, coupling, leakage) leaves; default -25 dB
+                        (angle_model_error_db); must be <= 0, below -90 dB it acts as -90 dB
+                        (float32 rounding).
     refine              Newton refinement on the actual element positions; default True.
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
@@ -136,6 +154,7 @@ class AngleSettings:
     refine: bool = True
     window: str = "rect"
     split_false_alarm: float = _DEFAULTS.angle_split_false_alarm
+    model_error_db: float = _DEFAULTS.angle_model_error_db
 
     def __post_init__(self) -> None:
         for name in ("fft_size_azimuth", "fft_size_elevation"):
@@ -152,6 +171,9 @@ class AngleSettings:
         v = self.split_false_alarm
         if not is_real(v) or not 0.0 < v < 1.0:
             raise CubecastError(f"split_false_alarm must be a probability in (0, 1), got {v!r}")
+        v = self.model_error_db
+        if not is_real(v) or not math.isfinite(v) or v > 0:
+            raise CubecastError(f"model_error_db must be a finite number <= 0 dB, got {v!r}")
         if self.window not in GRID_WINDOW_NAMES:
             raise CubecastError(
                 f"window must be one of {', '.join(GRID_WINDOW_NAMES)}, got {self.window!r}"
@@ -174,6 +196,12 @@ class AngleResult:
                             |a_i|^2 * n_virt with a_i the joint least-squares amplitude (equal
                             to the above for a lone target; a noiseless unit-amplitude target
                             again gives n_virt whatever the others do).
+    snr_share      float32  the source's share of the snapshot's signal energy, n_virt |a_k|^2 / ||A a||^2
+                            (joint least-squares amplitudes a; 1 for a lone source): its SNR per element
+                            is this times the snapshot's (bounds.source_bounds)
+    crb_unit       float64  [n, 3]: (var_u, var_w, cov_uw) of the source's deterministic Cramer-Rao bound
+                            given the others in its snapshot, at 2 |a_k|^2 / sigma^2 = 1 (divide by twice
+                            its SNR); a lone source's is crb_unit_covariance's (bounds.source_bounds)
     """
 
     det_index: np.ndarray
@@ -182,6 +210,8 @@ class AngleResult:
     u: np.ndarray
     w: np.ndarray
     peak_power: np.ndarray
+    snr_share: np.ndarray
+    crb_unit: np.ndarray
 
     def __len__(self) -> int:
         return int(self.det_index.size)
@@ -305,14 +335,25 @@ class AngleEstimator:
         pos = grid.positions_m
         self._kx = k0 * (pos[:, 0] - pos[:, 0].mean())
         self._kz = k0 * (pos[:, 2] - pos[:, 2].mean())
+        # a lone source's bound at 2 SNR = 1 (pairs: bounds.source_bounds)
+        self._crb_one = np.array(crb_unit_covariance(grid.positions_m, lam)[:3])
         # the split test (angle_split.py): critical value of the P-th source at index P
         self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
                                                     self._do_w, settings.max_peaks, settings.split_false_alarm)
-        self._q_min = _RESIDUAL_SCREEN * float(self.split_critical[min(2, settings.max_peaks)])
+        self._floor_fraction = max(10.0 ** (settings.model_error_db / 10.0), _MISFIT_FLOOR)  # angle_split.py
 
         kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
         self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
         self._power = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.float64)
+        # step 7: a_i^H a_j = pattern[i - j] for grid directions i, j (the cell counts' transform)
+        fz = np.exp(2j * np.pi * np.outer(np.arange(self.n_fft_z), np.arange(grid.n_z)) / self.n_fft_z)
+        fxm = np.exp(2j * np.pi * np.outer(np.arange(grid.n_x), np.arange(self.n_fft_x)) / self.n_fft_x)
+        self._pattern = np.tile(fz @ grid.counts.astype(np.complex128) @ fxm, (2, 2))  # tiled: no modulo
+        # the grid search moves a source at most half a Rayleigh spacing (n_fft / n cells) per step
+        self._reach_z = max(1, self.n_fft_z // (2 * grid.n_z)) if grid.n_z > 1 else 0
+        self._reach_x = max(1, self.n_fft_x // (2 * grid.n_x)) if grid.n_x > 1 else 0
+        self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
+        self._ones = np.ones(n_virt, np.complex128)
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
 
@@ -333,8 +374,18 @@ class AngleEstimator:
         self._pk_p = np.empty(capacity * mp, dtype=np.float64)
         self._resid = np.empty((capacity, g.n_virt), dtype=np.complex64)
         self._open = np.empty(capacity, dtype=np.bool_)
-        self._new_iz = np.empty(capacity, dtype=np.int64)
-        self._new_ix = np.empty(capacity, dtype=np.int64)
+        self._new_n = np.empty(capacity, dtype=np.int64)
+        self._new_u = np.empty((capacity, mp), dtype=np.float64)
+        self._new_w = np.empty((capacity, mp), dtype=np.float64)
+        self._first_n = np.empty(capacity, dtype=np.int64)
+        self._first_u = np.empty((capacity, mp), dtype=np.float64)
+        self._first_w = np.empty((capacity, mp), dtype=np.float64)
+        self._res_iz = np.empty(capacity, dtype=np.int64)
+        self._res_ix = np.empty(capacity, dtype=np.int64)
+        self._y_energy = np.empty(capacity, dtype=np.float64)
+        self._r_energy = np.empty(capacity, dtype=np.float64)
+        self._q_need = np.empty(capacity, dtype=np.float64)
+        self._cand = np.empty(capacity, dtype=np.bool_)
 
     def _check(self, snapshots) -> np.ndarray:
         x = np.asarray(snapshots)
@@ -389,51 +440,133 @@ class AngleEstimator:
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
         n_kept = _kept_peaks(n_found, keep, det, u, w, p, self._power_norm, det_index, values)
-        return AngleResult(det_index=det_index[:n_kept], azimuth_deg=values[0, :n_kept],
+        det_index = det_index[:n_kept]
+        share, crb = np.empty(n_kept, np.float32), np.empty((n_kept, 3), np.float64)
+        source_bounds(x, self._cal128, self._kx, self._kz, det_index, values[2, :n_kept].astype(np.float64),
+                      values[3, :n_kept].astype(np.float64), self._do_u, self._do_w, self._crb_one, share, crb)
+        return AngleResult(det_index=det_index, azimuth_deg=values[0, :n_kept],
                            elevation_deg=values[1, :n_kept], u=values[2, :n_kept], w=values[3, :n_kept],
-                           peak_power=values[4, :n_kept])
+                           peak_power=values[4, :n_kept], snr_share=share, crb_unit=crb)
 
     def _relax(self, x, n_found, det, keep, u, w, p):
         """Step 6 (angle_joint.py) on the peak arrays, in place."""
         relax_peaks(x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det, self._do_u, self._do_w,
-                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, keep, u, w, p)
+                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
+                    keep, u, w, p)
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
-        """Step 7 (angle_residual.py): a target the FFT stage did not separate shows in the residual of
-        the fit. For the snapshots with a strong single-tone residual, the residual's peak joins
-        their kept peaks and step 6 runs again on them. Returns the peak arrays (new ones when
-        any snapshot gained a peak, with its old rows left unkept)."""
+        """Step 7 (angle_residual.py): a source the FFT stage did not separate. For every snapshot with
+        fewer than max_peaks kept peaks whose misfit leaves room for one more to pass the split test
+        (fit_residuals: else nothing more is computed for it), alternating projection on the grid
+        proposes one more source (moving the kept ones too); where the proposal's grid fit could pass
+        the split test, all are refined jointly (step 6) from it, and the larger set replaces the kept
+        one when it passes the split test against the kept set's own misfit. Repeated while snapshots
+        gain, up to max_peaks. Returns the peak arrays (new ones when any snapshot gained, the old rows
+        of a gaining snapshot left unkept)."""
         n = x.shape[0]
-        resid, open_slot = self._resid[:n], self._open[:n]
-        fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, self.settings.max_peaks,
-                      resid, open_slot)
-        fx = self._row_spectra(resid, self._w_window)
-        new_iz, new_ix = self._new_iz[:n], self._new_ix[:n]
-        n_new = residual_peaks(fx, self._dft_z, n, self._visible_f, open_slot, self.grid.n_cells, self._q_min,
-                               self._power, self._acc_re, self._acc_im, new_iz, new_ix)
-        if n_new == 0:
-            return n_found, det, keep, u, w, p
-        # the gaining snapshots' kept peaks plus the new one (rank 0: in a pair the array cannot
-        # separate, the new peak is the one that goes), refined jointly as a sub-batch
-        keep, det = keep[:n_found].copy(), det[:n_found]
-        gain = np.flatnonzero(new_iz >= 0)
-        rows = np.flatnonzero(keep & (new_iz >= 0)[det])  # grouped by snapshot, ascending like gain
-        count = np.bincount(det[rows], minlength=n)[gain] + 1
+        mp = self.settings.max_peaks
+        crit, frac = self.split_critical, self._floor_fraction
+        resid, open_slot, cand = self._resid[:n], self._open[:n], self._cand[:n]
+        y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
+        for round_ in range(mp - 1):
+            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
+                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
+            if round_ > 0:
+                open_slot &= cand
+                n_open = int(open_slot.sum())
+            if n_open == 0:
+                break
+            res_iz, res_ix = self._res_iz[:n], self._res_ix[:n]
+            residual_peaks(self._row_spectra(resid, self._w_window), self._dft_z, n, self._visible_f, open_slot,
+                           self.grid.n_cells, q_need, self._power, self._acc_re, self._acc_im, res_iz, res_ix)
+            fx = self._row_spectra(x, self._w_sum)  # the same buffer as the residual's rows above
+            new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
+            first_n, first_u, first_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
+            n_new = further_sources(fx, self._dft_z, self._pattern, self._visible_f, n, open_slot, n_found, det,
+                                    keep, u, w, self.u_grid, self.w_grid, y_energy, r_energy, crit,
+                                    _RESIDUAL_SCREEN, frac, self.grid.n_virt / _MAX_INFLATION, self._reach_z,
+                                    self._reach_x, res_iz, res_ix, self._img,
+                                    new_n, new_u, new_w, first_n, first_u, first_w)
+            if n_new == 0:
+                break
+            # the largest proposed set first; where it did not win, the smallest
+            n_found, det, keep, u, w, p, won = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
+                                                               r_energy, y_energy)
+            retry = np.where(~won & (first_n < new_n), first_n, 0)
+            if retry.any():
+                n_found, det, keep, u, w, p, more = self._try_sets(x, n_found, det, keep, u, w, p, retry, first_u,
+                                                                    first_w, r_energy, y_energy)
+                won |= more
+            if not won.any():
+                break
+            cand[:] = won
+        return n_found, det, keep, u, w, p
+
+    def _try_sets(self, x, n_found, det, keep, u, w, p, new_n, new_u, new_w, r_energy, y_energy):
+        """The proposed sets (further_sources) refined jointly as a sub-batch (step 6, which tests them
+        from the most sources down); a snapshot takes its refined set when it kept more sources than
+        before and passes the split test of one more source against the misfit the kept set left
+        (r_energy). Returns the peak arrays and which snapshots gained."""
+        n = x.shape[0]
+        gain = np.flatnonzero(new_n > 0)
+        count = new_n[gain]
         sub_det = np.repeat(np.arange(gain.size), count)
-        new_at = np.cumsum(count) - 1  # each snapshot's new peak comes last
-        old_at = np.ones(sub_det.size, np.bool_)
-        old_at[new_at] = False
-        sub_u, sub_w, sub_p = (np.empty(sub_det.size) for _ in range(3))
-        sub_u[old_at], sub_w[old_at], sub_p[old_at] = u[rows], w[rows], p[rows]
-        sub_u[new_at], sub_w[new_at], sub_p[new_at] = self.u_grid[new_ix[gain]], self.w_grid[new_iz[gain]], 0.0
-        sub_keep = np.ones(sub_det.size, np.bool_)
-        self._relax(np.ascontiguousarray(x[gain]), sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
-        keep[rows] = False
-        det_all = np.concatenate([det, gain[sub_det]])
+        slot = np.arange(sub_det.size) - np.repeat(np.cumsum(count) - count, count)
+        sub_u = new_u[gain[sub_det], slot].copy()
+        sub_w = new_w[gain[sub_det], slot].copy()
+        # rank (which of an inseparable pair stays): the kept peaks' powers in order, the new one last
+        keep, det = keep[:n_found].copy(), det[:n_found]
+        rows = np.flatnonzero(keep & (new_n > 0)[det])  # grouped by snapshot, ascending like gain
+        before = np.bincount(det[rows], minlength=n)[gain]  # kept peaks of each gaining snapshot
+        sub_p = np.zeros(sub_det.size)
+        sub_p[slot < before[sub_det]] = p[rows]
+        xs = np.ascontiguousarray(x[gain])
+        sub_keep, e_more, n_kept = self._refine_sets(xs, sub_det, sub_u, sub_w, sub_p)
+        e_fewer = r_energy[gain]
+        floor = self._floor_fraction * y_energy[gain]
+        won = (n_kept == before + 1) & self._passes(e_fewer, e_more, before + 1, floor)
+        jump = np.flatnonzero(n_kept == before + 2)
+        if jump.size:
+            # two more at once: the middle set (all but the weakest, step 6 writes them strongest first)
+            # must pass against the kept set, and the full set against the middle one
+            is_jump = np.isin(sub_det, jump)
+            rank_in = np.arange(sub_det.size) - np.repeat(np.cumsum(count) - count, count)
+            mid = np.flatnonzero(is_jump & sub_keep & (rank_in < n_kept[sub_det] - 1))
+            mid_det = np.searchsorted(jump, sub_det[mid])
+            mid_keep, e_mid, mid_kept = self._refine_sets(np.ascontiguousarray(xs[jump]), mid_det, sub_u[mid].copy(),
+                                                          sub_w[mid].copy(), sub_p[mid].copy())
+            won[jump] = ((mid_kept == before[jump] + 1) & self._passes(e_fewer[jump], e_mid, before[jump] + 1, floor[jump])
+                         & self._passes(e_mid, e_more[jump], before[jump] + 2, floor[jump]))
+        cand = np.zeros(n, np.bool_)
+        if not won.any():
+            return n_found, det, keep, u, w, p, cand
+        cand[gain[won]] = True
+        keep[np.flatnonzero(keep & cand[det])] = False
+        take = won[sub_det]
+        det_all = np.concatenate([det, gain[sub_det[take]]])
         order = np.argsort(det_all, kind="stable")  # each snapshot's rows together, the new ones last
-        return (det_all.size, det_all[order], np.concatenate([keep, sub_keep])[order],
-                np.concatenate([u[:n_found], sub_u])[order], np.concatenate([w[:n_found], sub_w])[order],
-                np.concatenate([p[:n_found], sub_p])[order])
+        return (det_all.size, det_all[order], np.concatenate([keep, sub_keep[take]])[order],
+                np.concatenate([u[:n_found], sub_u[take]])[order], np.concatenate([w[:n_found], sub_w[take]])[order],
+                np.concatenate([p[:n_found], sub_p[take]])[order], cand)
+
+    def _refine_sets(self, xs, sub_det, sub_u, sub_w, sub_p):
+        """Step 6 on the sets of sub_det (snapshot rows of xs), in place on sub_u, sub_w, sub_p; returns
+        (keep, the kept set's misfit per snapshot, its size)."""
+        m = xs.shape[0]
+        sub_keep = np.ones(sub_det.size, np.bool_)
+        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        resid = np.empty((m, self.grid.n_virt), np.complex64)
+        open_slot, energy, misfit, q_need = np.empty(m, np.bool_), np.empty(m), np.empty(m), np.empty(m)
+        fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
+                      self.settings.max_peaks + 1, self.split_critical, self._floor_fraction, _RESIDUAL_SCREEN,
+                      resid, energy, misfit, q_need, open_slot)
+        return sub_keep, misfit, np.bincount(sub_det[sub_keep], minlength=m)
+
+    def _passes(self, e_fewer, e_more, n_sources, floor):
+        """The split test (angle_joint.split_passes) of the n_sources-th source per snapshot, with the
+        model-error floor `floor` taken off the misfit left without it."""
+        crit = self.split_critical[np.minimum(n_sources, self.split_critical.size - 1)]
+        return (e_fewer > floor) & (e_fewer - floor - e_more >= crit * (e_fewer - floor))
 
     def coherence(self, snapshots: np.ndarray) -> np.ndarray:
         """float32[n_det] in [0, 1]: max over visible FFT grid points of |a^H x|^2 / (n_virt ||x||^2).
@@ -457,4 +590,5 @@ class AngleEstimator:
 
 def _empty_result() -> AngleResult:
     f = np.empty(0, dtype=np.float32)
-    return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy())
+    return AngleResult(np.empty(0, dtype=np.int32), f, f.copy(), f.copy(), f.copy(), f.copy(), f.copy(),
+                       np.empty((0, 3), np.float64))

@@ -28,12 +28,13 @@ the test needs. After a drop the sweeps and joint steps run again (at most 3 rou
 
 Then the split test (angle_split.py) decides, from the most peaks down: the P-th peak stays when
 it explains at least the fraction g_crit(P) of the misfit the P - 1 others leave (refined again
-without it; for P = 2 the best single plane wave). A failed test leaves the smaller set, tested in
-turn. Reported powers are |a_i|^2 * n_virt (the scale of a lone target's beam power). If a single
-peak survives, its step-5 result is reported unchanged. Noiseless data of P plane waves fit with
-zero residual at the truth (the global minimum, reached in every case tested); in noise the result
-is a local minimum of the misfit, i.e. the P-target deterministic maximum-likelihood estimate when
-that minimum is the global one.
+without it; for P = 2 the best single plane wave), beyond what the array's model error could put
+there (the floor: a set fraction of the snapshot's energy, angle_split.py). A failed test leaves
+the smaller set, tested in turn. Reported powers are |a_i|^2 * n_virt (the scale of a lone
+target's beam power). If a single peak survives, its step-5 result is reported unchanged.
+Noiseless data of P plane waves fit with zero residual at the truth (the global minimum, reached
+in every case tested); in noise the result is a local minimum of the misfit, i.e. the P-target
+deterministic maximum-likelihood estimate when that minimum is the global one.
 
 Cost: about 10 us per two-peak snapshot on the bundled sensor (on average 4 sweeps and 2
 joint steps), less for a noise peak the screen drops after the first sweep, growing steeply with
@@ -65,8 +66,8 @@ _MAX_JOINT_ITERATIONS = 20  # joint Gauss-Newton iterations after the sweeps
 _JOINT_STEP_TOL = 1e-4  # FFT bins: a smaller step ends the joint iterations
 _MAX_RELAX_ROUNDS = 3  # sweeps + joint iterations again after a peak was dropped
 # a misfit below this fraction of the snapshot's energy is float32 rounding (about 1e-14 of it for a
-# noiseless float32 snapshot): the split test and the screen count it as this much. Reached by a
-# single source only above about 90 dB per channel.
+# noiseless float32 snapshot): the split test's model-error floor is never set below it (split_passes).
+# Reached by a single source only above about 90 dB per channel.
 _MISFIT_FLOOR = 1e-9
 
 
@@ -165,12 +166,14 @@ def _drop_active(act, n_act, a):
 def _prune_hopeless(ph, act, n_act, y, amp, vif, crit, screen, floor):
     """Drop the active peak least worth keeping when it cannot be near passing the split test: with
     the angles held, removing peak p raises the misfit E by n_virt |amp_p|^2 / vif_p (ordinary least
-    squares: beta_p^2 / (X^H X)^-1_pp), and the test needs a rise of at least crit / (1 - crit) times
-    E (angle_split.py); below `screen` times that the peak goes. E counts at least `floor` (the
-    rounding level, see split_passes). Returns the new count (one peak always stays)."""
+    squares: beta_p^2 / (X^H X)^-1_pp), and the test (split_passes: rise - floor >= crit (E + rise -
+    floor)) needs a rise of at least crit E / (1 - crit) + floor; below `screen` times that the peak
+    goes. Returns the new count (one peak always stays)."""
     c = crit[n_act] if n_act < crit.size else crit[crit.size - 1]
-    need = screen * c / (1.0 - c) if c < 1.0 else np.inf
-    cost = max(_residual_cost(y, ph, act, n_act, amp), floor)
+    if c >= 1.0:
+        need = np.inf
+    else:
+        need = screen * (c * _residual_cost(y, ph, act, n_act, amp) / (1.0 - c) + floor)
     worst = -1
     least = np.inf
     for a in range(n_act):
@@ -179,7 +182,7 @@ def _prune_hopeless(ph, act, n_act, y, amp, vif, crit, screen, floor):
         if rise < least:
             least = rise
             worst = a
-    if least < need * cost:
+    if least < need:
         return _drop_active(act, n_act, worst)
     return n_act
 
@@ -535,10 +538,12 @@ def _test_larger_sets(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, g
 
 @njit(cache=True, inline="always")
 def split_passes(e_fewer, e_more, crit, floor):
-    """The split test (angle_split.py): the further source explains at least the fraction crit of
-    the misfit e_fewer left without it, a misfit counting at least `floor`: _MISFIT_FLOOR of the
-    snapshot's energy, the level of float32 rounding, where the fraction means nothing."""
-    return e_fewer - e_more >= crit * max(e_fewer, floor)
+    """The split test (angle_split.py) with the model-error floor `floor` (the snapshot's energy times
+    the model-error fraction, at least _MISFIT_FLOOR: float32 rounding): with the energy the array's
+    model error may leave in e_fewer and the further source may take up removed, the further source
+    explains at least the fraction crit of the misfit left without it,
+    (e_fewer - floor - e_more) >= crit (e_fewer - floor); never when e_fewer <= floor."""
+    return e_fewer > floor and e_fewer - floor - e_more >= crit * (e_fewer - floor)
 
 
 @njit(cache=True)
@@ -555,11 +560,12 @@ def _single_misfit(y, kx, kz, u, w, e, e_try, do_u, do_w, max_du, max_dw):
 
 @njit(cache=True)
 def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, max_dw, crit, screen, win_sum2,
-                out_keep, out_u, out_w, out_p):
+                floor_fraction, out_keep, out_u, out_w, out_p):
     """Joint refinement of every snapshot with two or more kept peaks (module doc: RELAX sweeps,
     then joint Gauss-Newton, at most _MAX_RELAX_ROUNDS rounds), then the split test of every further
     peak (angle_split.py: crit[P] the critical value of the P-th source; screen the fraction of it
-    below which a peak is dropped during the sweeps), in place on the output of
+    below which a peak is dropped during the sweeps; floor_fraction the model-error floor of the test
+    as a fraction of the snapshot's energy, angle_split.py), in place on the output of
     angle_refine.refine_peaks. cal: calibration per channel, win: window weight per channel,
     win_sum2: (sum of window weights)^2. Within a snapshot the kept peaks are written back first,
     strongest first; the others get keep = False.
@@ -628,7 +634,7 @@ def relax_peaks(snapshots, cal, win, kx, kz, n_found, det, do_u, do_w, max_du, m
         floor = 0.0
         for i in range(n_virt):
             floor += y[i].real * y[i].real + y[i].imag * y[i].imag
-        floor *= _MISFIT_FLOOR
+        floor *= max(floor_fraction, _MISFIT_FLOOR)
         n_act, _ = _fit_and_prune(ph, act, n_act, y, gram, rhs, work, amp, vif, rank, crit, 0.0, floor,
                                   _MAX_VARIANCE_INFLATION)
         n_act = _rounds(y, res, win, kx, kz, act, n_act, gu, gw, ph, e_try, amp, gram, rhs, work, vif, rank, gn,

@@ -37,6 +37,15 @@ counted once per grating period). The P - 1 fitted sources' own neighbourhoods a
 small overestimate, the test errs on the safe side) and so is the region's boundary term (the next
 term of the tube formula, left out).
 
+Model-error floor. The null above is P - 1 exact plane waves; a real snapshot also holds what the
+array's model cannot explain (calibration residuals, the range and Doppler sidelobes of a neighbouring
+echo), up to a fraction eps of the snapshot's energy, which a further source can take up. The test
+therefore runs on the misfit with the floor F = eps ||y||^2 removed: the P-th source is kept when
+(E_{P-1} - F - E_P) >= g_crit(P) (E_{P-1} - F), the white-noise test of what is left when a model error
+of energy F sits in E_{P-1} and the further source takes all of it (never when E_{P-1} <= F). Where
+noise dominates (F << E_{P-1}) it is the test above; on strong sources the floor decides.
+(angle_joint.split_passes; eps from the setting angle_model_error_db, README.)
+
 g_crit(P) solves P(g >= x) = alpha for the design false-split probability alpha; when N_r leaves no
 room for another source (N_r <= d + 2), g_crit(P) = 2 (never passed). The array's geometry fixes the
 area once, at construction.

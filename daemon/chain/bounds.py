@@ -201,3 +201,87 @@ def sigma_elevation_deg(positions_m, wavelength_m, snr_per_channel, azimuth_deg=
     sigma_el = sigma_w / cos(el); inf for an array without elevation extent.
     (azimuth_deg is accepted for symmetry with sigma_azimuth_deg; the bound does not depend on it.)"""
     return _direction_sigmas(positions_m, wavelength_m, snr_per_channel, azimuth_deg, elevation_deg)[1][()]
+
+
+# --------------------------------------------------------------------------------------------
+# several sources in one snapshot (Stoica and Nehorai 1989, deterministic model)
+# --------------------------------------------------------------------------------------------
+
+
+@njit(cache=True)
+def source_bounds(snapshots, cal, kx, kz, det, u, w, do_u, do_w, unit, out_share, out_unit):
+    """Per reported source: its share of the snapshot's signal energy and its direction-cosine CRB
+    covariance (var_u, var_w, cov_uw) at 2 |a_k|^2 / sigma^2 = 1.
+
+    Sources of one snapshot are consecutive rows (det grouped); snapshot d is calibrated by cal;
+    steering a_k,i = exp(-j (kx_i u_k + kz_i w_k)) on the centred positions times 2 pi / lambda.
+    One source: share 1 and `unit` (crb_unit_covariance). P >= 2 sources: the amplitudes s are the
+    joint least-squares fit; with D the derivative columns (d a_k / d u_k, d a_k / d w_k for the
+    measured angles) and P_perp the projection off the steering matrix A, the deterministic CRB of one
+    snapshot is CRB = sigma^2 / 2 [Re((D^H P_perp D) o (s s^H)^T)]^-1 (Stoica and Nehorai, "MUSIC,
+    maximum likelihood, and Cramer-Rao bound", IEEE Trans. ASSP, 1989), whose block of source k times
+    2 |s_k|^2 / sigma^2 is written out (for a lone source it is `unit`). share_k = n_virt |s_k|^2 /
+    ||A s||^2, so that |s_k|^2 / sigma^2 = share_k x the snapshot's SNR per element ||A s||^2 /
+    (n_virt sigma^2). An angle the array does not measure gets var inf; a singular Fisher matrix
+    (directions the array cannot separate) inf as well."""
+    n_virt = snapshots.shape[1]
+    n = det.size
+    per = (1 if do_u else 0) + (1 if do_w else 0)
+    k0 = 0
+    while k0 < n:
+        k1 = k0 + 1
+        while k1 < n and det[k1] == det[k0]:
+            k1 += 1
+        p = k1 - k0
+        if p == 1 or per == 0:
+            for k in range(k0, k1):
+                out_share[k] = 1.0
+                out_unit[k, 0], out_unit[k, 1], out_unit[k, 2] = unit[0], unit[1], unit[2]
+            k0 = k1
+            continue
+        d = det[k0]
+        y = np.empty(n_virt, np.complex128)
+        for i in range(n_virt):
+            y[i] = complex(snapshots[d, i]) * cal[i]
+        a = np.empty((n_virt, p), np.complex128)
+        m = p * per
+        dm = np.empty((n_virt, m), np.complex128)
+        for k in range(p):
+            for i in range(n_virt):
+                a[i, k] = np.exp(-1j * (kx[i] * u[k0 + k] + kz[i] * w[k0 + k]))
+            c = k * per
+            if do_u:
+                for i in range(n_virt):
+                    dm[i, c] = -1j * kx[i] * a[i, k]
+                c += 1
+            if do_w:
+                for i in range(n_virt):
+                    dm[i, c] = -1j * kz[i] * a[i, k]
+        ah = a.conj().T
+        gram = ah @ a
+        s = np.linalg.solve(gram, ah @ y)
+        fit = a @ s
+        fit_energy = 0.0
+        for i in range(n_virt):
+            fit_energy += fit[i].real ** 2 + fit[i].imag ** 2
+        proj_d = dm - a @ np.linalg.solve(gram, ah @ dm)
+        h = dm.conj().T @ proj_d
+        fis = np.empty((m, m))
+        for i in range(m):
+            for j in range(m):
+                fis[i, j] = (h[i, j] * s[j // per] * s[i // per].conjugate()).real
+        ok = np.linalg.cond(fis) < 1e12
+        cov = np.linalg.inv(fis) if ok else np.zeros((m, m))
+        for k in range(p):
+            amp2 = s[k].real ** 2 + s[k].imag ** 2
+            out_share[k0 + k] = n_virt * amp2 / fit_energy if fit_energy > 0.0 else 0.0
+            c = k * per
+            vu, vw, cuw = np.inf, np.inf, 0.0
+            if ok and do_u and do_w:
+                vu, vw, cuw = amp2 * cov[c, c], amp2 * cov[c + 1, c + 1], amp2 * cov[c, c + 1]
+            elif ok and do_u:
+                vu = amp2 * cov[c, c]
+            elif ok:
+                vw = amp2 * cov[c, c]
+            out_unit[k0 + k, 0], out_unit[k0 + k, 1], out_unit[k0 + k, 2] = vu, vw, cuw
+        k0 = k1

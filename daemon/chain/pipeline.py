@@ -148,7 +148,9 @@ class Pipeline:
             AngleSettings(fft_size_azimuth=n_az, fft_size_elevation=n_el,
                           peak_threshold_db=settings.angle_peak_threshold_db,
                           max_peaks=settings.angle_max_peaks,
-                          split_false_alarm=settings.angle_split_false_alarm),
+                          split_false_alarm=settings.angle_split_false_alarm,
+                          model_error_db=settings.angle_model_error_db,
+                          refine=settings.angle_method == "dml"),
             calibration)
         self.n_virtual = sensor.n_virtual
         self.range_resolution_m = sensor.range_resolution_m
@@ -272,11 +274,10 @@ class Pipeline:
         half_wl = SPEED_OF_LIGHT_MPS / (2.0 * (self._mean_sweep_hz - self._slope_hz_per_m * range_m))
         bin_v = dop.bin_hz * half_wl
         fill_points(ref.range_bin, self.range_fft.bin_m, self.range_bias_m, ang.det_index, ang.azimuth_deg,
-                    ang.elevation_deg, ang.peak_power, doppler_hz, half_wl, snr,
+                    ang.elevation_deg, ang.snr_share, doppler_hz, half_wl, snr,
                     ref.value_snr * self._virtual_snr, ref.sigma_range_bins * self.range_fft.bin_m,
-                    ref.sigma_doppler_bins * bin_v, self._phase_centre_m, *self._crb_unit, self._pose_rotation,
-                    self._pose_position_m, np.empty(n, np.float64),
-                    out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
+                    ref.sigma_doppler_bins * bin_v, self._phase_centre_m, ang.crb_unit, *self._crb_unit[3:],
+                    self._pose_rotation, self._pose_position_m, out.view(np.float32).reshape(-1, len(POINT_FIELDS)))
         t6 = time.perf_counter()
         self._times(t0, t1, t2, t3, t4, t5, t6)
         return out

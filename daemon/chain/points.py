@@ -5,8 +5,9 @@ deviation of this chain's estimate of that coordinate, not only a bound. Range a
 variance of the refined periodogram peak (refine.py; with the flat taper it is the single-tone
 Cramér-Rao bound of Rife and Boorstyn, IEEE Trans. IT, 1974, at the SNR of the detection's own
 samples), plus a floor for the residual systematic error. Azimuth and elevation: the
-direction-cosine bound of one source (Stoica and Nehorai, IEEE Trans. ASSP, 1989) at the SNR of
-the virtual snapshot taken at the refined frequencies, which the angle stage reaches, with a floor
+direction-cosine bound of the source given the others of its cell (Stoica and Nehorai, IEEE Trans.
+ASSP, 1989; one source: the single-source bound) at its share of the SNR of the virtual snapshot
+taken at the refined frequencies, which the angle stage reaches, with a floor
 ANGLE_FLOOR_DEG in quadrature for the residual systematic error.
 """
 
@@ -26,6 +27,7 @@ POINT_FIELDS: tuple[tuple[str, str], ...] = (
     ("sigma_range_m", "m"), ("sigma_azimuth_deg", "deg"), ("sigma_elevation_deg", "deg"),
     ("sigma_velocity_mps", "m/s"),
     ("platform_x_m", "m"), ("platform_y_m", "m"), ("platform_z_m", "m"),
+    ("cell_sources", ""),
 )
 POINT_DTYPE = np.dtype([(name, "<f4") for name, _ in POINT_FIELDS])
 
@@ -45,35 +47,36 @@ def to_records(points: np.ndarray, frame: int, timestamp_s: float) -> np.ndarray
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, peak_power, doppler_hz,
+def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevation_deg, snr_share, doppler_hz,
                 half_wavelength_m, cell_snr, element_snr, sigma_range_m, sigma_velocity_mps, phase_centre_m,
-                var_u1, var_w1, cov_uw1, has_x, has_z, pose_rotation, pose_position_m, first, out):
-    """The point records of one frame as float32 [n_points, 15] in POINT_FIELDS order.
+                crb_unit, has_x, has_z, pose_rotation, pose_position_m, out):
+    """The point records of one frame as float32 [n_points, 16] in POINT_FIELDS order.
 
     Point k is angle peak k of detection i = det_index[k]; range_bin[i] is its refined range in FFT
     bins. That range is the mean over the virtual channels of the two-way path / 2, i.e. the range
     from the array's phase centre c = mean(tx_k + rx_l) / 2 (phase_centre_m); the point's range from
-    the sensor origin adds u . c in the point's direction u (far field, common practice). A secondary angle peak gets the share of the SNR its beam power holds (snr_db is the
-    per-channel SNR in the range-Doppler cell, cell_snr; the angle bound uses the SNR per virtual
-    element of the snapshot, element_snr). Range and velocity sigmas are the detection's
-    (sigma_range_m, sigma_velocity_mps). Azimuth and elevation: the direction-cosine CRB (var_u1,
-    var_w1, cov_uw1 at 2 SNR = 1, from bounds.crb_unit_covariance) through the Jacobians of
-    az = atan2(u, v) and el = asin(w) (direction_sigmas_deg), with ANGLE_FLOOR_DEG in quadrature.
-    The platform-frame point is pose_rotation @ (x, y, z) + pose_position_m (sensor.Sensor's pose).
-    `first` is scratch of at least the number of detections. has_x is not used (the bound is inf
-    along an axis without extent). half_wavelength_m[i]: half the wavelength of detection i's echo
-    over the sampled sweep (velocity = Doppler frequency x that)."""
+    the sensor origin adds u . c in the point's direction u (far field, common practice). A source of
+    a cell holding several gets its share of the cell's signal energy, snr_share[k] (AngleResult:
+    n_virt |a_k|^2 / ||A a||^2, 1 for a lone source): snr_db is the per-channel SNR in the
+    range-Doppler cell (cell_snr) times that, and the angle bound uses the SNR per virtual element of
+    the snapshot (element_snr) times that. Range and velocity sigmas are the detection's
+    (sigma_range_m, sigma_velocity_mps). Azimuth and elevation: the source's direction-cosine CRB
+    given the other sources of its cell, crb_unit[k] = (var_u, var_w, cov_uw) at 2 SNR = 1
+    (AngleResult.crb_unit, bounds.source_bounds; a lone source's is bounds.crb_unit_covariance),
+    through the Jacobians of az = atan2(u, v) and el = asin(w) (direction_sigmas_deg), with
+    ANGLE_FLOOR_DEG in quadrature. The platform-frame point is pose_rotation @ (x, y, z) +
+    pose_position_m (sensor.Sensor's pose). has_x is not used (the bound is inf along an axis
+    without extent). half_wavelength_m[i]: half the wavelength of detection i's echo over the sampled
+    sweep (velocity = Doppler frequency x that). cell_sources: how many points detection i gave (the
+    sources the angle stage found in the cell)."""
     n = det_index.shape[0]
-    for i in range(first.shape[0]):
-        first[i] = 0.0
-    for k in range(n):
-        i = det_index[k]
-        if peak_power[k] > first[i]:
-            first[i] = peak_power[k]
     floor2 = ANGLE_FLOOR_DEG * ANGLE_FLOOR_DEG
+    sources = np.zeros(range_bin.shape[0], np.int64)
+    for k in range(n):
+        sources[det_index[k]] += 1
     for k in range(n):
         i = det_index[k]
-        share = np.float64(peak_power[k]) / max(first[i], 1e-30)
+        share = np.float64(snr_share[k])
         az = np.radians(np.float64(azimuth_deg[k]))
         el = np.radians(np.float64(elevation_deg[k]))
         toward = (np.cos(el) * np.sin(az) * phase_centre_m[0] + np.cos(el) * np.cos(az) * phase_centre_m[1]
@@ -94,6 +97,8 @@ def fill_points(range_bin, bin_m, range_bias_m, det_index, azimuth_deg, elevatio
         out[k, 7] = 10.0 * np.log10(max(np.float64(cell_snr[i]) * share, 1e-12))
         out[k, 8] = sigma_range_m[i]
         out[k, 11] = sigma_velocity_mps[i]
-        s_az, s_el = direction_sigmas_deg(var_u1, var_w1, cov_uw1, has_z, np.float64(element_snr[i]) * share, az, el)
+        s_az, s_el = direction_sigmas_deg(crb_unit[k, 0], crb_unit[k, 1], crb_unit[k, 2], has_z,
+                                          np.float64(element_snr[i]) * share, az, el)
         out[k, 9] = np.sqrt(s_az * s_az + floor2)
         out[k, 10] = np.sqrt(s_el * s_el + floor2)
+        out[k, 15] = sources[i]
