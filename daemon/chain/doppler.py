@@ -25,10 +25,12 @@ from .windows import make_window
 
 
 @numba.njit(cache=True, nogil=True)
-def _accumulate_power(spec, n_bins, row_sum, out):
+def _accumulate_power(spec, n_bins, row_sum, out, cell_ptr, cell_s, cell_d, cell_power):
     """out[r, (d + nd // 2) % nd] += sum over the slots of one RX of |spec[s, r, d]|^2, r < n_bins.
     The slots are summed into row_sum first (contiguous, vectorised), then added with the shift
-    split into two branch-free runs."""
+    split into two branch-free runs. On the way, while row r is in the cache, the sampled cells
+    q in cell_ptr[r] .. cell_ptr[r + 1] (slot cell_s[q], Doppler cell_d[q]) get their |X|^2 in
+    cell_power[q] (the front end's noise floor, frontend.py)."""
     n_slots, _, nd = spec.shape
     half = nd // 2
     upper = nd - half
@@ -47,6 +49,9 @@ def _accumulate_power(spec, n_bins, row_sum, out):
             o[d + half] += row_sum[d]
         for d in range(upper, nd):
             o[d - upper] += row_sum[d]
+        for q in range(cell_ptr[r], cell_ptr[r + 1]):
+            v = spec[cell_s[q], r, cell_d[q]]
+            cell_power[q] = v.real * v.real + v.imag * v.imag
 
 
 class DopplerFft:
@@ -87,5 +92,8 @@ class DopplerFft:
             rows[:, :, self.n_loops:] = 0
         fft_inplace(rows)
 
-    def accumulate(self, block: np.ndarray) -> None:
-        _accumulate_power(block, self.n_range_bins, self._row_sum, self.power)
+    def accumulate(self, block: np.ndarray, cells: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> None:
+        """Add receive channel block's |X|^2 to the map, and fill the sampled cells' power on the way:
+        cells = (cell_ptr [n_range_bins + 1], cell_s, cell_d, cell_power), the cells sorted by range
+        bin (FrontEnd.noise_cells)."""
+        _accumulate_power(block, self.n_range_bins, self._row_sum, self.power, *cells)

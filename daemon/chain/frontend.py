@@ -11,19 +11,20 @@ FRONTEND_DTYPE is one record per RX channel (little-endian):
   image_rejection_db   blind image-rejection estimate of the frame, before correction
 
 One compiled call per RX channel (`front_load`, called by rangefft.py) reads the channel's chirps
-in three passes. The first, over every chirp in the board's own numbers (int16 or float32, any I/Q
-convention), finds each chirp's largest and smallest number (a chirp that reaches the full scale is
-counted exactly, sample by sample) and the largest difference, in either component, between the
-chirp and the same slot's chirp in the next loop. The second, over every stride-th chirp (the stride
-moment_stride() chooses: about MOMENT_SAMPLES samples, every chirp of a small frame), sums
-the first and second moments of I and Q (the DC, i.e. the complex mean over the frame, and the blind
-image-rejection estimate, both estimated from that subsample: the DC to within its standard error
-sqrt(var / N) of the subsample's N samples) and the mean difference power to the next loop. The
-third is the load the range FFT needs anyway (both windows applied, in frame order) with the DC (or
-the static mean) subtracted and the I/Q correction applied (the DC only when it stands out of its
-standard error by DC_SIGNIFICANCE: removing a mean that is only noise, or a part of the echoes, would
-just add the window's sidelobes of a constant); only a chirp whose largest difference
-could pass the threshold is looked at again, sample by sample, and repaired.
+in two passes. The first, over every stride-th chirp (the stride moment_stride() chooses: about
+MOMENT_SAMPLES samples, every chirp of a small frame), sums the first and second moments of I and Q
+(the DC, i.e. the complex mean over the frame, and the blind image-rejection estimate, both
+estimated from that subsample: the DC to within its standard error sqrt(var / N) of the subsample's
+N samples) and the mean difference power to the next loop. The second is the load the range FFT
+needs anyway (both windows applied, in frame order) with the DC (or the static mean) subtracted and
+the I/Q correction applied (the DC only when it stands out of its standard error by DC_SIGNIFICANCE:
+removing a mean that is only noise, or a part of the echoes, would just add the window's sidelobes
+of a constant). Every chirp, in the board's own numbers (int16 or float32, any I/Q convention), is
+also scanned for its largest and smallest number (a chirp that reaches the full scale is counted
+exactly, sample by sample) and the largest difference, in either component, between the chirp and
+the same slot's chirp in the next loop: the subsampled chirps in the first pass, the others in the
+second while their row is in the cache. Only a chirp whose largest difference could pass the
+threshold is looked at again, sample by sample, and repaired.
 
 Interference from another FMCW sensor sweeps through our IF band within a few samples while the two
 sweeps cross: a burst in fast time, at a different place in every chirp (the two sensors' chirps are
@@ -43,12 +44,14 @@ default 10 dB), both together far less often. Mitigation replaces a burst's samp
 compared with: interpolation in slow time, which keeps every static echo and, nearly, the moving ones
 (zeroing cuts a hole in every echo's tone and spreads the strong ones over all range bins).
 
-After the Doppler FFT (`after_doppler`, per RX): the TX-to-RX leakage is a strong static return in
+After the Doppler FFT (`suppress_leakage`, per RX, when leakage_max_range_m asks): the TX-to-RX
+leakage is a strong static return in
 the first range bins; in the range bins below leakage_max_range_m (and, with complex sampling, their
 negative-frequency mirrors) the component along the Doppler window's spectrum (the static return,
 windowed) is projected out, exactly as remove_static would do for those bins alone. Then the noise
-floor: the median of |X|^2 over a fixed subsample of the channel's range-Doppler cells (NOISE_CELLS
-spread over slots, range and Doppler), divided by ln 2 (the median of a unit-mean exponential, the
+floor (`noise_floor`): the median of |X|^2 over a fixed subsample of the channel's range-Doppler cells (NOISE_CELLS
+spread over slots, range and Doppler; read by the map's accumulation, doppler.py, while it has each
+range row), divided by ln 2 (the median of a unit-mean exponential, the
 distribution of |X|^2 in complex Gaussian noise) and by the windows' noise gain sum(w_r^2) sum(w_d^2),
 reads 10 log10 s^2 for white noise of variance s^2 per complex sample. Targets and leakage hold few
 cells and move a median little.
@@ -117,6 +120,18 @@ def _row_scan(row, other, n, narrow):
             dh = max(dh, d)
             dl = min(dl, d)
     return np.float64(hi), np.float64(lo), np.float64(max(dh, -dl))
+
+
+@numba.njit(cache=True, nogil=True)
+def _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan):
+    """scan[c] of chirp c of channel rx: (its largest difference to the same slot's chirp in the next
+    loop, squared; inf when int16 differences may have wrapped, so that the chirp is looked at
+    exactly) and (1 when it reaches the full scale, else 0). The last loop compares with the one before."""
+    hi, lo, dmax = _row_scan(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, narrow)
+    scan[c, 0] = dmax * dmax
+    scan[c, 1] = 1.0 if (hi >= full_scale or lo <= -full_scale) else 0.0
+    if narrow and (hi > NARROW_LIMIT or lo < -NARROW_LIMIT):
+        scan[c, 0] = np.inf  # the int16 differences may have wrapped: look at this chirp exactly
 
 
 @numba.njit(cache=True, nogil=True)
@@ -317,12 +332,8 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
     for j in range(MOMENTS):
         mom[j] = 0.0
     last = n_chirps - n_slots  # chirps of the last loop compare with the loop before
-    for c in range(n_chirps):
-        hi, lo, dmax = _row_scan(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, narrow)
-        scan[c, 0] = dmax * dmax
-        scan[c, 1] = 1.0 if (hi >= full_scale or lo <= -full_scale) else 0.0
-        if narrow and (hi > NARROW_LIMIT or lo < -NARROW_LIMIT):
-            scan[c, 0] = np.inf  # the int16 differences may have wrapped: look at this chirp exactly
+    for c in range(0, n_chirps, stride):  # the subsampled chirps now, the others as they are loaded
+        _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
     n_sub = 0
     for c in range(0, n_chirps, stride):
         other = src[c + n_slots if c < last else c - n_slots, rx]
@@ -385,6 +396,8 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
         for p in range(n_loops):
             c = p * n_slots + s
             row = src[c, rx]
+            if c % stride:  # while the row (and the next loop's) is in the cache anyway
+                _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
             out = stage[s, p]
             wd = w_doppler[p]
             if plain:
@@ -417,10 +430,9 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
 
 
 @numba.njit(cache=True, nogil=True)
-def after_doppler(rows, leak_bins, wd_spec, cell_s, cell_r, cell_d, power, noise_gain, rec, rx):
+def suppress_leakage(rows, leak_bins, wd_spec):
     """One RX's Doppler spectrum rows [slot, range, doppler] (unshifted): the component along the
-    Doppler window's spectrum wd_spec projected out of every range bin in leak_bins, then
-    rec[rx].noise_floor_db from the median of |X|^2 over the cells (cell_s, cell_r, cell_d)."""
+    Doppler window's spectrum wd_spec projected out of every range bin in leak_bins."""
     n_slots = rows.shape[0]
     nd = wd_spec.shape[0]
     norm = 0.0
@@ -435,9 +447,11 @@ def after_doppler(rows, leak_bins, wd_spec, cell_s, cell_r, cell_d, power, noise
             c = acc / norm
             for d in range(nd):
                 row[d] -= np.complex64(c * wd_spec[d])
-    for i in range(cell_s.shape[0]):
-        v = rows[cell_s[i], cell_r[i], cell_d[i]]
-        power[i] = v.real * v.real + v.imag * v.imag
+
+
+@numba.njit(cache=True, nogil=True)
+def noise_floor(power, noise_gain, rec, rx):
+    """rec[rx].noise_floor_db from the median of the sampled cells' |X|^2 (module docstring)."""
     med = np.median(power)
     if med > 0:
         rec[rx].noise_floor_db = np.float32(10.0 * math.log10(med / noise_gain))
@@ -495,9 +509,12 @@ class FrontEnd:
         m = min(NOISE_CELLS, total)
         step = max(1, total // m) | 1
         flat = (np.arange(m, dtype=np.int64) * step) % total
-        self._cell_s, rest = np.divmod(flat, n_range_bins * doppler_fft_size)
-        self._cell_r, self._cell_d = np.divmod(rest, doppler_fft_size)
+        cell_s, rest = np.divmod(flat, n_range_bins * doppler_fft_size)
+        cell_r, cell_d = np.divmod(rest, doppler_fft_size)
+        order = np.argsort(cell_r, kind="stable")   # by range bin: read while the accumulation has the row
         self._power = np.zeros(m, np.float32)
+        self.noise_cells = (np.searchsorted(cell_r[order], np.arange(n_range_bins + 1)).astype(np.int64),
+                            np.ascontiguousarray(cell_s[order]), np.ascontiguousarray(cell_d[order]), self._power)
         w_r = range_window.astype(np.float64)
         w_d = doppler_window.astype(np.float64)
         self.noise_gain = math.log(2.0) * float(np.sum(w_r ** 2)) * float(np.sum(w_d ** 2))
@@ -513,8 +530,13 @@ class FrontEnd:
             self.record["image_rejection_db"][rx] = np.nan
 
     def after_doppler(self, rows: np.ndarray, rx: int) -> None:
-        after_doppler(rows, self.leak_bins, self._wd_spec, self._cell_s, self._cell_r, self._cell_d, self._power,
-                      self.noise_gain, self.record, rx)
+        """Before the accumulation: the leakage region of one RX's Doppler rows projected out."""
+        if self.leak_bins.shape[0]:
+            suppress_leakage(rows, self.leak_bins, self._wd_spec)
+
+    def after_accumulate(self, rx: int) -> None:
+        """After the accumulation filled the sampled cells' power (noise_cells): the channel's noise floor."""
+        noise_floor(self._power, self.noise_gain, self.record, rx)
 
 
 def blind_iq_imbalance(frame: np.ndarray) -> np.ndarray:

@@ -239,8 +239,9 @@ class Pipeline:
             rng.transform(range_out)
             t_range += time.perf_counter() - ta
             dop.transform(doppler_rows)
-            front.after_doppler(doppler_rows, rx)  # leakage region, noise floor
-            dop.accumulate(block)
+            front.after_doppler(doppler_rows, rx)  # leakage region
+            dop.accumulate(block, front.noise_cells)
+            front.after_accumulate(rx)  # noise floor
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()
         t1 = t0 + t_range

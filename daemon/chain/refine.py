@@ -368,6 +368,96 @@ def _finish(values, mode, sum_e, sum_e2, var_factor, sigma_z2, s_first, bias, ff
         snr_out[i] = s_hat / n_ch * s1 * s1 / s2
 
 
+@numba.njit(cache=True, nogil=True)
+def _doppler_prepare(spec, power, range_bin, doppler_col, range_frac, doppler_frac, cell_noise, cell_snr, n_ch,
+                     r_sum_w2, d_sum_w2, r_grid, r_table, r_reach, r_n, r_fft, d_grid, d_table, d_reach, d_fft,
+                     d_guard, d_padding, d_flat_slope, d_window_slope, d_flat_factor, d_win_factor, cov_r,
+                     k0, col, l0, dr, dd, noise_cell, sigma2, snr_raw, nu0, offset, h, gain, sigma_z2, s_first,
+                     flat_factor, win_factor, p_self, bias_window, bias, mode, rows):
+    """Refiner.refine up to the Doppler pass's inverse FFT, in one call: the detections' cells and
+    starting offsets as float64, the noise per raw sample and the raw SNR, the matched weights over
+    the range cells, the choice of taper and the Doppler rows combined (_gather). Every output is a
+    buffer of the caller's (the first n_det entries)."""
+    n_det = range_bin.shape[0]
+    half = d_fft // 2
+    den = n_ch * r_sum_w2 * d_sum_w2
+    for i in range(n_det):
+        k0[i] = range_bin[i]
+        col[i] = doppler_col[i]
+        l0[i] = (col[i] - half) % d_fft
+        dr[i] = range_frac[i]
+        dd[i] = doppler_frac[i]
+        noise_cell[i] = cell_noise[i]
+        sigma2[i] = noise_cell[i] / den
+    wr = np.interp(-dr[:n_det], r_grid, r_table)
+    wd = np.interp(-dd[:n_det], d_grid, d_table)
+    for i in range(n_det):
+        snr_raw[i] = np.float64(cell_snr[i]) * r_sum_w2 * d_sum_w2 / (wr[i] ** 2 * wd[i] ** 2)
+    _weights(r_table, r_reach, r_n, r_fft, cov_r, dr[:n_det], h[:n_det], gain[:n_det])
+    for i in range(n_det):
+        sigma_z2[i] = sigma2[i] * gain[i]
+        s_first[i] = n_ch * snr_raw[i] * gain[i]
+        nu0[i] = l0[i] + dd[i]
+        offset[i] = nu0[i] - l0[i]
+        flat_factor[i] = d_flat_factor
+        win_factor[i] = d_win_factor
+    _decide(power, k0[:n_det], col[:n_det], False, d_table, d_reach, offset[:n_det], noise_cell[:n_det],
+            s_first[:n_det], flat_factor[:n_det], win_factor[:n_det], d_guard, d_padding, d_flat_slope,
+            d_window_slope, p_self[:n_det], bias_window[:n_det], bias[:n_det], mode[:n_det])
+    _gather(spec, k0[:n_det], l0[:n_det], h[:n_det], r_fft, rows[:n_det])
+
+
+@numba.njit(cache=True, nogil=True)
+def _doppler_finish_range_pass(n_det, spec, power, samples, n_ch, d_taper, d_t, d_fft, d_padding, d_sum_e, d_sum_e2,
+                               d_var_factor, d_table, d_reach, d_n, cov_d, r_table, r_reach, r_fft, r_guard,
+                               r_padding, r_sum_e_flat, wide_offsets, wide_var_unit, wide_slope, narrow_offsets,
+                               narrow_var_unit, narrow_slope, wide, narrow, k0_buf, col_buf, l0_buf, dr, noise_buf,
+                               sigma2, snr_raw, nu0_buf, offset_buf, h_buf, gain_buf, sz2_buf, sf_buf, ff_buf, wf_buf,
+                               p_self_buf, bw_buf, bias_buf, mode_buf, scratch, values_buf, beam_buf, band_buf,
+                               nu_d_buf, sigma_d_buf, mode_d, nu_r_buf, sigma_r_buf, snr_buf, mode_r, tmp_snr):
+    """Refiner.refine after the Doppler pass's inverse FFT of `samples` [n_det, K, n], in one call: the
+    Doppler pass's Newton steps and variance (_newton, _finish), then the range pass on the band (the
+    matched weights over the Doppler cells at the refined Doppler offset, the choice of band,
+    band_pass); the Doppler frequency last put on [-N/2, N/2). The first n_det entries of each
+    buffer are used; values: the range pass's channel values (the Doppler pass's are kept in beam,
+    its weights)."""
+    k0, col, l0, noise_cell = k0_buf[:n_det], col_buf[:n_det], l0_buf[:n_det], noise_buf[:n_det]
+    nu0, offset, h, gain = nu0_buf[:n_det], offset_buf[:n_det], h_buf[:n_det], gain_buf[:n_det]
+    sigma_z2, s_first, flat_factor, win_factor = sz2_buf[:n_det], sf_buf[:n_det], ff_buf[:n_det], wf_buf[:n_det]
+    p_self, bias_window, bias, mode = p_self_buf[:n_det], bw_buf[:n_det], bias_buf[:n_det], mode_buf[:n_det]
+    values, beam, band_rows = values_buf[:n_det], beam_buf[:n_det], band_buf[:n_det]
+    nu_d, sigma_d, nu_r, sigma_r, value_snr = (nu_d_buf[:n_det], sigma_d_buf[:n_det], nu_r_buf[:n_det],
+                                               sigma_r_buf[:n_det], snr_buf[:n_det])
+    _newton(samples, d_taper, mode, d_t, nu0, d_fft, 0.5 * d_padding, NEWTON_STEPS, scratch, nu_d, values)
+    _finish(values, mode, d_sum_e, d_sum_e2, d_var_factor, sigma_z2, s_first, bias, d_fft, d_padding, sigma_d,
+            tmp_snr[:n_det])
+    for i in range(n_det):
+        mode_d[i] = mode[i]
+        for c in range(n_ch):
+            beam[i, c] = values[i, c]
+        offset[i] = nu_d[i] - l0[i]
+    _weights(d_table, d_reach, d_n, d_fft, cov_d, offset, h, gain)
+    for i in range(n_det):
+        sigma_z2[i] = sigma2[i] * gain[i]
+        s_first[i] = n_ch * snr_raw[i] * gain[i]
+        nu0[i] = k0[i] + dr[i]
+        offset[i] = nu0[i] - k0[i]
+    ff = np.interp(offset, wide_offsets, wide_var_unit)
+    wf = np.interp(offset, narrow_offsets, narrow_var_unit)
+    pad2 = r_padding ** 2
+    for i in range(n_det):
+        flat_factor[i] = ff[i] / pad2
+        win_factor[i] = wf[i] / pad2
+    _decide(power, k0, col, True, r_table, r_reach, offset, noise_cell, s_first, flat_factor, win_factor, r_guard,
+            r_padding, wide_slope, narrow_slope, p_self, bias_window, bias, mode)
+    band_pass(spec, k0, l0, h, mode, r_fft, beam, wide, narrow, r_sum_e_flat, sigma_z2, s_first, bias,
+              SYSTEMATIC_FLOOR_BINS, r_padding, band_rows, nu_r, values, sigma_r, value_snr)
+    half = d_fft // 2
+    for i in range(n_det):
+        mode_r[i] = mode[i]
+        nu_d[i] = (nu_d[i] + half) % d_fft - half
+
+
 @dataclass
 class Refined:
     """Per detection: range and Doppler frequencies in FFT bins (range nu_r >= 0; Doppler nu_d in
@@ -400,6 +490,10 @@ class Refiner:
         self.n_channels = n_rx * n_slots
         self._cov = {name: np.linalg.pinv(ax.noise_covariance(), hermitian=True)
                      for name, ax in (("range", self.range), ("doppler", self.doppler))}
+        # the Doppler pass's variance factors per taper (whole rows: the same for every detection), unpadded bins^2
+        to_u2 = (self.doppler.fft_size / (2.0 * np.pi) / self.doppler.padding) ** 2
+        self._doppler_flat_factor = float(self.doppler.var_factor[FLAT] / 2.0 * to_u2)
+        self._doppler_win_factor = float(self.doppler.var_factor[WINDOWED] / 2.0 * to_u2)
         self._capacity = 0
         self._reserve(16)
 
@@ -422,67 +516,10 @@ class Refiner:
         self._bias = np.empty(n)
         self._bias_window = np.empty(n)
         self._p_self = np.empty((n, 2 * SELF_SPAN + 1))
-
-    # ---- one axis ----------------------------------------------------------------------------
-
-    def _combine_weights(self, other: Axis, name: str, offset: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Matched weights h = R^-1 g over the other axis's combined cells for a tone at `offset` FFT
-        bins from the middle one, and the resulting SNR gain g^H R^-1 g (per unit raw SNR)."""
-        n = offset.shape[0]
-        h, gain = self._h[name][:n], self._gain[name][:n]
-        _weights(other.table, float(other.table_reach), other.n, float(other.fft_size), self._cov[name],
-                 np.ascontiguousarray(offset, np.float64), h, gain)
-        return h, gain
-
-    def _axis(self, spec, power, k0, l0, col, nu0, other_offset, noise_cell, noise_per_sample, snr_raw,
-              along_range, beam_weights=None):
-        """Refine one axis for all detections: (nu, sigma in FFT bins, values [n_det, K], SNR per
-        channel of the values, mode). The Doppler axis runs on whole rows (the module doc); the range
-        axis (beam_weights: the Doppler pass's channel values) on a band of cells around the detection,
-        wide (FLAT) or narrow (WINDOWED), refine_band.py."""
-        axis, other = (self.range, self.doppler) if along_range else (self.doppler, self.range)
-        name_other = "doppler" if along_range else "range"
-        n_det = k0.shape[0]
-        h, gain = self._combine_weights(other, name_other, other_offset)
-        # the combined samples' noise per sample, sigma^2 h^H R h = sigma^2 g^H R^-1 g, and a first
-        # SNR per sample over the channels from the cell's SNR (for the choice of taper)
-        sigma_z2 = noise_per_sample * gain
-        s_first = self.n_channels * snr_raw * gain
-        mode, bias = self._mode[:n_det], self._bias[:n_det]
-        offset = nu0 - (k0 if along_range else l0)
-        if along_range:
-            wide, narrow = self.bands
-            flat_factor = np.interp(offset, wide.offsets, wide.var_unit) / axis.padding ** 2
-            win_factor = np.interp(offset, narrow.offsets, narrow.var_unit) / axis.padding ** 2
-            flat_slope, window_slope = wide.slope, narrow.slope
-        else:
-            to_u2 = (axis.fft_size / (2.0 * np.pi) / axis.padding) ** 2
-            flat_factor = np.full(n_det, axis.var_factor[FLAT] / 2.0 * to_u2)
-            win_factor = np.full(n_det, axis.var_factor[WINDOWED] / 2.0 * to_u2)
-            flat_slope, window_slope = axis.flat_slope, axis.window_slope
-        _decide(power, k0, col, along_range, axis.table, float(axis.table_reach), offset, noise_cell, s_first,
-                flat_factor, win_factor, axis.guard, axis.padding, flat_slope, window_slope, self._p_self[:n_det],
-                self._bias_window[:n_det], bias, mode)
-        nu, values = np.empty(n_det), self._values[:n_det]
-        sigma, value_snr = np.empty(n_det), np.empty(n_det)
-        if not along_range:
-            self._full_axis(spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr)
-            return nu, sigma, values, value_snr, mode.copy()
-        band_pass(spec, k0, l0, h, mode, self.range.fft_size, beam_weights, self._band_tables[0], self._band_tables[1],
-                  float(axis.sum_e[FLAT]), sigma_z2, s_first, bias, SYSTEMATIC_FLOOR_BINS, axis.padding,
-                  self._band_rows[:n_det], nu, values, sigma, value_snr)
-        return nu, sigma, values, value_snr, mode.copy()
-
-    def _full_axis(self, spec, k0, l0, h, nu0, mode, sigma_z2, s_first, bias, axis, nu, values, sigma, value_snr):
-        """The Doppler axis: each channel's whole row, back to samples, Newton steps (the module doc)."""
-        n = k0.shape[0]
-        rows = self._rows[:n]
-        _gather(spec, k0, l0, h, self.range.fft_size, rows)
-        samples = ifft_unnormalised_inplace(rows, axis=-1)   # N_fft w z in the first n samples
-        _newton(samples, axis.taper, mode, axis.t, nu0, float(axis.fft_size), 0.5 * axis.padding, NEWTON_STEPS,
-                self._scratch, nu, values)
-        _finish(values, mode, axis.sum_e, axis.sum_e2, axis.var_factor, sigma_z2, s_first, bias, float(axis.fft_size),
-                axis.padding, sigma, value_snr)
+        self._buf = {name: np.empty(n, np.int64 if name in ("k0", "col", "l0", "mode_d", "mode_r") else np.float64)
+                     for name in ("k0", "col", "l0", "dr", "dd", "noise", "sigma2", "snr_raw", "nu0", "offset",
+                                  "sigma_z2", "s_first", "flat_factor", "win_factor", "nu_d", "sigma_d", "mode_d",
+                                  "nu_r", "sigma_r", "value_snr", "mode_r", "tmp_snr")}
 
     # ---- both axes ---------------------------------------------------------------------------
 
@@ -493,29 +530,32 @@ class Refiner:
         shifted); range_bin, doppler_col: the detections' cells (map indices, doppler_col shifted);
         range_frac, doppler_frac: the map's log-parabolic offsets (the starting points); cell_noise:
         the CFAR's noise mean of a cell (K * windowed per-channel noise power); cell_snr: the CFAR's
-        per-channel SNR of the cell."""
-        n_dop = self.doppler.fft_size
-        half = n_dop // 2
-        self._reserve(len(range_bin))
-        k0 = np.asarray(range_bin, np.int64)
-        col = np.asarray(doppler_col, np.int64)
-        l0 = (col - half) % n_dop
-        dr = np.asarray(range_frac, np.float64)
-        dd = np.asarray(doppler_frac, np.float64)
-        noise_cell = np.asarray(cell_noise, np.float64)
-        # white noise power per raw sample: a cell's noise mean is K sigma^2 sum w_r^2 sum w_d^2
-        sigma2 = noise_cell / (self.n_channels * self.range.sum_w2 * self.doppler.sum_w2)
-        # raw per-sample SNR from the cell's: |A W_r(dr) W_d(dd)|^2 / (sigma^2 sum w_r^2 sum w_d^2)
-        wr2 = np.interp(-dr, self.range.grid, self.range.table) ** 2
-        wd2 = np.interp(-dd, self.doppler.grid, self.doppler.table) ** 2
-        snr_raw = np.asarray(cell_snr, np.float64) * self.range.sum_w2 * self.doppler.sum_w2 / (wr2 * wd2)
-
-        nu_d, sig_d, values_d, _, mode_d = self._axis(spec, power, k0, l0, col, l0 + dd, dr, noise_cell, sigma2,
-                                                      snr_raw, False)
-        beam = self._beam[: len(k0)]
-        beam[...] = values_d
-        nu_r, sig_r, values, value_snr, mode_r = self._axis(spec, power, k0, l0, col, k0 + dr, nu_d - l0, noise_cell,
-                                                            sigma2, snr_raw, True, beam)
-        nu_d = (nu_d + half) % n_dop - half
-        return Refined(nu_r, nu_d, sig_r, sig_d, values.reshape(-1, self.n_rx, self.n_slots), value_snr,
-                       mode_r, mode_d)   # values: the Refiner's buffer, valid until the next call
+        per-channel SNR of the cell. Two compiled calls around the Doppler pass's inverse FFT (the
+        module doc's steps: the Doppler pass on whole rows, then the range pass on the band). The
+        returned arrays are the Refiner's buffers, valid until its next call."""
+        n = len(range_bin)
+        self._reserve(n)
+        rng, dop, b = self.range, self.doppler, self._buf
+        wide, narrow = self.bands
+        _doppler_prepare(spec, power, range_bin, doppler_col, range_frac, doppler_frac, cell_noise, cell_snr,
+                         self.n_channels, rng.sum_w2, dop.sum_w2, rng.grid, rng.table, float(rng.table_reach), rng.n,
+                         rng.fft_size, dop.grid, dop.table, float(dop.table_reach), dop.fft_size, dop.guard,
+                         dop.padding, dop.flat_slope, dop.window_slope, self._doppler_flat_factor,
+                         self._doppler_win_factor, self._cov["range"], b["k0"], b["col"], b["l0"], b["dr"], b["dd"],
+                         b["noise"], b["sigma2"], b["snr_raw"], b["nu0"], b["offset"], self._h["range"],
+                         self._gain["range"], b["sigma_z2"], b["s_first"], b["flat_factor"], b["win_factor"],
+                         self._p_self, self._bias_window, self._bias, self._mode, self._rows)
+        samples = ifft_unnormalised_inplace(self._rows[:n], axis=-1)   # N_fft w z in the first n samples
+        _doppler_finish_range_pass(
+            n, spec, power, samples, self.n_channels, dop.taper, dop.t, float(dop.fft_size), dop.padding, dop.sum_e,
+            dop.sum_e2, dop.var_factor, dop.table, float(dop.table_reach), dop.n, self._cov["doppler"], rng.table,
+            float(rng.table_reach), rng.fft_size, rng.guard, rng.padding, float(rng.sum_e[FLAT]), wide.offsets,
+            wide.var_unit, wide.slope, narrow.offsets, narrow.var_unit, narrow.slope, self._band_tables[0],
+            self._band_tables[1], b["k0"], b["col"], b["l0"], b["dr"], b["noise"], b["sigma2"], b["snr_raw"], b["nu0"],
+            b["offset"], self._h["doppler"], self._gain["doppler"], b["sigma_z2"], b["s_first"], b["flat_factor"],
+            b["win_factor"], self._p_self, self._bias_window, self._bias, self._mode, self._scratch, self._values,
+            self._beam, self._band_rows, b["nu_d"], b["sigma_d"], b["mode_d"], b["nu_r"], b["sigma_r"],
+            b["value_snr"], b["mode_r"], b["tmp_snr"])
+        return Refined(b["nu_r"][:n], b["nu_d"][:n], b["sigma_r"][:n], b["sigma_d"][:n],
+                       self._values[:n].reshape(-1, self.n_rx, self.n_slots), b["value_snr"][:n], b["mode_r"][:n],
+                       b["mode_d"][:n])
