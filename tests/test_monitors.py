@@ -549,3 +549,31 @@ def test_process_warns_of_the_bundled_interferer(tmp_path):
     assert all(int(r["interference_bursts"]) > 0 for r in rows)
     assert logged[-2].getMessage() == f"front end: {len(truth)} of {len(truth)} frames with warnings (interference " \
                                       f"{len(truth)})"
+
+
+def test_the_noise_floor_median_equals_numpys_median():
+    # The front end's median of the sampled cells' power (a histogram of the float32 bit patterns,
+    # then a sort of the middle bins only) against numpy.median, the reference: exactly equal on
+    # exponential power (the distribution of |X|^2 in complex Gaussian noise, common practice) over
+    # 60 decades of scale, with ties, zeros, an infinity and NaN (either sign), odd and even counts.
+    from cubecast.daemon.chain.frontend import MEDIAN_SHIFT, median_nonnegative
+
+    rng = np.random.default_rng(5)
+    hist = np.zeros((1 << 31) >> MEDIAN_SHIFT, np.int32)
+    tmp = np.zeros(3000, np.float32)
+    for t in range(600):
+        n = int(rng.integers(1, 3000))
+        x = (rng.exponential(size=n) * 10.0 ** rng.uniform(-30, 30)).astype(np.float32)
+        kind = t % 6
+        if kind == 1:
+            x[: n // 3] = 0.0
+        elif kind == 2:
+            x = (np.round(x / x.max() * 3) * x.max() / 3).astype(np.float32)
+        elif kind == 3:
+            x[:] = x[0]
+        elif kind == 4:
+            x[rng.integers(0, n)] = np.inf
+        elif kind == 5 and t % 12 == 5:
+            x[rng.integers(0, n)] = np.float32(np.nan) * (-1.0 if t % 24 == 5 else 1.0)
+        got, want = median_nonnegative(x, hist, tmp), np.median(x)
+        assert (np.isnan(got) and np.isnan(want)) or got == want, (t, n, kind, got, want)

@@ -396,10 +396,10 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
         for p in range(n_loops):
             c = p * n_slots + s
             row = src[c, rx]
-            if c % stride:  # while the row (and the next loop's) is in the cache anyway
-                _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
             out = stage[s, p]
             wd = w_doppler[p]
+            if c % stride:  # while the row (and the next loop's) is in the cache anyway
+                _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
             if plain:
                 for k in range(n2):
                     out[k] = (np.float32(row[k]) - off[k]) * (w2[k] * wd)
@@ -449,10 +449,54 @@ def suppress_leakage(rows, leak_bins, wd_spec):
                 row[d] -= np.complex64(c * wd_spec[d])
 
 
+MEDIAN_SHIFT = 20  # the median's histogram: bins of the float32 bit pattern >> this (an eighth of an octave)
+
+
 @numba.njit(cache=True, nogil=True)
-def noise_floor(power, noise_gain, rec, rx):
+def median_nonnegative(x, hist, tmp):
+    """np.median of float32 values that are >= 0 or NaN (NaN if any is), without sorting them all: the
+    bit patterns of non-negative floats order as the floats do, so a histogram of their top bits finds
+    the bins that hold the middle ranks and only those values are sorted (hist: int32
+    [2^31 >> MEDIAN_SHIFT], tmp: float32 [len(x)], both scratch)."""
+    n = x.shape[0]
+    bits = x.view(np.int32)
+    hist[:] = 0
+    for i in range(n):
+        if bits[i] < 0:  # a NaN with its sign bit set (no value here is negative)
+            return np.nan
+        hist[bits[i] >> MEDIAN_SHIFT] += 1
+    if hist[(0x7F800001 >> MEDIAN_SHIFT):].sum() > 0 and np.isnan(x).any():
+        return np.nan
+    lo_rank = (n - 1) // 2   # the middle rank, or the lower of the two
+    hi_rank = n // 2
+    below = 0
+    b_lo = 0
+    while below + hist[b_lo] <= lo_rank:
+        below += hist[b_lo]
+        b_lo += 1
+    b_hi = b_lo
+    count = below + hist[b_lo]
+    while count <= hi_rank:
+        b_hi += 1
+        count += hist[b_hi]
+    m = 0
+    for i in range(n):
+        b = bits[i] >> MEDIAN_SHIFT
+        if b_lo <= b <= b_hi:
+            tmp[m] = x[i]
+            m += 1
+    part = np.sort(tmp[:m])
+    a = part[lo_rank - below]
+    c = part[hi_rank - below]
+    if n % 2:
+        return np.float64(a)
+    return (a + c) / 2
+
+
+@numba.njit(cache=True, nogil=True)
+def noise_floor(power, noise_gain, rec, rx, hist, tmp):
     """rec[rx].noise_floor_db from the median of the sampled cells' |X|^2 (module docstring)."""
-    med = np.median(power)
+    med = median_nonnegative(power, hist, tmp)
     if med > 0:
         rec[rx].noise_floor_db = np.float32(10.0 * math.log10(med / noise_gain))
     else:
@@ -513,6 +557,8 @@ class FrontEnd:
         cell_r, cell_d = np.divmod(rest, doppler_fft_size)
         order = np.argsort(cell_r, kind="stable")   # by range bin: read while the accumulation has the row
         self._power = np.zeros(m, np.float32)
+        self._hist = np.zeros((1 << 31) >> MEDIAN_SHIFT, np.int32)
+        self._median_tmp = np.zeros(m, np.float32)
         self.noise_cells = (np.searchsorted(cell_r[order], np.arange(n_range_bins + 1)).astype(np.int64),
                             np.ascontiguousarray(cell_s[order]), np.ascontiguousarray(cell_d[order]), self._power)
         w_r = range_window.astype(np.float64)
@@ -536,7 +582,7 @@ class FrontEnd:
 
     def after_accumulate(self, rx: int) -> None:
         """After the accumulation filled the sampled cells' power (noise_cells): the channel's noise floor."""
-        noise_floor(self._power, self.noise_gain, self.record, rx)
+        noise_floor(self._power, self.noise_gain, self.record, rx, self._hist, self._median_tmp)
 
 
 def blind_iq_imbalance(frame: np.ndarray) -> np.ndarray:
