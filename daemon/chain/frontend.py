@@ -11,20 +11,19 @@ FRONTEND_DTYPE is one record per RX channel (little-endian):
   image_rejection_db   blind image-rejection estimate of the frame, before correction
 
 One compiled call per RX channel (`front_load`, called by rangefft.py) reads the channel's chirps
-in two passes. The first, over every stride-th chirp (the stride moment_stride() chooses: about
-MOMENT_SAMPLES samples, every chirp of a small frame), sums the first and second moments of I and Q
-(the DC, i.e. the complex mean over the frame, and the blind image-rejection estimate, both
-estimated from that subsample: the DC to within its standard error sqrt(var / N) of the subsample's
-N samples) and the mean difference power to the next loop. The second is the load the range FFT
-needs anyway (both windows applied, in frame order) with the DC (or the static mean) subtracted and
-the I/Q correction applied (the DC only when it stands out of its standard error by DC_SIGNIFICANCE:
-removing a mean that is only noise, or a part of the echoes, would just add the window's sidelobes
-of a constant). Every chirp, in the board's own numbers (int16 or float32, any I/Q convention), is
-also scanned for its largest and smallest number (a chirp that reaches the full scale is counted
-exactly, sample by sample) and the largest difference, in either component, between the chirp and
-the same slot's chirp in the next loop: the subsampled chirps in the first pass, the others in the
-second while their row is in the cache. Only a chirp whose largest difference could pass the
-threshold is looked at again, sample by sample, and repaired.
+in three passes. The first, over every chirp in the board's own numbers (int16 or float32, any I/Q
+convention), finds each chirp's largest and smallest number (a chirp that reaches the full scale is
+counted exactly, sample by sample) and the largest difference, in either component, between the
+chirp and the same slot's chirp in the next loop. The second, over every stride-th chirp (the stride
+moment_stride() chooses: about MOMENT_SAMPLES samples, every chirp of a small frame), sums
+the first and second moments of I and Q (the DC, i.e. the complex mean over the frame, and the blind
+image-rejection estimate, both estimated from that subsample: the DC to within its standard error
+sqrt(var / N) of the subsample's N samples) and the mean difference power to the next loop. The
+third is the load the range FFT needs anyway (both windows applied, in frame order) with the DC (or
+the static mean) subtracted and the I/Q correction applied (the DC only when it stands out of its
+standard error by DC_SIGNIFICANCE: removing a mean that is only noise, or a part of the echoes, would
+just add the window's sidelobes of a constant); only a chirp whose largest difference
+could pass the threshold is looked at again, sample by sample, and repaired.
 
 Interference from another FMCW sensor sweeps through our IF band within a few samples while the two
 sweeps cross: a burst in fast time, at a different place in every chirp (the two sensors' chirps are
@@ -93,41 +92,54 @@ DC_SIGNIFICANCE = 25.0  # DC removed when |mean|^2 > 25 var / N: five standard e
 NARROW_LIMIT = 16383  # int16 samples within +-this have int16 differences
 
 
-@numba.njit(cache=True, nogil=True)
-def _row_scan(row, other, n, narrow):
-    """One chirp's row (interleaved, 2n numbers), every chirp: its largest and smallest number and the
-    largest |row[k] - other[k]| (other: the same slot's chirp in the next loop), in int16 lanes when
-    `narrow` (int16 data whose differences cannot overflow)."""
+@numba.njit(cache=True, nogil=True, inline="always")
+def _scan_wide(src, rx, c, c2, n):
+    """Chirp c of channel rx, every chirp: its largest and smallest number and the largest
+    |x[k] - y[k]| against chirp c2 (the same slot's chirp in the next loop), over the 2n interleaved
+    numbers (indexed in src itself: no views in the hot loop)."""
     n2 = 2 * n
-    hi = row[0]
-    lo = row[0]
+    hi = src[c, rx, 0]
+    lo = src[c, rx, 0]
     for k in range(n2):
-        hi = max(hi, row[k])
-        lo = min(lo, row[k])
-    dh = row[0] - row[0]
-    dl = row[0] - row[0]
-    if narrow:
-        dh16 = np.int16(0)
-        dl16 = np.int16(0)
-        for k in range(n2):
-            d = np.int16(row[k] - other[k])
-            dh16 = max(dh16, d)
-            dl16 = min(dl16, d)
-        dh, dl = dh16, dl16
-    else:
-        for k in range(n2):
-            d = row[k] - other[k]
-            dh = max(dh, d)
-            dl = min(dl, d)
+        hi = max(hi, src[c, rx, k])
+        lo = min(lo, src[c, rx, k])
+    dh = src[c, rx, 0] - src[c, rx, 0]
+    dl = dh
+    for k in range(n2):
+        d = src[c, rx, k] - src[c2, rx, k]
+        dh = max(dh, d)
+        dl = min(dl, d)
     return np.float64(hi), np.float64(lo), np.float64(max(dh, -dl))
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
+def _scan_int16(src, rx, c, c2, n):
+    """_scan_wide of int16 data whose differences cannot overflow (NARROW_LIMIT), in int16 lanes."""
+    n2 = 2 * n
+    hi = src[c, rx, 0]
+    lo = src[c, rx, 0]
+    for k in range(n2):
+        hi = max(hi, src[c, rx, k])
+        lo = min(lo, src[c, rx, k])
+    dh = np.int16(0)
+    dl = np.int16(0)
+    for k in range(n2):
+        d = np.int16(src[c, rx, k] - src[c2, rx, k])
+        dh = max(dh, d)
+        dl = min(dl, d)
+    return np.float64(hi), np.float64(lo), np.float64(max(np.int32(dh), -np.int32(dl)))
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
 def _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan):
     """scan[c] of chirp c of channel rx: (its largest difference to the same slot's chirp in the next
     loop, squared; inf when int16 differences may have wrapped, so that the chirp is looked at
     exactly) and (1 when it reaches the full scale, else 0). The last loop compares with the one before."""
-    hi, lo, dmax = _row_scan(src[c, rx], src[c + n_slots if c < last else c - n_slots, rx], n, narrow)
+    c2 = c + n_slots if c < last else c - n_slots
+    if narrow:
+        hi, lo, dmax = _scan_int16(src, rx, c, c2, n)
+    else:
+        hi, lo, dmax = _scan_wide(src, rx, c, c2, n)
     scan[c, 0] = dmax * dmax
     scan[c, 1] = 1.0 if (hi >= full_scale or lo <= -full_scale) else 0.0
     if narrow and (hi > NARROW_LIMIT or lo < -NARROW_LIMIT):
@@ -332,7 +344,7 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
     for j in range(MOMENTS):
         mom[j] = 0.0
     last = n_chirps - n_slots  # chirps of the last loop compare with the loop before
-    for c in range(0, n_chirps, stride):  # the subsampled chirps now, the others as they are loaded
+    for c in range(n_chirps):
         _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
     n_sub = 0
     for c in range(0, n_chirps, stride):
@@ -398,11 +410,9 @@ def front_load(src, rx, n_slots, w2, w_doppler, swap, qsign, full_scale, narrow,
             row = src[c, rx]
             out = stage[s, p]
             wd = w_doppler[p]
-            if c % stride:  # while the row (and the next loop's) is in the cache anyway
-                _scan_chirp(src, rx, c, n_slots, last, n, narrow, full_scale, scan)
-            if plain:
+            if plain:  # indexed in src and stage themselves: no views in the hot loop
                 for k in range(n2):
-                    out[k] = (np.float32(row[k]) - off[k]) * (w2[k] * wd)
+                    stage[s, p, k] = (np.float32(src[c, rx, k]) - off[k]) * (w2[k] * wd)
             else:
                 for k in range(n):
                     i = np.float32(row[2 * k + ci]) - off[2 * k + ci]
