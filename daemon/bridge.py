@@ -18,6 +18,9 @@ server (the `bridge` extra), per sensor id SID:
                        first cell's corner; frame id SID/range_doppler
     /SID/rdmap_image   foxglove.RawImage of the same map (encoding 32FC1; row 0 the nearest range cell)
     /SID/health        JSON: serve's health map, as the wire carries it
+    /SID/frontend      JSON: the front end's monitor of each frame (seq, run, timestamp_s, full_scale, the
+                       per-channel records as lists, nil where not finite, the warnings and their total), as
+                       the wire's `frontend` header carries it
     /SID/sensor        JSON: the sensor summary, its digest and the full description
 
 The viewer's stamps are seconds since the epoch that fit an unsigned 32-bit count: a message whose
@@ -45,12 +48,12 @@ import numpy as np
 from .errors import CubecastError
 from .netio import DEFAULT_PUB, endpoint_problem, host_only, stop_on_signals
 from .logs import RateLimitFilter, log_limited
-from .wire import (HEALTH_FLOAT_FIELDS, HEALTH_INT_FIELDS, HEALTH_OPTIONAL_FLOAT_FIELDS, POINT_WIRE_FIELDS,
-                   RECORD_DTYPE, pose_rotation)
+from .wire import (FRONTEND_WIRE_FIELDS, HEALTH_FLOAT_FIELDS, HEALTH_INT_FIELDS, HEALTH_OPTIONAL_FLOAT_FIELDS,
+                   POINT_WIRE_FIELDS, RECORD_DTYPE, pose_rotation)
 
 DEFAULT_WEBSOCKET = "ws://127.0.0.1:8765"
 PLATFORM_FRAME = "platform"
-WS_EXPOSES = "the point clouds, range-Doppler maps, sensor descriptions and health"
+WS_EXPOSES = "the point clouds, range-Doppler maps, sensor descriptions, health and front-end monitors"
 SUMMARY_EVERY_S = 10.0
 MAX_STAMP_S = 2 ** 32 - 1  # the viewer's Timestamp: unsigned 32-bit seconds
 
@@ -118,6 +121,27 @@ def health_schema() -> dict:
     return {"title": "cubecast.Health", "type": "object", "properties": props}
 
 
+def frontend_schema() -> dict:
+    """A JSON schema of the front end's monitor (the wire's `frontend` header)."""
+    columns = {name: {"type": "array", "items": {"type": "integer"} if dtype == "<u4" else {"type": ["number", "null"]}}
+               for name, _, dtype in FRONTEND_WIRE_FIELDS}
+    warning = {"type": "object", "properties": {"rx": {"type": "integer"}, "cause": {"type": "string"},
+                                                "value": {"type": ["number", "null"]}, "short": {"type": "string"},
+                                                "text": {"type": "string"}}}
+    return {"title": "cubecast.FrontEnd", "type": "object",
+            "properties": {"sensor_id": {"type": "string"}, "seq": {"type": "integer"}, "run": {"type": "string"},
+                           "timestamp_s": {"type": "number"}, "full_scale": {"type": "number"},
+                           "records": {"type": "object", "properties": columns},
+                           "warnings": {"type": "array", "items": warning}, "warnings_total": {"type": "integer"}}}
+
+
+def frontend_json(sensor_id: str, header: dict) -> dict:
+    """The JSON message of one `frontend` wire header: its fields as they are (records per field, one
+    entry per receive channel; nil where the value is not finite)."""
+    keep = ("seq", "run", "timestamp_s", "full_scale", "records", "warnings", "warnings_total")
+    return {"sensor_id": sensor_id} | {k: header[k] for k in keep}
+
+
 SENSOR_SCHEMA = {"title": "cubecast.Sensor", "type": "object",
                  "properties": {"sensor_id": {"type": "string"}, "digest": {"type": "string"},
                                 "summary": {"type": "object"}, "sensor_toml": {"type": "string"}}}
@@ -175,7 +199,8 @@ class Bridge:
                                                                          key_role="--key")
         self.platform_frame, self.name = platform_frame, name
         self.host, self.requested_port = parse_websocket(websocket, insecure)
-        self.counts = {"clouds": 0, "points": 0, "rdmaps": 0, "health": 0, "sensor": 0, "unstamped": 0}
+        self.counts = {"clouds": 0, "points": 0, "rdmaps": 0, "health": 0, "sensor": 0, "frontend": 0,
+                       "unstamped": 0}
         self._channels: dict[tuple[str, str], Any] = {}
         self._summaries: dict[str, dict] = {}
         self._limit = RateLimitFilter(5.0)
@@ -214,7 +239,8 @@ class Bridge:
         stop = stop or threading.Event()
         self.start()
         try:
-            self.stream = PointStream(self.sub, sensor_id=self.sensor_id, keys=self.keys, rdmap=True, stop=stop)
+            self.stream = PointStream(self.sub, sensor_id=self.sensor_id, keys=self.keys, rdmap=True, frontend=True,
+                                      stop=stop)
             while True:
                 msg = self.stream.next_message(timeout_s=None)
                 if msg is None:
@@ -256,6 +282,7 @@ class Bridge:
                   "rdmap": lambda: channels.GridChannel(topic, context=ctx),
                   "rdmap_image": lambda: channels.RawImageChannel(topic, context=ctx),
                   "health": lambda: foxglove.Channel(topic, schema=health_schema(), context=ctx),
+                  "frontend": lambda: foxglove.Channel(topic, schema=frontend_schema(), context=ctx),
                   "sensor": lambda: foxglove.Channel(topic, schema=SENSOR_SCHEMA, context=ctx)}[what]()
             self._channels[(sid, what)] = ch
         return ch
@@ -281,6 +308,9 @@ class Bridge:
         elif kind == "health":
             self._channel(sid, "health").log(value)
             self.counts["health"] += 1
+        elif kind == "frontend":
+            self._channel(sid, "frontend").log(frontend_json(sid, value.header))
+            self.counts["frontend"] += 1
         elif kind == "sensor":
             self._summaries[sid] = value.summary
             self._channel(sid, "sensor").log({"sensor_id": sid, "digest": value.digest, "summary": value.summary,

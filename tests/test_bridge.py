@@ -45,9 +45,9 @@ from cubecast.daemon.errors import CubecastError
 from cubecast.daemon.process import process_frames
 from cubecast.daemon.sensor import load_sensor, parse_sensor
 from cubecast.daemon.sources import ReplaySource
-from cubecast.daemon.wire import (HEALTH_FLOAT_FIELDS, HEALTH_INT_FIELDS, HEALTH_OPTIONAL_FLOAT_FIELDS,
-                                  POINT_WIRE_FIELDS, RECORD_DTYPE, encode_health, encode_points, encode_rdmap,
-                                  encode_sensor, sensor_summary)
+from cubecast.daemon.wire import (FRONTEND_RECORD_DTYPE, HEALTH_FLOAT_FIELDS, HEALTH_INT_FIELDS,
+                                  HEALTH_OPTIONAL_FLOAT_FIELDS, POINT_WIRE_FIELDS, RECORD_DTYPE, encode_frontend,
+                                  encode_health, encode_points, encode_rdmap, encode_sensor, sensor_summary)
 from tests.helpers import SAMPLES, YARD_SENSOR
 from tests.test_pointstream import bound_xpub, wait_subscriptions
 from tests.test_service import running_service
@@ -173,6 +173,15 @@ def health_fields() -> dict:
     return h
 
 
+FRONT_RECORDS = np.zeros(3, FRONTEND_RECORD_DTYPE)
+FRONT_RECORDS["samples"] = 4096
+FRONT_RECORDS["clipped_samples"] = [0, 7, 0]
+FRONT_RECORDS["noise_floor_db"] = [12.5, 12.75, -np.inf]
+FRONT_RECORDS["image_rejection_db"] = [40.0, 35.5, 120.0]
+FRONT_WARNINGS = [{"rx": 1, "cause": "clipping", "value": 0.17, "short": "rx 1 clipping 0.17 %",
+                   "text": "rx 1: 0.17 % of samples clipped (a strong near reflector, or too much receiver gain)"}]
+
+
 def test_points_map_health_and_pose_reach_a_websocket_client():
     sensor = posed_sensor()
     sid = sensor.sensor_id
@@ -207,10 +216,13 @@ def test_points_map_health_and_pose_reach_a_websocket_client():
                     pub.send_multipart(encode_points(sid, k, "hand", 1.7e9 + 0.25, 0.001, rec))
                     pub.send_multipart(encode_rdmap(sid, k, 1.7e9 + 0.5, rdmap, *axes))
                     pub.send_multipart(encode_health(sid, health_fields()))
+                    pub.send_multipart(encode_frontend(sid, k, "hand", 1.7e9 + 0.25, FRONT_RECORDS, 2048.0,
+                                                       FRONT_WARNINGS))
 
             p = threading.Thread(target=publish, daemon=True)
             p.start()
-            topics = {f"/{sid}/{w}" for w in ("points", "transform", "rdmap", "rdmap_image", "health", "sensor")}
+            topics = {f"/{sid}/{w}" for w in ("points", "transform", "rdmap", "rdmap_image", "health", "sensor",
+                                              "frontend")}
             got = collect(f"ws://127.0.0.1:{port}", topics, lambda g: all(g.get(tp) for tp in topics))
         finally:
             stop_pub.set()
@@ -254,6 +266,17 @@ def test_points_map_health_and_pose_reach_a_websocket_client():
     assert json.loads(payload) == health_fields()
     schema = json.loads(channel["schema"])
     assert set(HEALTH_INT_FIELDS) <= set(schema["properties"])
+    # the front end's monitor as JSON: the wire header's fields as they are, nil where not finite
+    channel, payload = got[f"/{sid}/frontend"][0]
+    assert channel["encoding"] == "json" and channel["schemaEncoding"] == "jsonschema"
+    front = json.loads(payload)
+    assert front["sensor_id"] == sid and front["run"] == "hand" and front["timestamp_s"] == 1.7e9 + 0.25
+    assert front["full_scale"] == 2048.0 and front["warnings"] == FRONT_WARNINGS and front["warnings_total"] == 1
+    assert front["records"]["clipped_samples"] == [0, 7, 0] and front["records"]["samples"] == [4096] * 3
+    assert front["records"]["noise_floor_db"] == [12.5, 12.75, None]
+    assert front["records"]["image_rejection_db"] == [40.0, 35.5, 120.0]
+    assert set(json.loads(channel["schema"])["properties"]["records"]["properties"]) == set(FRONT_RECORDS.dtype.names)
+    assert bridge.counts["frontend"] >= 1
     info = json.loads(got[f"/{sid}/sensor"][0][1])
     assert info["digest"] == sensor.digest and info["sensor_toml"] == sensor.source_text
     assert info["summary"] == json.loads(json.dumps(sensor_summary(sensor)))
