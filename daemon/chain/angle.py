@@ -37,7 +37,16 @@ Processing per call of AngleEstimator.estimate() (each module's docstring gives 
    when the split test (angle_split.py: a likelihood ratio test of P against P - 1 sources in
    white noise, needing no noise power) says it is there, at the design false-split probability
    `split_false_alarm` for a single source.
-7. Further sources (angle_residual.py), for a snapshot with fewer than max_peaks kept: alternating
+6b. Subspace proposals (angle_subspace.py), methods "dml" (default), "esprit" and "music", for a
+   snapshot with fewer than max_peaks kept whose misfit leaves room for one more: the cell values of
+   the filled grid rows, forward-backward spatially smoothed into a covariance, give one more source
+   than kept by ESPRIT (dml, esprit) or MUSIC (music) in azimuth, each at the strongest kept source's
+   elevation; step 6 refines the set jointly over the true positions (DML, u and w) and it replaces
+   the kept set when it passes the split test against the kept set's own misfit. Repeated while
+   snapshots gain. Grid rows without a run of 3 filled cells: no proposals (esprit and music then
+   act as dml).
+7. Further sources (angle_residual.py; methods "dml", and "esprit"/"music" where step 6b has no
+   subarrays), for a snapshot with fewer than max_peaks kept: alternating
    projection on the FFT grid (Ziskind and Wax, "Maximum likelihood localization of multiple
    sources by alternating projection", IEEE Trans. ASSP, 1988) proposes one more source near the
    kept ones, moving them too (two sources under one FFT peak), and another while each passes a
@@ -82,13 +91,14 @@ import numpy as np
 from numba import njit
 
 from ..errors import CubecastError, is_integer, is_real
-from ..settings import ProcessingSettings
+from ..settings import ANGLE_METHODS, ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
 from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
 from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
+from .angle_subspace import MUSIC_SCAN_FACTOR, subarray_cells, subarray_length, subspace_proposals
 from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
@@ -142,6 +152,13 @@ class AngleSettings:
                         (angle_model_error_db); must be <= 0, below -90 dB it acts as -90 dB
                         (float32 rounding).
     refine              Newton refinement on the actual element positions; default True.
+    method              "dml" (default), "esprit", "music" or "fft" (angle_method, README):
+                        dml proposes further sources by ESPRIT on the smoothed grid rows (step 6b)
+                        and by the grid search of step 7; esprit by ESPRIT alone, music by MUSIC
+                        alone (step 6b; each proposal refined by the joint DML iterations and kept
+                        only by the split test). Where the grid rows have no run of 3 filled cells
+                        esprit and music act as dml (step 7 only). "fft" reports the FFT peaks
+                        (it sets refine = False).
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
                         over the grid columns / rows, also inside the refinement.
@@ -155,8 +172,13 @@ class AngleSettings:
     window: str = "rect"
     split_false_alarm: float = _DEFAULTS.angle_split_false_alarm
     model_error_db: float = _DEFAULTS.angle_model_error_db
+    method: str = _DEFAULTS.angle_method
 
     def __post_init__(self) -> None:
+        if self.method not in ANGLE_METHODS:
+            raise CubecastError(f"method must be one of {', '.join(ANGLE_METHODS)}, got {self.method!r}")
+        if self.method == "fft":
+            object.__setattr__(self, "refine", False)
         for name in ("fft_size_azimuth", "fft_size_elevation"):
             v = getattr(self, name)
             if not is_integer(v) or not 1 <= v <= 65536:
@@ -354,6 +376,19 @@ class AngleEstimator:
         self._reach_x = max(1, self.n_fft_x // (2 * grid.n_x)) if grid.n_x > 1 else 0
         self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
         self._ones = np.ones(n_virt, np.complex128)
+        # step 6b (angle_subspace.py): subarrays of the filled grid rows
+        length = subarray_length(grid.counts) if grid.n_x > 1 else 0
+        self._sub = subarray_cells(grid.counts, grid.cells, length)
+        # dml: ESPRIT proposals (where the rows allow) and the grid search of step 7; esprit, music: their
+        # proposals alone (step 7 only where the rows allow no subarrays: then they are dml)
+        self.subspace_active = settings.refine and length > 0
+        self.grid_search_active = settings.refine and (settings.method == "dml" or length == 0)
+        self._cell_weight = (1.0 / grid.cell_counts[grid.channel_cell]).astype(np.float64)
+        self._chan_cell = grid.channel_cell.astype(np.int64)
+        self._k_pitch = 2.0 * np.pi / lam * pitch
+        period = lam / pitch
+        n_scan = MUSIC_SCAN_FACTOR * grid.n_x
+        self._u_scan = (np.arange(n_scan) + 0.5) / n_scan * min(period, 2.0) - min(period, 2.0) / 2.0
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
 
@@ -436,7 +471,10 @@ class AngleEstimator:
         keep, u, w, p = self._pk_keep, self._pk_u, self._pk_w, self._pk_p
         if self.settings.refine and self.settings.max_peaks > 1:
             self._relax(x, n_found, det, keep, u, w, p)
-            n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
+            if self.subspace_active:
+                n_found, det, keep, u, w, p = self._subspace_search(x, n_found, det, keep, u, w, p)
+            if self.grid_search_active:
+                n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
         n_kept = _kept_peaks(n_found, keep, det, u, w, p, self._power_norm, det_index, values)
@@ -453,6 +491,33 @@ class AngleEstimator:
         relax_peaks(x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det, self._do_u, self._do_w,
                     self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
                     keep, u, w, p)
+
+    def _subspace_search(self, x, n_found, det, keep, u, w, p):
+        """Step 6b (angle_subspace.py): for every snapshot with fewer than max_peaks kept peaks whose misfit
+        leaves room for one more to pass the split test (fit_residuals), the smoothed-subspace estimate of one
+        more source than kept is refined jointly (step 6) as a set and replaces the kept set when it passes the
+        split test against the kept set's misfit (_try_sets). Repeated while snapshots gain, up to max_peaks."""
+        n = x.shape[0]
+        mp = self.settings.max_peaks
+        crit, frac = self.split_critical, self._floor_fraction
+        resid, open_slot = self._resid[:n], self._open[:n]
+        y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
+        new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
+        for _round in range(mp - 1):
+            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
+                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
+            if n_open == 0:
+                break
+            n_new = subspace_proposals(x, self._cal128, self._chan_cell, self._cell_weight, self.grid.n_cells,
+                                       self._sub, self._k_pitch, self.settings.method == "music", self._u_scan,
+                                       n_found, det, keep, w, open_slot, mp, new_n, new_u, new_w)
+            if n_new == 0:
+                break
+            n_found, det, keep, u, w, p, won = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u, new_w,
+                                                               r_energy, y_energy)
+            if not won.any():
+                break
+        return n_found, det, keep, u, w, p
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
         """Step 7 (angle_residual.py): a source the FFT stage did not separate. For every snapshot with
