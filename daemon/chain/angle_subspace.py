@@ -49,7 +49,7 @@ from numba import njit
 
 from .angle_joint import group_end
 
-__all__ = ["subarray_length", "subarray_cells", "subspace_proposals", "MUSIC_SCAN_FACTOR"]
+__all__ = ["subarray_length", "subarray_cells", "music_scan", "subspace_proposals", "MUSIC_SCAN_FACTOR"]
 
 MUSIC_SCAN_FACTOR = 16  # MUSIC's scan of u: this many points per grid column (then refined by DML)
 _MIN_SUBARRAY = 3
@@ -117,25 +117,26 @@ def _esprit(es, k_pitch, out_u):
         out_u[q] = min(max(uq, -1.0), 1.0)
 
 
+def music_scan(u_scan: np.ndarray, length: int, k_pitch: float) -> np.ndarray:
+    """complex128[n_scan, L]: a subarray's steering vector exp(-j k0 pitch u (i - (L - 1) / 2)) at every u of
+    MUSIC's scan (a table made once)."""
+    i = np.arange(max(length, 1)) - 0.5 * (max(length, 1) - 1)
+    return np.exp(-1j * k_pitch * np.outer(u_scan, i))
+
+
 @njit(cache=True)
-def _music(en, k_pitch, u_scan, spec, out_u):
-    """The P = out_u.size highest local maxima of 1 / ||E_n^H a(u)||^2 over u_scan (circular);
-    returns how many were found (fewer when the spectrum has fewer maxima)."""
+def _music(en, scan, u_scan, spec, out_u):
+    """The P = out_u.size highest local maxima of 1 / ||E_n^H a(u)||^2 over u_scan (circular; scan: the
+    steering table of music_scan); returns how many were found (fewer when the spectrum has fewer maxima)."""
     n_l, n_noise = en.shape
     n_scan = u_scan.size
-    centre = 0.5 * (n_l - 1)
     for s in range(n_scan):
         acc = 0.0
         for j in range(n_noise):
-            re, im = 0.0, 0.0
+            v = 0.0j
             for i in range(n_l):
-                ph = -k_pitch * u_scan[s] * (i - centre)
-                e = en[i, j]
-                # conj(e) * exp(j ph)
-                cr, ci = np.cos(ph), np.sin(ph)
-                re += e.real * cr + e.imag * ci
-                im += e.real * ci - e.imag * cr
-            acc += re * re + im * im
+                v += np.conj(en[i, j]) * scan[s, i]
+            acc += v.real * v.real + v.imag * v.imag
         spec[s] = 1.0 / max(acc, 1e-300)
     p = out_u.size
     best = np.full(p, -1.0)
@@ -159,22 +160,75 @@ def _music(en, k_pitch, u_scan, spec, out_u):
 
 
 @njit(cache=True)
-def subspace_proposals(snapshots, cal, chan_cell, cell_weight, n_cells, sub, k_pitch, use_music, u_scan, n_found,
-                       det, keep, w, open_slot, max_peaks, new_n, new_u, new_w):
-    """For every snapshot d with open_slot[d] and P = (kept peaks) + 1 <= max_peaks sources possible on
-    the subarrays sub [M, L] (P <= L - 1, P <= 2 M): new_n[d] = P and new_u[d, :P], new_w[d, :P] the
-    proposed set (module doc: ESPRIT, or MUSIC when use_music; every w that of the snapshot's first
-    kept peak, its strongest); else new_n[d] = 0. chan_cell: each channel's cell; cell_weight: 1 /
-    (channels in its cell); k_pitch: k0 * pitch (phase per unit u between neighbouring cells); u_scan:
-    MUSIC's scan. Returns the number of snapshots proposed."""
+def _set_misfit(y, kx, kz, us, ws, p, a, gram, rhs):
+    """||y - A c||^2 at the least-squares amplitudes c of the p plane waves (us, ws) over the true element
+    phases kx u + kz w (A's columns a_q = exp(-j (kx u_q + kz w_q))): ||y||^2 - rhs^H G^-1 rhs with
+    G = A^H A, rhs = A^H y (a small Gauss-Jordan solve; a singular G returns ||y||^2)."""
+    n = y.size
+    energy = 0.0
+    for i in range(n):
+        energy += y[i].real * y[i].real + y[i].imag * y[i].imag
+    for q in range(p):
+        for i in range(n):
+            a[q, i] = np.exp(-1j * (kx[i] * us[q] + kz[i] * ws[q]))
+    for q in range(p):
+        acc = 0.0j
+        for i in range(n):
+            acc += np.conj(a[q, i]) * y[i]
+        rhs[q] = acc
+        for r in range(p):
+            acc = 0.0j
+            for i in range(n):
+                acc += np.conj(a[q, i]) * a[r, i]
+            gram[q, r] = acc
+    sol = rhs[:p].copy()
+    g = gram[:p, :p].copy()
+    for c in range(p):  # Gauss-Jordan on the Hermitian positive (semi)definite G
+        piv = g[c, c].real
+        if piv <= 1e-9 * n:
+            return energy
+        for r in range(p):
+            if r != c:
+                f = g[r, c] / g[c, c]
+                for k in range(p):
+                    g[r, k] -= f * g[c, k]
+                sol[r] -= f * sol[c]
+    explained = 0.0
+    for q in range(p):
+        explained += (np.conj(rhs[q]) * sol[q] / g[q, q]).real
+    return max(energy - explained, 0.0)
+
+
+@njit(cache=True)
+def subspace_proposals(snapshots, cal, chan_cell, cell_weight, n_cells, sub, k_pitch, use_music, u_scan, scan, kx, kz,
+                       n_found, det, keep, w, open_slot, r_energy, q_need, crit, screen, floor_fraction, max_peaks,
+                       new_n, new_u, new_w, jump_n, jump_u, jump_w):
+    """For every snapshot d with open_slot[d] and K >= 1 kept peaks, the proposed sets of P = K + 1 (new_n[d] = P,
+    new_u[d, :P], new_w[d, :P]) and of P = K + 2 sources (jump_n, jump_u, jump_w), each where P <= max_peaks
+    and the subarrays sub [M, L] allow it (P <= L - 1, P <= 2 M), else a count of 0 (module doc: ESPRIT, or
+    MUSIC when use_music, from one eigendecomposition; every w that of the snapshot's first kept peak, its
+    strongest). chan_cell: each channel's cell; cell_weight: 1 / (channels in its cell); k_pitch: k0 * pitch
+    (phase per unit u between neighbouring cells); u_scan, scan: MUSIC's scan and its steering table.
+
+    Screens, as in angle_residual.py, at the unrefined directions (amplitudes by least squares over the true
+    phases kx u + kz w): a set is proposed only when it explains at least the fraction q_need[d] of the kept
+    set's misfit r_energy[d] (fit_residuals: the split test's need for one more source times the screen); the
+    jump set also only when it explains, beyond the K + 1 set, screen * crit[K + 2] of what that leaves above
+    the model-error floor (floor_fraction ||y||^2). Returns the number of snapshots with a proposal."""
     n_det, n_virt = snapshots.shape
     m_sub, n_l = sub.shape
     c = np.empty(n_cells, np.complex128)
     r = np.empty((n_l, n_l), np.complex128)
     uq = np.empty(max_peaks, np.float64)
+    wq = np.empty(max_peaks, np.float64)
     spec = np.empty(u_scan.size, np.float64)
+    y = np.empty(n_virt, np.complex128)
+    a = np.empty((max_peaks, n_virt), np.complex128)
+    gram = np.empty((max_peaks, max_peaks), np.complex128)
+    rhs = np.empty(max_peaks, np.complex128)
     for d in range(n_det):
         new_n[d] = 0
+        jump_n[d] = 0
     n_new = 0
     k0 = 0
     while k0 < n_found:
@@ -187,27 +241,47 @@ def subspace_proposals(snapshots, cal, chan_cell, cell_weight, n_cells, sub, k_p
                 if kept == 0:
                     w0 = w[k]
                 kept += 1
-        p = kept + 1
-        if not open_slot[d] or kept == 0 or p > max_peaks or p > n_l - 1 or p > 2 * m_sub:
+        p_max = min(max_peaks, n_l - 1, 2 * m_sub, kept + 2)
+        if not open_slot[d] or kept == 0 or kept + 1 > p_max:
             k0 = k1
             continue
+        energy = 0.0
         for i in range(n_cells):
             c[i] = 0.0
         for i in range(n_virt):
-            c[chan_cell[i]] += complex(snapshots[d, i]) * cal[i] * cell_weight[i]
+            y[i] = complex(snapshots[d, i]) * cal[i]
+            c[chan_cell[i]] += y[i] * cell_weight[i]
+            energy += y[i].real * y[i].real + y[i].imag * y[i].imag
+        floor = floor_fraction * energy
         _smoothed_covariance(c, sub, r)
         _, vec = np.linalg.eigh(r)  # ascending eigenvalues
-        if use_music:
-            got = _music(np.ascontiguousarray(vec[:, : n_l - p]), k_pitch, u_scan, spec, uq[:p])
-            if got < p:
-                k0 = k1
+        e_one = np.inf
+        for p in range(kept + 1, p_max + 1):
+            if use_music:
+                if _music(np.ascontiguousarray(vec[:, : n_l - p]), scan, u_scan, spec, uq[:p]) < p:
+                    break
+            else:
+                _esprit(np.ascontiguousarray(vec[:, n_l - p:]), k_pitch, uq[:p])
+            for q in range(p):
+                wq[q] = w0
+            e_p = _set_misfit(y, kx, kz, uq, wq, p, a, gram, rhs)
+            if r_energy[d] - e_p < q_need[d] * r_energy[d]:
                 continue
-        else:
-            _esprit(np.ascontiguousarray(vec[:, n_l - p:]), k_pitch, uq[:p])
-        new_n[d] = p
-        for q in range(p):
-            new_u[d, q] = uq[q]
-            new_w[d, q] = w0
-        n_new += 1
+            if p == kept + 1:
+                e_one = e_p
+                new_n[d] = p
+                for q in range(p):
+                    new_u[d, q] = uq[q]
+                    new_w[d, q] = w0
+            else:
+                # screened against the proposal of one more where that passed its screen
+                if e_one < np.inf and (e_one <= floor or e_one - floor - e_p < screen * crit[p] * (e_one - floor)):
+                    continue
+                jump_n[d] = p
+                for q in range(p):
+                    jump_u[d, q] = uq[q]
+                    jump_w[d, q] = w0
+        if new_n[d] > 0 or jump_n[d] > 0:
+            n_new += 1
         k0 = k1
     return n_new
