@@ -1,7 +1,7 @@
 """`bench --resolution`: how well the angle stage separates sources in one range-Doppler cell.
 
 Monte Carlo on virtual snapshots (the angle stage alone, AngleEstimator with the chain's default
-settings and FFT sizes), for three arrays: 8- and 16-element uniform linear arrays at half a
+settings and FFT sizes, once per angle method of METHODS on the same draws), for three arrays: 8- and 16-element uniform linear arrays at half a
 wavelength and the bundled yard sensor's virtual array (two rows, 8 columns). Per trial a fresh
 snapshot: sources as plane waves (the project's convention, angle.py), circular complex Gaussian
 noise of unit power per element, the SNR per element |a|^2 / sigma^2 of each (equal) source.
@@ -37,6 +37,7 @@ log = logging.getLogger(__name__)
 SEPARATIONS = (0.3, 0.5, 0.7, 1.0, 1.4, 2.0)  # x the Rayleigh limit
 SNR_DB = (10.0, 20.0, 30.0, 40.0)  # per element, each source
 CASES = ("quadrature", "random", "unequal", "three")
+METHODS = ("dml", "esprit", "music")  # angle_method values compared (fft resolves nothing below 1 R)
 TRIALS = 200
 UNEQUAL_DB = -10.0
 GATE_FRACTION = 0.25  # of the separation
@@ -59,7 +60,7 @@ def arrays() -> list[tuple[str, np.ndarray, float]]:
     return out
 
 
-def _estimator(pos: np.ndarray, lam: float):
+def _estimator(pos: np.ndarray, lam: float, method: str = "dml"):
     from .chain.angle import AngleEstimator, AngleSettings, VirtualGrid
     from .settings import ProcessingSettings
     s = ProcessingSettings().validate()
@@ -71,7 +72,7 @@ def _estimator(pos: np.ndarray, lam: float):
                                               max_peaks=s.angle_max_peaks,
                                               split_false_alarm=s.angle_split_false_alarm,
                                               model_error_db=s.angle_model_error_db,
-                                              refine=s.angle_method == "dml"))
+                                              method=method))
 
 
 class _Scene:
@@ -146,27 +147,36 @@ def _single(scene, est, snr_db: float, trials: int, rng) -> float:
     return float(np.mean(np.bincount(res.det_index, minlength=trials) >= 2))
 
 
-def run_resolution(trials: int = TRIALS, seed: int = 0) -> dict:
-    """The whole sweep: per array, case, separation and SNR the resolved fraction (and the single-source
-    split rate per SNR, on 10 x trials sources)."""
+def run_resolution(trials: int = TRIALS, seed: int = 0, methods: tuple[str, ...] = METHODS) -> dict:
+    """The whole sweep: per array, method, case, separation and SNR the resolved fraction (and the
+    single-source split rate per SNR, on 10 x trials sources). Every method sees the same draws (the
+    generator restarts from `seed` for each array and method)."""
     if trials < 20:
         raise CubecastError(f"--trials {trials}: a resolution rate needs at least 20 trials")
-    from .settings import ProcessingSettings
-    alpha = ProcessingSettings().validate().angle_split_false_alarm
+    from .settings import ANGLE_METHODS, ProcessingSettings
+    for m in methods:
+        if m not in ANGLE_METHODS:
+            raise CubecastError(f"resolution: angle method {m!r}: must be one of {', '.join(ANGLE_METHODS)}")
+    defaults = ProcessingSettings().validate()
+    alpha = defaults.angle_split_false_alarm
     t0 = time.perf_counter()
-    rng = np.random.default_rng(seed)
     out = []
     for name, pos, lam in arrays():
-        t1 = time.perf_counter()
-        scene, est = _Scene(pos, lam), _estimator(pos, lam)
-        n_cols = est.grid.n_x
-        rows = [_case(scene, est, case, frac, snr, trials, rng, n_cols)
-                for case in CASES for frac in SEPARATIONS for snr in SNR_DB]
-        single = [{"snr_db": snr, "split": _single(scene, est, snr, 10 * trials, rng)} for snr in SNR_DB]
+        by_method = {}
+        for method in methods:
+            t1 = time.perf_counter()
+            rng = np.random.default_rng(seed)
+            scene, est = _Scene(pos, lam), _estimator(pos, lam, method)
+            n_cols = est.grid.n_x
+            rows = [_case(scene, est, case, frac, snr, trials, rng, n_cols)
+                    for case in CASES for frac in SEPARATIONS for snr in SNR_DB]
+            single = [{"snr_db": snr, "split": _single(scene, est, snr, 10 * trials, rng)} for snr in SNR_DB]
+            by_method[method] = {"rows": rows, "single": single}
+            log.info("resolution: %s, %s in %.1f s", name, method, time.perf_counter() - t1)
+        main = defaults.angle_method if defaults.angle_method in by_method else methods[0]
         out.append({"name": name, "n_virtual": int(pos.shape[0]), "columns": int(n_cols),
-                    "rayleigh_u": 2.0 / n_cols, "rows": rows, "single": single})
-        log.info("resolution: %s in %.1f s", name, time.perf_counter() - t1)
-    return {"trials": trials, "seed": seed, "design_split": alpha, "cases": list(CASES),
+                    "rayleigh_u": 2.0 / n_cols, "method": main, **by_method[main], "methods": by_method})
+    return {"trials": trials, "seed": seed, "design_split": alpha, "methods": list(methods), "cases": list(CASES),
             "separations_rayleigh": list(SEPARATIONS), "snr_db": list(SNR_DB), "unequal_db": UNEQUAL_DB,
             "gate": f"each true source has its own reported one within {GATE_FRACTION:g} x the separation "
                     "in (u, w), and no other is reported",
@@ -178,16 +188,28 @@ def print_resolution_table(result: dict) -> None:
     seps = result["separations_rayleigh"]
     print(f"resolution over {result['trials']} trials per cell (seed {result['seed']}); resolved: "
           f"{result['gate']}; SNR per element of each source (unequal: the second {result['unequal_db']:g} dB)")
+    print("\nat 0.5 x the Rayleigh limit, 20 dB per element, per angle_method (resolved; split: single "
+          "sources at 20 dB):")
+    print(f"  {'array':<7}{'method':<8}" + "".join(f"{c:>12}" for c in result["cases"]) + f"{'split':>9}")
     for arr in result["arrays"]:
-        print(f"\n{arr['name']}: {arr['n_virtual']} elements, {arr['columns']} columns, Rayleigh limit "
-              f"{arr['rayleigh_u']:.4f} in u")
-        print(f"  {'case':<11}{'SNR dB':>7}  " + "".join(f"{s:>7g}R" for s in seps) + "   RMSE/sigma u at 1R")
-        for case in result["cases"]:
-            for snr in result["snr_db"]:
-                cells = [r for r in arr["rows"] if r["case"] == case and r["snr_db"] == snr]
-                ratio = next((r.get("rmse_over_sigma_u") for r in cells if r["separation_rayleigh"] == 1.0), None)
-                text = "" if ratio is None else " / ".join(f"{v:.2f}" for v in ratio)
-                print(f"  {case:<11}{snr:>7g}  " + "".join(f"{100 * r['resolved']:>7.1f}%" for r in cells)
-                      + f"   {text}")
-        print("  single source split (design {:.3g}): ".format(result["design_split"])
-              + ", ".join(f"{s['snr_db']:g} dB {100 * s['split']:.2f}%" for s in arr["single"]))
+        for method, run in arr.get("methods", {arr.get("method", "dml"): arr}).items():
+            cells = {r["case"]: r["resolved"] for r in run["rows"] if r["separation_rayleigh"] == 0.5
+                     and r["snr_db"] == 20.0}
+            split = next((s["split"] for s in run["single"] if s["snr_db"] == 20.0), float("nan"))
+            print(f"  {arr['name']:<7}{method:<8}"
+                  + "".join(f"{100 * cells.get(c, float('nan')):>11.1f}%" for c in result["cases"])
+                  + f"{100 * split:>8.2f}%")
+    for arr in result["arrays"]:
+        for method, run in arr.get("methods", {arr.get("method", "dml"): arr}).items():
+            print(f"\n{arr['name']}, angle_method {method}: {arr['n_virtual']} elements, "
+                  f"{arr['columns']} columns, Rayleigh limit {arr['rayleigh_u']:.4f} in u")
+            print(f"  {'case':<11}{'SNR dB':>7}  " + "".join(f"{s:>7g}R" for s in seps) + "   RMSE/sigma u at 1R")
+            for case in result["cases"]:
+                for snr in result["snr_db"]:
+                    cells = [r for r in run["rows"] if r["case"] == case and r["snr_db"] == snr]
+                    ratio = next((r.get("rmse_over_sigma_u") for r in cells if r["separation_rayleigh"] == 1.0), None)
+                    text = "" if ratio is None else " / ".join(f"{v:.2f}" for v in ratio)
+                    print(f"  {case:<11}{snr:>7g}  " + "".join(f"{100 * r['resolved']:>7.1f}%" for r in cells)
+                          + f"   {text}")
+            print("  single source split (design {:.3g}): ".format(result["design_split"])
+                  + ", ".join(f"{s['snr_db']:g} dB {100 * s['split']:.2f}%" for s in run["single"]))

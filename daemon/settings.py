@@ -15,7 +15,7 @@ from .errors import CubecastError
 CFAR_KINDS = ("ca", "os", "go", "so")
 INTERFERENCE_MITIGATIONS = ("off", "zero", "interpolate")   # chain/frontend.py: off = detect and count only
 WINDOW_NAMES = ("rect", "hann", "hamming", "blackman", "kaiser")   # chain/windows.py makes each
-ANGLE_METHODS = ("dml", "fft")  # README "Several sources in one cell"
+ANGLE_METHODS = ("dml", "esprit", "music", "fft")  # README "Several sources in one cell"
 
 
 @dataclass(frozen=True)
@@ -56,7 +56,8 @@ class ProcessingSettings:
     angle_max_peaks: int = 3  # sources per range-Doppler cell at most (one, two or three)
     angle_split_false_alarm: float = 0.01  # design probability that one source is reported as two
     angle_model_error_db: float = -25.0  # split test's floor: the array's relative model error (README)
-    angle_method: str = "dml"  # "dml": maximum likelihood over the true elements; "fft": the FFT peaks only
+    angle_method: str = "dml"  # "dml": maximum likelihood over the true elements; "esprit", "music": dml with
+    # smoothed-subspace proposals (chain/angle_subspace.py); "fft": the FFT peaks only
     # output
     max_points: int = 1024
 

@@ -37,14 +37,29 @@ Processing per call of AngleEstimator.estimate() (each module's docstring gives 
    when the split test (angle_split.py: a likelihood ratio test of P against P - 1 sources in
    white noise, needing no noise power) says it is there, at the design false-split probability
    `split_false_alarm` for a single source.
-7. Further sources (angle_residual.py), for a snapshot with fewer than max_peaks kept: alternating
+6b. Subspace proposals (angle_subspace.py), methods "dml" (default), "esprit" and "music", for a
+   snapshot with fewer than max_peaks kept whose misfit leaves room for one more: the cell values of
+   the filled grid rows, forward-backward spatially smoothed into a covariance, give one more source
+   than kept by ESPRIT (dml, esprit) or MUSIC (music) in azimuth, each at the strongest kept source's
+   elevation; step 6 refines the set jointly over the true positions (DML, u and w) and it replaces
+   the kept set when it passes the split test against the kept set's own misfit; where it does not,
+   two more sources than kept are proposed and tested as a jump (step 7). Repeated while snapshots
+   gain. Grid rows without a run of 3 filled cells: no proposals (esprit and music then act as dml).
+7. Further sources (angle_residual.py; methods "dml", and "esprit"/"music" where step 6b has no
+   subarrays), for a snapshot with fewer than max_peaks kept: alternating
    projection on the FFT grid (Ziskind and Wax, "Maximum likelihood localization of multiple
    sources by alternating projection", IEEE Trans. ASSP, 1988) proposes one more source near the
    kept ones, moving them too (two sources under one FFT peak), and another while each passes a
    screen; or the strongest peak of the fit's residual (a screen by Fisher's statistic) proposes
    one elsewhere. Step 6 refines the proposal jointly, and it replaces the kept set when it passes
-   the split test against the kept set's own misfit (two more at once only when the middle set
-   passes too). Repeated while snapshots gain, up to max_peaks.
+   the split test against the kept set's own misfit. Two more at once (a jump): the full set must
+   pass against the middle set (all but its weakest, refined again), and either the middle set
+   against the kept set or the two together must explain the fraction of the kept set's misfit one
+   further source would need (three sources under one beam: the best two-source fit of them can
+   leave too much for the middle set to pass alone). A false jump on a single source needs the
+   full-against-middle test to pass, so by the union bound a single source splits at most at twice
+   the design rate; measured within the binomial band of the design rate (tests/test_superres.py).
+   Repeated while snapshots gain, up to max_peaks.
 8. Bounds (bounds.source_bounds): each reported source's share of the snapshot's signal energy and
    its deterministic Cramer-Rao bound given the others (snr_share, crb_unit).
 
@@ -57,9 +72,9 @@ Limits (by design, documented rather than hidden):
 - A target whose beam maximum lies at an invisible FFT grid point (only possible within about
   one FFT bin of endfire, u^2 + w^2 ~ 1) is not reported.
 - Two targets closer than the array can separate (variance inflation above 10, step 6) stay
-  one peak. Sources are added in order, each tested against the fit without it: of three
-  close sources, where one plane wave fitted to three leaves too much unexplained for a second to
-  pass, fewer are reported.
+  one peak. Sources are added in order, each tested against the fit without it (or two at once,
+  step 7): of three sources within a Rayleigh limit fewer are often reported (README gives the
+  rates).
 - The split test assumes white noise and a calibrated array: channel errors (rms phase errors of
   phi radians leave about 20 log10(phi) dB of the target's power, -29 dB for 2 degrees) and the range
   and Doppler sidelobes of neighbouring echoes leave a structured misfit that, on a strong target,
@@ -82,13 +97,14 @@ import numpy as np
 from numba import njit
 
 from ..errors import CubecastError, is_integer, is_real
-from ..settings import ProcessingSettings
+from ..settings import ANGLE_METHODS, ProcessingSettings
 from .angle_joint import relax_peaks
 from .angle_peaks import bin_direction_cosines, coherence_scores, find_peaks, scatter_cells
 from .angle_refine import refine_peaks
 from .angle_joint import _MAX_VARIANCE_INFLATION as _MAX_INFLATION, _MISFIT_FLOOR
 from .angle_residual import fit_residuals, further_sources, residual_peaks
 from .angle_split import split_critical_values
+from .angle_subspace import MUSIC_SCAN_FACTOR, music_scan, subarray_cells, subarray_length, subspace_proposals
 from .bounds import crb_unit_covariance, source_bounds
 from .fft import ifft_unnormalised_inplace
 from .virtual_grid import GRID_WINDOW_NAMES, VirtualGrid, grid_window
@@ -142,6 +158,13 @@ class AngleSettings:
                         (angle_model_error_db); must be <= 0, below -90 dB it acts as -90 dB
                         (float32 rounding).
     refine              Newton refinement on the actual element positions; default True.
+    method              "dml" (default), "esprit", "music" or "fft" (angle_method, README):
+                        dml proposes further sources by ESPRIT on the smoothed grid rows (step 6b)
+                        and by the grid search of step 7; esprit by ESPRIT alone, music by MUSIC
+                        alone (step 6b; each proposal refined by the joint DML iterations and kept
+                        only by the split test). Where the grid rows have no run of 3 filled cells
+                        esprit and music act as dml (step 7 only). "fft" reports the FFT peaks
+                        (it sets refine = False).
     window              "rect" (default; the single-target maximum-likelihood beam), "hann"
                         (sin^2 taper without zero end weights) or "hamming"; applied separably
                         over the grid columns / rows, also inside the refinement.
@@ -155,8 +178,13 @@ class AngleSettings:
     window: str = "rect"
     split_false_alarm: float = _DEFAULTS.angle_split_false_alarm
     model_error_db: float = _DEFAULTS.angle_model_error_db
+    method: str = _DEFAULTS.angle_method
 
     def __post_init__(self) -> None:
+        if self.method not in ANGLE_METHODS:
+            raise CubecastError(f"method must be one of {', '.join(ANGLE_METHODS)}, got {self.method!r}")
+        if self.method == "fft":
+            object.__setattr__(self, "refine", False)
         for name in ("fft_size_azimuth", "fft_size_elevation"):
             v = getattr(self, name)
             if not is_integer(v) or not 1 <= v <= 65536:
@@ -341,6 +369,7 @@ class AngleEstimator:
         self.split_critical = split_critical_values(self._kx, self._kz, lam / pitch, lam / pitch, self._do_u,
                                                     self._do_w, settings.max_peaks, settings.split_false_alarm)
         self._floor_fraction = max(10.0 ** (settings.model_error_db / 10.0), _MISFIT_FLOOR)  # angle_split.py
+        self._no_test = np.full(self.split_critical.size, -1e300)  # critical values every set passes
 
         kz = np.arange(self.n_fft_z)[:, None] * np.arange(grid.n_z)[None, :]
         self._dft_z = np.exp(2j * np.pi * kz / self.n_fft_z).astype(np.complex64)
@@ -354,6 +383,20 @@ class AngleEstimator:
         self._reach_x = max(1, self.n_fft_x // (2 * grid.n_x)) if grid.n_x > 1 else 0
         self._img = np.empty((self.n_fft_z, self.n_fft_x), dtype=np.complex128)
         self._ones = np.ones(n_virt, np.complex128)
+        # step 6b (angle_subspace.py): subarrays of the filled grid rows
+        length = subarray_length(grid.counts) if grid.n_x > 1 else 0
+        self._sub = subarray_cells(grid.counts, grid.cells, length)
+        # dml: ESPRIT proposals (where the rows allow) and the grid search of step 7; esprit, music: their
+        # proposals alone (step 7 only where the rows allow no subarrays: then they are dml)
+        self.subspace_active = settings.refine and length > 0
+        self.grid_search_active = settings.refine and (settings.method == "dml" or length == 0)
+        self._cell_weight = (1.0 / grid.cell_counts[grid.channel_cell]).astype(np.float64)
+        self._chan_cell = grid.channel_cell.astype(np.int64)
+        self._k_pitch = 2.0 * np.pi / lam * pitch
+        period = lam / pitch
+        n_scan = MUSIC_SCAN_FACTOR * grid.n_x
+        self._u_scan = (np.arange(n_scan) + 0.5) / n_scan * min(period, 2.0) - min(period, 2.0) / 2.0
+        self._scan = music_scan(self._u_scan, length, self._k_pitch)
         self._capacity = 0
         self._allocate(max(1, int(capacity)))
 
@@ -436,7 +479,10 @@ class AngleEstimator:
         keep, u, w, p = self._pk_keep, self._pk_u, self._pk_w, self._pk_p
         if self.settings.refine and self.settings.max_peaks > 1:
             self._relax(x, n_found, det, keep, u, w, p)
-            n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
+            if self.subspace_active:
+                n_found, det, keep, u, w, p = self._subspace_search(x, n_found, det, keep, u, w, p)
+            if self.grid_search_active:
+                n_found, det, keep, u, w, p = self._residual_search(x, n_found, det, keep, u, w, p)
         det_index = np.empty(n_found, np.int32)
         values = np.empty((5, n_found), np.float32)  # azimuth, elevation, u, w, peak power
         n_kept = _kept_peaks(n_found, keep, det, u, w, p, self._power_norm, det_index, values)
@@ -448,11 +494,55 @@ class AngleEstimator:
                            elevation_deg=values[1, :n_kept], u=values[2, :n_kept], w=values[3, :n_kept],
                            peak_power=values[4, :n_kept], snr_share=share, crb_unit=crb)
 
-    def _relax(self, x, n_found, det, keep, u, w, p):
-        """Step 6 (angle_joint.py) on the peak arrays, in place."""
+    def _relax(self, x, n_found, det, keep, u, w, p, crit=None):
+        """Step 6 (angle_joint.py) on the peak arrays, in place (crit: the split test's critical values, by
+        default split_critical)."""
+        crit = self.split_critical if crit is None else crit
         relax_peaks(x, self._cal128, self._chan_win, self._kx, self._kz, n_found, det, self._do_u, self._do_w,
-                    self.bin_u, self.bin_w, self.split_critical, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
+                    self.bin_u, self.bin_w, crit, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
                     keep, u, w, p)
+
+    def _subspace_search(self, x, n_found, det, keep, u, w, p):
+        """Step 6b (angle_subspace.py): for every snapshot with fewer than max_peaks kept peaks whose misfit
+        leaves room for one more to pass the split test (fit_residuals), the smoothed-subspace estimate of one
+        more source than kept is refined jointly (step 6) as a set and replaces the kept set when it passes the
+        split test against the kept set's misfit (_try_sets); where it did not, that of two more (a jump).
+        Repeated for the snapshots that gained, up to max_peaks."""
+        n = x.shape[0]
+        mp = self.settings.max_peaks
+        crit, frac = self.split_critical, self._floor_fraction
+        resid, open_slot, cand = self._resid[:n], self._open[:n], self._cand[:n]
+        y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
+        new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
+        jump_n, jump_u, jump_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
+        for round_ in range(mp - 1):
+            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
+                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
+            if round_ > 0:
+                open_slot &= cand
+                n_open = int(open_slot.sum())
+            if n_open == 0:
+                break
+            n_new = subspace_proposals(x, self._cal128, self._chan_cell, self._cell_weight, self.grid.n_cells,
+                                       self._sub, self._k_pitch, self.settings.method == "music", self._u_scan,
+                                       self._scan, self._kx, self._kz, n_found, det, keep, w, open_slot, r_energy,
+                                       q_need, crit, _RESIDUAL_SCREEN, frac, mp, new_n, new_u, new_w, jump_n, jump_u,
+                                       jump_w)
+            if n_new == 0:
+                break
+            won = np.zeros(n, np.bool_)
+            if new_n.any():
+                n_found, det, keep, u, w, p, won = self._try_sets(x, n_found, det, keep, u, w, p, new_n, new_u,
+                                                                   new_w, r_energy, y_energy)
+            retry = np.where(won, 0, jump_n)
+            if retry.any():
+                n_found, det, keep, u, w, p, more = self._try_sets(x, n_found, det, keep, u, w, p, retry, jump_u,
+                                                                    jump_w, r_energy, y_energy)
+                won |= more
+            if not won.any():
+                break
+            cand[:] = won
+        return n_found, det, keep, u, w, p
 
     def _residual_search(self, x, n_found, det, keep, u, w, p):
         """Step 7 (angle_residual.py): a source the FFT stage did not separate. For every snapshot with
@@ -534,8 +624,14 @@ class AngleEstimator:
             mid = np.flatnonzero(is_jump & sub_keep & (rank_in < n_kept[sub_det] - 1))
             mid_det = np.searchsorted(jump, sub_det[mid])
             mid_keep, e_mid, mid_kept = self._refine_sets(np.ascontiguousarray(xs[jump]), mid_det, sub_u[mid].copy(),
-                                                          sub_w[mid].copy(), sub_p[mid].copy())
-            won[jump] = ((mid_kept == before[jump] + 1) & self._passes(e_fewer[jump], e_mid, before[jump] + 1, floor[jump])
+                                                          sub_w[mid].copy(), sub_p[mid].copy(), test=False)
+            # (refined without a split test inside) must pass against the kept set, or the two together
+            # explain the fraction of the kept set's misfit that one further source would need (three sources
+            # under one beam: a two-source fit of them can leave too much for the middle set to pass), and the
+            # full set must pass against the middle one
+            first = (self._passes(e_fewer[jump], e_mid, before[jump] + 1, floor[jump])
+                     | self._passes(e_fewer[jump], e_more[jump], before[jump] + 1, floor[jump]))
+            won[jump] = ((mid_kept == before[jump] + 1) & first
                          & self._passes(e_mid, e_more[jump], before[jump] + 2, floor[jump]))
         cand = np.zeros(n, np.bool_)
         if not won.any():
@@ -549,12 +645,14 @@ class AngleEstimator:
                 np.concatenate([u[:n_found], sub_u[take]])[order], np.concatenate([w[:n_found], sub_w[take]])[order],
                 np.concatenate([p[:n_found], sub_p[take]])[order], cand)
 
-    def _refine_sets(self, xs, sub_det, sub_u, sub_w, sub_p):
+    def _refine_sets(self, xs, sub_det, sub_u, sub_w, sub_p, test=True):
         """Step 6 on the sets of sub_det (snapshot rows of xs), in place on sub_u, sub_w, sub_p; returns
-        (keep, the kept set's misfit per snapshot, its size)."""
+        (keep, the kept set's misfit per snapshot, its size). test = False: no split test inside (every
+        critical value passed; peaks still merge when inseparable), the caller tests."""
         m = xs.shape[0]
         sub_keep = np.ones(sub_det.size, np.bool_)
-        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p)
+        self._relax(xs, sub_det.size, sub_det, sub_keep, sub_u, sub_w, sub_p,
+                    None if test else self._no_test)
         resid = np.empty((m, self.grid.n_virt), np.complex64)
         open_slot, energy, misfit, q_need = np.empty(m, np.bool_), np.empty(m), np.empty(m), np.empty(m)
         fit_residuals(xs, self._cal128, self._kx, self._kz, sub_det.size, sub_det, sub_keep, sub_u, sub_w,
