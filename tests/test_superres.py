@@ -448,9 +448,6 @@ def test_subspace_method_falls_back_to_dml_without_filled_rows():
     assert not estimator("ula8", method="fft").subspace_active
 
 
-@pytest.mark.xfail(strict=True, reason="pipeline.py still builds AngleSettings(refine=angle_method == 'dml') without "
-                                       "method=: esprit and music reach the chain as fft until it passes "
-                                       "method=settings.angle_method (then this passes and the mark must go)")
 def test_chain_passes_the_angle_method_to_the_angle_stage():
     from cubecast.daemon.chain.pipeline import Pipeline
     from cubecast.daemon.settings import parse_settings

@@ -150,7 +150,7 @@ class Pipeline:
                           max_peaks=settings.angle_max_peaks,
                           split_false_alarm=settings.angle_split_false_alarm,
                           model_error_db=settings.angle_model_error_db,
-                          refine=settings.angle_method == "dml"),
+                          method=settings.angle_method),
             calibration)
         self.n_virtual = sensor.n_virtual
         self.range_resolution_m = sensor.range_resolution_m
