@@ -502,6 +502,20 @@ class AngleEstimator:
                     self.bin_u, self.bin_w, crit, _JOINT_SCREEN, self._win_sum2, self._floor_fraction,
                     keep, u, w, p)
 
+    def _open_snapshots(self, x, n_found, det, keep, u, w, round_):
+        """The snapshots whose misfit leaves room for one more source to pass the split test (fit_residuals
+        fills the residuals, energies and open flags of the first len(x) rows); after the first round only
+        those that gained in the last one (self._cand). Returns how many are open."""
+        n = x.shape[0]
+        open_slot = self._open[:n]
+        n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, self.settings.max_peaks,
+                               self.split_critical, self._floor_fraction, _RESIDUAL_SCREEN, self._resid[:n],
+                               self._y_energy[:n], self._r_energy[:n], self._q_need[:n], open_slot)
+        if round_ > 0:
+            open_slot &= self._cand[:n]
+            n_open = int(open_slot.sum())
+        return n_open
+
     def _subspace_search(self, x, n_found, det, keep, u, w, p):
         """Step 6b (angle_subspace.py): for every snapshot with fewer than max_peaks kept peaks whose misfit
         leaves room for one more to pass the split test (fit_residuals), the smoothed-subspace estimate of one
@@ -511,17 +525,12 @@ class AngleEstimator:
         n = x.shape[0]
         mp = self.settings.max_peaks
         crit, frac = self.split_critical, self._floor_fraction
-        resid, open_slot, cand = self._resid[:n], self._open[:n], self._cand[:n]
+        open_slot, cand = self._open[:n], self._cand[:n]
         y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
         new_n, new_u, new_w = self._new_n[:n], self._new_u[:n], self._new_w[:n]
         jump_n, jump_u, jump_w = self._first_n[:n], self._first_u[:n], self._first_w[:n]
         for round_ in range(mp - 1):
-            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
-                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
-            if round_ > 0:
-                open_slot &= cand
-                n_open = int(open_slot.sum())
-            if n_open == 0:
+            if self._open_snapshots(x, n_found, det, keep, u, w, round_) == 0:
                 break
             n_new = subspace_proposals(x, self._cal128, self._chan_cell, self._cell_weight, self.grid.n_cells,
                                        self._sub, self._k_pitch, self.settings.method == "music", self._u_scan,
@@ -559,12 +568,7 @@ class AngleEstimator:
         resid, open_slot, cand = self._resid[:n], self._open[:n], self._cand[:n]
         y_energy, r_energy, q_need = self._y_energy[:n], self._r_energy[:n], self._q_need[:n]
         for round_ in range(mp - 1):
-            n_open = fit_residuals(x, self._cal128, self._kx, self._kz, n_found, det, keep, u, w, mp, crit, frac,
-                                   _RESIDUAL_SCREEN, resid, y_energy, r_energy, q_need, open_slot)
-            if round_ > 0:
-                open_slot &= cand
-                n_open = int(open_slot.sum())
-            if n_open == 0:
+            if self._open_snapshots(x, n_found, det, keep, u, w, round_) == 0:
                 break
             res_iz, res_ix = self._res_iz[:n], self._res_ix[:n]
             residual_peaks(self._row_spectra(resid, self._w_window), self._dft_z, n, self._visible_f, open_slot,
