@@ -24,34 +24,44 @@ from .fft import fft_inplace
 from .windows import make_window
 
 
+_U = numba.uint64
+
+
 @numba.njit(cache=True, nogil=True)
-def _accumulate_power(spec, n_bins, row_sum, out, cell_ptr, cell_s, cell_d, cell_power):
-    """out[r, (d + nd // 2) % nd] += sum over the slots of one RX of |spec[s, r, d]|^2, r < n_bins.
-    The slots are summed into row_sum first (contiguous, vectorised), then added with the shift
-    split into two branch-free runs. On the way, while row r is in the cache, the sampled cells
+def _accumulate_power(flat, n_slots, rows_alloc, nd, n_bins, row_sum, out, cell_ptr, cell_s, cell_d, cell_power):
+    """out[r, (d + nd // 2) % nd] += sum over the slots of one RX of |spec[s, r, d]|^2, r < n_bins, with
+    flat the float32 view of the RX's block [slot, rows_alloc, nd] (interleaved I/Q) and out flat
+    [n_bins * nd]. The slots are summed into row_sum first (contiguous, vectorised), then added with the
+    shift split into two branch-free runs. On the way, while row r is in the cache, the sampled cells
     q in cell_ptr[r] .. cell_ptr[r + 1] (slot cell_s[q], Doppler cell_d[q]) get their |X|^2 in
-    cell_power[q] (the front end's noise floor, frontend.py)."""
-    n_slots, _, nd = spec.shape
+    cell_power[q] (the front end's noise floor, frontend.py). Indices are unsigned: numba then emits no
+    negative-index wrap-around, which kept these loops from vectorising (0.037 against 0.022 ms per
+    reference RX, same numbers)."""
     half = nd // 2
     upper = nd - half
+    s_stride = _U(rows_alloc * 2 * nd)
     for r in range(n_bins):
-        first = spec[0, r]
+        base = _U(r * 2 * nd)
         for d in range(nd):
-            v = first[d]
-            row_sum[d] = v.real * v.real + v.imag * v.imag
+            a = flat[base + _U(2 * d)]
+            b = flat[base + _U(2 * d + 1)]
+            row_sum[_U(d)] = a * a + b * b
         for s in range(1, n_slots):
-            row = spec[s, r]
+            b0 = base + _U(s) * s_stride
             for d in range(nd):
-                v = row[d]
-                row_sum[d] += v.real * v.real + v.imag * v.imag
-        o = out[r]
+                a = flat[b0 + _U(2 * d)]
+                b = flat[b0 + _U(2 * d + 1)]
+                row_sum[_U(d)] += a * a + b * b
+        ob = _U(r * nd)
         for d in range(upper):
-            o[d + half] += row_sum[d]
+            out[ob + _U(d + half)] += row_sum[_U(d)]
         for d in range(upper, nd):
-            o[d - upper] += row_sum[d]
+            out[ob + _U(d - upper)] += row_sum[_U(d)]
         for q in range(cell_ptr[r], cell_ptr[r + 1]):
-            v = spec[cell_s[q], r, cell_d[q]]
-            cell_power[q] = v.real * v.real + v.imag * v.imag
+            i = _U(cell_s[q]) * s_stride + base + _U(2 * cell_d[q])
+            a = flat[i]
+            b = flat[i + _U(1)]
+            cell_power[q] = a * a + b * b
 
 
 class DopplerFft:
@@ -70,6 +80,8 @@ class DopplerFft:
         # [rx, slot, range, doppler]; with real sampling only the lower half of the range bins
         self.spectrum = self._full[:, :, :n_range_bins, :]
         self.power = np.zeros((n_range_bins, self.fft_size), np.float32)
+        self._power_flat = self.power.reshape(-1)
+        self._block_flat = [self._full[rx].reshape(-1).view(np.float32) for rx in range(self.n_rx)]
         self._row_sum = np.zeros(self.fft_size, np.float32)
         # Doppler frequency of one bin: 1 / (N_fft * T_loop)
         self.bin_hz = 1.0 / (self.fft_size * sensor.loop_period_s)
@@ -92,8 +104,10 @@ class DopplerFft:
             rows[:, :, self.n_loops:] = 0
         fft_inplace(rows)
 
-    def accumulate(self, block: np.ndarray, cells: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> None:
-        """Add receive channel block's |X|^2 to the map, and fill the sampled cells' power on the way:
-        cells = (cell_ptr [n_range_bins + 1], cell_s, cell_d, cell_power), the cells sorted by range
-        bin (FrontEnd.noise_cells)."""
-        _accumulate_power(block, self.n_range_bins, self._row_sum, self.power, *cells)
+    def accumulate(self, rx: int, cells: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]) -> None:
+        """Add receive channel rx's block's |X|^2 to the map, and fill the sampled cells' power on the
+        way: cells = (cell_ptr [n_range_bins + 1], cell_s, cell_d, cell_power), the cells sorted by
+        range bin (FrontEnd.noise_cells)."""
+        full = self._full
+        _accumulate_power(self._block_flat[rx], full.shape[1], full.shape[2], full.shape[3], self.n_range_bins,
+                          self._row_sum, self._power_flat, *cells)

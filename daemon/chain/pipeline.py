@@ -240,7 +240,7 @@ class Pipeline:
             t_range += time.perf_counter() - ta
             dop.transform(doppler_rows)
             front.after_doppler(doppler_rows, rx)  # leakage region
-            dop.accumulate(block, front.noise_cells)
+            dop.accumulate(rx, front.noise_cells)
             front.after_accumulate(rx)  # noise floor
         spec, power = dop.spectrum, dop.power
         t2 = time.perf_counter()
