@@ -418,7 +418,7 @@ def _add_stream_commands(sub) -> None:
     rc.add_argument("--points-format", default=None, metavar="{csv,npz,pcd,ply,mcap,rosbag}",
                     help="format of --points-out; default: from the file name")
     rc.add_argument("--frames", type=int, default=0, metavar="N",
-                    help="stop after N ADC frames (N point clouds without --out); default: no limit")
+                    help="stop after N ADC frames (N point clouds without --out; N frames of front-end monitors with --frontend-out alone); default: no limit")
     rc.add_argument("--duration", type=float, default=0.0, metavar="S", help="stop after S seconds")
     rc.add_argument("--sensor", help="sensor description (TOML), if no daemon's description is received")
     rc.add_argument("--frontend-out", metavar="FILE.csv",

@@ -474,9 +474,15 @@ class Recorder:
         self._last_frame = (msg.header["run"], msg.header["seq"])
 
     def _limit_reached(self) -> bool:
+        """--frames counts what is recorded: ADC frames with --out, else point clouds with --points-out,
+        else the frames of front-end monitor records (--frontend-out alone)."""
         if not self.frames:
             return False
-        return (self.frames_written if self.out is not None else self.clouds_written) >= self.frames
+        if self.out is not None:
+            return self.frames_written >= self.frames
+        if self.points_out is not None:
+            return self.clouds_written >= self.frames
+        return self.frontend is not None and self.frontend.summary.frames >= self.frames
 
     def _payload_bound(self, parts) -> int:
         """The largest payload taken for this message: the sensor's frame for ADC frames (once known), the
@@ -516,6 +522,8 @@ class Recorder:
         elif msg.kind == "adc":
             self._on_adc(msg)
         elif msg.kind == "frontend":
+            if self.out is None and self.points_out is None and self._limit_reached():
+                return False
             if self.frontend is None:
                 self.frontend = FrontendRun(len(msg.data), msg.header["full_scale"], self.frontend_out)
             if len(msg.data) == self.frontend.summary.n_rx:
@@ -601,6 +609,8 @@ class Recorder:
         if self.points_out is not None:
             points = self.points_writer.points if self.points_writer else 0
             counts |= {"point clouds": self.clouds_written, "points": points}
+        if not counts:  # --frontend-out alone
+            counts = {"monitor frames": self.frontend.summary.frames if self.frontend is not None else 0}
         return counts
 
     def _progress(self) -> Progress | None:

@@ -297,7 +297,8 @@ def _reference_frontend(sensor, payloads) -> list[np.ndarray]:
 
 @pytest.mark.parametrize("workers", [0, 2])
 def test_serve_publishes_the_monitor_of_every_frame(clipped, workers, tmp_path):
-    """serve alone and with two workers; with workers, `record --frontend-out` listens too."""
+    """serve alone and with two workers; `record --frontend-out` listens too (alone, with --frames 2, it stops
+    by itself after two frames of monitors)."""
     path, sensor, payloads, counts = clipped
     reference = _reference_frontend(sensor, payloads)
     src = ReplaySource(path, "tcp://127.0.0.1:*", speed=None, wait_s=30)
@@ -311,11 +312,12 @@ def test_serve_publishes_the_monitor_of_every_frame(clipped, workers, tmp_path):
             assert wait_until(lambda: svc.ready.is_set() or errors, 240) and not errors, errors
             col = Collector(svc.pub_endpoint)
             connected(col)
-            if workers:
-                rec = Recorder([svc.pub_endpoint], frontend_out=tmp_path / "fe.csv")
-                rec_thread = threading.Thread(target=rec.run, args=(rec_stop,), daemon=True)
-                rec_thread.start()
-                assert rec.sensor_known.wait(10)  # serve's description reached it: it is subscribed
+            # with workers it records until stopped; alone, --frames stops it by itself (frames of monitors)
+            rec_frames = 0 if workers else 2
+            rec = Recorder([svc.pub_endpoint], frontend_out=tmp_path / "fe.csv", frames=rec_frames)
+            rec_thread = threading.Thread(target=rec.run, args=(rec_stop,), daemon=True)
+            rec_thread.start()
+            assert rec.sensor_known.wait(10)  # serve's description reached it: it is subscribed
             assert src.run() == N_FRAMES
 
             def health_frames(c):
@@ -340,15 +342,23 @@ def test_serve_publishes_the_monitor_of_every_frame(clipped, workers, tmp_path):
                 100 * CLIP_N / SAMPLES_PER_FRAME)
             assert all(s["channels"]["clipped_percent_max"][rx] == 0.0 for s in summaries for rx in (0, 1, 3))
             if rec is not None:
-                assert wait_until(lambda: rec.frontend is not None and rec.frontend.summary.frames >= N_FRAMES, 10)
-                rec_stop.set()
-                rec_thread.join(5)
-                assert not rec_thread.is_alive()
+                n_rec = rec_frames or N_FRAMES
+                if rec_frames:
+                    rec_thread.join(10)  # stops by itself after rec_frames frames of monitors
+                    assert not rec_thread.is_alive()
+                else:
+                    assert wait_until(lambda: rec.frontend is not None and rec.frontend.summary.frames >= N_FRAMES,
+                                      10)
+                    rec_stop.set()
+                    rec_thread.join(5)
+                    assert not rec_thread.is_alive()
+                assert rec.frontend.summary.frames == n_rec
                 with open(tmp_path / "fe.csv", newline="") as f:
                     rows = list(csv.DictReader(f))
-                assert [(int(r["frame"]), int(r["rx"])) for r in rows] == [(k, rx) for k in range(N_FRAMES)
+                assert [(int(r["frame"]), int(r["rx"])) for r in rows] == [(k, rx) for k in range(n_rec)
                                                                            for rx in range(4)]
-                assert [int(r["clipped_samples"]) for r in rows] == [int(c) for count in counts for c in count]
+                assert [int(r["clipped_samples"]) for r in rows] == [int(c) for count in counts[:n_rec]
+                                                                     for c in count]
         finally:
             rec_stop.set()
             if col is not None:
