@@ -27,6 +27,7 @@ from pathlib import Path
 from . import batchplan, exports
 from .batchwork import ChunkJob, code_digest, process_chunk
 from .errors import CubecastError, is_integer
+from .frontendout import FrontendRun
 from .progress import Progress
 
 log = logging.getLogger(__name__)
@@ -133,6 +134,7 @@ class CaptureRun:
     task_s: float = 0.0
     t_first: float | None = None
     wall_s: float | None = None
+    monitor: FrontendRun | None = None   # the front end's summary over the capture (as process logs it)
 
     def row(self) -> dict:
         """The report's row; a failed capture has no output, so its counts are null."""
@@ -141,7 +143,8 @@ class CaptureRun:
                 "reason": self.reason, "frames": None if failed else self.frames,
                 "points": None if failed else self.points, "corrupt_skipped": None if failed else self.corrupt,
                 "repeated_skipped": self.repeated, "tasks": self.tasks, "task_s": round(self.task_s, 3),
-                "wall_s": None if self.wall_s is None else round(self.wall_s, 3)}
+                "wall_s": None if self.wall_s is None else round(self.wall_s, 3),
+                "frontend": None if failed or self.monitor is None else self.monitor.summary.health()}
 
 
 class Batch:
@@ -279,8 +282,11 @@ class Batch:
             while run.next_chunk in run.buffered:
                 res = run.buffered.pop(run.next_chunk)
                 self._writer(run)
-                for seq, ts, records in res["frames"]:
+                for seq, ts, records, front in res["frames"]:
                     run.writer.write_frame(seq, ts, records, run.sensor_id)
+                    if run.monitor is None:
+                        run.monitor = FrontendRun(len(front), res["full_scale"])
+                    run.monitor.add(seq, ts, front)
                 run.corrupt += res["corrupt_skipped"]
                 run.problems += res["problems"]
                 run.next_chunk += 1
@@ -309,10 +315,13 @@ class Batch:
             "capture": str(run.path.resolve()), "output": run.out.name, "name": run.path.stem, "format": self.fmt,
             "inputs": run.inputs, "sensor": run.figures, "frames": run.frames, "points": run.points,
             "corrupt_skipped": run.corrupt, "repeated_skipped": run.repeated, "problems": run.problems,
-            "tasks": run.tasks, "task_s": round(run.task_s, 3), "wall_s": round(run.wall_s, 3)})
+            "tasks": run.tasks, "task_s": round(run.task_s, 3), "wall_s": round(run.wall_s, 3),
+            "frontend": None if run.monitor is None else run.monitor.summary.health()})
         run.status = "done"
         self._progress.update(captures=sum(r.status == "done" for r in self.runs))
         log.info("%s: %d frames, %d points -> %s", run.path, run.frames, run.points, run.out)
+        if run.monitor is not None:
+            run.monitor.log_summary(log, prefix=f"{run.path.name}: ")
 
     def _fail(self, run: CaptureRun, why: str) -> None:
         run.status, run.reason = "failed", why

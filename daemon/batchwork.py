@@ -99,10 +99,13 @@ def process_chunk(job: ChunkJob, start: int, stop: int) -> dict:
         with CaptureReader(job.capture, skip_corrupt=job.skip_corrupt, skip_repeated=True) as reader:
             expected = sum(1 for j in range(start, stop) if reader.repeat_of(j) is None)
             before = len(reader.problems)
-            pipeline = _pipeline(capture_sensor(reader), job)
-            frames = list(iter_processed(reader, pipeline, start=start, stop=stop))
+            sensor = capture_sensor(reader)
+            pipeline = _pipeline(sensor, job)
+            # each frame's front-end records beside its points (as `process` reads pipeline.frontend)
+            frames = [(seq, ts, records, pipeline.frontend.copy())
+                      for seq, ts, records in iter_processed(reader, pipeline, start=start, stop=stop)]
             problems = [p for p in reader.problems[before:] if p.startswith("skipped frame")]
     except CubecastError as exc:
         return {"error": str(exc), "worker": where, "elapsed_s": time.perf_counter() - t0}
     return {"frames": frames, "corrupt_skipped": expected - len(frames), "problems": problems,
-            "elapsed_s": time.perf_counter() - t0, "worker": where}
+            "full_scale": float(sensor.adc.full_scale), "elapsed_s": time.perf_counter() - t0, "worker": where}

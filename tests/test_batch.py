@@ -430,3 +430,40 @@ def test_progress_lines_give_the_totals_the_rate_and_the_time_left(caplog):
         "batch: 50 of 300 frames (50.0/s), 0 of 3 captures, 5 s left",
         "batch: 150 of 300 frames (50.0/s), 1 of 3 captures, 3 s left"]
     assert [(r.frames, r.captures) for r in caplog.records] == [(50, 0), (150, 1)]
+
+
+def test_each_capture_carries_the_front_end_summary_process_gives(cluster, tmp_path, capsys, caplog):
+    """The front end's monitor over each capture, in the report row, the record beside the output and the
+    log, against `cubecast process --frontend-out` of the same capture (its CSV, a row per frame and
+    channel): the same frames, burst totals, clipped samples and frames with warnings."""
+    address, _ = cluster
+    interfered = SAMPLES / "yard_interfered.cap"
+    out = tmp_path / "run"
+    with caplog.at_level(logging.INFO, logger="cubecast.daemon.batch"):
+        code, report, err = batch(capsys, YARD, interfered, "--out", out, "--scheduler", address,
+                                  "--frames-per-task", 2)
+    assert code == 0, err
+    rows = rows_by_name(report)
+    for cap in (YARD, interfered):
+        fe_csv = tmp_path / f"{cap.stem}_fe.csv"
+        assert process_capture(cap, tmp_path / f"{cap.stem}.csv", frontend_out=fe_csv, progress=False) == 0
+        lines = fe_csv.read_text().splitlines()
+        head = lines[0].split(",")
+        csv_rows = [dict(zip(head, line.split(","))) for line in lines[1:]]
+        n_rx = 1 + max(int(r["rx"]) for r in csv_rows)
+        frames = sorted({int(r["frame"]) for r in csv_rows})
+        record = json.loads((out / f"{cap.stem}.csv.batch.json").read_text())
+        for summary in (rows[cap.name]["frontend"], record["frontend"]):
+            assert summary["frames"] == len(frames)
+            ch = summary["channels"]
+            for rx in range(n_rx):
+                mine = [r for r in csv_rows if int(r["rx"]) == rx]
+                assert ch["interference_bursts_total"][rx] == sum(int(r["interference_bursts"]) for r in mine)
+                assert ch["interference_bursts_max"][rx] == max(int(r["interference_bursts"]) for r in mine)
+            warned = {int(r["frame"]) for r in csv_rows if r["warnings"]}
+            assert summary["frames_with_warnings"] == len(warned)
+        if cap == interfered:
+            assert sum(record["frontend"]["channels"]["interference_bursts_total"]) > 0  # the interferer is seen
+    logged = [r.getMessage() for r in caplog.records if r.name == "cubecast.daemon.batch"]
+    assert any(m.startswith("yard_interfered.cap: ") for m in logged)
+    assert any(m.startswith("yard.cap: ") for m in logged)
