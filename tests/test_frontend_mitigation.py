@@ -250,6 +250,41 @@ def test_synthetic_bursts_flagged_counted_and_repaired(mode):
         assert np.mean(off.frontend["noise_floor_db"] - floor_clean) > 1.0
 
 
+
+def test_a_burst_on_the_same_samples_of_consecutive_loops_is_zeroed_not_copied():
+    """An interferer whose chirps are locked to our loop period puts its bursts on the same samples of
+    consecutive loops (with another phase each time). Interpolation takes a flagged sample from the two
+    chirps it was compared with, which there hold the burst as well: where those two disagree (their
+    difference passes the threshold) the sample is zeroed instead (README "Front-end monitors"); where
+    they agree (the guard samples beside the burst) it is interpolated as before. The spectrum is
+    scipy.fft of the frame repaired so by hand."""
+    s = make_sensor()
+    settings = ProcessingSettings(interference_mitigation="interpolate", dc_removal=False)
+    guard = settings.interference_guard_samples
+    sim = Simulator(s, parse_scene(SCENE), seed=21)
+    rng = np.random.default_rng(22)
+    pipe = Pipeline(s, settings)
+    clean = sim.frame(0)
+    n_slots, n_loops = s.n_slots, s.n_loops
+    slot, rx, a, length, p0 = 1, 2, 30, 8, 5
+    amp = 10.0 ** 1.5 * s.noise_rms_counts
+    dirty = clean.copy()
+    loops = (p0 - 1, p0, p0 + 1)
+    for p in loops:
+        phase = rng.uniform(0, 2 * np.pi) + np.pi * np.arange(length) ** 2 / 9.0
+        dirty[p * n_slots + slot, rx, a:a + length] += (amp * np.exp(1j * phase)).astype(np.complex64)
+    pipe.process(dirty)
+    assert pipe.frontend["interference_bursts"].tolist() == [0, 0, 3, 0][: s.n_rx]
+    repaired = dirty.astype(np.complex128)
+    lo, hi = a - guard, a + length + guard
+    for p in loops:
+        c = p * n_slots + slot
+        pa, pb = (p - 1) * n_slots + slot, (p + 1) * n_slots + slot
+        repaired[c, rx, lo:hi] = 0.5 * (dirty[pa, rx, lo:hi] + dirty[pb, rx, lo:hi])  # the guard: interpolated
+        repaired[c, rx, a:a + length] = 0  # the burst: its neighbours hold one too
+    spec, _ = reference_spectrum(s, repaired, settings, pipe)
+    assert np.abs(pipe.doppler_fft.spectrum - spec).max() <= 2e-6 * np.abs(spec).max() * np.log2(spec.size)
+
 def test_settings_checked():
     for kw, field in ((dict(interference_mitigation="median"), "interference_mitigation"),
                       (dict(interference_threshold_db=1.0), "interference_threshold_db"),

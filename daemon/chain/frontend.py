@@ -41,7 +41,10 @@ one difference passes T with probability exp(-T / 2 s^2) (the exponential's tail
 default 10 dB), both together far less often. Mitigation replaces a burst's samples by zeros, or
 (interpolate, the default) by the mean of the same samples in the two chirps of the slot it was
 compared with: interpolation in slow time, which keeps every static echo and, nearly, the moving ones
-(zeroing cuts a hole in every echo's tone and spreads the strong ones over all range bins).
+(zeroing cuts a hole in every echo's tone and spreads the strong ones over all range bins). Where
+those two chirps differ from each other by more than T at a sample, one of them holds a burst there
+too (an interferer locked to our loop period puts its bursts on the same samples of consecutive
+loops) and the sample is zeroed instead.
 
 After the Doppler FFT (`suppress_leakage`, per RX, when leakage_max_range_m asks): the TX-to-RX
 leakage is a strong static return in
@@ -295,7 +298,11 @@ def _repair(row, prev, nxt, has_prev, has_next, out, n, ci, off, iq_a, iq_b, w2,
         if mode == 0:
             continue
         for j in range(a, k):
-            if mode == 1:
+            # interpolation only where the two chirps it would take the sample from agree with each other
+            # (their difference passes no threshold): an interferer whose bursts fall on the same samples
+            # of consecutive loops (its chirps locked to our loop period) is in them as well, so there
+            # the sample is zeroed instead
+            if mode == 1 or (has_prev and has_next and _diff2(prev, nxt, j) > threshold):
                 out[2 * j] = 0.0
                 out[2 * j + 1] = 0.0
                 continue
